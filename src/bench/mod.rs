@@ -1,0 +1,160 @@
+//! The bench: its clock, its load source, its reference instrument and its positions.
+//!
+//! Each piece of hardware sits behind a trait, so that the built-in simulator and a real station
+//! drive the same executor.
+
+pub mod sim;
+
+use crate::link::DutLink;
+use crate::plan::{Load, Quantity};
+use serde::{Deserialize, Serialize};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+/// Bench time: seconds since the bench was set up.
+pub trait Clock: Send + Sync {
+    fn now_s(&self) -> f64;
+    fn sleep_s(&self, seconds: f64);
+    /// Whether time passes only when asked to (the simulator), or for real.
+    fn is_virtual(&self) -> bool;
+}
+
+/// A clock that jumps instead of waiting: the simulator never sleeps for real.
+#[derive(Debug, Default)]
+pub struct VirtualClock {
+    now: Mutex<f64>,
+}
+
+impl Clock for VirtualClock {
+    fn now_s(&self) -> f64 {
+        *self.now.lock().unwrap_or_else(|p| p.into_inner())
+    }
+    fn sleep_s(&self, seconds: f64) {
+        if seconds > 0.0 {
+            *self.now.lock().unwrap_or_else(|p| p.into_inner()) += seconds;
+        }
+    }
+    fn is_virtual(&self) -> bool {
+        true
+    }
+}
+
+/// Wall-clock time, for real benches.
+#[derive(Debug)]
+pub struct RealClock {
+    start: Instant,
+}
+
+impl Default for RealClock {
+    fn default() -> Self {
+        RealClock {
+            start: Instant::now(),
+        }
+    }
+}
+
+impl Clock for RealClock {
+    fn now_s(&self) -> f64 {
+        self.start.elapsed().as_secs_f64()
+    }
+    fn sleep_s(&self, seconds: f64) {
+        if seconds > 0.0 {
+            std::thread::sleep(Duration::from_secs_f64(seconds));
+        }
+    }
+    fn is_virtual(&self) -> bool {
+        false
+    }
+}
+
+/// A failure of the source or the reference instrument.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum BenchError {
+    #[error("load source: {0}")]
+    Source(String),
+    #[error("reference: {0}")]
+    Reference(String),
+}
+
+/// What drives the current through the positions.
+pub trait LoadSource: Send {
+    fn describe(&self) -> String;
+    fn apply(&mut self, load: &Load) -> Result<(), BenchError>;
+    fn off(&mut self) -> Result<(), BenchError>;
+}
+
+/// A request for the reference value of one quantity over a step's sampling window.
+#[derive(Debug, Clone)]
+pub struct ReferenceRequest<'a> {
+    pub step_id: &'a str,
+    pub quantity: Quantity,
+    pub load: &'a Load,
+    /// Bench times of the first and last sample.
+    pub window: (f64, f64),
+}
+
+/// A reference value and where it came from.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ReferenceReading {
+    pub value: f64,
+    /// "instrument", "operator" or "file".
+    pub source: String,
+    /// Bench time the reading was taken or entered.
+    pub taken_at_s: f64,
+    /// The text as typed or imported, where a person or a file gave it.
+    #[serde(skip_serializing_if = "Option::is_none", default)]
+    pub as_given: Option<String>,
+}
+
+/// The instrument (or person, or file) that says what really flowed.
+pub trait ReferenceMeter: Send {
+    fn read(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError>;
+}
+
+/// Identity and traceability of a reference instrument.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct InstrumentInfo {
+    pub id: String,
+    pub description: String,
+}
+
+/// The bench as recorded: which station, which reference.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct StationInfo {
+    pub id: String,
+    pub description: String,
+    pub reference: InstrumentInfo,
+    pub source: String,
+}
+
+/// One test position and the link to the unit in it.
+pub struct Position {
+    /// 1-based, as the positions are labelled on the bench.
+    pub number: usize,
+    pub link: Box<dyn DutLink>,
+    /// The serial number scanned or given for this position, to cross-check with the unit's.
+    pub expected_serial: Option<String>,
+}
+
+/// Everything the executor needs to run a plan.
+pub struct Bench {
+    pub station: StationInfo,
+    pub clock: Arc<dyn Clock>,
+    pub source: Box<dyn LoadSource>,
+    pub reference: Box<dyn ReferenceMeter>,
+    pub positions: Vec<Position>,
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_virtual_clock_jumps_and_never_goes_back() {
+        let c = VirtualClock::default();
+        c.sleep_s(2.5);
+        c.sleep_s(-1.0);
+        assert_eq!(c.now_s(), 2.5);
+        assert!(c.is_virtual());
+    }
+}

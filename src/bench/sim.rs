@@ -1,0 +1,573 @@
+//! The built-in simulated bench: a load source, a reference meter and N meters, on a virtual
+//! clock.
+//!
+//! The physics is simple but honest about what makes bench testing hard:
+//! - the source delivers the set load with a small error of its own, which only the reference
+//!   sees truly;
+//! - every meter has its own gain and offset errors, a phase error, noise, quantisation to counts,
+//!   a first-order settling after each load change (time constant τ) and, after switch-on from
+//!   no load, a short surge (lamp filaments are cold), so that a settle time too short shows;
+//! - the reference meter has a small fixed error and noise of its own;
+//! - one meter carries a planted defect (a phase-compensation error) so that the demo has a unit
+//!   to reject: it lies at position `seed mod N` + 1 and is reported by [`SimBench::defects`].
+//!
+//! The same seed gives the same numbers, bit for bit: every random stream is a ChaCha8 stream
+//! derived from the seed and the part it drives.
+
+use super::{
+    Bench, BenchError, Clock, InstrumentInfo, LoadSource, Position, ReferenceMeter,
+    ReferenceReading, ReferenceRequest, StationInfo, VirtualClock,
+};
+use crate::link::{DutLink, Identity, LinkError};
+use crate::plan::{Load, Quantity};
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use rand_distr::{Distribution, Normal};
+use std::sync::{Arc, Mutex, MutexGuard};
+
+/// The simulated product's identity (an invented maker's invented smart plug).
+pub const SIM_MODEL: &str = "TM-16";
+pub const SIM_FIRMWARE: &str = "2.1.4";
+
+/// Readings below this current are suppressed to zero power by the simulated firmware (its
+/// no-load threshold), as meters do to keep the energy register from creeping.
+const NO_LOAD_THRESHOLD_A: f64 = 0.010;
+/// Lamp-bank switch-on surge: the peak is this many times the steady current, decaying with
+/// `SURGE_TAU_S` (common practice, no published source: cold filaments draw several times their
+/// hot current for tens of milliseconds).
+const SURGE_FACTOR: f64 = 4.0;
+const SURGE_TAU_S: f64 = 0.05;
+
+/// How the simulated bench is built.
+#[derive(Debug, Clone)]
+pub struct SimConfig {
+    pub seed: u64,
+    pub positions: usize,
+    /// Serial numbers for the positions; generated from the seed when absent.
+    pub serials: Option<Vec<String>>,
+    /// Whether to plant the phase defect on one position.
+    pub plant_defect: bool,
+    /// Spread of the meters' settling time constants, seconds (min, max).
+    pub tau_range_s: (f64, f64),
+}
+
+impl SimConfig {
+    pub fn new(seed: u64, positions: usize) -> SimConfig {
+        SimConfig {
+            seed,
+            positions,
+            serials: None,
+            plant_defect: true,
+            tau_range_s: (0.15, 0.45),
+        }
+    }
+}
+
+/// A fault the simulator put into a meter on purpose.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PlantedDefect {
+    pub position: usize,
+    pub serial: String,
+    /// Extra phase lag of the current measurement, degrees.
+    pub phase_error_deg: f64,
+}
+
+/// Per-meter error model, fixed for the life of the meter.
+#[derive(Debug, Clone)]
+struct MeterModel {
+    identity: Identity,
+    gain_current: f64,
+    gain_voltage: f64,
+    offset_current_a: f64,
+    phase_error_deg: f64,
+    noise_relative: f64,
+    tau_s: f64,
+}
+
+/// A meter's settling state: what it saw when the load last changed.
+#[derive(Debug, Clone)]
+struct MeterState {
+    model: MeterModel,
+    seen_at_change: (f64, f64),
+    energy_wh: f64,
+    energy_until_s: f64,
+    noise: ChaCha8Rng,
+}
+
+/// The shared physical state of the bench.
+struct World {
+    clock: Arc<VirtualClock>,
+    /// What the source actually delivers now (set load with the source's own error).
+    actual: Load,
+    previous: Load,
+    changed_at_s: f64,
+    from_no_load: bool,
+    meters: Vec<MeterState>,
+}
+
+/// Counts per ampere and per volt of the simulated front end (its quantisation).
+const COUNTS_PER_A: f64 = 1000.0;
+const COUNTS_PER_V: f64 = 100.0;
+
+impl World {
+    fn since_change(&self) -> f64 {
+        (self.clock.now_s() - self.changed_at_s).max(0.0)
+    }
+
+    /// What the meter's front end sees of the voltage and current at bench time `t`.
+    fn seen(&self, meter: &MeterState, t: f64) -> (f64, f64) {
+        let dt = (t - self.changed_at_s).max(0.0);
+        let decay = (-dt / meter.model.tau_s).exp();
+        let (v0, i0) = meter.seen_at_change;
+        let v = self.actual.voltage + (v0 - self.actual.voltage) * decay;
+        let mut i = self.actual.current + (i0 - self.actual.current) * decay;
+        if self.from_no_load {
+            i += self.actual.current * SURGE_FACTOR * (-dt / SURGE_TAU_S).exp();
+        }
+        (v, i)
+    }
+
+    /// The meter's noiseless active power at time `t` (what its energy register integrates).
+    fn meter_power(&self, meter: &MeterState, t: f64) -> f64 {
+        let (v, i) = self.seen(meter, t);
+        let i_meas = i * (1.0 + meter.model.gain_current) + meter.model.offset_current_a;
+        if i_meas.abs() < NO_LOAD_THRESHOLD_A {
+            return 0.0;
+        }
+        let phi = (self.actual.phase_deg + meter.model.phase_error_deg).to_radians();
+        v * (1.0 + meter.model.gain_voltage) * i_meas * phi.cos()
+    }
+
+    /// Integrates meter `index`'s register up to bench time `t`: midpoint steps while the
+    /// meter still settles, one exact step once it has.
+    fn advance_energy(&mut self, index: usize, t: f64) {
+        let meter = &self.meters[index];
+        let mut from = meter.energy_until_s;
+        let settled_after = self.changed_at_s + 10.0 * meter.model.tau_s.max(SURGE_TAU_S);
+        let mut energy = 0.0;
+        const STEP_S: f64 = 0.01;
+        while from < t {
+            let to = if from >= settled_after {
+                t
+            } else {
+                (from + STEP_S).min(t)
+            };
+            energy += self.meter_power(meter, 0.5 * (from + to)) * (to - from) / 3600.0;
+            from = to;
+        }
+        let meter = &mut self.meters[index];
+        meter.energy_wh += energy;
+        meter.energy_until_s = t;
+    }
+
+    fn apply(&mut self, actual: Load) {
+        let now = self.clock.now_s();
+        for index in 0..self.meters.len() {
+            self.advance_energy(index, now);
+            let seen = self.seen(&self.meters[index], now);
+            self.meters[index].seen_at_change = seen;
+        }
+        self.previous = self.actual;
+        self.from_no_load = self.actual.current < NO_LOAD_THRESHOLD_A && actual.current > 0.0;
+        self.actual = actual;
+        self.changed_at_s = now;
+    }
+
+    fn read(&mut self, index: usize, quantity: Quantity) -> f64 {
+        let now = self.clock.now_s();
+        if quantity == Quantity::ActiveEnergy {
+            self.advance_energy(index, now);
+            return (self.meters[index].energy_wh * 1000.0).round() / 1000.0;
+        }
+        let (v, i) = self.seen(&self.meters[index], now);
+        let actual = self.actual;
+        let meter = &mut self.meters[index];
+        let m = &meter.model;
+        let noise = Normal::new(0.0, m.noise_relative).expect("noise is a finite spread");
+        let mut jitter = || 1.0 + noise.sample(&mut meter.noise);
+        let i_counts =
+            ((i * (1.0 + m.gain_current) + m.offset_current_a) * jitter() * COUNTS_PER_A).round();
+        let v_counts = (v * (1.0 + m.gain_voltage) * jitter() * COUNTS_PER_V).round();
+        let i_meas = i_counts / COUNTS_PER_A;
+        let v_meas = v_counts / COUNTS_PER_V;
+        let phi = (actual.phase_deg + m.phase_error_deg).to_radians();
+        let live = i_meas.abs() >= NO_LOAD_THRESHOLD_A;
+        let round2 = |x: f64| (x * 100.0).round() / 100.0;
+        match quantity {
+            Quantity::Current => i_meas,
+            Quantity::Voltage => v_meas,
+            Quantity::ActivePower if live => round2(v_meas * i_meas * phi.cos()),
+            Quantity::ReactivePower if live => round2(v_meas * i_meas * phi.sin()),
+            Quantity::ApparentPower if live => round2(v_meas * i_meas),
+            Quantity::PowerFactor if live => (phi.cos() * 1000.0).round() / 1000.0,
+            Quantity::PowerFactor => 1.0,
+            // Frequency is counted over many cycles: far less noisy than the rms values.
+            Quantity::Frequency => {
+                let jitter = Normal::new(0.0, 2e-5)
+                    .expect("finite")
+                    .sample(&mut meter.noise);
+                (actual.frequency * (1.0 + jitter) * 1000.0).round() / 1000.0
+            }
+            _ => 0.0,
+        }
+    }
+}
+
+fn lock(world: &Mutex<World>) -> MutexGuard<'_, World> {
+    world.lock().unwrap_or_else(|p| p.into_inner())
+}
+
+/// The built-in simulated bench.
+pub struct SimBench {
+    world: Arc<Mutex<World>>,
+    clock: Arc<VirtualClock>,
+    defects: Vec<PlantedDefect>,
+    seed: u64,
+}
+
+fn stream(seed: u64, stream: u64) -> ChaCha8Rng {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    rng.set_stream(stream);
+    rng
+}
+
+/// Stream numbers: one per part, so that adding a meter does not change the others' numbers.
+const STREAM_SOURCE: u64 = 1;
+const STREAM_REFERENCE: u64 = 2;
+const STREAM_SERIALS: u64 = 3;
+const STREAM_MODEL_BASE: u64 = 1_000;
+const STREAM_NOISE_BASE: u64 = 2_000;
+
+impl SimBench {
+    pub fn new(config: &SimConfig) -> SimBench {
+        let clock = Arc::new(VirtualClock::default());
+        let serials = config.serials.clone().unwrap_or_else(|| {
+            let mut rng = stream(config.seed, STREAM_SERIALS);
+            let first = 240_000 + (rand::Rng::next_u32(&mut rng) % 9_000) * 10;
+            (0..config.positions)
+                .map(|i| format!("TM16-{:06}", first as usize + i))
+                .collect()
+        });
+        let defect_index = (config.seed % config.positions.max(1) as u64) as usize;
+        let mut defects = Vec::new();
+        let meters = serials
+            .iter()
+            .enumerate()
+            .map(|(i, serial)| {
+                let mut model = meter_model(config, i, serial);
+                if config.plant_defect && i == defect_index {
+                    model.phase_error_deg += 1.2;
+                    defects.push(PlantedDefect {
+                        position: i + 1,
+                        serial: serial.clone(),
+                        phase_error_deg: 1.2,
+                    });
+                }
+                MeterState {
+                    model,
+                    seen_at_change: (0.0, 0.0),
+                    energy_wh: 0.0,
+                    energy_until_s: 0.0,
+                    noise: stream(config.seed, STREAM_NOISE_BASE + i as u64),
+                }
+            })
+            .collect();
+        let off = Load {
+            voltage: 0.0,
+            current: 0.0,
+            phase_deg: 0.0,
+            frequency: 50.0,
+        };
+        let world = World {
+            clock: clock.clone(),
+            actual: off,
+            previous: off,
+            changed_at_s: 0.0,
+            from_no_load: false,
+            meters,
+        };
+        SimBench {
+            world: Arc::new(Mutex::new(world)),
+            clock,
+            defects,
+            seed: config.seed,
+        }
+    }
+
+    /// The defects planted, so that a test can check they are the ones found.
+    pub fn defects(&self) -> &[PlantedDefect] {
+        &self.defects
+    }
+
+    /// The settling time constants of the meters, seconds.
+    pub fn time_constants(&self) -> Vec<f64> {
+        lock(&self.world)
+            .meters
+            .iter()
+            .map(|m| m.model.tau_s)
+            .collect()
+    }
+
+    /// Seconds since the last load change, on the virtual clock.
+    pub fn since_change(&self) -> f64 {
+        lock(&self.world).since_change()
+    }
+
+    /// Turns the simulator into a [`Bench`] for the executor.
+    pub fn into_bench(self) -> Bench {
+        let positions = (0..lock(&self.world).meters.len())
+            .map(|i| Position {
+                number: i + 1,
+                link: Box::new(SimLink {
+                    world: self.world.clone(),
+                    index: i,
+                }) as Box<dyn DutLink>,
+                expected_serial: None,
+            })
+            .collect();
+        Bench {
+            station: StationInfo {
+                id: "sim".into(),
+                description: format!("built-in simulated bench, seed {}", self.seed),
+                reference: InstrumentInfo {
+                    id: "SIM-REF-1".into(),
+                    description: "simulated true-RMS reference meter, ±0.02 % typical".into(),
+                },
+                source: "simulated lamp-bank load with switch-on surge".into(),
+            },
+            clock: self.clock.clone(),
+            source: Box::new(SimSource {
+                world: self.world.clone(),
+                rng: stream(self.seed, STREAM_SOURCE),
+            }),
+            reference: Box::new(SimReference {
+                world: self.world.clone(),
+                rng: stream(self.seed, STREAM_REFERENCE),
+                gain: 0.0001,
+            }),
+            positions,
+        }
+    }
+}
+
+fn meter_model(config: &SimConfig, index: usize, serial: &str) -> MeterModel {
+    let mut rng = stream(config.seed, STREAM_MODEL_BASE + index as u64);
+    let normal = |sd: f64| Normal::new(0.0, sd).expect("finite spread");
+    let uniform = |rng: &mut ChaCha8Rng, lo: f64, hi: f64| {
+        lo + (hi - lo) * (rand::Rng::next_u64(rng) as f64 / u64::MAX as f64)
+    };
+    MeterModel {
+        identity: Identity {
+            model: SIM_MODEL.into(),
+            serial: serial.into(),
+            firmware: SIM_FIRMWARE.into(),
+        },
+        gain_current: normal(0.0012).sample(&mut rng),
+        gain_voltage: normal(0.0008).sample(&mut rng),
+        offset_current_a: normal(0.0015).sample(&mut rng),
+        phase_error_deg: normal(0.05).sample(&mut rng),
+        noise_relative: 0.0005,
+        tau_s: uniform(&mut rng, config.tau_range_s.0, config.tau_range_s.1),
+    }
+}
+
+/// The link to one simulated meter.
+struct SimLink {
+    world: Arc<Mutex<World>>,
+    index: usize,
+}
+
+impl DutLink for SimLink {
+    fn identify(&mut self) -> Result<Identity, LinkError> {
+        Ok(lock(&self.world).meters[self.index].model.identity.clone())
+    }
+
+    fn read(&mut self, quantity: Quantity, _channel: &str) -> Result<f64, LinkError> {
+        Ok(lock(&self.world).read(self.index, quantity))
+    }
+
+    fn describe(&self) -> String {
+        format!("simulated meter {}", self.index + 1)
+    }
+}
+
+/// The simulated source: delivers the set load with a small error of its own each time.
+struct SimSource {
+    world: Arc<Mutex<World>>,
+    rng: ChaCha8Rng,
+}
+
+impl LoadSource for SimSource {
+    fn describe(&self) -> String {
+        "simulated source".into()
+    }
+
+    fn apply(&mut self, load: &Load) -> Result<(), BenchError> {
+        let gain = Normal::new(0.0, 0.001)
+            .expect("finite")
+            .sample(&mut self.rng);
+        let phase = Normal::new(0.0, 0.05)
+            .expect("finite")
+            .sample(&mut self.rng);
+        let actual = Load {
+            voltage: load.voltage * (1.0 + gain / 2.0),
+            current: load.current * (1.0 + gain),
+            phase_deg: load.phase_deg + phase,
+            frequency: load.frequency,
+        };
+        lock(&self.world).apply(actual);
+        Ok(())
+    }
+
+    fn off(&mut self) -> Result<(), BenchError> {
+        let mut world = lock(&self.world);
+        let off = Load {
+            current: 0.0,
+            voltage: 0.0,
+            ..world.actual
+        };
+        world.apply(off);
+        Ok(())
+    }
+}
+
+/// The simulated reference meter: what really flowed, with its own small error.
+struct SimReference {
+    world: Arc<Mutex<World>>,
+    rng: ChaCha8Rng,
+    /// Fixed relative error of the instrument.
+    gain: f64,
+}
+
+impl ReferenceMeter for SimReference {
+    fn read(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError> {
+        let world = lock(&self.world);
+        let actual = world.actual;
+        let now = world.clock.now_s();
+        drop(world);
+        let noise = Normal::new(0.0, 0.00005)
+            .expect("finite")
+            .sample(&mut self.rng);
+        let factor = 1.0 + self.gain + noise;
+        let (t0, t1) = request.window;
+        let value = match request.quantity {
+            Quantity::PowerFactor => actual.power_factor(),
+            Quantity::Frequency => actual.frequency,
+            q => actual.nominal(q, t1 - t0) * factor,
+        };
+        Ok(ReferenceReading {
+            value: round_significant(value, 6),
+            source: "instrument".into(),
+            taken_at_s: now,
+            as_given: None,
+        })
+    }
+}
+
+/// Rounds to `digits` significant digits, as an instrument's display does.
+fn round_significant(x: f64, digits: i32) -> f64 {
+    if x == 0.0 || !x.is_finite() {
+        return x;
+    }
+    let scale = 10f64.powi(digits - 1 - x.abs().log10().floor() as i32);
+    (x * scale).round() / scale
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn load(current: f64, phase_deg: f64) -> Load {
+        Load {
+            voltage: 230.0,
+            current,
+            phase_deg,
+            frequency: 50.0,
+        }
+    }
+
+    #[test]
+    fn same_seed_same_numbers() {
+        let read_all = || {
+            let mut bench = SimBench::new(&SimConfig::new(7, 3)).into_bench();
+            bench.source.apply(&load(5.0, 0.0)).unwrap();
+            bench.clock.sleep_s(3.0);
+            bench
+                .positions
+                .iter_mut()
+                .map(|p| p.link.read(Quantity::ActivePower, "L").unwrap())
+                .collect::<Vec<_>>()
+        };
+        assert_eq!(read_all(), read_all());
+    }
+
+    #[test]
+    fn a_meter_read_too_early_has_not_settled() {
+        let sim = SimBench::new(&SimConfig {
+            plant_defect: false,
+            ..SimConfig::new(1, 1)
+        });
+        let tau = sim.time_constants()[0];
+        let mut bench = sim.into_bench();
+        bench.source.apply(&load(5.0, 0.0)).unwrap();
+        bench.clock.sleep_s(tau);
+        let early = bench.positions[0]
+            .link
+            .read(Quantity::Current, "L")
+            .unwrap();
+        bench.clock.sleep_s(20.0 * tau);
+        let late = bench.positions[0]
+            .link
+            .read(Quantity::Current, "L")
+            .unwrap();
+        // After one time constant a first-order response has covered 1 − 1/e ≈ 63 %.
+        assert!(early < 0.75 * late, "early {early}, late {late}");
+        assert!((late - 5.0).abs() < 0.05, "late {late}");
+    }
+
+    #[test]
+    fn the_energy_register_integrates_power() {
+        let sim = SimBench::new(&SimConfig {
+            plant_defect: false,
+            ..SimConfig::new(3, 1)
+        });
+        let mut bench = sim.into_bench();
+        bench.source.apply(&load(10.0, 0.0)).unwrap();
+        bench.clock.sleep_s(5.0);
+        let e0 = bench.positions[0]
+            .link
+            .read(Quantity::ActiveEnergy, "L")
+            .unwrap();
+        bench.clock.sleep_s(36.0);
+        let e1 = bench.positions[0]
+            .link
+            .read(Quantity::ActiveEnergy, "L")
+            .unwrap();
+        // 2300 W for 36 s is 23 Wh; the meter's own errors are a fraction of a percent.
+        assert!(((e1 - e0) - 23.0).abs() < 0.2, "{}", e1 - e0);
+    }
+
+    #[test]
+    fn no_load_does_not_creep() {
+        let mut bench = SimBench::new(&SimConfig::new(5, 2)).into_bench();
+        bench.source.apply(&load(0.0, 0.0)).unwrap();
+        bench.clock.sleep_s(600.0);
+        for p in &mut bench.positions {
+            assert_eq!(p.link.read(Quantity::ActiveEnergy, "L").unwrap(), 0.0);
+            assert_eq!(p.link.read(Quantity::ActivePower, "L").unwrap(), 0.0);
+        }
+    }
+
+    #[test]
+    fn the_defect_lies_where_the_seed_says() {
+        let sim = SimBench::new(&SimConfig::new(6, 4));
+        assert_eq!(sim.defects().len(), 1);
+        assert_eq!(sim.defects()[0].position, 6 % 4 + 1);
+    }
+
+    #[test]
+    fn rounds_like_a_six_digit_display() {
+        assert_eq!(round_significant(4.987654321, 6), 4.98765);
+        assert_eq!(round_significant(1149.87654, 6), 1149.88);
+    }
+}

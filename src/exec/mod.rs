@@ -1,0 +1,435 @@
+//! The step engine: applies each load, waits, samples every position, takes the reference and
+//! decides.
+//!
+//! The engine knows nothing of terminals or files: it tells a [`Reporter`] what happens, as
+//! events, and hands back one [`UnitRecord`] per position. A fault on one position's link marks
+//! that unit's step incomplete and keeps every reading already taken; the other positions carry
+//! on.
+
+mod decide;
+
+use crate::bench::{Bench, Position, ReferenceRequest};
+use crate::link::Identity;
+use crate::plan::{Plan, Quantity, Step};
+use crate::record::{
+    CheckRecord, CheckVerdict, PlanRef, RECORD_FORMAT, ReferenceRecord, Sample, StepRecord,
+    StepStatus, UnitRecord, UnitStatus, UnitVerdict,
+};
+
+/// Who runs what, for the records.
+#[derive(Debug, Clone)]
+pub struct RunContext {
+    pub run_id: String,
+    pub operator: String,
+    pub lot: Option<String>,
+    pub tool_version: String,
+}
+
+/// What the engine tells its reporter, in order.
+#[derive(Debug)]
+pub enum Event<'a> {
+    RunStarted {
+        plan: &'a Plan,
+        positions: usize,
+    },
+    UnitIdentified {
+        position: usize,
+        identity: &'a Identity,
+    },
+    UnitRefused {
+        position: usize,
+        reason: &'a str,
+    },
+    StepStarted {
+        index: usize,
+        total: usize,
+        step: &'a Step,
+    },
+    StepFinished {
+        index: usize,
+        step: &'a Step,
+        /// (position, status, failed checks) for each unit tested at this step.
+        results: Vec<(usize, StepStatus, usize)>,
+    },
+    RunFinished {
+        records: &'a [UnitRecord],
+        bench_time_s: f64,
+    },
+}
+
+/// Receives the engine's events: the terminal, a progress bar, a test.
+pub trait Reporter {
+    fn event(&mut self, event: &Event);
+}
+
+/// A reporter that ignores everything.
+pub struct Silent;
+
+impl Reporter for Silent {
+    fn event(&mut self, _: &Event) {}
+}
+
+/// One position's state during the run.
+struct Unit {
+    record: UnitRecord,
+    /// Whether the unit is still being tested (not refused at identification).
+    active: bool,
+}
+
+/// Runs `plan` on `bench` and returns one record per position.
+pub fn run(
+    plan: &Plan,
+    bench: &mut Bench,
+    ctx: &RunContext,
+    reporter: &mut dyn Reporter,
+) -> Vec<UnitRecord> {
+    let started_at = now_iso();
+    let t_start = bench.clock.now_s();
+    reporter.event(&Event::RunStarted {
+        plan,
+        positions: bench.positions.len(),
+    });
+    let mut units: Vec<Unit> = bench
+        .positions
+        .iter_mut()
+        .map(|p| identify(plan, p, ctx, &bench.station, &started_at))
+        .collect();
+    for u in &units {
+        match (&u.record.identity, u.active) {
+            (Some(identity), true) => reporter.event(&Event::UnitIdentified {
+                position: u.record.position,
+                identity,
+            }),
+            _ => reporter.event(&Event::UnitRefused {
+                position: u.record.position,
+                reason: u.record.verdict.reasons.first().map_or("", String::as_str),
+            }),
+        }
+    }
+    let mut source_failure: Option<String> = None;
+    for (index, step) in plan.steps.iter().enumerate() {
+        if let Some(reason) = &source_failure {
+            for u in units.iter_mut().filter(|u| u.active) {
+                u.record
+                    .steps
+                    .push(not_run(step, &format!("not run: {reason}")));
+            }
+            continue;
+        }
+        reporter.event(&Event::StepStarted {
+            index,
+            total: plan.steps.len(),
+            step,
+        });
+        if let Err(e) = bench.source.apply(&step.load) {
+            let reason = e.to_string();
+            for u in units.iter_mut().filter(|u| u.active) {
+                u.record.steps.push(not_run(step, &reason));
+            }
+            source_failure = Some(reason);
+            continue;
+        }
+        let started_at_s = bench.clock.now_s();
+        bench.clock.sleep_s(step.settle_s);
+        run_step(step, started_at_s, bench, &mut units);
+        reporter.event(&Event::StepFinished {
+            index,
+            step,
+            results: units
+                .iter()
+                .filter(|u| u.active)
+                .filter_map(|u| {
+                    let s = u.record.steps.last()?;
+                    let failed = s
+                        .checks
+                        .iter()
+                        .filter(|c| c.verdict == CheckVerdict::Fail)
+                        .count();
+                    Some((u.record.position, s.status, failed))
+                })
+                .collect(),
+        });
+    }
+    // Leave the bench safe whatever happened; a failure to switch off is worth a line too.
+    let off_failure = bench.source.off().err().map(|e| e.to_string());
+    let bench_time_s = bench.clock.now_s() - t_start;
+    let finished_at = now_iso();
+    let records: Vec<UnitRecord> = units
+        .into_iter()
+        .map(|mut u| {
+            u.record.finished_at = finished_at.clone();
+            u.record.bench_time_s = bench_time_s;
+            if u.active {
+                u.record.verdict = decide::unit_verdict(&u.record.steps);
+            }
+            if let Some(e) = &off_failure {
+                u.record.verdict.reasons.push(format!("after the run: {e}"));
+            }
+            u.record
+        })
+        .collect();
+    reporter.event(&Event::RunFinished {
+        records: &records,
+        bench_time_s,
+    });
+    records
+}
+
+fn now_iso() -> String {
+    chrono::Local::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, false)
+}
+
+/// Reads a position's identity and decides whether the unit may be tested.
+fn identify(
+    plan: &Plan,
+    position: &mut Position,
+    ctx: &RunContext,
+    station: &crate::bench::StationInfo,
+    started_at: &str,
+) -> Unit {
+    let identity = position.link.identify();
+    let (identity, refusal) = match identity {
+        Ok(id) => {
+            let refusal = refusal_reason(plan, position, &id);
+            (Some(id), refusal)
+        }
+        Err(e) => (
+            None,
+            Some((
+                UnitStatus::Incomplete,
+                format!("could not identify the unit: {e}"),
+            )),
+        ),
+    };
+    let serial = identity
+        .as_ref()
+        .map(|i| i.serial.clone())
+        .or_else(|| position.expected_serial.clone())
+        .unwrap_or_else(|| format!("position-{}-unidentified", position.number));
+    let (status, reasons, active) = match refusal {
+        Some((status, reason)) => (status, vec![reason], false),
+        None => (UnitStatus::Incomplete, Vec::new(), true),
+    };
+    Unit {
+        record: UnitRecord {
+            format: RECORD_FORMAT.into(),
+            tool_version: ctx.tool_version.clone(),
+            run_id: ctx.run_id.clone(),
+            position: position.number,
+            serial,
+            identity,
+            plan: PlanRef {
+                id: plan.id.clone(),
+                revision: plan.revision.clone(),
+                title: plan.title.clone(),
+                file: plan.source.file.clone(),
+                sha256: plan.source.sha256.clone(),
+                model: plan.product.model.clone(),
+                class: plan.ratings.class.clone(),
+            },
+            lot: ctx.lot.clone(),
+            operator: ctx.operator.clone(),
+            station: station.clone(),
+            link: position.link.describe(),
+            started_at: started_at.to_string(),
+            finished_at: String::new(),
+            bench_time_s: 0.0,
+            verdict: UnitVerdict { status, reasons },
+            steps: Vec::new(),
+        },
+        active,
+    }
+}
+
+/// Why a unit that answered must not be tested, if it must not.
+fn refusal_reason(plan: &Plan, position: &Position, id: &Identity) -> Option<(UnitStatus, String)> {
+    if let Some(expected) = &position.expected_serial
+        && expected != &id.serial
+    {
+        return Some((
+            UnitStatus::Incomplete,
+            format!(
+                "position {} was given serial {expected}, but the unit reports {}: check the unit is in the right position",
+                position.number, id.serial
+            ),
+        ));
+    }
+    if id.model != plan.product.model {
+        return Some((
+            UnitStatus::Rejected,
+            format!(
+                "the unit reports model {}, but the plan tests {}",
+                id.model, plan.product.model
+            ),
+        ));
+    }
+    if !plan.product.firmware.is_match(&id.firmware) {
+        return Some((
+            UnitStatus::Rejected,
+            format!(
+                "firmware {} does not match the plan's pattern {}",
+                id.firmware, plan.product.firmware_pattern
+            ),
+        ));
+    }
+    None
+}
+
+fn not_run(step: &Step, reason: &str) -> StepRecord {
+    let mut record = empty_step(step, None);
+    record.status = StepStatus::NotRun;
+    record.reason = Some(reason.to_string());
+    record
+}
+
+fn empty_step(step: &Step, started_at_s: Option<f64>) -> StepRecord {
+    StepRecord {
+        id: step.id.clone(),
+        description: step.description.clone(),
+        load: step.load,
+        settle_s: step.settle_s,
+        samples_planned: step.samples,
+        interval_s: step.interval_s,
+        started_at_s,
+        status: StepStatus::Done,
+        reason: None,
+        references: Vec::new(),
+        checks: step
+            .checks
+            .iter()
+            .map(|c| CheckRecord {
+                quantity: c.quantity,
+                channel: c.channel.clone(),
+                unit: c.quantity.unit().to_string(),
+                tolerance: c.tolerance,
+                samples: Vec::new(),
+                summary: None,
+                measured: None,
+                reference: None,
+                evaluation: None,
+                verdict: CheckVerdict::NotEvaluated,
+                note: None,
+            })
+            .collect(),
+    }
+}
+
+/// The distinct (quantity, channel) pairs a step reads from each unit, in check order.
+fn readings_of(step: &Step) -> Vec<(Quantity, String)> {
+    let mut out: Vec<(Quantity, String)> = Vec::new();
+    for c in &step.checks {
+        if !out
+            .iter()
+            .any(|(q, ch)| *q == c.quantity && *ch == c.channel)
+        {
+            out.push((c.quantity, c.channel.clone()));
+        }
+    }
+    out
+}
+
+/// Samples every active unit, takes the reference readings and evaluates the checks.
+fn run_step(step: &Step, started_at_s: f64, bench: &mut Bench, units: &mut [Unit]) {
+    let wanted = readings_of(step);
+    let mut series: Vec<Vec<Vec<Sample>>> = units
+        .iter()
+        .map(|_| vec![Vec::new(); wanted.len()])
+        .collect();
+    let mut faults: Vec<Option<String>> = vec![None; units.len()];
+    let window_start = bench.clock.now_s();
+    for k in 0..step.samples {
+        let t = bench.clock.now_s();
+        for (u, unit) in units.iter().enumerate() {
+            if !unit.active || faults[u].is_some() {
+                continue;
+            }
+            let link = &mut bench.positions[u].link;
+            for (w, (quantity, channel)) in wanted.iter().enumerate() {
+                match link.read(*quantity, channel) {
+                    Ok(value) => series[u][w].push(Sample { t_s: t, value }),
+                    Err(e) => {
+                        faults[u] = Some(format!(
+                            "sample {} of {}: reading {} on channel {channel}: {e}",
+                            k + 1,
+                            step.samples,
+                            quantity.name()
+                        ));
+                        break;
+                    }
+                }
+            }
+        }
+        if k + 1 < step.samples {
+            bench.clock.sleep_s(step.interval_s);
+        }
+    }
+    let window = (window_start, bench.clock.now_s());
+    let references = take_references(step, bench, window);
+    for (u, unit) in units.iter_mut().enumerate() {
+        if !unit.active {
+            continue;
+        }
+        let mut record = empty_step(step, Some(started_at_s));
+        record.references = references
+            .iter()
+            .filter_map(|(q, r)| {
+                r.as_ref().ok().map(|reading| ReferenceRecord {
+                    quantity: *q,
+                    reading: reading.clone(),
+                })
+            })
+            .collect();
+        for (check, check_record) in step.checks.iter().zip(record.checks.iter_mut()) {
+            let w = wanted
+                .iter()
+                .position(|(q, ch)| *q == check.quantity && *ch == check.channel)
+                .expect("every check's reading is wanted");
+            check_record.samples = series[u][w].clone();
+            let reference = references
+                .iter()
+                .find(|(q, _)| *q == check.quantity)
+                .map(|(_, r)| r.clone());
+            decide::evaluate_check(check, check_record, step, reference);
+        }
+        let missing_reference: Vec<String> = references
+            .iter()
+            .filter_map(|(q, r)| r.as_ref().err().map(|e| format!("{}: {e}", q.name())))
+            .collect();
+        if let Some(fault) = &faults[u] {
+            record.status = StepStatus::Incomplete;
+            record.reason = Some(fault.clone());
+        } else if !missing_reference.is_empty() {
+            record.status = StepStatus::Incomplete;
+            record.reason = Some(format!(
+                "no reference reading for {}",
+                missing_reference.join("; ")
+            ));
+        }
+        unit.record.steps.push(record);
+    }
+}
+
+type ReferenceResult = Result<crate::bench::ReferenceReading, String>;
+
+/// One reference reading per quantity the step checks against a reference.
+fn take_references(
+    step: &Step,
+    bench: &mut Bench,
+    window: (f64, f64),
+) -> Vec<(Quantity, ReferenceResult)> {
+    let mut out: Vec<(Quantity, ReferenceResult)> = Vec::new();
+    for check in &step.checks {
+        if !check.tolerance.needs_reference() || out.iter().any(|(q, _)| *q == check.quantity) {
+            continue;
+        }
+        let request = ReferenceRequest {
+            step_id: &step.id,
+            quantity: check.quantity,
+            load: &step.load,
+            window,
+        };
+        let reading = bench.reference.read(&request).map_err(|e| e.to_string());
+        out.push((check.quantity, reading));
+    }
+    out
+}

@@ -1,0 +1,50 @@
+//! Links to the units under test: one trait, one implementation per kind of wire protocol.
+//!
+//! The executor only ever talks to a [`DutLink`]; whether the other end is the built-in
+//! simulator or a meter on a serial port is the link's business. A link reports every failure as
+//! a [`LinkError`] that says what was asked and what went wrong, never by panicking.
+
+use crate::plan::Quantity;
+use serde::{Deserialize, Serialize};
+
+/// What a unit says about itself.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Identity {
+    pub model: String,
+    pub serial: String,
+    pub firmware: String,
+}
+
+/// A failure on the link to one unit.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum LinkError {
+    #[error("no reply to {request} within {timeout_ms} ms (after {attempts} attempts)")]
+    Timeout {
+        request: String,
+        timeout_ms: u64,
+        attempts: u32,
+    },
+    #[error("reply to {request} not understood: {reply:?} ({why})")]
+    Garbled {
+        request: String,
+        reply: String,
+        why: String,
+    },
+    #[error("the link is gone: {0}")]
+    Disconnected(String),
+    #[error("the unit cannot measure {quantity} on channel {channel}")]
+    Unsupported { quantity: String, channel: String },
+}
+
+/// The connection to one unit under test.
+pub trait DutLink: Send {
+    /// Reads the unit's model, serial number and firmware version.
+    fn identify(&mut self) -> Result<Identity, LinkError>;
+
+    /// Reads one quantity on one channel, in the quantity's base unit. For register quantities
+    /// (energy) this is the register's current content.
+    fn read(&mut self, quantity: Quantity, channel: &str) -> Result<f64, LinkError>;
+
+    /// A short description for records: "sim position 3", "/dev/ttyUSB0 @ 115200".
+    fn describe(&self) -> String;
+}

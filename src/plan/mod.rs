@@ -1,0 +1,358 @@
+//! Test plans: what to test on one product, independent of any bench.
+//!
+//! A plan is read in three passes: YAML syntax (serde_yaml), structure (the `raw` types, with
+//! unknown keys refused), and meaning (`validate`: units, ranges, cross-references). Every
+//! mistake found is reported with its file, line, column and path inside the plan.
+
+mod locate;
+mod raw;
+pub mod units;
+mod validate;
+
+pub use locate::Position;
+pub use validate::{PlanError, PlanErrors};
+
+use serde::Serialize;
+use sha2::{Digest, Sha256};
+use std::path::Path;
+use units::Dimension;
+
+/// A validated test plan.
+#[derive(Debug, Clone, Serialize)]
+pub struct Plan {
+    pub id: String,
+    pub revision: String,
+    pub title: Option<String>,
+    pub product: Product,
+    pub ratings: Ratings,
+    pub link: LinkSpec,
+    pub steps: Vec<Step>,
+    #[serde(skip)]
+    pub source: PlanSource,
+}
+
+/// The file a plan was read from, kept so that a record names exactly what it was tested against.
+#[derive(Debug, Clone, Default)]
+pub struct PlanSource {
+    pub file: String,
+    pub text: String,
+    /// SHA-256 of the file's bytes, lower-case hex.
+    pub sha256: String,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Product {
+    pub maker: Option<String>,
+    pub model: String,
+    /// The pattern the firmware version read from each unit must match.
+    pub firmware_pattern: String,
+    #[serde(skip)]
+    pub firmware: regex::Regex,
+}
+
+/// The meter's ratings, in base units.
+#[derive(Debug, Clone, Serialize)]
+pub struct Ratings {
+    pub nominal_voltage: f64,
+    /// Ib (basic) or In (reference/rated) current, whichever the plan gives.
+    pub base_current: f64,
+    pub base_current_kind: BaseCurrent,
+    pub max_current: f64,
+    pub frequency: f64,
+    pub class: String,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum BaseCurrent {
+    /// Ib, direct-connected meters.
+    Basic,
+    /// In or Iref.
+    Reference,
+}
+
+/// How the units under test are reached.
+#[derive(Debug, Clone, Serialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum LinkSpec {
+    /// The built-in simulated meter.
+    Sim { channels: Vec<String> },
+}
+
+impl LinkSpec {
+    pub fn channels(&self) -> &[String] {
+        match self {
+            LinkSpec::Sim { channels } => channels,
+        }
+    }
+}
+
+/// One load point and what is checked at it.
+#[derive(Debug, Clone, Serialize)]
+pub struct Step {
+    pub id: String,
+    pub description: Option<String>,
+    pub load: Load,
+    /// Seconds to wait after applying the load before the first sample.
+    pub settle_s: f64,
+    pub samples: u32,
+    /// Seconds between samples.
+    pub interval_s: f64,
+    pub checks: Vec<Check>,
+}
+
+impl Step {
+    /// Bench time this step is scheduled to take: settling, then the sampling window.
+    pub fn scheduled_s(&self) -> f64 {
+        self.settle_s + self.sampling_window_s()
+    }
+
+    /// From the first sample to the last.
+    pub fn sampling_window_s(&self) -> f64 {
+        f64::from(self.samples.saturating_sub(1)) * self.interval_s
+    }
+}
+
+/// The load applied to every position at once (current circuits in series, voltage circuits in
+/// parallel, as a bench is wired).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, serde::Deserialize)]
+pub struct Load {
+    pub voltage: f64,
+    pub current: f64,
+    /// Angle by which the current lags the voltage, in degrees: positive inductive, negative
+    /// capacitive.
+    pub phase_deg: f64,
+    pub frequency: f64,
+}
+
+impl Load {
+    pub fn power_factor(&self) -> f64 {
+        self.phase_deg.to_radians().cos()
+    }
+
+    /// The value an ideal meter would read for `quantity` at this load, over `window_s` for
+    /// energies. Used for plausibility and for validation of relative tolerances.
+    pub fn nominal(&self, quantity: Quantity, window_s: f64) -> f64 {
+        let s = self.voltage * self.current;
+        let phi = self.phase_deg.to_radians();
+        match quantity {
+            Quantity::Current => self.current,
+            Quantity::Voltage => self.voltage,
+            Quantity::ActivePower => s * phi.cos(),
+            Quantity::ReactivePower => s * phi.sin(),
+            Quantity::ApparentPower => s,
+            Quantity::PowerFactor => phi.cos(),
+            Quantity::Frequency => self.frequency,
+            Quantity::ActiveEnergy => s * phi.cos() * window_s / 3600.0,
+        }
+    }
+
+    /// "5 A at power factor 0.5 inductive, 230 V, 50 Hz": what an operator is asked to set.
+    pub fn describe(&self) -> String {
+        let pf = self.power_factor();
+        let pf_text = if self.phase_deg.abs() < 1e-9 {
+            "power factor 1".to_string()
+        } else {
+            let side = if self.phase_deg > 0.0 {
+                "inductive"
+            } else {
+                "capacitive"
+            };
+            format!("power factor {} {side}", trim_number(pf, 3))
+        };
+        format!(
+            "{} at {pf_text}, {}, {}",
+            units::Display(self.current, Dimension::Current),
+            units::Display(self.voltage, Dimension::Voltage),
+            units::Display(self.frequency, Dimension::Frequency)
+        )
+    }
+}
+
+fn trim_number(x: f64, decimals: usize) -> String {
+    let text = format!("{x:.decimals$}");
+    text.trim_end_matches('0').trim_end_matches('.').to_string()
+}
+
+/// A quantity read from a unit under test.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, serde::Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Quantity {
+    Current,
+    Voltage,
+    ActivePower,
+    ReactivePower,
+    ApparentPower,
+    PowerFactor,
+    Frequency,
+    /// The advance of the active-energy register over the sampling window.
+    ActiveEnergy,
+}
+
+impl Quantity {
+    pub const ALL: [Quantity; 8] = [
+        Quantity::Current,
+        Quantity::Voltage,
+        Quantity::ActivePower,
+        Quantity::ReactivePower,
+        Quantity::ApparentPower,
+        Quantity::PowerFactor,
+        Quantity::Frequency,
+        Quantity::ActiveEnergy,
+    ];
+
+    /// The name used in plans, records and reports.
+    pub fn name(self) -> &'static str {
+        match self {
+            Quantity::Current => "current",
+            Quantity::Voltage => "voltage",
+            Quantity::ActivePower => "active_power",
+            Quantity::ReactivePower => "reactive_power",
+            Quantity::ApparentPower => "apparent_power",
+            Quantity::PowerFactor => "power_factor",
+            Quantity::Frequency => "frequency",
+            Quantity::ActiveEnergy => "active_energy",
+        }
+    }
+
+    pub fn from_name(name: &str) -> Option<Quantity> {
+        Quantity::ALL.into_iter().find(|q| q.name() == name)
+    }
+
+    pub fn dimension(self) -> Dimension {
+        match self {
+            Quantity::Current => Dimension::Current,
+            Quantity::Voltage => Dimension::Voltage,
+            Quantity::ActivePower => Dimension::ActivePower,
+            Quantity::ReactivePower => Dimension::ReactivePower,
+            Quantity::ApparentPower => Dimension::ApparentPower,
+            Quantity::PowerFactor => Dimension::Ratio,
+            Quantity::Frequency => Dimension::Frequency,
+            Quantity::ActiveEnergy => Dimension::ActiveEnergy,
+        }
+    }
+
+    pub fn unit(self) -> &'static str {
+        self.dimension().unit()
+    }
+
+    /// Whether the quantity is read as a register difference over the window, not sampled.
+    pub fn is_register(self) -> bool {
+        self == Quantity::ActiveEnergy
+    }
+}
+
+/// One comparison of a unit's reading with the reference.
+#[derive(Debug, Clone, Serialize)]
+pub struct Check {
+    pub quantity: Quantity,
+    pub channel: String,
+    pub tolerance: Tolerance,
+}
+
+/// How far a reading may be from the reference.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, serde::Deserialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum Tolerance {
+    /// ± percent of the reference value.
+    PercentOfReading { percent: f64 },
+    /// ± (percent of the reference value + an absolute term in the quantity's unit).
+    PercentPlusAbsolute { percent: f64, absolute: f64 },
+    /// ± (percent of the reference value + percent of a range).
+    PercentPlusRange {
+        percent: f64,
+        range_percent: f64,
+        range: f64,
+    },
+    /// ± an absolute band around the reference, in the quantity's unit.
+    Band { half_width: f64 },
+    /// The magnitude of the reading is at most this, in the quantity's unit (no-load steps).
+    AtMost { bound: f64 },
+}
+
+impl Tolerance {
+    /// Whether the limit is relative to the reference, so that a zero reference is meaningless.
+    pub fn is_relative(&self) -> bool {
+        matches!(
+            self,
+            Tolerance::PercentOfReading { .. }
+                | Tolerance::PercentPlusAbsolute { .. }
+                | Tolerance::PercentPlusRange { .. }
+        )
+    }
+
+    pub fn needs_reference(&self) -> bool {
+        !matches!(self, Tolerance::AtMost { .. })
+    }
+}
+
+impl Plan {
+    /// Reads and validates the plan file at `path`.
+    pub fn load(path: &Path) -> Result<Plan, PlanErrors> {
+        let file = path.display().to_string();
+        let bytes = std::fs::read(path).map_err(|e| PlanErrors::io(&file, &e))?;
+        let text = String::from_utf8(bytes).map_err(|_| {
+            PlanErrors::single(PlanError::whole_file(&file, "the file is not UTF-8 text"))
+        })?;
+        Plan::from_text(&file, &text)
+    }
+
+    /// Validates a plan given as text; `file` names it in error messages.
+    pub fn from_text(file: &str, text: &str) -> Result<Plan, PlanErrors> {
+        let mut plan = validate::validate(file, text)?;
+        plan.source = PlanSource {
+            file: file.to_string(),
+            text: text.to_string(),
+            sha256: sha256_hex(text.as_bytes()),
+        };
+        Ok(plan)
+    }
+
+    pub fn check_count(&self) -> usize {
+        self.steps.iter().map(|s| s.checks.len()).sum()
+    }
+
+    /// Bench time the plan is scheduled to take, in seconds, with fixed settle and sample times.
+    pub fn scheduled_s(&self) -> f64 {
+        self.steps.iter().map(Step::scheduled_s).sum()
+    }
+}
+
+pub fn sha256_hex(bytes: &[u8]) -> String {
+    let digest = Sha256::digest(bytes);
+    digest.iter().map(|b| format!("{b:02x}")).collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Power triangle: P = V·I·cos φ, Q = V·I·sin φ (any circuit-theory handbook).
+    #[test]
+    fn nominal_values_follow_the_power_triangle() {
+        let load = Load {
+            voltage: 230.0,
+            current: 5.0,
+            phase_deg: 60.0,
+            frequency: 50.0,
+        };
+        assert!((load.nominal(Quantity::ActivePower, 0.0) - 575.0).abs() < 1e-9);
+        assert!((load.nominal(Quantity::ReactivePower, 0.0) - 995.929_214).abs() < 1e-5);
+        assert!((load.nominal(Quantity::ApparentPower, 0.0) - 1150.0).abs() < 1e-9);
+        // 575 W for one hour is 575 Wh.
+        assert!((load.nominal(Quantity::ActiveEnergy, 3600.0) - 575.0).abs() < 1e-9);
+        assert_eq!(
+            load.describe(),
+            "5 A at power factor 0.5 inductive, 230 V, 50 Hz"
+        );
+    }
+
+    /// SHA-256 of "abc", FIPS 180-2 Appendix B.1.
+    #[test]
+    fn plan_hash_is_sha256() {
+        assert_eq!(
+            sha256_hex(b"abc"),
+            "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+        );
+    }
+}

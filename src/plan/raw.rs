@@ -1,0 +1,159 @@
+//! The plan file as written: structure only, every value still text.
+//!
+//! Keeping values as text here means a unit mistake does not stop deserialisation; all of them
+//! are collected by the validation pass, with their paths. `deny_unknown_fields` everywhere:
+//! a misspelt key must never be silently ignored.
+
+use serde::{Deserialize, Deserializer};
+use std::fmt;
+
+/// A scalar kept as its text: YAML `2`, `2.5`, `true` and `"2 s"` all arrive as strings, so
+/// that the validator, not serde, says what is wrong with them.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Text(pub String);
+
+impl<'de> Deserialize<'de> for Text {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Self, D::Error> {
+        struct TextVisitor;
+        impl serde::de::Visitor<'_> for TextVisitor {
+            type Value = Text;
+            fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+                f.write_str("a value such as \"5 A\" or a plain number")
+            }
+            fn visit_str<E: serde::de::Error>(self, v: &str) -> Result<Text, E> {
+                Ok(Text(v.to_string()))
+            }
+            fn visit_bool<E: serde::de::Error>(self, v: bool) -> Result<Text, E> {
+                Ok(Text(v.to_string()))
+            }
+            fn visit_i64<E: serde::de::Error>(self, v: i64) -> Result<Text, E> {
+                Ok(Text(v.to_string()))
+            }
+            fn visit_u64<E: serde::de::Error>(self, v: u64) -> Result<Text, E> {
+                Ok(Text(v.to_string()))
+            }
+            fn visit_f64<E: serde::de::Error>(self, v: f64) -> Result<Text, E> {
+                Ok(Text(v.to_string()))
+            }
+        }
+        deserializer.deserialize_any(TextVisitor)
+    }
+}
+
+/// The top level of a plan. Steps stay as YAML values here so that each one is deserialised on
+/// its own and a mistake in one does not hide the mistakes in the others.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawPlan {
+    pub id: Text,
+    pub revision: Text,
+    #[serde(default)]
+    pub title: Option<Text>,
+    pub product: RawProduct,
+    pub ratings: RawRatings,
+    pub link: serde_yaml::Value,
+    #[serde(default)]
+    pub defaults: RawDefaults,
+    pub steps: Vec<serde_yaml::Value>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawProduct {
+    #[serde(default)]
+    pub maker: Option<Text>,
+    pub model: Text,
+    pub firmware: Text,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawRatings {
+    pub nominal_voltage: Text,
+    #[serde(default)]
+    pub basic_current: Option<Text>,
+    #[serde(default)]
+    pub reference_current: Option<Text>,
+    pub max_current: Text,
+    pub frequency: Text,
+    pub class: Text,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawDefaults {
+    #[serde(default)]
+    pub settle: Option<Text>,
+    #[serde(default)]
+    pub samples: Option<Text>,
+    #[serde(default)]
+    pub interval: Option<Text>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields, tag = "kind", rename_all = "snake_case")]
+pub enum RawLink {
+    /// The built-in simulated meter.
+    Sim {
+        #[serde(default)]
+        channels: Option<Vec<Text>>,
+    },
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawStep {
+    pub id: Text,
+    #[serde(default)]
+    pub description: Option<Text>,
+    pub load: RawLoad,
+    #[serde(default)]
+    pub settle: Option<Text>,
+    #[serde(default)]
+    pub samples: Option<Text>,
+    #[serde(default)]
+    pub interval: Option<Text>,
+    #[serde(default)]
+    pub checks: Vec<RawCheck>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawLoad {
+    #[serde(default)]
+    pub voltage: Option<Text>,
+    pub current: Text,
+    #[serde(default)]
+    pub power_factor: Option<Text>,
+    #[serde(default)]
+    pub phase: Option<Text>,
+    #[serde(default)]
+    pub frequency: Option<Text>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawCheck {
+    pub quantity: Text,
+    #[serde(default)]
+    pub channel: Option<Text>,
+    pub tolerance: RawTolerance,
+}
+
+/// Every tolerance key; the validator checks that they form exactly one kind.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawTolerance {
+    #[serde(default)]
+    pub percent: Option<Text>,
+    #[serde(default)]
+    pub plus: Option<Text>,
+    #[serde(default)]
+    pub plus_of_range: Option<Text>,
+    #[serde(default)]
+    pub range: Option<Text>,
+    #[serde(default)]
+    pub within: Option<Text>,
+    #[serde(default)]
+    pub at_most: Option<Text>,
+}

@@ -1,0 +1,790 @@
+//! From text to a validated [`Plan`], collecting every mistake with its position.
+
+use super::locate::{Locations, Position};
+use super::raw::{RawCheck, RawLink, RawLoad, RawPlan, RawStep, RawTolerance, Text};
+use super::units::{self, Dimension};
+use super::{
+    BaseCurrent, Check, LinkSpec, Load, Plan, PlanSource, Product, Quantity, Ratings, Step,
+    Tolerance,
+};
+use std::collections::HashSet;
+use std::fmt;
+
+/// One mistake in a plan: where it is and what is wrong.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PlanError {
+    pub file: String,
+    pub position: Option<Position>,
+    /// Path inside the plan, such as `steps[3].checks[1].tolerance`; empty for the whole file.
+    pub path: String,
+    pub message: String,
+}
+
+impl PlanError {
+    pub fn whole_file(file: &str, message: &str) -> PlanError {
+        PlanError {
+            file: file.to_string(),
+            position: None,
+            path: String::new(),
+            message: message.to_string(),
+        }
+    }
+}
+
+impl fmt::Display for PlanError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(f, "{}", self.file)?;
+        if let Some(p) = self.position {
+            write!(f, ":{}:{}", p.line, p.column)?;
+        }
+        if !self.path.is_empty() {
+            write!(f, ": {}", self.path)?;
+        }
+        write!(f, ": {}", self.message)
+    }
+}
+
+/// Every mistake found in one plan, in file order.
+#[derive(Debug, Clone, thiserror::Error)]
+pub struct PlanErrors(pub Vec<PlanError>);
+
+impl PlanErrors {
+    pub fn single(e: PlanError) -> PlanErrors {
+        PlanErrors(vec![e])
+    }
+
+    pub fn io(file: &str, e: &std::io::Error) -> PlanErrors {
+        PlanErrors::single(PlanError::whole_file(
+            file,
+            &format!("cannot read the plan: {e}"),
+        ))
+    }
+}
+
+impl fmt::Display for PlanErrors {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        for (i, e) in self.0.iter().enumerate() {
+            if i > 0 {
+                writeln!(f)?;
+            }
+            write!(f, "{e}")?;
+        }
+        Ok(())
+    }
+}
+
+/// Collects mistakes while a plan is read.
+struct Ctx<'a> {
+    file: &'a str,
+    loc: Locations,
+    errors: Vec<PlanError>,
+}
+
+impl Ctx<'_> {
+    fn error(&mut self, path: &str, message: impl Into<String>) {
+        let position = self.loc.value(path);
+        self.errors.push(PlanError {
+            file: self.file.to_string(),
+            position,
+            path: path.to_string(),
+            message: message.into(),
+        });
+    }
+
+    /// Deserialises one part of the plan, recording a structural mistake under `prefix`.
+    fn structure<T: serde::de::DeserializeOwned>(
+        &mut self,
+        prefix: &str,
+        value: serde_yaml::Value,
+    ) -> Option<T> {
+        match serde_path_to_error::deserialize::<_, T>(value) {
+            Ok(v) => Some(v),
+            Err(e) => {
+                let inner = e.path().to_string();
+                let path = join_path(prefix, if inner == "." { "" } else { &inner });
+                let message = e.into_inner().to_string();
+                let position = if message.starts_with("unknown field") {
+                    self.loc.key(&path)
+                } else {
+                    self.loc.value(&path)
+                };
+                self.errors.push(PlanError {
+                    file: self.file.to_string(),
+                    position,
+                    path,
+                    message,
+                });
+                None
+            }
+        }
+    }
+
+    fn value(&mut self, path: &str, text: &Text, dim: Dimension) -> Option<f64> {
+        match units::parse(&text.0, dim) {
+            Ok(v) => Some(v),
+            Err(e) => {
+                self.error(path, e.to_string());
+                None
+            }
+        }
+    }
+
+    fn optional_value(
+        &mut self,
+        path: &str,
+        text: Option<&Text>,
+        dim: Dimension,
+    ) -> Option<Option<f64>> {
+        match text {
+            None => Some(None),
+            Some(t) => self.value(path, t, dim).map(Some),
+        }
+    }
+
+    fn count(&mut self, path: &str, text: &Text) -> Option<u32> {
+        match text.0.trim().parse::<u32>() {
+            Ok(n) if n >= 1 => Some(n),
+            _ => {
+                self.error(
+                    path,
+                    format!(
+                        "expected a whole number of samples, 1 or more, got \"{}\"",
+                        text.0
+                    ),
+                );
+                None
+            }
+        }
+    }
+
+    fn non_empty(&mut self, path: &str, text: &Text) -> Option<String> {
+        let t = text.0.trim();
+        if t.is_empty() {
+            self.error(path, "must not be empty");
+            None
+        } else {
+            Some(t.to_string())
+        }
+    }
+}
+
+fn join_path(prefix: &str, inner: &str) -> String {
+    match (prefix.is_empty(), inner.is_empty()) {
+        (true, _) => inner.to_string(),
+        (false, true) => prefix.to_string(),
+        (false, false) if inner.starts_with('[') => format!("{prefix}{inner}"),
+        (false, false) => format!("{prefix}.{inner}"),
+    }
+}
+
+/// Validates a whole plan text.
+pub fn validate(file: &str, text: &str) -> Result<Plan, PlanErrors> {
+    let document: serde_yaml::Value = serde_yaml::from_str(text).map_err(|e| {
+        PlanErrors::single(PlanError {
+            file: file.to_string(),
+            position: e.location().map(|l| Position {
+                line: l.line(),
+                column: l.column(),
+            }),
+            path: String::new(),
+            message: format!("not valid YAML: {}", strip_location(&e.to_string())),
+        })
+    })?;
+    let mut ctx = Ctx {
+        file,
+        loc: Locations::of(text),
+        errors: Vec::new(),
+    };
+    let raw: Option<RawPlan> = ctx.structure("", document.clone());
+    // Steps are read one by one even when the top level failed, so that all their mistakes show.
+    let step_values = match &raw {
+        Some(r) => r.steps.clone(),
+        None => match document.get("steps") {
+            Some(serde_yaml::Value::Sequence(s)) => s.clone(),
+            _ => Vec::new(),
+        },
+    };
+    let raw_steps: Vec<Option<RawStep>> = step_values
+        .into_iter()
+        .enumerate()
+        .map(|(i, v)| ctx.structure(&format!("steps[{i}]"), v))
+        .collect();
+    let raw_link: Option<RawLink> = raw
+        .as_ref()
+        .and_then(|r| ctx.structure("link", r.link.clone()));
+    if !ctx.errors.is_empty() {
+        return Err(sorted(ctx.errors));
+    }
+    let (Some(raw), Some(raw_link)) = (raw, raw_link) else {
+        return Err(sorted(ctx.errors));
+    };
+    let raw_steps: Vec<RawStep> = raw_steps.into_iter().flatten().collect();
+    let plan = meaning(&mut ctx, raw, raw_link, raw_steps);
+    match plan {
+        Some(p) if ctx.errors.is_empty() => Ok(p),
+        _ => Err(sorted(ctx.errors)),
+    }
+}
+
+fn strip_location(message: &str) -> String {
+    match message.find(" at line ") {
+        Some(i) => message[..i].to_string(),
+        None => message.to_string(),
+    }
+}
+
+fn sorted(mut errors: Vec<PlanError>) -> PlanErrors {
+    errors.sort_by_key(|e| e.position.map(|p| (p.line, p.column)).unwrap_or((0, 0)));
+    PlanErrors(errors)
+}
+
+/// The defaults a step falls back on.
+struct StepDefaults {
+    settle_s: f64,
+    samples: u32,
+    interval_s: f64,
+}
+
+fn meaning(
+    ctx: &mut Ctx,
+    raw: RawPlan,
+    raw_link: RawLink,
+    raw_steps: Vec<RawStep>,
+) -> Option<Plan> {
+    let id = ctx.non_empty("id", &raw.id);
+    let revision = ctx.non_empty("revision", &raw.revision);
+    let product = product(ctx, &raw);
+    let ratings = ratings(ctx, &raw);
+    let link = link(ctx, raw_link);
+    let defaults = StepDefaults {
+        settle_s: ctx
+            .optional_value(
+                "defaults.settle",
+                raw.defaults.settle.as_ref(),
+                Dimension::Time,
+            )
+            .flatten()
+            .unwrap_or(0.0),
+        samples: raw
+            .defaults
+            .samples
+            .as_ref()
+            .map(|t| ctx.count("defaults.samples", t).unwrap_or(1))
+            .unwrap_or(1),
+        interval_s: ctx
+            .optional_value(
+                "defaults.interval",
+                raw.defaults.interval.as_ref(),
+                Dimension::Time,
+            )
+            .flatten()
+            .unwrap_or(1.0),
+    };
+    if raw_steps.is_empty() {
+        ctx.error("steps", "a plan needs at least one step");
+    }
+    let (ratings, link) = (ratings?, link?);
+    let mut seen_ids = HashSet::new();
+    let mut steps = Vec::new();
+    for (i, raw_step) in raw_steps.iter().enumerate() {
+        let path = format!("steps[{i}]");
+        if let Some(step) = step(ctx, &path, raw_step, &ratings, &link, &defaults) {
+            if !seen_ids.insert(step.id.clone()) {
+                ctx.error(
+                    &format!("{path}.id"),
+                    format!(
+                        "step id \"{}\" is used twice: step ids must be unique",
+                        step.id
+                    ),
+                );
+            }
+            steps.push(step);
+        }
+    }
+    Some(Plan {
+        id: id?,
+        revision: revision?,
+        title: raw.title.map(|t| t.0),
+        product: product?,
+        ratings,
+        link,
+        steps,
+        source: PlanSource::default(),
+    })
+}
+
+fn product(ctx: &mut Ctx, raw: &RawPlan) -> Option<Product> {
+    let model = ctx.non_empty("product.model", &raw.product.model);
+    let pattern = raw.product.firmware.0.clone();
+    let firmware = match regex::Regex::new(&pattern) {
+        Ok(r) => Some(r),
+        Err(e) => {
+            ctx.error(
+                "product.firmware",
+                format!(
+                    "the firmware pattern does not compile: {}",
+                    one_line(&e.to_string())
+                ),
+            );
+            None
+        }
+    };
+    Some(Product {
+        maker: raw.product.maker.as_ref().map(|t| t.0.clone()),
+        model: model?,
+        firmware_pattern: pattern,
+        firmware: firmware?,
+    })
+}
+
+fn one_line(text: &str) -> String {
+    text.split_whitespace().collect::<Vec<_>>().join(" ")
+}
+
+fn ratings(ctx: &mut Ctx, raw: &RawPlan) -> Option<Ratings> {
+    let r = &raw.ratings;
+    let nominal_voltage = ctx.value(
+        "ratings.nominal_voltage",
+        &r.nominal_voltage,
+        Dimension::Voltage,
+    );
+    let max_current = ctx.value("ratings.max_current", &r.max_current, Dimension::Current);
+    let frequency = ctx.value("ratings.frequency", &r.frequency, Dimension::Frequency);
+    let class = ctx.non_empty("ratings.class", &r.class);
+    let base = match (&r.basic_current, &r.reference_current) {
+        (Some(t), None) => ctx
+            .value("ratings.basic_current", t, Dimension::Current)
+            .map(|v| (v, BaseCurrent::Basic)),
+        (None, Some(t)) => ctx
+            .value("ratings.reference_current", t, Dimension::Current)
+            .map(|v| (v, BaseCurrent::Reference)),
+        (Some(_), Some(_)) => {
+            ctx.error(
+                "ratings.reference_current",
+                "give basic_current (Ib) or reference_current (In), not both",
+            );
+            None
+        }
+        (None, None) => {
+            ctx.error(
+                "ratings",
+                "missing basic_current (Ib) or reference_current (In)",
+            );
+            None
+        }
+    };
+    let (nominal_voltage, max_current, frequency, class, (base_current, base_kind)) =
+        (nominal_voltage?, max_current?, frequency?, class?, base?);
+    for (path, v) in [
+        ("ratings.nominal_voltage", nominal_voltage),
+        ("ratings.max_current", max_current),
+        ("ratings.frequency", frequency),
+        ("ratings.basic_current", base_current),
+    ] {
+        if v <= 0.0 {
+            ctx.error(path, "must be greater than zero");
+        }
+    }
+    if base_current > max_current {
+        ctx.error(
+            "ratings.max_current",
+            "the maximum current is below the basic/reference current",
+        );
+    }
+    Some(Ratings {
+        nominal_voltage,
+        base_current,
+        base_current_kind: base_kind,
+        max_current,
+        frequency,
+        class,
+    })
+}
+
+fn link(ctx: &mut Ctx, raw: RawLink) -> Option<LinkSpec> {
+    match raw {
+        RawLink::Sim { channels } => {
+            let channels: Vec<String> = channels
+                .unwrap_or_else(|| vec![Text("L".into())])
+                .into_iter()
+                .map(|t| t.0.trim().to_string())
+                .collect();
+            let mut seen = HashSet::new();
+            for (i, c) in channels.iter().enumerate() {
+                if c.is_empty() || !seen.insert(c.clone()) {
+                    ctx.error(
+                        &format!("link.channels[{i}]"),
+                        "channel names must be non-empty and unique",
+                    );
+                }
+            }
+            if channels.is_empty() {
+                ctx.error("link.channels", "at least one channel is needed");
+            }
+            Some(LinkSpec::Sim { channels })
+        }
+    }
+}
+
+fn step(
+    ctx: &mut Ctx,
+    path: &str,
+    raw: &RawStep,
+    ratings: &Ratings,
+    link: &LinkSpec,
+    defaults: &StepDefaults,
+) -> Option<Step> {
+    let id = ctx.non_empty(&format!("{path}.id"), &raw.id);
+    let load = load(ctx, &format!("{path}.load"), &raw.load, ratings);
+    let settle_s = ctx
+        .optional_value(
+            &format!("{path}.settle"),
+            raw.settle.as_ref(),
+            Dimension::Time,
+        )
+        .map(|v| v.unwrap_or(defaults.settle_s));
+    let samples = match &raw.samples {
+        Some(t) => ctx.count(&format!("{path}.samples"), t),
+        None => Some(defaults.samples),
+    };
+    let interval_s = ctx
+        .optional_value(
+            &format!("{path}.interval"),
+            raw.interval.as_ref(),
+            Dimension::Time,
+        )
+        .map(|v| v.unwrap_or(defaults.interval_s));
+    if let Some(s) = settle_s
+        && s < 0.0
+    {
+        ctx.error(
+            &format!("{path}.settle"),
+            "a settle time cannot be negative",
+        );
+    }
+    if let (Some(i), Some(n)) = (interval_s, samples)
+        && n > 1
+        && i <= 0.0
+    {
+        ctx.error(
+            &format!("{path}.interval"),
+            "the sample interval must be greater than zero when a step takes several samples",
+        );
+    }
+    let window_s = match (samples, interval_s) {
+        (Some(n), Some(i)) => f64::from(n.saturating_sub(1)) * i,
+        _ => 0.0,
+    };
+    let checks: Vec<Option<Check>> = raw
+        .checks
+        .iter()
+        .enumerate()
+        .map(|(i, c)| {
+            check(
+                ctx,
+                &format!("{path}.checks[{i}]"),
+                c,
+                load.as_ref(),
+                link,
+                window_s,
+            )
+        })
+        .collect();
+    let checks: Option<Vec<Check>> = checks.into_iter().collect();
+    Some(Step {
+        id: id?,
+        description: raw.description.as_ref().map(|t| t.0.clone()),
+        load: load?,
+        settle_s: settle_s?,
+        samples: samples?,
+        interval_s: interval_s?,
+        checks: checks?,
+    })
+}
+
+fn load(ctx: &mut Ctx, path: &str, raw: &RawLoad, ratings: &Ratings) -> Option<Load> {
+    let voltage = ctx
+        .optional_value(
+            &format!("{path}.voltage"),
+            raw.voltage.as_ref(),
+            Dimension::Voltage,
+        )
+        .map(|v| v.unwrap_or(ratings.nominal_voltage));
+    let current = ctx.value(&format!("{path}.current"), &raw.current, Dimension::Current);
+    let frequency = ctx
+        .optional_value(
+            &format!("{path}.frequency"),
+            raw.frequency.as_ref(),
+            Dimension::Frequency,
+        )
+        .map(|v| v.unwrap_or(ratings.frequency));
+    let phase_deg = match (&raw.power_factor, &raw.phase) {
+        (Some(_), Some(_)) => {
+            ctx.error(
+                &format!("{path}.phase"),
+                "give power_factor or phase, not both",
+            );
+            None
+        }
+        (Some(pf), None) => match parse_power_factor(&pf.0) {
+            Ok(phase) => Some(phase),
+            Err(message) => {
+                ctx.error(&format!("{path}.power_factor"), message);
+                None
+            }
+        },
+        (None, Some(angle)) => ctx
+            .value(&format!("{path}.phase"), angle, Dimension::Angle)
+            .and_then(|a| {
+                if (-90.0..=90.0).contains(&a) {
+                    Some(a)
+                } else {
+                    ctx.error(
+                        &format!("{path}.phase"),
+                        "a phase angle must lie between -90° (capacitive) and 90° (inductive)",
+                    );
+                    None
+                }
+            }),
+        (None, None) => Some(0.0),
+    };
+    let (voltage, current, frequency, phase_deg) = (voltage?, current?, frequency?, phase_deg?);
+    if voltage <= 0.0 {
+        ctx.error(
+            &format!("{path}.voltage"),
+            "the test voltage must be greater than zero",
+        );
+    }
+    if frequency <= 0.0 {
+        ctx.error(
+            &format!("{path}.frequency"),
+            "the frequency must be greater than zero",
+        );
+    }
+    if current < 0.0 {
+        ctx.error(
+            &format!("{path}.current"),
+            "a load current cannot be negative",
+        );
+    } else if current > ratings.max_current * (1.0 + 1e-9) {
+        ctx.error(
+            &format!("{path}.current"),
+            format!(
+                "{} exceeds the plan's max_current of {}",
+                units::Display(current, Dimension::Current),
+                units::Display(ratings.max_current, Dimension::Current)
+            ),
+        );
+    }
+    Some(Load {
+        voltage,
+        current,
+        phase_deg,
+        frequency,
+    })
+}
+
+/// Reads "1", "0.5 inductive" (or "ind", "lagging"), "0.8 capacitive" (or "cap", "leading")
+/// into the phase angle in degrees, positive when the current lags.
+pub(crate) fn parse_power_factor(text: &str) -> Result<f64, String> {
+    let mut parts = text.split_whitespace();
+    let number = parts.next().unwrap_or("");
+    let side = parts.next();
+    let help = "write a power factor as \"1\", \"0.5 inductive\" or \"0.8 capacitive\"";
+    if parts.next().is_some() {
+        return Err(format!("\"{text}\" is not a power factor: {help}"));
+    }
+    let pf: f64 = number
+        .parse()
+        .map_err(|_| format!("\"{text}\" is not a power factor: {help}"))?;
+    if !(pf > 0.0 && pf <= 1.0) {
+        return Err(format!("a power factor lies in (0, 1], got {pf}: {help}"));
+    }
+    let angle = pf.acos().to_degrees();
+    let sign = match side {
+        None if pf == 1.0 => 1.0,
+        None => {
+            return Err(format!(
+                "\"{text}\" does not say inductive or capacitive: {help}"
+            ));
+        }
+        Some("ind" | "inductive" | "lag" | "lagging") => 1.0,
+        Some("cap" | "capacitive" | "lead" | "leading") => -1.0,
+        Some(other) => {
+            return Err(format!(
+                "\"{other}\" is neither inductive nor capacitive: {help}"
+            ));
+        }
+    };
+    Ok(sign * angle)
+}
+
+fn check(
+    ctx: &mut Ctx,
+    path: &str,
+    raw: &RawCheck,
+    load: Option<&Load>,
+    link: &LinkSpec,
+    window_s: f64,
+) -> Option<Check> {
+    let quantity = match Quantity::from_name(raw.quantity.0.trim()) {
+        Some(q) => Some(q),
+        None => {
+            let names: Vec<&str> = Quantity::ALL.iter().map(|q| q.name()).collect();
+            ctx.error(
+                &format!("{path}.quantity"),
+                format!(
+                    "unknown quantity \"{}\", expected one of {}",
+                    raw.quantity.0,
+                    names.join(", ")
+                ),
+            );
+            None
+        }
+    };
+    let channels = link.channels();
+    let channel = match &raw.channel {
+        None => channels.first().cloned(),
+        Some(t) if channels.iter().any(|c| *c == t.0.trim()) => Some(t.0.trim().to_string()),
+        Some(t) => {
+            ctx.error(
+                &format!("{path}.channel"),
+                format!(
+                    "unknown channel \"{}\": the link has {}",
+                    t.0,
+                    channels.join(", ")
+                ),
+            );
+            None
+        }
+    };
+    let quantity = quantity?;
+    let tolerance = tolerance(ctx, &format!("{path}.tolerance"), &raw.tolerance, quantity)?;
+    if let Some(load) = load
+        && tolerance.is_relative()
+        && load.nominal(quantity, window_s).abs() < 1e-12
+    {
+        ctx.error(
+            &format!("{path}.tolerance"),
+            format!(
+                "a percent-of-reading tolerance needs a non-zero reference, but {} is zero at this step's load ({}); use within or at_most",
+                quantity.name(),
+                load.describe()
+            ),
+        );
+    }
+    if quantity.is_register() && window_s <= 0.0 {
+        ctx.error(
+            &format!("{path}.quantity"),
+            "an energy check needs a sampling window: give the step at least 2 samples and an interval",
+        );
+    }
+    Some(Check {
+        quantity,
+        channel: channel?,
+        tolerance,
+    })
+}
+
+fn tolerance(
+    ctx: &mut Ctx,
+    path: &str,
+    raw: &RawTolerance,
+    quantity: Quantity,
+) -> Option<Tolerance> {
+    let dim = quantity.dimension();
+    let p = |k: &str| format!("{path}.{k}");
+    let given = [
+        raw.percent.is_some(),
+        raw.plus.is_some(),
+        raw.plus_of_range.is_some(),
+        raw.range.is_some(),
+        raw.within.is_some(),
+        raw.at_most.is_some(),
+    ];
+    let tol = match given {
+        [true, false, false, false, false, false] => {
+            let percent = ctx.value(&p("percent"), raw.percent.as_ref()?, Dimension::Percent)?;
+            Tolerance::PercentOfReading { percent }
+        }
+        [true, true, false, false, false, false] => {
+            let percent = ctx.value(&p("percent"), raw.percent.as_ref()?, Dimension::Percent);
+            let absolute = ctx.value(&p("plus"), raw.plus.as_ref()?, dim);
+            Tolerance::PercentPlusAbsolute {
+                percent: percent?,
+                absolute: absolute?,
+            }
+        }
+        [true, false, true, true, false, false] => {
+            let percent = ctx.value(&p("percent"), raw.percent.as_ref()?, Dimension::Percent);
+            let range_percent = ctx.value(
+                &p("plus_of_range"),
+                raw.plus_of_range.as_ref()?,
+                Dimension::Percent,
+            );
+            let range = ctx.value(&p("range"), raw.range.as_ref()?, dim);
+            Tolerance::PercentPlusRange {
+                percent: percent?,
+                range_percent: range_percent?,
+                range: range?,
+            }
+        }
+        [false, false, false, false, true, false] => Tolerance::Band {
+            half_width: ctx.value(&p("within"), raw.within.as_ref()?, dim)?,
+        },
+        [false, false, false, false, false, true] => Tolerance::AtMost {
+            bound: ctx.value(&p("at_most"), raw.at_most.as_ref()?, dim)?,
+        },
+        _ => {
+            ctx.error(
+                path,
+                "a tolerance is one of: {percent}, {percent, plus}, {percent, plus_of_range, range}, {within} or {at_most}",
+            );
+            return None;
+        }
+    };
+    let negative = match tol {
+        Tolerance::PercentOfReading { percent } => percent < 0.0,
+        Tolerance::PercentPlusAbsolute { percent, absolute } => percent < 0.0 || absolute < 0.0,
+        Tolerance::PercentPlusRange {
+            percent,
+            range_percent,
+            range,
+        } => percent < 0.0 || range_percent < 0.0 || range <= 0.0,
+        Tolerance::Band { half_width } => half_width < 0.0,
+        Tolerance::AtMost { bound } => bound < 0.0,
+    };
+    if negative {
+        ctx.error(path, "tolerance terms cannot be negative");
+        return None;
+    }
+    Some(tol)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn power_factor_words() {
+        assert_eq!(parse_power_factor("1").unwrap(), 0.0);
+        assert!((parse_power_factor("0.5 inductive").unwrap() - 60.0).abs() < 1e-9);
+        assert!((parse_power_factor("0.5 ind").unwrap() - 60.0).abs() < 1e-9);
+        // 0.8 capacitive: current leads by 36.87° (domain notes, §1).
+        assert!((parse_power_factor("0.8 capacitive").unwrap() + 36.869_897_6).abs() < 1e-6);
+        assert!(parse_power_factor("0.5").is_err());
+        assert!(parse_power_factor("1.2").is_err());
+        assert!(parse_power_factor("0.5 sideways").is_err());
+    }
+
+    #[test]
+    fn paths_join_like_the_plan_reads() {
+        assert_eq!(
+            join_path("steps[2]", "checks[0].tolerance"),
+            "steps[2].checks[0].tolerance"
+        );
+        assert_eq!(join_path("steps[2]", ""), "steps[2]");
+        assert_eq!(join_path("", "id"), "id");
+        assert_eq!(join_path("link", "[0]"), "link[0]");
+    }
+}

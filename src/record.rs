@@ -1,0 +1,298 @@
+//! The record of one unit's run: everything measured, and how it was decided.
+//!
+//! A record is self-contained: it names the plan by id, revision and SHA-256, the station and
+//! reference, and carries every raw sample with its time, so that the verdict can be re-derived
+//! from it alone. Records are written once and never overwritten.
+
+use crate::bench::{ReferenceReading, StationInfo};
+use crate::link::Identity;
+use crate::metrology::{Evaluation, Summary};
+use crate::plan::{Load, Quantity, Tolerance};
+use serde::{Deserialize, Serialize};
+use std::fs::{self, File, OpenOptions};
+use std::io::{self, Write};
+use std::path::{Path, PathBuf};
+
+/// Names the layout of a record, so that later versions can still read old ones.
+pub const RECORD_FORMAT: &str = "meterproof-unit-record/1";
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct UnitRecord {
+    pub format: String,
+    pub tool_version: String,
+    pub run_id: String,
+    /// 1-based bench position.
+    pub position: usize,
+    pub serial: String,
+    /// What the unit said about itself, when it answered.
+    pub identity: Option<Identity>,
+    pub plan: PlanRef,
+    pub lot: Option<String>,
+    pub operator: String,
+    pub station: StationInfo,
+    pub link: String,
+    /// Wall-clock times, ISO 8601 with offset.
+    pub started_at: String,
+    pub finished_at: String,
+    /// Bench time the run took, seconds (virtual on the simulator).
+    pub bench_time_s: f64,
+    pub verdict: UnitVerdict,
+    pub steps: Vec<StepRecord>,
+}
+
+/// Which plan, exactly.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PlanRef {
+    pub id: String,
+    pub revision: String,
+    pub title: Option<String>,
+    pub file: String,
+    pub sha256: String,
+    pub model: String,
+    pub class: String,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum UnitStatus {
+    /// Every step done, every check within its limit.
+    Accepted,
+    /// At least one check outside its limit, or the unit refused before testing (wrong
+    /// firmware or model).
+    Rejected,
+    /// Not every step was done: the unit is neither accepted nor rejected.
+    Incomplete,
+}
+
+impl UnitStatus {
+    pub fn word(self) -> &'static str {
+        match self {
+            UnitStatus::Accepted => "ACCEPTED",
+            UnitStatus::Rejected => "REJECTED",
+            UnitStatus::Incomplete => "INCOMPLETE",
+        }
+    }
+
+    /// A symbol that carries the verdict without colour.
+    pub fn symbol(self) -> &'static str {
+        match self {
+            UnitStatus::Accepted => "✔",
+            UnitStatus::Rejected => "✘",
+            UnitStatus::Incomplete => "◐",
+        }
+    }
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct UnitVerdict {
+    pub status: UnitStatus,
+    /// Why the unit was rejected or is incomplete, one line each.
+    pub reasons: Vec<String>,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum StepStatus {
+    Done,
+    /// Started but not finished for this unit (a link fault, a missing reference...).
+    Incomplete,
+    /// Never started for this unit.
+    NotRun,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct StepRecord {
+    pub id: String,
+    pub description: Option<String>,
+    pub load: Load,
+    pub settle_s: f64,
+    pub samples_planned: u32,
+    pub interval_s: f64,
+    /// Bench time the load was applied, seconds.
+    pub started_at_s: Option<f64>,
+    pub status: StepStatus,
+    pub reason: Option<String>,
+    pub references: Vec<ReferenceRecord>,
+    pub checks: Vec<CheckRecord>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ReferenceRecord {
+    pub quantity: Quantity,
+    pub reading: ReferenceReading,
+}
+
+/// One raw reading from the unit.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct Sample {
+    /// Bench time, seconds.
+    pub t_s: f64,
+    pub value: f64,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum CheckVerdict {
+    Pass,
+    Fail,
+    /// Not enough data to decide.
+    NotEvaluated,
+}
+
+impl CheckVerdict {
+    pub fn word(self) -> &'static str {
+        match self {
+            CheckVerdict::Pass => "pass",
+            CheckVerdict::Fail => "FAIL",
+            CheckVerdict::NotEvaluated => "not evaluated",
+        }
+    }
+
+    pub fn symbol(self) -> &'static str {
+        match self {
+            CheckVerdict::Pass => "✔",
+            CheckVerdict::Fail => "✘",
+            CheckVerdict::NotEvaluated => "◐",
+        }
+    }
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct CheckRecord {
+    pub quantity: Quantity,
+    pub channel: String,
+    pub unit: String,
+    pub tolerance: Tolerance,
+    /// Raw readings; for a register quantity, the register contents.
+    pub samples: Vec<Sample>,
+    pub summary: Option<Summary>,
+    /// The value compared with the reference: the mean, or the register's advance.
+    pub measured: Option<f64>,
+    pub reference: Option<f64>,
+    pub evaluation: Option<Evaluation>,
+    pub verdict: CheckVerdict,
+    pub note: Option<String>,
+}
+
+/// Why a record could not be written.
+#[derive(Debug, thiserror::Error)]
+pub enum WriteError {
+    #[error("cannot write {path}: {source}")]
+    Io { path: PathBuf, source: io::Error },
+    #[error("cannot serialise the record: {0}")]
+    Serialise(#[from] serde_json::Error),
+}
+
+impl UnitRecord {
+    /// Whether any check of the record failed.
+    pub fn failed_checks(&self) -> impl Iterator<Item = (&StepRecord, &CheckRecord)> {
+        self.steps.iter().flat_map(|s| {
+            s.checks
+                .iter()
+                .filter(|c| c.verdict == CheckVerdict::Fail)
+                .map(move |c| (s, c))
+        })
+    }
+}
+
+/// Writes `bytes` to `dir/name` so that the file appears whole or not at all, and never replaces
+/// an existing file: a temporary file is written and synced, then hard-linked to its name (which
+/// fails if the name exists) and the directory synced. Returns the path written.
+pub fn write_new_file(dir: &Path, name: &str, bytes: &[u8]) -> Result<PathBuf, WriteError> {
+    let io_err = |path: &Path| {
+        let path = path.to_path_buf();
+        move |source| WriteError::Io { path, source }
+    };
+    let target = dir.join(name);
+    let temp = dir.join(format!(".{name}.{}.tmp", std::process::id()));
+    {
+        let mut f = OpenOptions::new()
+            .write(true)
+            .create_new(true)
+            .open(&temp)
+            .map_err(io_err(&temp))?;
+        f.write_all(bytes).map_err(io_err(&temp))?;
+        f.sync_all().map_err(io_err(&temp))?;
+    }
+    let linked = fs::hard_link(&temp, &target);
+    let _ = fs::remove_file(&temp);
+    linked.map_err(io_err(&target))?;
+    if let Ok(d) = File::open(dir) {
+        let _ = d.sync_all();
+    }
+    Ok(target)
+}
+
+/// Serialises a record as pretty JSON (stable key order: the struct's).
+pub fn to_json(record: &UnitRecord) -> Result<Vec<u8>, WriteError> {
+    let mut bytes = serde_json::to_vec_pretty(record)?;
+    bytes.push(b'\n');
+    Ok(bytes)
+}
+
+/// Reads a record written by [`to_json`].
+pub fn read(path: &Path) -> Result<UnitRecord, String> {
+    let text = fs::read_to_string(path).map_err(|e| format!("{}: {e}", path.display()))?;
+    serde_json::from_str(&text).map_err(|e| format!("{}: not a unit record: {e}", path.display()))
+}
+
+/// Turns a serial number (data from a device or a person) into a file name that cannot leave its
+/// folder: letters, digits, `-` and `_` stay, every other byte becomes `~XX` (hex), a leading
+/// `.` is encoded too, and the result is cut to 100 bytes with a hash of the whole kept so that
+/// long names stay unique. Names Windows reserves (CON, NUL...) get a `~` prefix.
+pub fn safe_file_stem(text: &str) -> String {
+    let mut out = String::new();
+    for b in text.bytes() {
+        if b.is_ascii_alphanumeric() || b == b'-' || b == b'_' {
+            out.push(b as char);
+        } else {
+            out.push_str(&format!("~{b:02X}"));
+        }
+    }
+    if out.is_empty() {
+        out.push_str("~empty");
+    }
+    let reserved = [
+        "CON", "PRN", "AUX", "NUL", "COM1", "COM2", "COM3", "LPT1", "LPT2", "LPT3",
+    ];
+    if reserved.iter().any(|r| r.eq_ignore_ascii_case(&out)) {
+        out.insert(0, '~');
+    }
+    if out.len() > 100 {
+        let hash = crate::plan::sha256_hex(text.as_bytes());
+        out.truncate(80);
+        out.push('~');
+        out.push_str(&hash[..16]);
+    }
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn hostile_serials_stay_inside_their_folder() {
+        assert_eq!(safe_file_stem("TM16-240010"), "TM16-240010");
+        assert_eq!(safe_file_stem("../../x"), "~2E~2E~2F~2E~2E~2Fx");
+        assert_eq!(safe_file_stem("CON"), "~CON");
+        assert_eq!(safe_file_stem("a\0b"), "a~00b");
+        assert_eq!(safe_file_stem(""), "~empty");
+        let long = "A".repeat(300);
+        let stem = safe_file_stem(&long);
+        assert!(stem.len() <= 100);
+        assert_ne!(stem, safe_file_stem(&"A".repeat(301)));
+    }
+
+    #[test]
+    fn an_existing_file_is_never_replaced() {
+        let dir = std::env::temp_dir().join(format!("meterproof-rec-{}", std::process::id()));
+        fs::create_dir_all(&dir).unwrap();
+        let p = write_new_file(&dir, "a.json", b"first").unwrap();
+        assert!(write_new_file(&dir, "a.json", b"second").is_err());
+        assert_eq!(fs::read(&p).unwrap(), b"first");
+        // No temporary file is left behind.
+        assert_eq!(fs::read_dir(&dir).unwrap().count(), 1);
+        fs::remove_dir_all(&dir).unwrap();
+    }
+}

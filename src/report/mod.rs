@@ -1,0 +1,292 @@
+//! Acceptance reports rendered from records: HTML through minijinja templates, CSV through the
+//! csv crate (a template cannot quote CSV reliably).
+//!
+//! Templates live in templates/ for users to edit; the binary embeds the same files, so reports
+//! render from any folder. A template given with `--templates DIR` replaces the embedded one of
+//! the same name. HTML templates are autoescaped (by their `.html` name) and undefined variables
+//! are errors, so a misspelt name in an edited template fails loudly instead of printing nothing.
+
+use crate::plan::units::{self, Dimension};
+use crate::record::{CheckRecord, StepRecord, StepStatus, UnitRecord};
+use minijinja::{Environment, UndefinedBehavior};
+use serde::Serialize;
+use std::path::{Path, PathBuf};
+
+/// The embedded default templates, by file name.
+pub const DEFAULT_TEMPLATES: &[(&str, &str)] = &[(
+    "unit-report.html",
+    include_str!("../../templates/unit-report.html"),
+)];
+
+#[derive(Debug, thiserror::Error)]
+pub enum ReportError {
+    #[error("template {name}: {message}")]
+    Template { name: String, message: String },
+    #[error("cannot read template {path}: {source}")]
+    ReadTemplate {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+    #[error("CSV: {0}")]
+    Csv(#[from] csv::Error),
+}
+
+fn template_error(name: &str, e: &minijinja::Error) -> ReportError {
+    let mut message = e.to_string();
+    if let Some(line) = e.line()
+        && !message.contains("line")
+    {
+        message.push_str(&format!(" (line {line})"));
+    }
+    ReportError::Template {
+        name: name.to_string(),
+        message,
+    }
+}
+
+/// The templates reports are rendered with.
+pub struct Templates {
+    env: Environment<'static>,
+}
+
+impl Templates {
+    /// The embedded defaults, each replaced by a file of the same name in `dir` if one exists.
+    pub fn load(dir: Option<&Path>) -> Result<Templates, ReportError> {
+        let mut env = Environment::new();
+        env.set_undefined_behavior(UndefinedBehavior::Strict);
+        for (name, text) in DEFAULT_TEMPLATES {
+            let source = match dir.map(|d| d.join(name)).filter(|p| p.exists()) {
+                Some(path) => std::fs::read_to_string(&path)
+                    .map_err(|source| ReportError::ReadTemplate { path, source })?,
+                None => (*text).to_string(),
+            };
+            env.add_template_owned(*name, source)
+                .map_err(|e| template_error(name, &e))?;
+        }
+        Ok(Templates { env })
+    }
+
+    /// Renders the HTML acceptance report of one unit.
+    pub fn unit_html(&self, record: &UnitRecord) -> Result<String, ReportError> {
+        let name = "unit-report.html";
+        let template = self
+            .env
+            .get_template(name)
+            .map_err(|e| template_error(name, &e))?;
+        template
+            .render(minijinja::context! {
+                record => minijinja::value::Serde(record),
+                view => minijinja::value::Serde(UnitView::of(record)),
+            })
+            .map_err(|e| template_error(name, &e))
+    }
+}
+
+/// Preformatted values for the unit report, so templates stay simple.
+#[derive(Serialize)]
+struct UnitView {
+    verdict_word: &'static str,
+    verdict_symbol: &'static str,
+    bench_time: String,
+    steps: Vec<StepView>,
+}
+
+#[derive(Serialize)]
+struct StepView {
+    id: String,
+    description: Option<String>,
+    load: String,
+    status: &'static str,
+    reason: Option<String>,
+    checks: Vec<CheckView>,
+}
+
+#[derive(Serialize)]
+struct CheckView {
+    quantity: &'static str,
+    channel: String,
+    reference: String,
+    measured: String,
+    std_dev: String,
+    samples: usize,
+    error: String,
+    limit: String,
+    verdict_word: &'static str,
+    verdict_symbol: &'static str,
+    verdict_class: &'static str,
+}
+
+impl UnitView {
+    fn of(record: &UnitRecord) -> UnitView {
+        UnitView {
+            verdict_word: record.verdict.status.word(),
+            verdict_symbol: record.verdict.status.symbol(),
+            bench_time: duration_text(record.bench_time_s),
+            steps: record.steps.iter().map(StepView::of).collect(),
+        }
+    }
+}
+
+impl StepView {
+    fn of(step: &StepRecord) -> StepView {
+        StepView {
+            id: step.id.clone(),
+            description: step.description.clone(),
+            load: step.load.describe(),
+            status: step_status_word(step.status),
+            reason: step.reason.clone(),
+            checks: step.checks.iter().map(CheckView::of).collect(),
+        }
+    }
+}
+
+pub fn step_status_word(status: StepStatus) -> &'static str {
+    match status {
+        StepStatus::Done => "done",
+        StepStatus::Incomplete => "incomplete",
+        StepStatus::NotRun => "not run",
+    }
+}
+
+impl CheckView {
+    fn of(c: &CheckRecord) -> CheckView {
+        let dim = c.quantity.dimension();
+        let value = |v: Option<f64>| v.map_or("—".to_string(), |x| number(x, dim));
+        CheckView {
+            quantity: c.quantity.name(),
+            channel: c.channel.clone(),
+            reference: value(c.reference),
+            measured: value(c.measured),
+            std_dev: value(c.summary.and_then(|s| s.std_dev)),
+            samples: c.samples.len(),
+            error: c.evaluation.as_ref().map_or("—".into(), error_text),
+            limit: c
+                .evaluation
+                .as_ref()
+                .map_or("—".into(), |e| limit_text(c, e)),
+            verdict_word: c.verdict.word(),
+            verdict_symbol: c.verdict.symbol(),
+            verdict_class: match c.verdict {
+                crate::record::CheckVerdict::Pass => "pass",
+                crate::record::CheckVerdict::Fail => "fail",
+                crate::record::CheckVerdict::NotEvaluated => "not-evaluated",
+            },
+        }
+    }
+}
+
+/// A measured value with its unit and a sensible number of digits.
+pub fn number(x: f64, dim: Dimension) -> String {
+    if dim == Dimension::Ratio {
+        return format!("{x:.4}");
+    }
+    format!("{}", units::Display(x, dim))
+}
+
+fn error_text(e: &crate::metrology::Evaluation) -> String {
+    if e.error_unit == "%" {
+        format!("{:+.3} %", e.error)
+    } else {
+        format!("{:+.4} {}", e.error, e.error_unit)
+    }
+}
+
+fn limit_text(c: &CheckRecord, e: &crate::metrology::Evaluation) -> String {
+    match c.tolerance {
+        crate::plan::Tolerance::AtMost { .. } => format!("≤ {:.4} {}", e.limit, e.error_unit),
+        _ if e.error_unit == "%" => format!("± {:.3} %", e.limit),
+        _ => format!("± {:.4} {}", e.limit, e.error_unit),
+    }
+}
+
+/// "1 min 12 s", "45.0 s".
+pub fn duration_text(seconds: f64) -> String {
+    if seconds < 60.0 {
+        format!("{seconds:.1} s")
+    } else if seconds < 3600.0 {
+        format!("{} min {:.0} s", (seconds / 60.0).floor(), seconds % 60.0)
+    } else {
+        format!(
+            "{} h {} min",
+            (seconds / 3600.0).floor(),
+            ((seconds % 3600.0) / 60.0).floor()
+        )
+    }
+}
+
+/// Makes a text cell safe for spreadsheets: a cell that starts with `=`, `+`, `-`, `@`, a tab or
+/// a carriage return would be taken for a formula, so it gets a leading apostrophe (the OWASP
+/// "CSV injection" advice).
+pub fn spreadsheet_safe(text: &str) -> String {
+    match text.chars().next() {
+        Some('=' | '+' | '-' | '@' | '\t' | '\r') => format!("'{text}"),
+        _ => text.to_string(),
+    }
+}
+
+/// The CSV report of one unit: one row per check.
+pub fn unit_csv(record: &UnitRecord) -> Result<Vec<u8>, ReportError> {
+    let mut w = csv::Writer::from_writer(Vec::new());
+    w.write_record([
+        "serial",
+        "step",
+        "load",
+        "quantity",
+        "channel",
+        "unit",
+        "reference",
+        "dut_mean",
+        "std_dev",
+        "samples",
+        "error",
+        "error_unit",
+        "limit",
+        "verdict",
+    ])?;
+    let plain = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x}"));
+    for step in &record.steps {
+        for c in &step.checks {
+            w.write_record([
+                spreadsheet_safe(&record.serial),
+                spreadsheet_safe(&step.id),
+                step.load.describe(),
+                c.quantity.name().to_string(),
+                spreadsheet_safe(&c.channel),
+                c.unit.clone(),
+                plain(c.reference),
+                plain(c.measured),
+                plain(c.summary.and_then(|s| s.std_dev)),
+                c.samples.len().to_string(),
+                plain(c.evaluation.as_ref().map(|e| e.error)),
+                c.evaluation
+                    .as_ref()
+                    .map_or(String::new(), |e| e.error_unit.clone()),
+                plain(c.evaluation.as_ref().map(|e| e.limit)),
+                c.verdict.word().to_lowercase().replace(' ', "_"),
+            ])?;
+        }
+    }
+    w.flush().map_err(csv::Error::from)?;
+    w.into_inner()
+        .map_err(|e| ReportError::Csv(csv::Error::from(e.into_error())))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn formula_like_text_is_neutralised() {
+        assert_eq!(spreadsheet_safe("=1+2"), "'=1+2");
+        assert_eq!(spreadsheet_safe("@SUM(A1)"), "'@SUM(A1)");
+        assert_eq!(spreadsheet_safe("-2+3"), "'-2+3");
+        assert_eq!(spreadsheet_safe("TM16-1"), "TM16-1");
+    }
+
+    #[test]
+    fn durations_read_like_a_clock() {
+        assert_eq!(duration_text(45.0), "45.0 s");
+        assert_eq!(duration_text(72.0), "1 min 12 s");
+        assert_eq!(duration_text(3720.0), "1 h 2 min");
+    }
+}

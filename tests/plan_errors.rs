@@ -1,0 +1,177 @@
+//! Plan validation: every kind of mistake is refused with its file, line, column and path.
+
+use meterproof::plan::{Plan, PlanErrors};
+
+const GOOD: &str = include_str!("../test-plans/demo.yaml");
+
+fn errors(text: &str) -> PlanErrors {
+    Plan::from_text("p.yaml", text).expect_err("the plan should be refused")
+}
+
+/// Line (1-based) of the first line containing `needle`.
+fn line_of(text: &str, needle: &str) -> usize {
+    text.lines()
+        .position(|l| l.contains(needle))
+        .expect("needle in text")
+        + 1
+}
+
+#[test]
+fn the_demo_plan_is_valid() {
+    let plan = Plan::from_text("demo.yaml", GOOD).unwrap();
+    assert_eq!(plan.steps.len(), 5);
+    assert_eq!(plan.steps[1].load.current, 0.5);
+    assert!((plan.steps[4].load.phase_deg - 60.0).abs() < 1e-9);
+}
+
+#[test]
+fn a_misspelt_key_is_refused_with_its_line_and_column() {
+    let text = GOOD.replace("load: { current: 500 mA }", "load: { curent: 500 mA }");
+    let e = errors(&text);
+    let first = &e.0[0];
+    assert_eq!(first.path, "steps[1].load.curent");
+    assert!(
+        first.message.contains("unknown field `curent`"),
+        "{}",
+        first.message
+    );
+    let line = line_of(&text, "curent");
+    let column = text.lines().nth(line - 1).unwrap().find("curent").unwrap() + 1;
+    let pos = first.position.expect("a position");
+    assert_eq!((pos.line, pos.column), (line, column));
+    assert!(
+        e.to_string()
+            .starts_with(&format!("p.yaml:{line}:{column}: steps[1].load.curent: "))
+    );
+}
+
+#[test]
+fn a_value_of_the_wrong_dimension_names_what_was_expected() {
+    let text = GOOD.replace("load: { current: 5 A }", "load: { current: 5 V }");
+    let e = errors(&text);
+    assert_eq!(e.0.len(), 1, "{e}");
+    assert_eq!(e.0[0].path, "steps[2].load.current");
+    assert_eq!(
+        e.0[0].message,
+        "expected a current such as \"5 A\", but \"5 V\" is a voltage"
+    );
+    assert_eq!(e.0[0].position.unwrap().line, line_of(&text, "5 V"));
+}
+
+#[test]
+fn several_mistakes_are_reported_in_one_pass() {
+    let text = GOOD
+        .replace("settle: 2 s", "settle: 2 parsecs")
+        .replace("{ percent: 0.5 % } }\n      - { quantity: active_power, tolerance: { percent: 1.0 % } }\n      - { quantity: frequency", "{ percent: 0.5 A } }\n      - { quantity: active_power, tolerance: { percent: 1.0 % } }\n      - { quantity: frequency")
+        .replace("quantity: frequency", "quantity: frequence");
+    let e = errors(&text);
+    let paths: Vec<&str> = e.0.iter().map(|x| x.path.as_str()).collect();
+    assert!(paths.contains(&"steps[0].settle"), "{e}");
+    assert!(
+        paths.contains(&"steps[2].checks[1].tolerance.percent"),
+        "{e}"
+    );
+    assert!(paths.contains(&"steps[2].checks[3].quantity"), "{e}");
+    // Reported in file order.
+    let lines: Vec<usize> = e.0.iter().map(|x| x.position.unwrap().line).collect();
+    assert!(lines.windows(2).all(|w| w[0] <= w[1]), "{lines:?}");
+}
+
+#[test]
+fn structural_mistakes_in_different_steps_all_show() {
+    let text = GOOD
+        .replace("load: { current: 500 mA }", "lod: { current: 500 mA }")
+        .replace("samples: 11", "sample: 11");
+    let e = errors(&text);
+    let paths: Vec<&str> = e.0.iter().map(|x| x.path.as_str()).collect();
+    assert!(paths.contains(&"steps[1].lod"), "{e}");
+    assert!(paths.contains(&"steps[3].sample"), "{e}");
+}
+
+#[test]
+fn yaml_syntax_errors_carry_a_position() {
+    let e = errors("id: x\nsteps: [\n  - a\n");
+    assert!(e.0[0].message.starts_with("not valid YAML"), "{e}");
+    assert!(e.0[0].position.is_some());
+}
+
+#[test]
+fn a_relative_tolerance_at_zero_load_is_refused() {
+    let text = GOOD.replace(
+        "tolerance: { at_most: 0.5 W }",
+        "tolerance: { percent: 1 % }",
+    );
+    let e = errors(&text);
+    assert_eq!(e.0[0].path, "steps[0].checks[0].tolerance");
+    assert!(e.0[0].message.contains("non-zero reference"), "{e}");
+}
+
+#[test]
+fn cross_checks_between_fields() {
+    let over = GOOD.replace("current: 16 A }", "current: 20 A }");
+    assert!(
+        errors(&over)
+            .to_string()
+            .contains("exceeds the plan's max_current of 16 A")
+    );
+
+    let dup = GOOD.replace("id: max-Imax", "id: basic-Ib");
+    assert!(
+        errors(&dup)
+            .to_string()
+            .contains("step id \"basic-Ib\" is used twice")
+    );
+
+    let pattern = GOOD.replace(r"'^2\.1\.\d+$'", "'^2\\.(1'");
+    let e = errors(&pattern);
+    assert_eq!(e.0[0].path, "product.firmware");
+
+    let channel = GOOD.replace(
+        "{ quantity: voltage, tolerance",
+        "{ quantity: voltage, channel: L2, tolerance",
+    );
+    assert!(
+        errors(&channel)
+            .to_string()
+            .contains("unknown channel \"L2\"")
+    );
+
+    let both = GOOD.replace(
+        "power_factor: 0.5 inductive",
+        "power_factor: 0.5 inductive, phase: 60 deg",
+    );
+    assert!(errors(&both).to_string().contains("not both"));
+
+    let pf = GOOD.replace("power_factor: 0.5 inductive", "power_factor: 0.5");
+    assert!(
+        errors(&pf)
+            .to_string()
+            .contains("does not say inductive or capacitive")
+    );
+
+    let tol = GOOD.replace("{ within: 0.05 Hz }", "{ within: 0.05 Hz, at_most: 1 Hz }");
+    assert!(errors(&tol).to_string().contains("a tolerance is one of"));
+
+    let kind = GOOD.replace("kind: sim", "kind: carrier-pigeon");
+    assert!(
+        errors(&kind).0[0]
+            .message
+            .contains("unknown variant `carrier-pigeon`")
+    );
+}
+
+#[test]
+fn a_bare_number_needs_its_unit() {
+    let text = GOOD.replace("nominal_voltage: 230 V", "nominal_voltage: 230");
+    let e = errors(&text);
+    assert_eq!(e.0[0].path, "ratings.nominal_voltage");
+    assert!(e.0[0].message.contains("has no unit"), "{e}");
+}
+
+#[test]
+fn the_plan_hash_is_of_the_exact_text() {
+    let a = Plan::from_text("a", GOOD).unwrap();
+    let b = Plan::from_text("a", &format!("{GOOD}\n# a comment\n")).unwrap();
+    assert_eq!(a.source.sha256.len(), 64);
+    assert_ne!(a.source.sha256, b.source.sha256);
+}

@@ -1,0 +1,250 @@
+//! A whole acceptance run on the built-in simulated bench, through the real binary, with its
+//! records and reports read back.
+
+use meterproof::bench::sim::{SimBench, SimConfig};
+use meterproof::record::{self, CheckVerdict, UnitRecord, UnitStatus};
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+fn bin() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_meterproof"))
+}
+
+fn temp_dir(name: &str) -> PathBuf {
+    let d = std::env::temp_dir().join(format!("meterproof-test-{name}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+/// Runs the demo plan and returns (exit code, run folder, records by position).
+fn run_demo(out: &Path, extra: &[&str]) -> (i32, PathBuf, Vec<UnitRecord>) {
+    let status = bin()
+        .args([
+            "run",
+            "test-plans/demo.yaml",
+            "--bench",
+            "sim",
+            "--quiet",
+            "--out",
+        ])
+        .arg(out)
+        .args(extra)
+        .output()
+        .unwrap();
+    let code = status.status.code().unwrap();
+    let run_dir = std::fs::read_dir(out)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .max()
+        .expect("a run folder");
+    let mut records: Vec<UnitRecord> = std::fs::read_dir(&run_dir)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|x| x == "json"))
+        .map(|p| record::read(&p).unwrap())
+        .collect();
+    records.sort_by_key(|r| r.position);
+    (code, run_dir, records)
+}
+
+#[test]
+fn the_demo_rejects_exactly_the_unit_the_simulator_spoiled() {
+    let out = temp_dir("demo");
+    let (code, run_dir, records) = run_demo(&out, &[]);
+    assert_eq!(code, 1, "exit status 1: a unit was rejected");
+    assert_eq!(records.len(), 4);
+    // The simulator, built as the CLI builds it, says which unit carries the defect.
+    let sim = SimBench::new(&SimConfig::new(1, 4));
+    let defect = &sim.defects()[0];
+    for r in &records {
+        let failed: Vec<(String, &str)> = r
+            .failed_checks()
+            .map(|(s, c)| (s.id.clone(), c.quantity.name()))
+            .collect();
+        if r.position == defect.position {
+            assert_eq!(r.serial, defect.serial);
+            assert_eq!(r.verdict.status, UnitStatus::Rejected);
+            // A phase error shows only where the power factor is not 1 (P = V·I·cos φ).
+            assert_eq!(failed, vec![("basic-pf0.5".to_string(), "active_power")]);
+        } else {
+            assert_eq!(r.verdict.status, UnitStatus::Accepted, "{:?}", r.verdict);
+            assert!(failed.is_empty());
+        }
+        // Every check of every step was decided on the full sample series.
+        for s in &r.steps {
+            for c in &s.checks {
+                assert_ne!(c.verdict, CheckVerdict::NotEvaluated);
+                assert_eq!(c.samples.len(), s.samples_planned as usize);
+            }
+        }
+        assert_eq!(
+            r.plan.sha256,
+            meterproof::plan::sha256_hex(&std::fs::read("test-plans/demo.yaml").unwrap())
+        );
+        assert!(chrono::DateTime::parse_from_rfc3339(&r.started_at).is_ok());
+        assert!(chrono::DateTime::parse_from_rfc3339(&r.finished_at).is_ok());
+    }
+    // One record, one HTML and one CSV report per serial number.
+    for r in &records {
+        let stem = format!("{}-p{}", record::safe_file_stem(&r.serial), r.position);
+        let html = std::fs::read_to_string(run_dir.join(format!("{stem}.html"))).unwrap();
+        let word = r.verdict.status.word();
+        let symbol = r.verdict.status.symbol();
+        assert!(
+            html.contains(&format!("{symbol} {word}")),
+            "verdict as word and symbol"
+        );
+        assert!(html.contains(&r.serial));
+        let csv = std::fs::read_to_string(run_dir.join(format!("{stem}.csv"))).unwrap();
+        let mut reader = csv::Reader::from_reader(csv.as_bytes());
+        let rows: Vec<csv::StringRecord> = reader.records().map(|x| x.unwrap()).collect();
+        assert_eq!(rows.len(), 13, "one row per check");
+        let fails = rows.iter().filter(|row| &row[13] == "fail").count();
+        assert_eq!(fails, r.failed_checks().count());
+    }
+    std::fs::remove_dir_all(&out).unwrap();
+}
+
+/// Everything but the wall-clock fields.
+fn without_wall_clock(mut r: UnitRecord) -> UnitRecord {
+    r.started_at.clear();
+    r.finished_at.clear();
+    r.run_id.clear();
+    r
+}
+
+#[test]
+fn the_same_seed_gives_the_same_records() {
+    let out = temp_dir("seed");
+    let (_, _, a) = run_demo(&out.join("a"), &["--seed", "42"]);
+    let (_, _, b) = run_demo(&out.join("b"), &["--seed", "42"]);
+    let (_, _, c) = run_demo(&out.join("c"), &["--seed", "43"]);
+    let a: Vec<_> = a.into_iter().map(without_wall_clock).collect();
+    let b: Vec<_> = b.into_iter().map(without_wall_clock).collect();
+    let c: Vec<_> = c.into_iter().map(without_wall_clock).collect();
+    assert_eq!(a, b);
+    assert_ne!(a, c);
+    // Bit for bit: the JSON bytes agree too.
+    assert_eq!(
+        record::to_json(&a[0]).unwrap(),
+        record::to_json(&b[0]).unwrap()
+    );
+    std::fs::remove_dir_all(&out).unwrap();
+}
+
+#[test]
+fn device_text_is_escaped_in_html_and_defused_in_csv() {
+    let out = temp_dir("escape");
+    let (_, run_dir, records) = run_demo(
+        &out,
+        &[
+            "--serials",
+            "<script>alert(1)</script>,=HYPERLINK(\"x\"),../../etc,ok-1",
+            "--seed",
+            "9",
+        ],
+    );
+    assert_eq!(records[0].serial, "<script>alert(1)</script>");
+    let names: Vec<String> = std::fs::read_dir(&run_dir)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .collect();
+    assert!(
+        names
+            .iter()
+            .all(|n| !n.contains('/') && !n.starts_with('.')),
+        "{names:?}"
+    );
+    assert_eq!(names.len(), 12);
+    let stem = format!("{}-p1", record::safe_file_stem(&records[0].serial));
+    let html = std::fs::read_to_string(run_dir.join(format!("{stem}.html"))).unwrap();
+    assert!(!html.contains("<script>"));
+    assert!(html.contains("&lt;script&gt;"));
+    let stem = format!("{}-p2", record::safe_file_stem(&records[1].serial));
+    let csv = std::fs::read_to_string(run_dir.join(format!("{stem}.csv"))).unwrap();
+    let mut reader = csv::Reader::from_reader(csv.as_bytes());
+    let first = reader.records().next().unwrap().unwrap();
+    assert_eq!(&first[0], "'=HYPERLINK(\"x\")");
+    std::fs::remove_dir_all(&out).unwrap();
+}
+
+#[test]
+fn a_firmware_outside_the_plan_is_rejected_before_any_step() {
+    let out = temp_dir("firmware");
+    let plan = out.join("plan.yaml");
+    let text = std::fs::read_to_string("test-plans/demo.yaml")
+        .unwrap()
+        .replace(r"'^2\.1\.\d+$'", r"'^2\.2\.\d+$'");
+    std::fs::write(&plan, text).unwrap();
+    let output = bin()
+        .args(["run", "--quiet", "--out"])
+        .arg(out.join("o"))
+        .arg(&plan)
+        .output()
+        .unwrap();
+    assert_eq!(output.status.code(), Some(1));
+    let stdout = String::from_utf8_lossy(&output.stdout);
+    assert!(
+        stdout.contains("firmware 2.1.4 does not match the plan's pattern"),
+        "{stdout}"
+    );
+    std::fs::remove_dir_all(&out).unwrap();
+}
+
+#[test]
+fn bad_arguments_exit_with_status_2() {
+    let out = temp_dir("args");
+    for args in [
+        vec!["run", "test-plans/demo.yaml", "--serials", "A,A"],
+        vec![
+            "run",
+            "test-plans/demo.yaml",
+            "--serials",
+            "A,B",
+            "--positions",
+            "3",
+        ],
+        vec!["run", "test-plans/demo.yaml", "--bench", "nowhere.yaml"],
+        vec!["run", "no-such-plan.yaml"],
+        vec!["check", "no-such-plan.yaml"],
+    ] {
+        let output = bin().args(&args).arg("--out").arg(&out).output().unwrap();
+        let output = if args[0] == "check" {
+            bin().args(&args).output().unwrap()
+        } else {
+            output
+        };
+        assert_eq!(
+            output.status.code(),
+            Some(2),
+            "{args:?}: {}",
+            String::from_utf8_lossy(&output.stderr)
+        );
+        assert!(!output.stderr.is_empty());
+    }
+    std::fs::remove_dir_all(&out).unwrap();
+}
+
+#[test]
+fn check_accepts_every_shipped_plan() {
+    let plans: Vec<PathBuf> = std::fs::read_dir("test-plans")
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|x| x == "yaml"))
+        .filter(|p| !p.to_string_lossy().contains("station"))
+        .collect();
+    assert!(!plans.is_empty());
+    let output = bin().arg("check").args(&plans).output().unwrap();
+    assert_eq!(
+        output.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&output.stderr)
+    );
+    let stdout = String::from_utf8_lossy(&output.stdout);
+    assert!(
+        stdout.contains("5 steps, 13 checks, scheduled bench time 40.5 s"),
+        "{stdout}"
+    );
+}
