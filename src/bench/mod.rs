@@ -4,6 +4,7 @@
 //! drive the same executor.
 
 pub mod sim;
+pub mod sim_device;
 
 use crate::link::DutLink;
 use crate::plan::{Load, Quantity};
@@ -143,6 +144,8 @@ pub struct Bench {
     pub source: Box<dyn LoadSource>,
     pub reference: Box<dyn ReferenceMeter>,
     pub positions: Vec<Position>,
+    /// Whether positions are read concurrently (links that wait on real ports).
+    pub parallel: bool,
 }
 
 #[cfg(test)]

@@ -18,6 +18,47 @@ use super::{
     Bench, BenchError, Clock, InstrumentInfo, LoadSource, Position, ReferenceMeter,
     ReferenceReading, ReferenceRequest, StationInfo, VirtualClock,
 };
+pub use front_end::{FrontEnd, front_end};
+
+/// The simulated meter's front end: each quantity is reported in counts,
+/// counts = round(value · gain + offset), as a metering chip does.
+mod front_end {
+    use crate::plan::Quantity;
+
+    #[derive(Debug, Clone, Copy, PartialEq)]
+    pub struct FrontEnd {
+        /// Counts per unit of the quantity.
+        pub gain: f64,
+        /// Counts at zero.
+        pub offset: f64,
+    }
+
+    impl FrontEnd {
+        pub fn to_counts(self, value: f64) -> i64 {
+            (value * self.gain + self.offset).round() as i64
+        }
+        pub fn to_value(self, counts: f64) -> f64 {
+            (counts - self.offset) / self.gain
+        }
+    }
+
+    /// The nominal constants of the simulated TM-16 front end (an invented design; the current
+    /// channel's 395 counts at zero and about 1700 counts per ampere are those of a bench
+    /// measurement of a small front end: common practice, no published source).
+    pub fn front_end(quantity: Quantity) -> FrontEnd {
+        let (gain, offset) = match quantity {
+            Quantity::Current => (1700.0, 395.0),
+            Quantity::Voltage => (100.0, 12.0),
+            Quantity::ActivePower | Quantity::ReactivePower | Quantity::ApparentPower => {
+                (100.0, 0.0)
+            }
+            Quantity::PowerFactor => (1000.0, 0.0),
+            Quantity::Frequency => (1000.0, 0.0),
+            Quantity::ActiveEnergy => (1000.0, 0.0),
+        };
+        FrontEnd { gain, offset }
+    }
+}
 use crate::link::{DutLink, Identity, LinkError};
 use crate::plan::{Load, Quantity};
 use rand::SeedableRng;
@@ -96,7 +137,7 @@ struct MeterState {
 
 /// The shared physical state of the bench.
 struct World {
-    clock: Arc<VirtualClock>,
+    clock: Arc<dyn Clock>,
     /// What the source actually delivers now (set load with the source's own error).
     actual: Load,
     previous: Load,
@@ -104,10 +145,6 @@ struct World {
     from_no_load: bool,
     meters: Vec<MeterState>,
 }
-
-/// Counts per ampere and per volt of the simulated front end (its quantisation).
-const COUNTS_PER_A: f64 = 1000.0;
-const COUNTS_PER_V: f64 = 100.0;
 
 impl World {
     fn since_change(&self) -> f64 {
@@ -173,11 +210,13 @@ impl World {
         self.changed_at_s = now;
     }
 
-    fn read(&mut self, index: usize, quantity: Quantity) -> f64 {
+    /// What meter `index` reports for `quantity` now, in counts of its front end.
+    fn read_counts(&mut self, index: usize, quantity: Quantity) -> i64 {
+        let fe = front_end(quantity);
         let now = self.clock.now_s();
         if quantity == Quantity::ActiveEnergy {
             self.advance_energy(index, now);
-            return (self.meters[index].energy_wh * 1000.0).round() / 1000.0;
+            return fe.to_counts(self.meters[index].energy_wh);
         }
         let (v, i) = self.seen(&self.meters[index], now);
         let actual = self.actual;
@@ -185,31 +224,33 @@ impl World {
         let m = &meter.model;
         let noise = Normal::new(0.0, m.noise_relative).expect("noise is a finite spread");
         let mut jitter = || 1.0 + noise.sample(&mut meter.noise);
-        let i_counts =
-            ((i * (1.0 + m.gain_current) + m.offset_current_a) * jitter() * COUNTS_PER_A).round();
-        let v_counts = (v * (1.0 + m.gain_voltage) * jitter() * COUNTS_PER_V).round();
-        let i_meas = i_counts / COUNTS_PER_A;
-        let v_meas = v_counts / COUNTS_PER_V;
+        let i_meas = (i * (1.0 + m.gain_current) + m.offset_current_a) * jitter();
+        let v_meas = v * (1.0 + m.gain_voltage) * jitter();
         let phi = (actual.phase_deg + m.phase_error_deg).to_radians();
         let live = i_meas.abs() >= NO_LOAD_THRESHOLD_A;
-        let round2 = |x: f64| (x * 100.0).round() / 100.0;
-        match quantity {
+        let value = match quantity {
             Quantity::Current => i_meas,
             Quantity::Voltage => v_meas,
-            Quantity::ActivePower if live => round2(v_meas * i_meas * phi.cos()),
-            Quantity::ReactivePower if live => round2(v_meas * i_meas * phi.sin()),
-            Quantity::ApparentPower if live => round2(v_meas * i_meas),
-            Quantity::PowerFactor if live => (phi.cos() * 1000.0).round() / 1000.0,
+            Quantity::ActivePower if live => v_meas * i_meas * phi.cos(),
+            Quantity::ReactivePower if live => v_meas * i_meas * phi.sin(),
+            Quantity::ApparentPower if live => v_meas * i_meas,
+            Quantity::PowerFactor if live => phi.cos(),
             Quantity::PowerFactor => 1.0,
             // Frequency is counted over many cycles: far less noisy than the rms values.
             Quantity::Frequency => {
                 let jitter = Normal::new(0.0, 2e-5)
                     .expect("finite")
                     .sample(&mut meter.noise);
-                (actual.frequency * (1.0 + jitter) * 1000.0).round() / 1000.0
+                actual.frequency * (1.0 + jitter)
             }
             _ => 0.0,
-        }
+        };
+        fe.to_counts(value)
+    }
+
+    /// What meter `index` reports for `quantity`, converted with the nominal front-end constants.
+    fn read(&mut self, index: usize, quantity: Quantity) -> f64 {
+        front_end(quantity).to_value(self.read_counts(index, quantity) as f64)
     }
 }
 
@@ -220,7 +261,7 @@ fn lock(world: &Mutex<World>) -> MutexGuard<'_, World> {
 /// The built-in simulated bench.
 pub struct SimBench {
     world: Arc<Mutex<World>>,
-    clock: Arc<VirtualClock>,
+    clock: Arc<dyn Clock>,
     defects: Vec<PlantedDefect>,
     seed: u64,
 }
@@ -239,8 +280,13 @@ const STREAM_MODEL_BASE: u64 = 1_000;
 const STREAM_NOISE_BASE: u64 = 2_000;
 
 impl SimBench {
+    /// A simulated bench on a virtual clock: it never waits for real.
     pub fn new(config: &SimConfig) -> SimBench {
-        let clock = Arc::new(VirtualClock::default());
+        SimBench::with_clock(config, Arc::new(VirtualClock::default()))
+    }
+
+    /// A simulated bench on the given clock (a real one when served to another process).
+    pub fn with_clock(config: &SimConfig, clock: Arc<dyn Clock>) -> SimBench {
         let serials = config.serials.clone().unwrap_or_else(|| {
             let mut rng = stream(config.seed, STREAM_SERIALS);
             let first = 240_000 + (rand::Rng::next_u32(&mut rng) % 9_000) * 10;
@@ -299,6 +345,24 @@ impl SimBench {
         &self.defects
     }
 
+    /// A handle on meter `index`, for serving it over a port.
+    pub fn meter(&self, index: usize) -> SimMeterHandle {
+        SimMeterHandle {
+            world: self.world.clone(),
+            index,
+        }
+    }
+
+    /// How many meters the bench has.
+    pub fn positions(&self) -> usize {
+        lock(&self.world).meters.len()
+    }
+
+    /// The bench's clock.
+    pub fn clock(&self) -> Arc<dyn Clock> {
+        self.clock.clone()
+    }
+
     /// The settling time constants of the meters, seconds.
     pub fn time_constants(&self) -> Vec<f64> {
         lock(&self.world)
@@ -346,6 +410,7 @@ impl SimBench {
                 gain: 0.0001,
             }),
             positions,
+            parallel: false,
         }
     }
 }
@@ -368,6 +433,24 @@ fn meter_model(config: &SimConfig, index: usize, serial: &str) -> MeterModel {
         phase_error_deg: normal(0.05).sample(&mut rng),
         noise_relative: 0.0005,
         tau_s: uniform(&mut rng, config.tau_range_s.0, config.tau_range_s.1),
+    }
+}
+
+/// One simulated meter, as a device on a port sees it.
+#[derive(Clone)]
+pub struct SimMeterHandle {
+    world: Arc<Mutex<World>>,
+    index: usize,
+}
+
+impl SimMeterHandle {
+    pub fn identity(&self) -> Identity {
+        lock(&self.world).meters[self.index].model.identity.clone()
+    }
+
+    /// The meter's reading of `quantity` now, in front-end counts.
+    pub fn read_counts(&self, quantity: Quantity) -> i64 {
+        lock(&self.world).read_counts(self.index, quantity)
     }
 }
 

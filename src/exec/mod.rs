@@ -7,13 +7,14 @@
 //! on.
 
 mod decide;
+mod sampling;
 
 use crate::bench::{Bench, Position, ReferenceRequest};
 use crate::link::Identity;
 use crate::plan::{Plan, Quantity, Step};
 use crate::record::{
-    CheckRecord, CheckVerdict, PlanRef, RECORD_FORMAT, ReferenceRecord, Sample, StepRecord,
-    StepStatus, UnitRecord, UnitStatus, UnitVerdict,
+    CheckRecord, CheckVerdict, PlanRef, RECORD_FORMAT, ReferenceRecord, StepRecord, StepStatus,
+    UnitRecord, UnitStatus, UnitVerdict,
 };
 
 /// Who runs what, for the records.
@@ -331,39 +332,14 @@ fn readings_of(step: &Step) -> Vec<(Quantity, String)> {
 /// Samples every active unit, takes the reference readings and evaluates the checks.
 fn run_step(step: &Step, started_at_s: f64, bench: &mut Bench, units: &mut [Unit]) {
     let wanted = readings_of(step);
-    let mut series: Vec<Vec<Vec<Sample>>> = units
-        .iter()
-        .map(|_| vec![Vec::new(); wanted.len()])
+    let slots: Vec<sampling::Slot> = bench
+        .positions
+        .iter_mut()
+        .zip(units.iter())
+        .map(|(p, u)| u.active.then_some(&mut p.link))
         .collect();
-    let mut faults: Vec<Option<String>> = vec![None; units.len()];
-    let window_start = bench.clock.now_s();
-    for k in 0..step.samples {
-        let t = bench.clock.now_s();
-        for (u, unit) in units.iter().enumerate() {
-            if !unit.active || faults[u].is_some() {
-                continue;
-            }
-            let link = &mut bench.positions[u].link;
-            for (w, (quantity, channel)) in wanted.iter().enumerate() {
-                match link.read(*quantity, channel) {
-                    Ok(value) => series[u][w].push(Sample { t_s: t, value }),
-                    Err(e) => {
-                        faults[u] = Some(format!(
-                            "sample {} of {}: reading {} on channel {channel}: {e}",
-                            k + 1,
-                            step.samples,
-                            quantity.name()
-                        ));
-                        break;
-                    }
-                }
-            }
-        }
-        if k + 1 < step.samples {
-            bench.clock.sleep_s(step.interval_s);
-        }
-    }
-    let window = (window_start, bench.clock.now_s());
+    let (mut series, window) =
+        sampling::sample_step(step, &wanted, bench.clock.as_ref(), slots, bench.parallel);
     let references = take_references(step, bench, window);
     for (u, unit) in units.iter_mut().enumerate() {
         if !unit.active {
@@ -384,7 +360,7 @@ fn run_step(step: &Step, started_at_s: f64, bench: &mut Bench, units: &mut [Unit
                 .iter()
                 .position(|(q, ch)| *q == check.quantity && *ch == check.channel)
                 .expect("every check's reading is wanted");
-            check_record.samples = series[u][w].clone();
+            check_record.samples = series[u].samples.get(w).cloned().unwrap_or_default();
             let reference = references
                 .iter()
                 .find(|(q, _)| *q == check.quantity)
@@ -395,9 +371,9 @@ fn run_step(step: &Step, started_at_s: f64, bench: &mut Bench, units: &mut [Unit
             .iter()
             .filter_map(|(q, r)| r.as_ref().err().map(|e| format!("{}: {e}", q.name())))
             .collect();
-        if let Some(fault) = &faults[u] {
+        if let Some(fault) = series[u].fault.take() {
             record.status = StepStatus::Incomplete;
-            record.reason = Some(fault.clone());
+            record.reason = Some(fault);
         } else if !missing_reference.is_empty() {
             record.status = StepStatus::Incomplete;
             record.reason = Some(format!(

@@ -4,6 +4,8 @@
 //! simulator or a meter on a serial port is the link's business. A link reports every failure as
 //! a [`LinkError`] that says what was asked and what went wrong, never by panicking.
 
+pub mod text;
+
 use crate::plan::Quantity;
 use serde::{Deserialize, Serialize};
 
@@ -32,8 +34,10 @@ pub enum LinkError {
     },
     #[error("the link is gone: {0}")]
     Disconnected(String),
-    #[error("the unit cannot measure {quantity} on channel {channel}")]
+    #[error("the unit cannot do {quantity} on channel {channel}")]
     Unsupported { quantity: String, channel: String },
+    #[error("cannot open {port}: {why}")]
+    Open { port: String, why: String },
 }
 
 /// The connection to one unit under test.
@@ -44,6 +48,14 @@ pub trait DutLink: Send {
     /// Reads one quantity on one channel, in the quantity's base unit. For register quantities
     /// (energy) this is the register's current content.
     fn read(&mut self, quantity: Quantity, channel: &str) -> Result<f64, LinkError>;
+
+    /// Writes a named constant (a calibration gain or offset) and waits for its acknowledgement.
+    fn write_constant(&mut self, name: &str, channel: &str, _value: f64) -> Result<(), LinkError> {
+        Err(LinkError::Unsupported {
+            quantity: format!("write {name}"),
+            channel: channel.to_string(),
+        })
+    }
 
     /// A short description for records: "sim position 3", "/dev/ttyUSB0 @ 115200".
     fn describe(&self) -> String;

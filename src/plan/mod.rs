@@ -6,8 +6,10 @@
 
 mod locate;
 mod raw;
+pub mod text_link;
 pub mod units;
 mod validate;
+mod validate_link;
 
 pub use locate::Position;
 pub use validate::{PlanError, PlanErrors};
@@ -77,12 +79,30 @@ pub enum BaseCurrent {
 pub enum LinkSpec {
     /// The built-in simulated meter.
     Sim { channels: Vec<String> },
+    /// A line protocol over a serial port.
+    Text(Box<text_link::TextLinkSpec>),
 }
 
 impl LinkSpec {
     pub fn channels(&self) -> &[String] {
         match self {
             LinkSpec::Sim { channels } => channels,
+            LinkSpec::Text(t) => &t.channels,
+        }
+    }
+
+    /// Whether the link can read `quantity` at all.
+    pub fn reads(&self, quantity: Quantity) -> bool {
+        match self {
+            LinkSpec::Sim { .. } => true,
+            LinkSpec::Text(t) => t.request_for(quantity).is_some(),
+        }
+    }
+
+    pub fn kind(&self) -> &'static str {
+        match self {
+            LinkSpec::Sim { .. } => "sim",
+            LinkSpec::Text(_) => "text",
         }
     }
 }

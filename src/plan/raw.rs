@@ -98,6 +98,84 @@ pub enum RawLink {
         #[serde(default)]
         channels: Option<Vec<Text>>,
     },
+    /// A line protocol over a serial port.
+    Text(Box<RawTextLink>),
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawTextLink {
+    #[serde(default)]
+    pub port: RawPort,
+    #[serde(default)]
+    pub line_ending: RawLineEnding,
+    #[serde(default)]
+    pub timeout: Option<Text>,
+    #[serde(default)]
+    pub retries: Option<Text>,
+    #[serde(default)]
+    pub pause: Option<Text>,
+    #[serde(default)]
+    pub echo: Option<Text>,
+    #[serde(default)]
+    pub skip: Option<Text>,
+    #[serde(default)]
+    pub channels: Option<Vec<Text>>,
+    pub identity: RawIdentity,
+    pub quantities: std::collections::BTreeMap<String, RawQuantityRequest>,
+    #[serde(default)]
+    pub writes: std::collections::BTreeMap<String, RawWrite>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawPort {
+    #[serde(default)]
+    pub baud: Option<Text>,
+    #[serde(default)]
+    pub data_bits: Option<Text>,
+    #[serde(default)]
+    pub parity: Option<Text>,
+    #[serde(default)]
+    pub stop_bits: Option<Text>,
+    #[serde(default)]
+    pub flow_control: Option<Text>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawLineEnding {
+    #[serde(default)]
+    pub send: Option<Text>,
+    #[serde(default)]
+    pub receive: Option<Text>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawIdentity {
+    pub request: Text,
+    pub reply: Text,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawQuantityRequest {
+    pub request: Text,
+    pub reply: Text,
+    #[serde(default)]
+    pub offset: Option<Text>,
+    #[serde(default)]
+    pub gain: Option<Text>,
+    #[serde(default)]
+    pub unit: Option<Text>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawWrite {
+    pub request: Text,
+    pub ack: Text,
 }
 
 #[derive(Debug, Deserialize)]

@@ -74,14 +74,14 @@ impl fmt::Display for PlanErrors {
 }
 
 /// Collects mistakes while a plan is read.
-struct Ctx<'a> {
+pub(super) struct Ctx<'a> {
     file: &'a str,
     loc: Locations,
     errors: Vec<PlanError>,
 }
 
 impl Ctx<'_> {
-    fn error(&mut self, path: &str, message: impl Into<String>) {
+    pub(super) fn error(&mut self, path: &str, message: impl Into<String>) {
         let position = self.loc.value(path);
         self.errors.push(PlanError {
             file: self.file.to_string(),
@@ -119,7 +119,7 @@ impl Ctx<'_> {
         }
     }
 
-    fn value(&mut self, path: &str, text: &Text, dim: Dimension) -> Option<f64> {
+    pub(super) fn value(&mut self, path: &str, text: &Text, dim: Dimension) -> Option<f64> {
         match units::parse(&text.0, dim) {
             Ok(v) => Some(v),
             Err(e) => {
@@ -129,7 +129,7 @@ impl Ctx<'_> {
         }
     }
 
-    fn optional_value(
+    pub(super) fn optional_value(
         &mut self,
         path: &str,
         text: Option<&Text>,
@@ -141,7 +141,7 @@ impl Ctx<'_> {
         }
     }
 
-    fn count(&mut self, path: &str, text: &Text) -> Option<u32> {
+    pub(super) fn count(&mut self, path: &str, text: &Text) -> Option<u32> {
         match text.0.trim().parse::<u32>() {
             Ok(n) if n >= 1 => Some(n),
             _ => {
@@ -404,26 +404,35 @@ fn ratings(ctx: &mut Ctx, raw: &RawPlan) -> Option<Ratings> {
 fn link(ctx: &mut Ctx, raw: RawLink) -> Option<LinkSpec> {
     match raw {
         RawLink::Sim { channels } => {
-            let channels: Vec<String> = channels
-                .unwrap_or_else(|| vec![Text("L".into())])
-                .into_iter()
-                .map(|t| t.0.trim().to_string())
-                .collect();
-            let mut seen = HashSet::new();
-            for (i, c) in channels.iter().enumerate() {
-                if c.is_empty() || !seen.insert(c.clone()) {
-                    ctx.error(
-                        &format!("link.channels[{i}]"),
-                        "channel names must be non-empty and unique",
-                    );
-                }
-            }
-            if channels.is_empty() {
-                ctx.error("link.channels", "at least one channel is needed");
-            }
+            let channels = channel_names(ctx, channels);
             Some(LinkSpec::Sim { channels })
         }
+        RawLink::Text(raw) => {
+            super::validate_link::text_link(ctx, *raw).map(|t| LinkSpec::Text(Box::new(t)))
+        }
     }
+}
+
+/// Channel names: given, or the single channel `L`; non-empty and unique.
+pub(super) fn channel_names(ctx: &mut Ctx, channels: Option<Vec<Text>>) -> Vec<String> {
+    let channels: Vec<String> = channels
+        .unwrap_or_else(|| vec![Text("L".into())])
+        .into_iter()
+        .map(|t| t.0.trim().to_string())
+        .collect();
+    let mut seen = HashSet::new();
+    for (i, c) in channels.iter().enumerate() {
+        if c.is_empty() || !seen.insert(c.clone()) {
+            ctx.error(
+                &format!("link.channels[{i}]"),
+                "channel names must be non-empty and unique",
+            );
+        }
+    }
+    if channels.is_empty() {
+        ctx.error("link.channels", "at least one channel is needed");
+    }
+    channels
 }
 
 fn step(
@@ -659,6 +668,15 @@ fn check(
         }
     };
     let quantity = quantity?;
+    if !link.reads(quantity) {
+        ctx.error(
+            &format!("{path}.quantity"),
+            format!(
+                "the link has no request for {}: add it under link.quantities",
+                quantity.name()
+            ),
+        );
+    }
     let tolerance = tolerance(ctx, &format!("{path}.tolerance"), &raw.tolerance, quantity)?;
     if let Some(load) = load
         && tolerance.is_relative()

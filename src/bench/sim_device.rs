@@ -1,0 +1,270 @@
+//! A simulated meter on a pseudo-terminal, speaking the TM-16 text protocol (an invented
+//! protocol, documented in DEVELOPERS.md), with faults to inject on request.
+//!
+//! The device answers from the same simulated world as the built-in bench, so a plan run through
+//! real serial ports and the `text` link reads the same counts as one run on the `sim` link.
+
+use super::sim::SimMeterHandle;
+use crate::plan::Quantity;
+use std::io::{self, Read, Write};
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::thread::JoinHandle;
+use std::time::Duration;
+
+/// Faults a simulated meter can be told to commit.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Faults {
+    /// Ignore every Nth request (no reply at all).
+    pub drop_every: Option<u64>,
+    /// Corrupt the reply to every Nth request.
+    pub garble_every: Option<u64>,
+    /// Wait this long before each reply.
+    pub slow: Duration,
+    /// After this many requests, print a boot banner and forget the request in hand, as a
+    /// meter that reset would.
+    pub reboot_after: Option<u64>,
+    /// Report this firmware version instead of the real one.
+    pub firmware: Option<String>,
+    /// After this many requests, stop answering for good (a unit that hung or lost power).
+    pub die_after: Option<u64>,
+    /// Echo every request before replying.
+    pub echo: bool,
+}
+
+/// The protocol's quantity codes.
+pub fn quantity_code(q: Quantity) -> &'static str {
+    match q {
+        Quantity::Current => "I",
+        Quantity::Voltage => "U",
+        Quantity::ActivePower => "P",
+        Quantity::ReactivePower => "Q",
+        Quantity::ApparentPower => "S",
+        Quantity::PowerFactor => "PF",
+        Quantity::Frequency => "F",
+        Quantity::ActiveEnergy => "E",
+    }
+}
+
+fn quantity_from_code(code: &str) -> Option<Quantity> {
+    Quantity::ALL
+        .into_iter()
+        .find(|q| quantity_code(*q) == code)
+}
+
+const BANNER: &[&str] = &["# TM-16 boot 0.9", "# metering core ready"];
+
+/// The protocol logic, apart from any port: one request line in, reply lines out.
+pub struct Device {
+    meter: SimMeterHandle,
+    faults: Faults,
+    requests: u64,
+    dead: bool,
+}
+
+impl Device {
+    pub fn new(meter: SimMeterHandle, faults: Faults) -> Device {
+        Device {
+            meter,
+            faults,
+            requests: 0,
+            dead: false,
+        }
+    }
+
+    /// The lines a freshly powered device prints.
+    pub fn banner() -> Vec<String> {
+        BANNER.iter().map(|s| s.to_string()).collect()
+    }
+
+    /// Answers one request line; the lines to send back, in order.
+    pub fn handle(&mut self, request: &str) -> Vec<String> {
+        self.requests += 1;
+        let n = self.requests;
+        let every = |k: Option<u64>| k.is_some_and(|k| k > 0 && n % k == 0);
+        if self.dead || self.faults.die_after.is_some_and(|d| n > d) {
+            self.dead = true;
+            return Vec::new();
+        }
+        let mut out = Vec::new();
+        if self.faults.echo {
+            out.push(request.to_string());
+        }
+        if self.faults.reboot_after == Some(n) {
+            out.extend(Device::banner());
+            return out;
+        }
+        if every(self.faults.drop_every) {
+            return out;
+        }
+        let mut reply = self.answer(request.trim());
+        if every(self.faults.garble_every) {
+            reply = garble(&reply);
+        }
+        out.push(reply);
+        out
+    }
+
+    fn answer(&mut self, request: &str) -> String {
+        let words: Vec<&str> = request.split_whitespace().collect();
+        match words.as_slice() {
+            ["who"] => {
+                let id = self.meter.identity();
+                let firmware = self.faults.firmware.clone().unwrap_or(id.firmware);
+                format!("model={};serial={};fw={firmware}", id.model, id.serial)
+            }
+            ["rd", code, channel] => match quantity_from_code(code) {
+                Some(q) => format!("= {code} {channel} {}", self.meter.read_counts(q)),
+                None => format!("err unknown quantity {code}"),
+            },
+            [] => "err empty request".into(),
+            _ => "err unknown command".into(),
+        }
+    }
+}
+
+/// Replaces characters of a reply by bytes a noisy line might deliver.
+fn garble(reply: &str) -> String {
+    reply
+        .chars()
+        .enumerate()
+        .map(|(i, c)| if i % 3 == 1 { '\u{fffd}' } else { c })
+        .collect()
+}
+
+/// A simulated meter serving on a pseudo-terminal until dropped.
+pub struct PtyDevice {
+    /// The path a client opens, as it would a real port.
+    pub path: String,
+    stop: Arc<AtomicBool>,
+    thread: Option<JoinHandle<()>>,
+    /// Held open so the pseudo-terminal stays usable between client opens.
+    _slave: serialport::TTYPort,
+    pub requests: Arc<AtomicU64>,
+}
+
+impl PtyDevice {
+    /// Creates a pseudo-terminal pair and serves `device` on its master side.
+    pub fn spawn(mut device: Device) -> io::Result<PtyDevice> {
+        let (master, slave) = serialport::TTYPort::pair().map_err(io::Error::other)?;
+        let path = serialport::SerialPort::name(&slave)
+            .ok_or_else(|| io::Error::other("the pseudo-terminal has no name"))?;
+        let stop = Arc::new(AtomicBool::new(false));
+        let requests = Arc::new(AtomicU64::new(0));
+        let thread = {
+            let stop = stop.clone();
+            let requests = requests.clone();
+            std::thread::Builder::new()
+                .name(format!("sim-device {path}"))
+                .spawn(move || serve(master, &mut device, &stop, &requests))?
+        };
+        Ok(PtyDevice {
+            path,
+            stop,
+            thread: Some(thread),
+            _slave: slave,
+            requests,
+        })
+    }
+}
+
+impl Drop for PtyDevice {
+    fn drop(&mut self) {
+        self.stop.store(true, Ordering::SeqCst);
+        if let Some(t) = self.thread.take() {
+            let _ = t.join();
+        }
+    }
+}
+
+fn serve(
+    mut port: serialport::TTYPort,
+    device: &mut Device,
+    stop: &AtomicBool,
+    requests: &AtomicU64,
+) {
+    let _ = serialport::SerialPort::set_timeout(&mut port, Duration::from_millis(20));
+    let send = |port: &mut serialport::TTYPort, lines: &[String]| {
+        let mut bytes = Vec::new();
+        for l in lines {
+            bytes.extend_from_slice(l.as_bytes());
+            bytes.push(b'\n');
+        }
+        let _ = port.write_all(&bytes);
+        let _ = port.flush();
+    };
+    send(&mut port, &Device::banner());
+    let mut pending: Vec<u8> = Vec::new();
+    let mut buf = [0u8; 256];
+    while !stop.load(Ordering::SeqCst) {
+        match port.read(&mut buf) {
+            Ok(0) => std::thread::sleep(Duration::from_millis(2)),
+            Ok(n) => pending.extend_from_slice(&buf[..n]),
+            Err(e) if e.kind() == io::ErrorKind::TimedOut => {}
+            // No client has the port open right now: wait for one.
+            Err(_) => std::thread::sleep(Duration::from_millis(5)),
+        }
+        while let Some(end) = pending.iter().position(|&b| b == b'\n' || b == b'\r') {
+            let line: Vec<u8> = pending.drain(..=end).collect();
+            let text = String::from_utf8_lossy(&line[..line.len() - 1]).into_owned();
+            if text.trim().is_empty() {
+                continue;
+            }
+            requests.fetch_add(1, Ordering::Relaxed);
+            let reply = device.handle(&text);
+            if !device.faults.slow.is_zero() {
+                std::thread::sleep(device.faults.slow);
+            }
+            send(&mut port, &reply);
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::bench::sim::{SimBench, SimConfig};
+
+    fn device(faults: Faults) -> Device {
+        let sim = SimBench::new(&SimConfig::new(1, 1));
+        Device::new(sim.meter(0), faults)
+    }
+
+    #[test]
+    fn answers_who_and_reads() {
+        let mut d = device(Faults::default());
+        let who = d.handle("who");
+        assert!(who[0].starts_with("model=TM-16;serial=TM16-"), "{who:?}");
+        let rd = d.handle("rd I L");
+        assert!(rd[0].starts_with("= I L "), "{rd:?}");
+        assert_eq!(d.handle("fly"), vec!["err unknown command"]);
+    }
+
+    #[test]
+    fn injects_the_faults_it_is_told_to() {
+        let mut d = device(Faults {
+            drop_every: Some(2),
+            ..Faults::default()
+        });
+        assert_eq!(d.handle("who").len(), 1);
+        assert!(d.handle("who").is_empty());
+        let mut d = device(Faults {
+            reboot_after: Some(1),
+            echo: true,
+            ..Faults::default()
+        });
+        assert_eq!(d.handle("who"), vec!["who", BANNER[0], BANNER[1]]);
+        let mut d = device(Faults {
+            die_after: Some(1),
+            ..Faults::default()
+        });
+        assert_eq!(d.handle("who").len(), 1);
+        assert!(d.handle("who").is_empty());
+        assert!(d.handle("who").is_empty());
+        let mut d = device(Faults {
+            firmware: Some("9.9.9".into()),
+            ..Faults::default()
+        });
+        assert!(d.handle("who")[0].ends_with("fw=9.9.9"));
+    }
+}

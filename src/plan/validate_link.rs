@@ -1,0 +1,332 @@
+//! Validation of the `text` link kind: port settings, patterns, requests and scaling.
+
+use super::Quantity;
+use super::raw::{RawTextLink, Text};
+use super::text_link::{
+    FlowControl, IdentityRequest, LineEnding, Parity, Pattern, PortSettings, QuantityRequest,
+    TextLinkSpec, WriteRequest,
+};
+use super::units::{self, Dimension};
+use super::validate::{Ctx, channel_names};
+
+/// Compiles a pattern, and checks that it has the named groups the link needs from it.
+fn pattern(ctx: &mut Ctx, path: &str, text: &Text, groups: &[&str]) -> Option<Pattern> {
+    let regex = match regex::RegexBuilder::new(&text.0)
+        .size_limit(1 << 20)
+        .build()
+    {
+        Ok(r) => r,
+        Err(e) => {
+            let detail = e
+                .to_string()
+                .split_whitespace()
+                .collect::<Vec<_>>()
+                .join(" ");
+            ctx.error(path, format!("the pattern does not compile: {detail}"));
+            return None;
+        }
+    };
+    let names: Vec<&str> = regex.capture_names().flatten().collect();
+    let missing: Vec<&&str> = groups.iter().filter(|g| !names.contains(g)).collect();
+    if !missing.is_empty() {
+        let list: Vec<String> = missing.iter().map(|g| format!("(?P<{g}>...)")).collect();
+        ctx.error(
+            path,
+            format!("the pattern needs the named group {}", list.join(" and ")),
+        );
+        return None;
+    }
+    Some(Pattern {
+        text: text.0.clone(),
+        regex,
+    })
+}
+
+/// Checks that a request template uses only the placeholders it may.
+fn template(ctx: &mut Ctx, path: &str, text: &Text, allowed: &[&str]) -> Option<String> {
+    let t = &text.0;
+    if t.is_empty() {
+        ctx.error(path, "a request must not be empty");
+        return None;
+    }
+    let mut rest = t.as_str();
+    while let Some(open) = rest.find('{') {
+        let Some(close) = rest[open..].find('}') else {
+            ctx.error(path, "a `{` without its `}`");
+            return None;
+        };
+        let name = &rest[open + 1..open + close];
+        if !allowed.contains(&name) {
+            ctx.error(
+                path,
+                format!(
+                    "unknown placeholder {{{name}}}: a request may use {}",
+                    allowed
+                        .iter()
+                        .map(|a| format!("{{{a}}}"))
+                        .collect::<Vec<_>>()
+                        .join(", ")
+                ),
+            );
+            return None;
+        }
+        rest = &rest[open + close + 1..];
+    }
+    Some(t.clone())
+}
+
+fn number(ctx: &mut Ctx, path: &str, text: Option<&Text>, default: f64) -> Option<f64> {
+    match text {
+        None => Some(default),
+        Some(t) => match t.0.trim().parse::<f64>() {
+            Ok(v) if v.is_finite() => Some(v),
+            _ => {
+                ctx.error(path, format!("expected a plain number, got \"{}\"", t.0));
+                None
+            }
+        },
+    }
+}
+
+fn choice<T: Copy>(
+    ctx: &mut Ctx,
+    path: &str,
+    text: Option<&Text>,
+    default: T,
+    options: &[(&str, T)],
+) -> Option<T> {
+    let Some(t) = text else {
+        return Some(default);
+    };
+    match options.iter().find(|(name, _)| *name == t.0.trim()) {
+        Some((_, v)) => Some(*v),
+        None => {
+            let names: Vec<&str> = options.iter().map(|(n, _)| *n).collect();
+            ctx.error(
+                path,
+                format!("\"{}\" is not one of {}", t.0, names.join(", ")),
+            );
+            None
+        }
+    }
+}
+
+fn port(ctx: &mut Ctx, raw: &super::raw::RawPort) -> Option<PortSettings> {
+    let d = PortSettings::default();
+    let baud = match &raw.baud {
+        None => Some(d.baud),
+        Some(t) => match t.0.trim().parse::<u32>() {
+            Ok(b) if b > 0 => Some(b),
+            _ => {
+                ctx.error("link.port.baud", format!("\"{}\" is not a baud rate", t.0));
+                None
+            }
+        },
+    };
+    let data_bits = choice(
+        ctx,
+        "link.port.data_bits",
+        raw.data_bits.as_ref(),
+        8u8,
+        &[("5", 5), ("6", 6), ("7", 7), ("8", 8)],
+    );
+    let parity = choice(
+        ctx,
+        "link.port.parity",
+        raw.parity.as_ref(),
+        Parity::None,
+        &[
+            ("none", Parity::None),
+            ("odd", Parity::Odd),
+            ("even", Parity::Even),
+        ],
+    );
+    let stop_bits = choice(
+        ctx,
+        "link.port.stop_bits",
+        raw.stop_bits.as_ref(),
+        1u8,
+        &[("1", 1), ("2", 2)],
+    );
+    let flow_control = choice(
+        ctx,
+        "link.port.flow_control",
+        raw.flow_control.as_ref(),
+        FlowControl::None,
+        &[
+            ("none", FlowControl::None),
+            ("software", FlowControl::Software),
+            ("hardware", FlowControl::Hardware),
+        ],
+    );
+    Some(PortSettings {
+        baud: baud?,
+        data_bits: data_bits?,
+        parity: parity?,
+        stop_bits: stop_bits?,
+        flow_control: flow_control?,
+    })
+}
+
+const ENDINGS: [(&str, LineEnding); 3] = [
+    ("CR", LineEnding::Cr),
+    ("LF", LineEnding::Lf),
+    ("CRLF", LineEnding::CrLf),
+];
+
+pub(super) fn text_link(ctx: &mut Ctx, raw: RawTextLink) -> Option<TextLinkSpec> {
+    let port = port(ctx, &raw.port);
+    let send_ending = choice(
+        ctx,
+        "link.line_ending.send",
+        raw.line_ending.send.as_ref(),
+        LineEnding::Lf,
+        &ENDINGS,
+    );
+    let receive_ending = choice(
+        ctx,
+        "link.line_ending.receive",
+        raw.line_ending.receive.as_ref(),
+        LineEnding::Lf,
+        &ENDINGS,
+    );
+    let timeout_s = ctx
+        .optional_value("link.timeout", raw.timeout.as_ref(), Dimension::Time)
+        .map(|v| v.unwrap_or(0.5));
+    if let Some(t) = timeout_s
+        && t <= 0.0
+    {
+        ctx.error("link.timeout", "the timeout must be greater than zero");
+    }
+    let retries = match &raw.retries {
+        None => Some(2),
+        Some(t) => match t.0.trim().parse::<u32>() {
+            Ok(n) if n <= 20 => Some(n),
+            _ => {
+                ctx.error(
+                    "link.retries",
+                    format!("expected a whole number from 0 to 20, got \"{}\"", t.0),
+                );
+                None
+            }
+        },
+    };
+    let pause_s = ctx
+        .optional_value("link.pause", raw.pause.as_ref(), Dimension::Time)
+        .map(|v| v.unwrap_or(0.0));
+    let echo = choice(
+        ctx,
+        "link.echo",
+        raw.echo.as_ref(),
+        false,
+        &[("true", true), ("false", false)],
+    );
+    let skip = match &raw.skip {
+        None => Some(None),
+        Some(t) => pattern(ctx, "link.skip", t, &[]).map(Some),
+    };
+    let channels = channel_names(ctx, raw.channels);
+    let identity = {
+        let request = template(ctx, "link.identity.request", &raw.identity.request, &[]);
+        let reply = pattern(
+            ctx,
+            "link.identity.reply",
+            &raw.identity.reply,
+            &["model", "serial", "firmware"],
+        );
+        request
+            .zip(reply)
+            .map(|(request, reply)| IdentityRequest { request, reply })
+    };
+    let mut quantities = Vec::new();
+    let mut quantities_ok = true;
+    for (name, q) in &raw.quantities {
+        let path = format!("link.quantities.{name}");
+        let Some(quantity) = Quantity::from_name(name) else {
+            let names: Vec<&str> = Quantity::ALL.iter().map(|q| q.name()).collect();
+            ctx.error(
+                &path,
+                format!(
+                    "unknown quantity \"{name}\", expected one of {}",
+                    names.join(", ")
+                ),
+            );
+            quantities_ok = false;
+            continue;
+        };
+        let request = template(ctx, &format!("{path}.request"), &q.request, &["channel"]);
+        let reply = pattern(ctx, &format!("{path}.reply"), &q.reply, &["value"]);
+        let offset = number(ctx, &format!("{path}.offset"), q.offset.as_ref(), 0.0);
+        let gain = number(ctx, &format!("{path}.gain"), q.gain.as_ref(), 1.0);
+        if gain == Some(0.0) {
+            ctx.error(
+                &format!("{path}.gain"),
+                "a gain of zero would divide by zero",
+            );
+        }
+        let unit_factor = match &q.unit {
+            None => Some(1.0),
+            Some(u) => unit_factor(ctx, &format!("{path}.unit"), u, quantity.dimension()),
+        };
+        match (request, reply, offset, gain, unit_factor) {
+            (Some(request), Some(reply), Some(offset), Some(gain), Some(unit_factor)) => quantities
+                .push(QuantityRequest {
+                    quantity,
+                    request,
+                    reply,
+                    offset,
+                    gain,
+                    unit_factor,
+                }),
+            _ => quantities_ok = false,
+        }
+    }
+    let mut writes = Vec::new();
+    let mut writes_ok = true;
+    for (name, w) in &raw.writes {
+        let path = format!("link.writes.{name}");
+        let request = template(
+            ctx,
+            &format!("{path}.request"),
+            &w.request,
+            &["channel", "value"],
+        );
+        let ack = pattern(ctx, &format!("{path}.ack"), &w.ack, &[]);
+        match (request, ack) {
+            (Some(request), Some(ack)) => writes.push(WriteRequest {
+                name: name.clone(),
+                request,
+                ack,
+            }),
+            _ => writes_ok = false,
+        }
+    }
+    if !(quantities_ok && writes_ok) {
+        return None;
+    }
+    Some(TextLinkSpec {
+        port: port?,
+        send_ending: send_ending?,
+        receive_ending: receive_ending?,
+        timeout_s: timeout_s?,
+        retries: retries?,
+        pause_s: pause_s?,
+        echo: echo?,
+        skip: skip?,
+        channels,
+        identity: identity?,
+        quantities,
+        writes,
+    })
+}
+
+/// The factor from a unit such as "mA" to the base unit of `dim`.
+fn unit_factor(ctx: &mut Ctx, path: &str, unit: &Text, dim: Dimension) -> Option<f64> {
+    match units::parse(&format!("1 {}", unit.0.trim()), dim) {
+        Ok(f) => Some(f),
+        Err(e) => {
+            ctx.error(path, e.to_string());
+            None
+        }
+    }
+}
