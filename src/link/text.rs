@@ -2,9 +2,10 @@
 //!
 //! Each transaction sends one line and waits, up to the link's timeout, for a line that matches
 //! the reply pattern. On the way it ignores the device's echo of the request (when the link says
-//! it echoes), lines matching the `skip` pattern (boot banners, log lines) and empty lines. A
-//! reply that matches nothing, or none at all, is retried as many times as the link allows, with
-//! stale input discarded first; then the transaction fails with a [`LinkError`] that names the
+//! it echoes), lines matching the `skip` pattern (boot banners, log lines) and empty lines, and
+//! keeps listening past a line that matches nothing (a late reply to an earlier request). No
+//! matching line before the deadline is retried as many times as the link allows, with stale
+//! input discarded first; then the transaction fails with a [`LinkError`] that names the
 //! request and, for a garbled reply, the bytes received. No byte sequence makes it panic: input
 //! is decoded lossily and lines are cut at [`MAX_LINE`] bytes.
 
@@ -71,6 +72,12 @@ pub fn open_port(
         })
 }
 
+/// Opens the port at `path` and returns a link to the unit on it.
+pub fn open(path: &str, spec: Arc<TextLinkSpec>) -> Result<Box<dyn DutLink>, LinkError> {
+    let port = open_port(path, &spec)?;
+    Ok(Box::new(TextLink::new(spec, port, path)))
+}
+
 /// A unit reached over a text protocol.
 pub struct TextLink<W: Wire> {
     spec: Arc<TextLinkSpec>,
@@ -123,8 +130,9 @@ impl<W: Wire> TextLink<W> {
                     self.last_transaction_end = Some(Instant::now());
                     return Ok(line);
                 }
+                // A stale reply to an earlier request may come before the one to this request:
+                // keep listening until the deadline.
                 last_garbled = Some(line);
-                break;
             }
         }
         self.last_transaction_end = Some(Instant::now());

@@ -1,0 +1,216 @@
+//! The `text` link end to end: simulated meters on pseudo-terminals, driven through the real
+//! serialport code path, all positions read concurrently.
+
+use meterproof::bench::Bench;
+use meterproof::bench::sim::{SimBench, SimConfig};
+use meterproof::bench::sim_device::{Device, Faults, PtyDevice};
+use meterproof::exec::{self, RunContext, Silent};
+use meterproof::link::text;
+use meterproof::plan::{LinkSpec, Plan};
+use meterproof::record::{CheckVerdict, StepStatus, UnitRecord, UnitStatus};
+use std::sync::Arc;
+use std::time::Duration;
+
+fn ctx() -> RunContext {
+    RunContext {
+        run_id: "test".into(),
+        operator: "tester".into(),
+        lot: None,
+        tool_version: "test".into(),
+    }
+}
+
+fn plan(name: &str) -> Plan {
+    let path = format!("test-plans/{name}");
+    Plan::load(std::path::Path::new(&path)).unwrap()
+}
+
+/// A simulated bench whose meters are served on pseudo-terminals and reached through the plan's
+/// text link; the devices must outlive the run.
+fn serial_bench(plan: &Plan, config: &SimConfig, faults: &[Faults]) -> (Bench, Vec<PtyDevice>) {
+    let LinkSpec::Text(spec) = &plan.link else {
+        panic!("the plan has no text link")
+    };
+    let spec = Arc::new((**spec).clone());
+    // A device told to echo needs a link told to expect it.
+    let mut echo_spec = (*spec).clone();
+    echo_spec.echo = true;
+    let echo_spec = Arc::new(echo_spec);
+    let sim = SimBench::new(config);
+    let devices: Vec<PtyDevice> = (0..sim.positions())
+        .map(|i| {
+            let f = faults.get(i).cloned().unwrap_or_default();
+            PtyDevice::spawn(Device::new(sim.meter(i), f)).unwrap()
+        })
+        .collect();
+    let mut bench = sim.into_bench();
+    for (i, (p, d)) in bench.positions.iter_mut().zip(&devices).enumerate() {
+        let echoes = faults.get(i).is_some_and(|f| f.echo);
+        let spec = if echoes { &echo_spec } else { &spec };
+        p.link = text::open(&d.path, spec.clone()).unwrap();
+    }
+    bench.parallel = true;
+    (bench, devices)
+}
+
+fn run(plan: &Plan, bench: &mut Bench) -> Vec<UnitRecord> {
+    exec::run(plan, bench, &ctx(), &mut Silent)
+}
+
+#[test]
+fn the_serial_demo_reads_what_the_builtin_sim_reads() {
+    let config = SimConfig::new(1, 4);
+    let builtin = run(&plan("demo.yaml"), &mut SimBench::new(&config).into_bench());
+    let serial_plan = plan("demo-serial.yaml");
+    let (mut bench, _devices) = serial_bench(&serial_plan, &config, &[]);
+    let serial = run(&serial_plan, &mut bench);
+    assert_eq!(builtin.len(), serial.len());
+    for (a, b) in builtin.iter().zip(&serial) {
+        assert_eq!(a.serial, b.serial);
+        assert_eq!(a.verdict, b.verdict);
+        for (sa, sb) in a.steps.iter().zip(&b.steps) {
+            for (ca, cb) in sa.checks.iter().zip(&sb.checks) {
+                // The same counts, converted the same way: the same numbers, bit for bit.
+                assert_eq!(ca.samples, cb.samples, "{} {}", sa.id, ca.quantity.name());
+                assert_eq!(ca.verdict, cb.verdict);
+            }
+        }
+    }
+    assert_eq!(
+        serial
+            .iter()
+            .filter(|r| r.verdict.status == UnitStatus::Rejected)
+            .count(),
+        1
+    );
+}
+
+#[test]
+fn recoverable_faults_are_retried_and_fatal_ones_leave_the_unit_incomplete() {
+    let serial_plan = plan("demo-serial.yaml");
+    let mut config = SimConfig::new(1, 6);
+    config.plant_defect = false;
+    let faults = [
+        // Every 7th reply lost: each loss costs one retry, no reading.
+        Faults {
+            drop_every: Some(7),
+            ..Faults::default()
+        },
+        // Every 5th reply garbled on the wire.
+        Faults {
+            garble_every: Some(5),
+            ..Faults::default()
+        },
+        // Stops answering after 60 requests (in the middle of step 3).
+        Faults {
+            die_after: Some(60),
+            ..Faults::default()
+        },
+        // Reboots once mid-run: a banner instead of a reply, then answers again.
+        Faults {
+            reboot_after: Some(30),
+            echo: true,
+            ..Faults::default()
+        },
+        // Slow, but within the link's 250 ms timeout.
+        Faults {
+            slow: Duration::from_millis(20),
+            ..Faults::default()
+        },
+        // Slower than the link's 3 attempts of 250 ms: never an answer in time.
+        Faults {
+            slow: Duration::from_millis(900),
+            ..Faults::default()
+        },
+    ];
+    let (mut bench, _devices) = serial_bench(&serial_plan, &config, &faults);
+    let records = run(&serial_plan, &mut bench);
+
+    for i in [0, 1, 3, 4] {
+        let r = &records[i];
+        assert_eq!(
+            r.verdict.status,
+            UnitStatus::Accepted,
+            "position {}: {:?}",
+            i + 1,
+            r.verdict
+        );
+    }
+
+    let dead = &records[2];
+    assert_eq!(dead.verdict.status, UnitStatus::Incomplete);
+    let first_broken = dead
+        .steps
+        .iter()
+        .position(|s| s.status != StepStatus::Done)
+        .expect("a broken step");
+    let broken = &dead.steps[first_broken];
+    assert!(
+        broken.reason.as_deref().unwrap().contains("no reply to rd"),
+        "{:?}",
+        broken.reason
+    );
+    // 60 answered requests: 1 identity, then 2 readings a sample.
+    let kept: usize = dead
+        .steps
+        .iter()
+        .flat_map(|s| &s.checks)
+        .map(|c| c.samples.len())
+        .sum();
+    assert_eq!(kept, 59, "every answered reading is in the record");
+    assert!(
+        dead.steps[first_broken + 1..]
+            .iter()
+            .all(|s| s.status == StepStatus::Incomplete)
+    );
+
+    let slow = &records[5];
+    assert_eq!(slow.verdict.status, UnitStatus::Incomplete);
+    assert_eq!(
+        slow.verdict.reasons[0],
+        "could not identify the unit: no reply to who within 250 ms (after 3 attempts)"
+    );
+    // No unit that did not finish is accepted, and nothing was decided on a partial series.
+    for r in &records {
+        for c in r.steps.iter().flat_map(|s| &s.checks) {
+            if c.samples.is_empty() {
+                assert_eq!(c.verdict, CheckVerdict::NotEvaluated);
+            }
+        }
+    }
+}
+
+#[test]
+fn a_wrong_firmware_is_rejected_before_any_step() {
+    let serial_plan = plan("demo-serial.yaml");
+    let config = SimConfig::new(2, 2);
+    let faults = [Faults {
+        firmware: Some("2.0.9".into()),
+        ..Faults::default()
+    }];
+    let (mut bench, _devices) = serial_bench(&serial_plan, &config, &faults);
+    let records = run(&serial_plan, &mut bench);
+    assert_eq!(records[0].verdict.status, UnitStatus::Rejected);
+    assert!(
+        records[0].steps.is_empty(),
+        "no load step for a refused unit"
+    );
+    assert!(records[0].verdict.reasons[0].contains("firmware 2.0.9 does not match"));
+    assert_ne!(records[1].verdict.status, UnitStatus::Rejected);
+}
+
+#[test]
+fn an_unplugged_port_is_a_clear_error() {
+    let serial_plan = plan("demo-serial.yaml");
+    let LinkSpec::Text(spec) = &serial_plan.link else {
+        unreachable!()
+    };
+    let err = text::open("/dev/meterproof-no-such-port", Arc::new((**spec).clone()))
+        .err()
+        .expect("no such port");
+    assert!(
+        err.to_string()
+            .starts_with("cannot open /dev/meterproof-no-such-port"),
+        "{err}"
+    );
+}
