@@ -81,7 +81,7 @@ impl Device {
     pub fn handle(&mut self, request: &str) -> Vec<String> {
         self.requests += 1;
         let n = self.requests;
-        let every = |k: Option<u64>| k.is_some_and(|k| k > 0 && n % k == 0);
+        let every = |k: Option<u64>| k.is_some_and(|k| k > 0 && n.is_multiple_of(k));
         if self.dead || self.faults.die_after.is_some_and(|d| n > d) {
             self.dead = true;
             return Vec::new();
