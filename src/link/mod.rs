@@ -4,6 +4,7 @@
 //! simulator or a meter on a serial port is the link's business. A link reports every failure as
 //! a [`LinkError`] that says what was asked and what went wrong, never by panicking.
 
+pub mod line;
 pub mod text;
 
 use crate::plan::Quantity;

@@ -1,233 +1,46 @@
-//! The `text` link: a request/reply line protocol over a serial port, described by the plan.
-//!
-//! Each transaction sends one line and waits, up to the link's timeout, for a line that matches
-//! the reply pattern. On the way it ignores the device's echo of the request (when the link says
-//! it echoes), lines matching the `skip` pattern (boot banners, log lines) and empty lines, and
-//! keeps listening past a line that matches nothing (a late reply to an earlier request). No
-//! matching line before the deadline is retried as many times as the link allows, with stale
-//! input discarded first; then the transaction fails with a [`LinkError`] that names the
-//! request and, for a garbled reply, the bytes received. No byte sequence makes it panic: input
-//! is decoded lossily and lines are cut at [`MAX_LINE`] bytes.
+//! The `text` link: a unit's own line protocol over a serial port, described by the plan
+//! (requests, reply patterns, scaling), on a [`LineChannel`].
 
+use super::line::{LineChannel, LineSettings, Wire, open_port};
 use super::{DutLink, Identity, LinkError};
 use crate::plan::Quantity;
-use crate::plan::text_link::{FlowControl, LineEnding, Parity, TextLinkSpec};
-use std::io::{self, Read, Write};
+use crate::plan::text_link::TextLinkSpec;
 use std::sync::Arc;
-use std::time::{Duration, Instant};
-
-/// The longest line kept; a longer run of bytes without a line ending is noise.
-pub const MAX_LINE: usize = 4096;
-
-/// The byte stream under a link: a serial port, or anything that behaves like one in tests.
-pub trait Wire: Read + Write + Send {
-    /// Throws away input received but not yet read.
-    fn discard_input(&mut self) -> io::Result<()>;
-    /// How long one `read` may wait for the first byte.
-    fn set_read_timeout(&mut self, timeout: Duration) -> io::Result<()>;
-}
-
-impl Wire for Box<dyn serialport::SerialPort> {
-    fn discard_input(&mut self) -> io::Result<()> {
-        self.clear(serialport::ClearBuffer::Input)
-            .map_err(io::Error::other)
-    }
-    fn set_read_timeout(&mut self, timeout: Duration) -> io::Result<()> {
-        self.set_timeout(timeout).map_err(io::Error::other)
-    }
-}
-
-/// Opens the serial port at `path` with the link's settings.
-pub fn open_port(
-    path: &str,
-    spec: &TextLinkSpec,
-) -> Result<Box<dyn serialport::SerialPort>, LinkError> {
-    let p = spec.port;
-    serialport::new(path, p.baud)
-        .data_bits(match p.data_bits {
-            5 => serialport::DataBits::Five,
-            6 => serialport::DataBits::Six,
-            7 => serialport::DataBits::Seven,
-            _ => serialport::DataBits::Eight,
-        })
-        .parity(match p.parity {
-            Parity::None => serialport::Parity::None,
-            Parity::Odd => serialport::Parity::Odd,
-            Parity::Even => serialport::Parity::Even,
-        })
-        .stop_bits(match p.stop_bits {
-            2 => serialport::StopBits::Two,
-            _ => serialport::StopBits::One,
-        })
-        .flow_control(match p.flow_control {
-            FlowControl::None => serialport::FlowControl::None,
-            FlowControl::Software => serialport::FlowControl::Software,
-            FlowControl::Hardware => serialport::FlowControl::Hardware,
-        })
-        .timeout(Duration::from_millis(20))
-        .open()
-        .map_err(|e| LinkError::Open {
-            port: path.to_string(),
-            why: e.to_string(),
-        })
-}
 
 /// Opens the port at `path` and returns a link to the unit on it.
 pub fn open(path: &str, spec: Arc<TextLinkSpec>) -> Result<Box<dyn DutLink>, LinkError> {
-    let port = open_port(path, &spec)?;
+    let port = open_port(path, spec.port)?;
     Ok(Box::new(TextLink::new(spec, port, path)))
+}
+
+/// The channel settings a text link asks for.
+pub fn line_settings(spec: &TextLinkSpec) -> LineSettings {
+    LineSettings {
+        send_ending: spec.send_ending,
+        receive_ending: spec.receive_ending,
+        timeout_s: spec.timeout_s,
+        retries: spec.retries,
+        pause_s: spec.pause_s,
+        echo: spec.echo,
+        skip: spec.skip.as_ref().map(|p| p.regex.clone()),
+    }
 }
 
 /// A unit reached over a text protocol.
 pub struct TextLink<W: Wire> {
     spec: Arc<TextLinkSpec>,
-    wire: W,
-    name: String,
-    pending: Vec<u8>,
-    last_transaction_end: Option<Instant>,
-    /// Counters for the record and for benchmarks.
-    pub stats: LinkStats,
-}
-
-/// What happened on a link so far.
-#[derive(Debug, Default, Clone, Copy, PartialEq, Eq)]
-pub struct LinkStats {
-    pub transactions: u64,
-    pub retries: u64,
-    pub skipped_lines: u64,
+    channel: LineChannel<W>,
 }
 
 impl<W: Wire> TextLink<W> {
     pub fn new(spec: Arc<TextLinkSpec>, wire: W, name: &str) -> TextLink<W> {
-        TextLink {
-            spec,
-            wire,
-            name: name.to_string(),
-            pending: Vec::new(),
-            last_transaction_end: None,
-            stats: LinkStats::default(),
-        }
+        let channel = LineChannel::new(line_settings(&spec), wire, name);
+        TextLink { spec, channel }
     }
 
-    /// Sends `request` and returns the first line that matches `reply`.
-    pub fn transact(&mut self, request: &str, reply: &regex::Regex) -> Result<String, LinkError> {
-        let attempts = 1 + self.spec.retries;
-        let mut last_garbled: Option<String> = None;
-        self.stats.transactions += 1;
-        for attempt in 1..=attempts {
-            if attempt > 1 {
-                self.stats.retries += 1;
-            }
-            self.wait_out_pause();
-            self.discard_stale()?;
-            self.send(request)?;
-            let deadline = Instant::now() + Duration::from_secs_f64(self.spec.timeout_s);
-            while let Some(line) = self.next_line(deadline)? {
-                if self.is_noise(request, &line) {
-                    continue;
-                }
-                if reply.is_match(&line) {
-                    self.last_transaction_end = Some(Instant::now());
-                    return Ok(line);
-                }
-                // A stale reply to an earlier request may come before the one to this request:
-                // keep listening until the deadline.
-                last_garbled = Some(line);
-            }
-        }
-        self.last_transaction_end = Some(Instant::now());
-        Err(match last_garbled {
-            Some(line) => LinkError::Garbled {
-                request: request.to_string(),
-                reply: line,
-                why: "it does not match the reply pattern".into(),
-            },
-            None => LinkError::Timeout {
-                request: request.to_string(),
-                timeout_ms: (self.spec.timeout_s * 1000.0).round() as u64,
-                attempts,
-            },
-        })
-    }
-
-    fn is_noise(&mut self, request: &str, line: &str) -> bool {
-        let noise = line.trim().is_empty()
-            || (self.spec.echo && line.trim() == request.trim())
-            || self
-                .spec
-                .skip
-                .as_ref()
-                .is_some_and(|s| s.regex.is_match(line));
-        if noise {
-            self.stats.skipped_lines += 1;
-        }
-        noise
-    }
-
-    fn wait_out_pause(&self) {
-        if let Some(end) = self.last_transaction_end {
-            let pause = Duration::from_secs_f64(self.spec.pause_s);
-            let since = end.elapsed();
-            if since < pause {
-                std::thread::sleep(pause - since);
-            }
-        }
-    }
-
-    fn discard_stale(&mut self) -> Result<(), LinkError> {
-        self.pending.clear();
-        self.wire
-            .discard_input()
-            .map_err(|e| LinkError::Disconnected(format!("{}: {e}", self.name)))
-    }
-
-    fn send(&mut self, request: &str) -> Result<(), LinkError> {
-        let mut bytes = request.as_bytes().to_vec();
-        bytes.extend_from_slice(self.spec.send_ending.bytes());
-        self.wire
-            .write_all(&bytes)
-            .and_then(|_| self.wire.flush())
-            .map_err(|e| LinkError::Disconnected(format!("{}: writing: {e}", self.name)))
-    }
-
-    /// The next complete line, or `None` once `deadline` has passed.
-    fn next_line(&mut self, deadline: Instant) -> Result<Option<String>, LinkError> {
-        let mut buf = [0u8; 512];
-        loop {
-            if let Some(line) = take_line(&mut self.pending, self.spec.receive_ending) {
-                return Ok(Some(line));
-            }
-            let now = Instant::now();
-            if now >= deadline {
-                return Ok(None);
-            }
-            let wait = (deadline - now).min(Duration::from_millis(50));
-            let _ = self
-                .wire
-                .set_read_timeout(wait.max(Duration::from_millis(1)));
-            match self.wire.read(&mut buf) {
-                Ok(0) => {
-                    return Err(LinkError::Disconnected(format!(
-                        "{}: the port closed",
-                        self.name
-                    )));
-                }
-                Ok(n) => self.pending.extend_from_slice(&buf[..n]),
-                Err(e)
-                    if matches!(
-                        e.kind(),
-                        io::ErrorKind::TimedOut
-                            | io::ErrorKind::WouldBlock
-                            | io::ErrorKind::Interrupted
-                    ) => {}
-                Err(e) => {
-                    return Err(LinkError::Disconnected(format!(
-                        "{}: reading: {e}",
-                        self.name
-                    )));
-                }
-            }
-        }
+    /// Counters of transactions, retries and skipped lines.
+    pub fn stats(&self) -> super::line::LinkStats {
+        self.channel.stats
     }
 
     fn captured(
@@ -236,7 +49,7 @@ impl<W: Wire> TextLink<W> {
         pattern: &regex::Regex,
         group: &str,
     ) -> Result<String, LinkError> {
-        let line = self.transact(request, pattern)?;
+        let line = self.channel.transact(request, pattern)?;
         pattern
             .captures(&line)
             .and_then(|c| c.name(group).map(|m| m.as_str().to_string()))
@@ -262,43 +75,17 @@ impl<W: Wire> TextLink<W> {
             .request
             .replace("{channel}", channel)
             .replace("{value}", &format!("{value}"));
-        self.transact(&request, &write.ack.regex).map(|_| ())
+        self.channel
+            .transact(&request, &write.ack.regex)
+            .map(|_| ())
     }
-}
-
-/// Takes one line ending in `ending` off the front of `pending`. A CR before an LF ending (and an
-/// LF after a CR ending) is dropped, so that a device that sends CRLF still reads under either.
-/// A run of more than [`MAX_LINE`] bytes without an ending comes out as one line, cut.
-fn take_line(pending: &mut Vec<u8>, ending: LineEnding) -> Option<String> {
-    let terminator = match ending {
-        LineEnding::Cr => b'\r',
-        LineEnding::Lf | LineEnding::CrLf => b'\n',
-    };
-    let end = match pending.iter().position(|&b| b == terminator) {
-        Some(i) => i,
-        None if pending.len() > MAX_LINE => {
-            let line: Vec<u8> = pending.drain(..).take(MAX_LINE).collect();
-            return Some(String::from_utf8_lossy(&line).into_owned());
-        }
-        None => return None,
-    };
-    let mut line: Vec<u8> = pending.drain(..=end).collect();
-    line.pop();
-    if line.last() == Some(&b'\r') {
-        line.pop();
-    }
-    if ending == LineEnding::Cr && line.first() == Some(&b'\n') {
-        line.remove(0);
-    }
-    line.truncate(MAX_LINE);
-    Some(String::from_utf8_lossy(&line).into_owned())
 }
 
 impl<W: Wire> DutLink for TextLink<W> {
     fn identify(&mut self) -> Result<Identity, LinkError> {
         let spec = self.spec.clone();
         let id = &spec.identity;
-        let line = self.transact(&id.request, &id.reply.regex)?;
+        let line = self.channel.transact(&id.request, &id.reply.regex)?;
         let caps = id
             .reply
             .regex
@@ -351,40 +138,10 @@ impl<W: Wire> DutLink for TextLink<W> {
     }
 
     fn describe(&self) -> String {
-        format!("{} (text link, {} baud)", self.name, self.spec.port.baud)
-    }
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn lines_split_under_each_ending() {
-        let mut p = b"a\r\nb\nc".to_vec();
-        assert_eq!(take_line(&mut p, LineEnding::Lf).as_deref(), Some("a"));
-        assert_eq!(take_line(&mut p, LineEnding::Lf).as_deref(), Some("b"));
-        assert_eq!(take_line(&mut p, LineEnding::Lf), None);
-        assert_eq!(p, b"c");
-        let mut p = b"x\r\ny\r".to_vec();
-        assert_eq!(take_line(&mut p, LineEnding::Cr).as_deref(), Some("x"));
-        assert_eq!(take_line(&mut p, LineEnding::Cr).as_deref(), Some("y"));
-        let mut p = b"z\r\n".to_vec();
-        assert_eq!(take_line(&mut p, LineEnding::CrLf).as_deref(), Some("z"));
-    }
-
-    #[test]
-    fn noise_without_an_ending_is_cut_not_hoarded() {
-        let mut p = vec![0xffu8; MAX_LINE + 10];
-        let line = take_line(&mut p, LineEnding::Lf).unwrap();
-        assert!(line.chars().count() <= MAX_LINE);
-        assert!(p.is_empty());
-    }
-
-    #[test]
-    fn invalid_utf8_is_decoded_lossily() {
-        let mut p = b"= I L \xff\xfe12\n".to_vec();
-        let line = take_line(&mut p, LineEnding::Lf).unwrap();
-        assert!(line.contains('\u{fffd}'));
+        format!(
+            "{} (text link, {} baud)",
+            self.channel.name(),
+            self.spec.port.baud
+        )
     }
 }

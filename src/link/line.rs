@@ -1,0 +1,312 @@
+//! A line-oriented request/reply channel over a byte stream: the transport under the `text`
+//! link and the SCPI instruments.
+//!
+//! Each transaction sends one line and waits, up to the channel's timeout, for a line that
+//! matches the reply pattern. On the way it ignores the device's echo of the request (when told
+//! it echoes), lines matching the `skip` pattern (boot banners, log lines) and empty lines, and
+//! keeps listening past a line that matches nothing (a late reply to an earlier request). No
+//! matching line before the deadline is retried as many times as allowed, with stale input
+//! discarded first; then the transaction fails with a [`LinkError`] that names the request and,
+//! for a garbled reply, the text received. No byte sequence makes it panic: input is decoded
+//! lossily and lines are cut at [`MAX_LINE`] bytes.
+
+use super::LinkError;
+use crate::plan::text_link::{FlowControl, LineEnding, Parity, PortSettings};
+use std::io::{self, Read, Write};
+use std::time::{Duration, Instant};
+
+/// The longest line kept; a longer run of bytes without a line ending is noise.
+pub const MAX_LINE: usize = 4096;
+
+/// The byte stream under a link: a serial port, or anything that behaves like one in tests.
+pub trait Wire: Read + Write + Send {
+    /// Throws away input received but not yet read.
+    fn discard_input(&mut self) -> io::Result<()>;
+    /// How long one `read` may wait for the first byte.
+    fn set_read_timeout(&mut self, timeout: Duration) -> io::Result<()>;
+}
+
+impl Wire for Box<dyn serialport::SerialPort> {
+    fn discard_input(&mut self) -> io::Result<()> {
+        self.clear(serialport::ClearBuffer::Input)
+            .map_err(io::Error::other)
+    }
+    fn set_read_timeout(&mut self, timeout: Duration) -> io::Result<()> {
+        self.set_timeout(timeout).map_err(io::Error::other)
+    }
+}
+
+/// Opens the serial port at `path` with the link's settings.
+pub fn open_port(
+    path: &str,
+    p: PortSettings,
+) -> Result<Box<dyn serialport::SerialPort>, LinkError> {
+    serialport::new(path, p.baud)
+        .data_bits(match p.data_bits {
+            5 => serialport::DataBits::Five,
+            6 => serialport::DataBits::Six,
+            7 => serialport::DataBits::Seven,
+            _ => serialport::DataBits::Eight,
+        })
+        .parity(match p.parity {
+            Parity::None => serialport::Parity::None,
+            Parity::Odd => serialport::Parity::Odd,
+            Parity::Even => serialport::Parity::Even,
+        })
+        .stop_bits(match p.stop_bits {
+            2 => serialport::StopBits::Two,
+            _ => serialport::StopBits::One,
+        })
+        .flow_control(match p.flow_control {
+            FlowControl::None => serialport::FlowControl::None,
+            FlowControl::Software => serialport::FlowControl::Software,
+            FlowControl::Hardware => serialport::FlowControl::Hardware,
+        })
+        .timeout(Duration::from_millis(20))
+        .open()
+        .map_err(|e| LinkError::Open {
+            port: path.to_string(),
+            why: e.to_string(),
+        })
+}
+
+/// How a channel frames and times its transactions.
+#[derive(Debug, Clone)]
+pub struct LineSettings {
+    pub send_ending: LineEnding,
+    pub receive_ending: LineEnding,
+    pub timeout_s: f64,
+    pub retries: u32,
+    /// Quiet time between the end of one transaction and the next request.
+    pub pause_s: f64,
+    /// Whether the device echoes each request before replying.
+    pub echo: bool,
+    /// Lines to ignore wherever they appear.
+    pub skip: Option<regex::Regex>,
+}
+
+/// What happened on a channel so far.
+#[derive(Debug, Default, Clone, Copy, PartialEq, Eq)]
+pub struct LinkStats {
+    pub transactions: u64,
+    pub retries: u64,
+    pub skipped_lines: u64,
+}
+
+/// A request/reply line channel over a [`Wire`].
+pub struct LineChannel<W: Wire> {
+    settings: LineSettings,
+    wire: W,
+    name: String,
+    pending: Vec<u8>,
+    last_transaction_end: Option<Instant>,
+    pub stats: LinkStats,
+}
+
+impl<W: Wire> LineChannel<W> {
+    pub fn new(settings: LineSettings, wire: W, name: &str) -> LineChannel<W> {
+        LineChannel {
+            settings,
+            wire,
+            name: name.to_string(),
+            pending: Vec::new(),
+            last_transaction_end: None,
+            stats: LinkStats::default(),
+        }
+    }
+
+    pub fn name(&self) -> &str {
+        &self.name
+    }
+
+    /// Sends a line that has no reply.
+    pub fn send_only(&mut self, request: &str) -> Result<(), LinkError> {
+        self.wait_out_pause();
+        self.send(request)?;
+        self.last_transaction_end = Some(Instant::now());
+        Ok(())
+    }
+
+    /// Sends `request` and returns the first line that matches `reply`.
+    pub fn transact(&mut self, request: &str, reply: &regex::Regex) -> Result<String, LinkError> {
+        let attempts = 1 + self.settings.retries;
+        let mut last_garbled: Option<String> = None;
+        self.stats.transactions += 1;
+        for attempt in 1..=attempts {
+            if attempt > 1 {
+                self.stats.retries += 1;
+            }
+            self.wait_out_pause();
+            self.discard_stale()?;
+            self.send(request)?;
+            let deadline = Instant::now() + Duration::from_secs_f64(self.settings.timeout_s);
+            while let Some(line) = self.next_line(deadline)? {
+                if self.is_noise(request, &line) {
+                    continue;
+                }
+                if reply.is_match(&line) {
+                    self.last_transaction_end = Some(Instant::now());
+                    return Ok(line);
+                }
+                // A stale reply to an earlier request may come before the one to this request:
+                // keep listening until the deadline.
+                last_garbled = Some(line);
+            }
+        }
+        self.last_transaction_end = Some(Instant::now());
+        Err(match last_garbled {
+            Some(line) => LinkError::Garbled {
+                request: request.to_string(),
+                reply: line,
+                why: "it does not match the reply pattern".into(),
+            },
+            None => LinkError::Timeout {
+                request: request.to_string(),
+                timeout_ms: (self.settings.timeout_s * 1000.0).round() as u64,
+                attempts,
+            },
+        })
+    }
+
+    fn is_noise(&mut self, request: &str, line: &str) -> bool {
+        let noise = line.trim().is_empty()
+            || (self.settings.echo && line.trim() == request.trim())
+            || self
+                .settings
+                .skip
+                .as_ref()
+                .is_some_and(|s| s.is_match(line));
+        if noise {
+            self.stats.skipped_lines += 1;
+        }
+        noise
+    }
+
+    fn wait_out_pause(&self) {
+        if let Some(end) = self.last_transaction_end {
+            let pause = Duration::from_secs_f64(self.settings.pause_s);
+            let since = end.elapsed();
+            if since < pause {
+                std::thread::sleep(pause - since);
+            }
+        }
+    }
+
+    fn discard_stale(&mut self) -> Result<(), LinkError> {
+        self.pending.clear();
+        self.wire
+            .discard_input()
+            .map_err(|e| LinkError::Disconnected(format!("{}: {e}", self.name)))
+    }
+
+    fn send(&mut self, request: &str) -> Result<(), LinkError> {
+        let mut bytes = request.as_bytes().to_vec();
+        bytes.extend_from_slice(self.settings.send_ending.bytes());
+        self.wire
+            .write_all(&bytes)
+            .and_then(|_| self.wire.flush())
+            .map_err(|e| LinkError::Disconnected(format!("{}: writing: {e}", self.name)))
+    }
+
+    /// The next complete line, or `None` once `deadline` has passed.
+    fn next_line(&mut self, deadline: Instant) -> Result<Option<String>, LinkError> {
+        let mut buf = [0u8; 512];
+        loop {
+            if let Some(line) = take_line(&mut self.pending, self.settings.receive_ending) {
+                return Ok(Some(line));
+            }
+            let now = Instant::now();
+            if now >= deadline {
+                return Ok(None);
+            }
+            let wait = (deadline - now).min(Duration::from_millis(50));
+            let _ = self
+                .wire
+                .set_read_timeout(wait.max(Duration::from_millis(1)));
+            match self.wire.read(&mut buf) {
+                Ok(0) => {
+                    return Err(LinkError::Disconnected(format!(
+                        "{}: the port closed",
+                        self.name
+                    )));
+                }
+                Ok(n) => self.pending.extend_from_slice(&buf[..n]),
+                Err(e)
+                    if matches!(
+                        e.kind(),
+                        io::ErrorKind::TimedOut
+                            | io::ErrorKind::WouldBlock
+                            | io::ErrorKind::Interrupted
+                    ) => {}
+                Err(e) => {
+                    return Err(LinkError::Disconnected(format!(
+                        "{}: reading: {e}",
+                        self.name
+                    )));
+                }
+            }
+        }
+    }
+}
+
+/// Takes one line ending in `ending` off the front of `pending`. A CR before an LF ending (and an
+/// LF after a CR ending) is dropped, so that a device that sends CRLF still reads under either.
+/// A run of more than [`MAX_LINE`] bytes without an ending comes out as one line, cut.
+fn take_line(pending: &mut Vec<u8>, ending: LineEnding) -> Option<String> {
+    let terminator = match ending {
+        LineEnding::Cr => b'\r',
+        LineEnding::Lf | LineEnding::CrLf => b'\n',
+    };
+    let end = match pending.iter().position(|&b| b == terminator) {
+        Some(i) => i,
+        None if pending.len() > MAX_LINE => {
+            let line: Vec<u8> = pending.drain(..).take(MAX_LINE).collect();
+            return Some(String::from_utf8_lossy(&line).into_owned());
+        }
+        None => return None,
+    };
+    let mut line: Vec<u8> = pending.drain(..=end).collect();
+    line.pop();
+    if line.last() == Some(&b'\r') {
+        line.pop();
+    }
+    if ending == LineEnding::Cr && line.first() == Some(&b'\n') {
+        line.remove(0);
+    }
+    line.truncate(MAX_LINE);
+    Some(String::from_utf8_lossy(&line).into_owned())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn lines_split_under_each_ending() {
+        let mut p = b"a\r\nb\nc".to_vec();
+        assert_eq!(take_line(&mut p, LineEnding::Lf).as_deref(), Some("a"));
+        assert_eq!(take_line(&mut p, LineEnding::Lf).as_deref(), Some("b"));
+        assert_eq!(take_line(&mut p, LineEnding::Lf), None);
+        assert_eq!(p, b"c");
+        let mut p = b"x\r\ny\r".to_vec();
+        assert_eq!(take_line(&mut p, LineEnding::Cr).as_deref(), Some("x"));
+        assert_eq!(take_line(&mut p, LineEnding::Cr).as_deref(), Some("y"));
+        let mut p = b"z\r\n".to_vec();
+        assert_eq!(take_line(&mut p, LineEnding::CrLf).as_deref(), Some("z"));
+    }
+
+    #[test]
+    fn noise_without_an_ending_is_cut_not_hoarded() {
+        let mut p = vec![0xffu8; MAX_LINE + 10];
+        let line = take_line(&mut p, LineEnding::Lf).unwrap();
+        assert!(line.chars().count() <= MAX_LINE);
+        assert!(p.is_empty());
+    }
+
+    #[test]
+    fn invalid_utf8_is_decoded_lossily() {
+        let mut p = b"= I L \xff\xfe12\n".to_vec();
+        let line = take_line(&mut p, LineEnding::Lf).unwrap();
+        assert!(line.contains('\u{fffd}'));
+    }
+}
