@@ -4,7 +4,9 @@
 //! Exit status: 0 every unit accepted (or every plan valid); 1 at least one unit rejected;
 //! 2 an invalid plan or invalid arguments; 3 the run could not complete.
 
+use crate::bench::Bench;
 use crate::bench::sim::{SimBench, SimConfig};
+use crate::bench::station::{self, Station};
 use crate::exec::{self, Event, Reporter, RunContext};
 use crate::plan::units::Dimension;
 use crate::plan::{Plan, PlanErrors, Tolerance};
@@ -36,13 +38,43 @@ enum Command {
     },
     /// Run a plan on a bench and write a record and reports per unit.
     Run(RunArgs),
+    /// Serve simulated meters, a SCPI source and a SCPI reference on pseudo-terminals.
+    SimMeter(SimMeterArgs),
+    /// List the serial ports this machine has.
+    Ports,
+}
+
+#[derive(clap::Args)]
+struct SimMeterArgs {
+    /// Number of simulated meters.
+    #[arg(long, default_value_t = 4)]
+    positions: usize,
+    /// Seed of the simulation: the same seed gives the same meters.
+    #[arg(long, default_value_t = 1)]
+    seed: u64,
+    /// Bench seconds per real second (20 runs a 40 s plan in 2 s).
+    #[arg(long, default_value_t = 1.0)]
+    time_scale: f64,
+    /// Write the station file that wires the simulated bench here.
+    #[arg(long)]
+    station: Option<PathBuf>,
+    /// A fault to inject, as POSITION:KIND[=VALUE] (drop-every=N, garble-every=N, slow=TIME,
+    /// reboot-after=N, firmware=VERSION, die-after=N, echo). May be repeated.
+    #[arg(long = "fault", value_name = "POSITION:KIND[=VALUE]")]
+    faults: Vec<String>,
+    /// Stop serving after this long (default: until killed).
+    #[arg(long = "for", value_name = "TIME")]
+    duration: Option<String>,
+    /// Do not plant the simulator's phase defect on one meter.
+    #[arg(long)]
+    no_defect: bool,
 }
 
 #[derive(clap::Args)]
 struct RunArgs {
     /// The plan file (YAML).
     plan: PathBuf,
-    /// The bench: `sim` for the built-in simulated bench.
+    /// The bench: `sim` for the built-in simulated bench, or a station file (YAML).
     #[arg(long, default_value = "sim")]
     bench: String,
     /// Folder for records and reports; each run gets a subfolder named by its run id.
@@ -69,6 +101,10 @@ struct RunArgs {
     /// Print only the final summary.
     #[arg(long)]
     quiet: bool,
+    /// Run although the station's reference is past its calibration due date; the reason is
+    /// recorded with every unit.
+    #[arg(long, value_name = "REASON")]
+    allow_overdue_reference: Option<String>,
 }
 
 /// A failure of a command, rendered once here.
@@ -97,6 +133,8 @@ pub fn main() -> i32 {
     let result = match cli.command {
         Command::Check { plans } => check(&plans),
         Command::Run(args) => run(&args),
+        Command::SimMeter(args) => sim_meter(&args),
+        Command::Ports => ports(),
     };
     match result {
         Ok(code) => code,
@@ -201,32 +239,17 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
     let templates =
         Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
     let serials = checked_serials(args.serials.as_deref())?;
-    if args.bench != "sim" {
-        return Err(CliError::Usage(format!(
-            "unknown bench \"{}\": only the built-in simulated bench `sim` exists so far",
-            args.bench
-        )));
-    }
-    let positions = match (&serials, args.positions) {
-        (Some(s), Some(n)) if s.len() != n => {
-            return Err(CliError::Usage(format!(
-                "--positions {n} but {} serial numbers were given",
-                s.len()
-            )));
-        }
-        (Some(s), _) => s.len(),
-        (None, Some(0)) => return Err(CliError::Usage("--positions must be at least 1".into())),
-        (None, Some(n)) => n,
-        (None, None) => 4,
+    let (mut bench, notes) = if args.bench == "sim" {
+        (sim_bench(args, serials)?, Vec::new())
+    } else {
+        station_bench(args, &plan, serials)?
     };
-    let mut config = SimConfig::new(args.seed, positions);
-    config.serials = serials;
-    let mut bench = SimBench::new(&config).into_bench();
     let ctx = RunContext {
         run_id: new_run_id(),
         operator: args.operator.clone(),
         lot: args.lot.clone(),
         tool_version: crate::VERSION.to_string(),
+        notes,
     };
     // The output folder must be writable before any load is applied, not after the run.
     let run_dir = args.out.join(&ctx.run_id);
@@ -244,15 +267,91 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
         "bench time {} ({}), wall time {:.2} s; records and reports in {}",
         report::duration_text(records.first().map_or(0.0, |r| r.bench_time_s)),
         if bench.clock.is_virtual() {
-            "simulated"
+            "simulated".to_string()
+        } else if bench.clock.scale() != 1.0 {
+            format!("real clock run {}× fast", bench.clock.scale())
         } else {
-            "real"
+            "real clock".to_string()
         },
         wall.elapsed().as_secs_f64(),
         run_dir.display()
     );
     Ok(exit_status(&records))
 }
+
+/// The built-in simulated bench, sized by --positions or --serials.
+fn sim_bench(args: &RunArgs, serials: Option<Vec<String>>) -> Result<Bench, CliError> {
+    let positions = match (&serials, args.positions) {
+        (Some(s), Some(n)) if s.len() != n => {
+            return Err(CliError::Usage(format!(
+                "--positions {n} but {} serial numbers were given",
+                s.len()
+            )));
+        }
+        (Some(s), _) => s.len(),
+        (None, Some(0)) => return Err(CliError::Usage("--positions must be at least 1".into())),
+        (None, Some(n)) => n,
+        (None, None) => 4,
+    };
+    let mut config = SimConfig::new(args.seed, positions);
+    config.serials = serials;
+    Ok(SimBench::new(&config).into_bench())
+}
+
+/// A bench from a station file: its ports, source and reference.
+fn station_bench(
+    args: &RunArgs,
+    plan: &Plan,
+    serials: Option<Vec<String>>,
+) -> Result<(Bench, Vec<String>), CliError> {
+    let station = Station::load(Path::new(&args.bench)).map_err(CliError::Plan)?;
+    let mut notes = Vec::new();
+    if let Some(due) = station.reference.calibration_due {
+        let today = chrono::Local::now().date_naive();
+        if due < today {
+            let id = &station.reference.info.id;
+            match &args.allow_overdue_reference {
+                Some(reason) => notes.push(format!(
+                    "reference {id} was used past its calibration due date {due}: {reason}"
+                )),
+                None => {
+                    return Err(CliError::Usage(format!(
+                        "the reference {id} was due for calibration on {due}: the run is refused; \
+                         give --allow-overdue-reference \"REASON\" to run anyway (the reason is recorded)"
+                    )));
+                }
+            }
+        }
+    }
+    if let Some(s) = &serials
+        && s.len() != station.positions.len()
+    {
+        return Err(CliError::Usage(format!(
+            "the station has {} positions but {} serial numbers were given",
+            station.positions.len(),
+            s.len()
+        )));
+    }
+    let mut bench = station::build_bench(&station, plan).map_err(|e| match e {
+        station::StationError::NotSerial(_) => CliError::Usage(e.to_string()),
+        station::StationError::Instrument { .. } => CliError::Run(e.to_string()),
+    })?;
+    if let Some(serials) = serials {
+        for (p, s) in bench.positions.iter_mut().zip(serials) {
+            p.expected_serial = Some(s);
+        }
+    }
+    if !args.quiet {
+        eprintln!("{MAINS_CAUTION}");
+    }
+    Ok((bench, notes))
+}
+
+/// Printed before a real bench is driven.
+pub const MAINS_CAUTION: &str = "CAUTION: this bench applies mains voltage to the test positions. \
+Only qualified people may operate it; keep terminals enclosed, keep the PC isolated from the \
+mains side, and de-energise the load before any wiring change. Local electrical codes and \
+licensed practice take precedence.";
 
 /// Serial numbers given on the command line: none empty, none twice.
 fn checked_serials(serials: Option<&[String]>) -> Result<Option<Vec<String>>, CliError> {
@@ -400,4 +499,108 @@ impl Reporter for TerminalReporter {
             Event::RunFinished { .. } => {}
         }
     }
+}
+
+fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
+    use crate::bench::sim_device::Faults;
+    use crate::bench::sim_station::{SimStation, merge_faults, parse_fault};
+    if args.positions == 0 {
+        return Err(CliError::Usage("--positions must be at least 1".into()));
+    }
+    if !(args.time_scale > 0.0 && args.time_scale.is_finite()) {
+        return Err(CliError::Usage(
+            "--time-scale must be greater than zero".into(),
+        ));
+    }
+    let mut faults = vec![Faults::default(); args.positions];
+    for text in &args.faults {
+        let (position, f) = parse_fault(text).map_err(CliError::Usage)?;
+        let slot = faults.get_mut(position - 1).ok_or_else(|| {
+            CliError::Usage(format!(
+                "--fault {text}: there are only {} positions",
+                args.positions
+            ))
+        })?;
+        merge_faults(slot, f);
+    }
+    let duration = match &args.duration {
+        None => None,
+        Some(t) => Some(
+            crate::plan::units::parse(t, Dimension::Time)
+                .map_err(|e| CliError::Usage(format!("--for: {e}")))?,
+        ),
+    };
+    let mut config = SimConfig::new(args.seed, args.positions);
+    config.plant_defect = !args.no_defect;
+    let station = SimStation::serve(&config, args.time_scale, &faults)
+        .map_err(|e| CliError::Run(format!("cannot create pseudo-terminals: {e}")))?;
+    println!(
+        "simulated bench, seed {}, {} meters, time scale {}",
+        args.seed, args.positions, args.time_scale
+    );
+    for (i, (m, serial)) in station.meters.iter().zip(&station.serials).enumerate() {
+        println!("  position {}: {}  serial {serial}", i + 1, m.path);
+    }
+    println!("  source:     {}  (SCPI)", station.source.path);
+    println!("  reference:  {}  (SCPI)", station.reference.path);
+    if let Some(path) = &args.station {
+        let dir = path
+            .parent()
+            .filter(|d| !d.as_os_str().is_empty())
+            .unwrap_or(Path::new("."));
+        let name = path
+            .file_name()
+            .ok_or_else(|| CliError::Usage("--station needs a file name".into()))?
+            .to_string_lossy()
+            .into_owned();
+        let _ = std::fs::remove_file(path);
+        record::write_new_file(dir, &name, station.station_yaml().as_bytes())
+            .map_err(|e| CliError::Run(e.to_string()))?;
+        println!("station file: {}", path.display());
+    }
+    println!("serving until stopped");
+    let _ = std::io::stdout().flush();
+    let started = Instant::now();
+    loop {
+        std::thread::sleep(std::time::Duration::from_millis(100));
+        if duration.is_some_and(|d| started.elapsed().as_secs_f64() >= d) {
+            return Ok(0);
+        }
+    }
+}
+
+fn ports() -> Result<i32, CliError> {
+    let ports = serialport::available_ports()
+        .map_err(|e| CliError::Run(format!("cannot list serial ports: {e}")))?;
+    if ports.is_empty() {
+        println!("no serial ports found (pseudo-terminals are never listed)");
+        return Ok(0);
+    }
+    println!(
+        "{:<24} {:<10} {:<10} {:<18} product",
+        "port", "type", "vid:pid", "serial"
+    );
+    for p in ports {
+        match p.port_type {
+            serialport::SerialPortType::UsbPort(u) => println!(
+                "{:<24} {:<10} {:04x}:{:04x}  {:<18} {}",
+                p.port_name,
+                "usb",
+                u.vid,
+                u.pid,
+                u.serial_number.unwrap_or_default(),
+                u.product.unwrap_or_default()
+            ),
+            serialport::SerialPortType::PciPort => {
+                println!("{:<24} {:<10}", p.port_name, "pci")
+            }
+            serialport::SerialPortType::BluetoothPort => {
+                println!("{:<24} {:<10}", p.port_name, "bluetooth")
+            }
+            serialport::SerialPortType::Unknown => {
+                println!("{:<24} {:<10}", p.port_name, "other")
+            }
+        }
+    }
+    Ok(0)
 }

@@ -37,6 +37,9 @@ pub struct UnitRecord {
     /// Bench time the run took, seconds (virtual on the simulator).
     pub bench_time_s: f64,
     pub verdict: UnitVerdict,
+    /// Remarks that apply to the whole run (an overdue reference accepted, and why).
+    #[serde(default)]
+    pub notes: Vec<String>,
     pub steps: Vec<StepRecord>,
 }
 

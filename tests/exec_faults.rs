@@ -40,6 +40,7 @@ fn ctx() -> RunContext {
         operator: "tester".into(),
         lot: None,
         tool_version: "test".into(),
+        notes: Vec::new(),
     }
 }
 

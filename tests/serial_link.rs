@@ -17,6 +17,7 @@ fn ctx() -> RunContext {
         operator: "tester".into(),
         lot: None,
         tool_version: "test".into(),
+        notes: Vec::new(),
     }
 }
 

@@ -3,8 +3,12 @@
 //! Each piece of hardware sits behind a trait, so that the built-in simulator and a real station
 //! drive the same executor.
 
+pub mod scpi;
 pub mod sim;
 pub mod sim_device;
+pub mod sim_scpi;
+pub mod sim_station;
+pub mod station;
 
 use crate::link::DutLink;
 use crate::plan::{Load, Quantity};
@@ -18,6 +22,10 @@ pub trait Clock: Send + Sync {
     fn sleep_s(&self, seconds: f64);
     /// Whether time passes only when asked to (the simulator), or for real.
     fn is_virtual(&self) -> bool;
+    /// Bench seconds per real second: 1 on a real bench.
+    fn scale(&self) -> f64 {
+        1.0
+    }
 }
 
 /// A clock that jumps instead of waiting: the simulator never sleeps for real.
@@ -40,31 +48,43 @@ impl Clock for VirtualClock {
     }
 }
 
-/// Wall-clock time, for real benches.
+/// Wall-clock time, for real benches; a simulated station may run it faster (`scale` bench
+/// seconds per real second).
 #[derive(Debug)]
 pub struct RealClock {
     start: Instant,
+    scale: f64,
 }
 
 impl Default for RealClock {
     fn default() -> Self {
+        RealClock::scaled(1.0)
+    }
+}
+
+impl RealClock {
+    pub fn scaled(scale: f64) -> RealClock {
         RealClock {
             start: Instant::now(),
+            scale,
         }
     }
 }
 
 impl Clock for RealClock {
     fn now_s(&self) -> f64 {
-        self.start.elapsed().as_secs_f64()
+        self.start.elapsed().as_secs_f64() * self.scale
     }
     fn sleep_s(&self, seconds: f64) {
         if seconds > 0.0 {
-            std::thread::sleep(Duration::from_secs_f64(seconds));
+            std::thread::sleep(Duration::from_secs_f64(seconds / self.scale));
         }
     }
     fn is_virtual(&self) -> bool {
         false
+    }
+    fn scale(&self) -> f64 {
+        self.scale
     }
 }
 
@@ -117,6 +137,15 @@ pub trait ReferenceMeter: Send {
 pub struct InstrumentInfo {
     pub id: String,
     pub description: String,
+    /// Calibration certificate number.
+    #[serde(default)]
+    pub certificate: Option<String>,
+    /// Date the calibration is due, YYYY-MM-DD.
+    #[serde(default)]
+    pub calibration_due: Option<String>,
+    /// Accuracy specification as the data sheet states it.
+    #[serde(default)]
+    pub accuracy: Option<String>,
 }
 
 /// The bench as recorded: which station, which reference.

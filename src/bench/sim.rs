@@ -377,8 +377,24 @@ impl SimBench {
         lock(&self.world).since_change()
     }
 
+    /// The simulated source and reference meter, acting on this bench's world.
+    pub fn instruments(&self) -> (Box<dyn LoadSource>, Box<dyn ReferenceMeter>) {
+        (
+            Box::new(SimSource {
+                world: self.world.clone(),
+                rng: stream(self.seed, STREAM_SOURCE),
+            }),
+            Box::new(SimReference {
+                world: self.world.clone(),
+                rng: stream(self.seed, STREAM_REFERENCE),
+                gain: 0.0001,
+            }),
+        )
+    }
+
     /// Turns the simulator into a [`Bench`] for the executor.
     pub fn into_bench(self) -> Bench {
+        let (source, reference) = self.instruments();
         let positions = (0..lock(&self.world).meters.len())
             .map(|i| Position {
                 number: i + 1,
@@ -396,19 +412,15 @@ impl SimBench {
                 reference: InstrumentInfo {
                     id: "SIM-REF-1".into(),
                     description: "simulated true-RMS reference meter, ±0.02 % typical".into(),
+                    certificate: None,
+                    calibration_due: None,
+                    accuracy: Some("0.01 % of reading + 0.005 % of range".into()),
                 },
                 source: "simulated lamp-bank load with switch-on surge".into(),
             },
             clock: self.clock.clone(),
-            source: Box::new(SimSource {
-                world: self.world.clone(),
-                rng: stream(self.seed, STREAM_SOURCE),
-            }),
-            reference: Box::new(SimReference {
-                world: self.world.clone(),
-                rng: stream(self.seed, STREAM_REFERENCE),
-                gain: 0.0001,
-            }),
+            source,
+            reference,
             positions,
             parallel: false,
         }

@@ -54,6 +54,20 @@ fn quantity_from_code(code: &str) -> Option<Quantity> {
 
 const BANNER: &[&str] = &["# TM-16 boot 0.9", "# metering core ready"];
 
+/// A device that answers request lines: a simulated meter or instrument.
+pub trait LineDevice: Send + 'static {
+    /// Lines printed when the device starts.
+    fn banner(&self) -> Vec<String> {
+        Vec::new()
+    }
+    /// Answers one request line; the lines to send back, in order.
+    fn handle(&mut self, request: &str) -> Vec<String>;
+    /// How long the device takes before each reply.
+    fn reply_delay(&self) -> Duration {
+        Duration::ZERO
+    }
+}
+
 /// The protocol logic, apart from any port: one request line in, reply lines out.
 pub struct Device {
     meter: SimMeterHandle,
@@ -72,13 +86,21 @@ impl Device {
         }
     }
 
-    /// The lines a freshly powered device prints.
-    pub fn banner() -> Vec<String> {
+    fn boot_lines() -> Vec<String> {
         BANNER.iter().map(|s| s.to_string()).collect()
     }
+}
 
-    /// Answers one request line; the lines to send back, in order.
-    pub fn handle(&mut self, request: &str) -> Vec<String> {
+impl LineDevice for Device {
+    fn banner(&self) -> Vec<String> {
+        Device::boot_lines()
+    }
+
+    fn reply_delay(&self) -> Duration {
+        self.faults.slow
+    }
+
+    fn handle(&mut self, request: &str) -> Vec<String> {
         self.requests += 1;
         let n = self.requests;
         let every = |k: Option<u64>| k.is_some_and(|k| k > 0 && n.is_multiple_of(k));
@@ -91,7 +113,7 @@ impl Device {
             out.push(request.to_string());
         }
         if self.faults.reboot_after == Some(n) {
-            out.extend(Device::banner());
+            out.extend(Device::boot_lines());
             return out;
         }
         if every(self.faults.drop_every) {
@@ -104,7 +126,9 @@ impl Device {
         out.push(reply);
         out
     }
+}
 
+impl Device {
     fn answer(&mut self, request: &str) -> String {
         let words: Vec<&str> = request.split_whitespace().collect();
         match words.as_slice() {
@@ -145,7 +169,7 @@ pub struct PtyDevice {
 
 impl PtyDevice {
     /// Creates a pseudo-terminal pair and serves `device` on its master side.
-    pub fn spawn(mut device: Device) -> io::Result<PtyDevice> {
+    pub fn spawn(mut device: impl LineDevice) -> io::Result<PtyDevice> {
         let (master, slave) = serialport::TTYPort::pair().map_err(io::Error::other)?;
         let path = serialport::SerialPort::name(&slave)
             .ok_or_else(|| io::Error::other("the pseudo-terminal has no name"))?;
@@ -179,7 +203,7 @@ impl Drop for PtyDevice {
 
 fn serve(
     mut port: serialport::TTYPort,
-    device: &mut Device,
+    device: &mut impl LineDevice,
     stop: &AtomicBool,
     requests: &AtomicU64,
 ) {
@@ -193,7 +217,7 @@ fn serve(
         let _ = port.write_all(&bytes);
         let _ = port.flush();
     };
-    send(&mut port, &Device::banner());
+    send(&mut port, &device.banner());
     let mut pending: Vec<u8> = Vec::new();
     let mut buf = [0u8; 256];
     while !stop.load(Ordering::SeqCst) {
@@ -212,8 +236,9 @@ fn serve(
             }
             requests.fetch_add(1, Ordering::Relaxed);
             let reply = device.handle(&text);
-            if !device.faults.slow.is_zero() {
-                std::thread::sleep(device.faults.slow);
+            let delay = device.reply_delay();
+            if !delay.is_zero() {
+                std::thread::sleep(delay);
             }
             send(&mut port, &reply);
         }

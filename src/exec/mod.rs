@@ -24,6 +24,8 @@ pub struct RunContext {
     pub operator: String,
     pub lot: Option<String>,
     pub tool_version: String,
+    /// Remarks recorded with every unit of the run.
+    pub notes: Vec<String>,
 }
 
 /// What the engine tells its reporter, in order.
@@ -236,6 +238,7 @@ fn identify(
             finished_at: String::new(),
             bench_time_s: 0.0,
             verdict: UnitVerdict { status, reasons },
+            notes: ctx.notes.clone(),
             steps: Vec::new(),
         },
         active,

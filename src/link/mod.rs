@@ -61,3 +61,31 @@ pub trait DutLink: Send {
     /// A short description for records: "sim position 3", "/dev/ttyUSB0 @ 115200".
     fn describe(&self) -> String;
 }
+
+/// A position whose link could not be opened: every call reports why, so the unit is recorded
+/// incomplete with the reason while the other positions run.
+pub struct Unreachable {
+    port: String,
+    error: LinkError,
+}
+
+impl Unreachable {
+    pub fn new(port: &str, error: LinkError) -> Unreachable {
+        Unreachable {
+            port: port.to_string(),
+            error,
+        }
+    }
+}
+
+impl DutLink for Unreachable {
+    fn identify(&mut self) -> Result<Identity, LinkError> {
+        Err(self.error.clone())
+    }
+    fn read(&mut self, _: Quantity, _: &str) -> Result<f64, LinkError> {
+        Err(self.error.clone())
+    }
+    fn describe(&self) -> String {
+        format!("{} (not opened)", self.port)
+    }
+}

@@ -12,7 +12,9 @@ mod validate;
 mod validate_link;
 
 pub use locate::Position;
-pub use validate::{PlanError, PlanErrors};
+pub use raw::{RawPort, Text};
+pub use validate::{Document, PlanError, PlanErrors};
+pub use validate_link::port_settings;
 
 use serde::Serialize;
 use sha2::{Digest, Sha256};

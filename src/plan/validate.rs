@@ -73,15 +73,54 @@ impl fmt::Display for PlanErrors {
     }
 }
 
-/// Collects mistakes while a plan is read.
-pub(super) struct Ctx<'a> {
+/// A YAML file being read: its positions, and the mistakes found so far. Plans and station files
+/// are both read through it, so both report mistakes the same way.
+pub struct Document<'a> {
     file: &'a str,
     loc: Locations,
     errors: Vec<PlanError>,
 }
 
-impl Ctx<'_> {
-    pub(super) fn error(&mut self, path: &str, message: impl Into<String>) {
+pub(super) type Ctx<'a> = Document<'a>;
+
+impl<'a> Document<'a> {
+    /// Parses `text` as YAML; a syntax error is returned at once, with its position.
+    pub fn parse(
+        file: &'a str,
+        text: &str,
+    ) -> Result<(serde_yaml::Value, Document<'a>), PlanErrors> {
+        let value: serde_yaml::Value = serde_yaml::from_str(text).map_err(|e| {
+            PlanErrors::single(PlanError {
+                file: file.to_string(),
+                position: e.location().map(|l| Position {
+                    line: l.line(),
+                    column: l.column(),
+                }),
+                path: String::new(),
+                message: format!("not valid YAML: {}", strip_location(&e.to_string())),
+            })
+        })?;
+        Ok((
+            value,
+            Document {
+                file,
+                loc: Locations::of(text),
+                errors: Vec::new(),
+            },
+        ))
+    }
+
+    /// Whether no mistake has been found.
+    pub fn is_clean(&self) -> bool {
+        self.errors.is_empty()
+    }
+
+    /// All the mistakes found, in file order.
+    pub fn into_errors(self) -> PlanErrors {
+        sorted(self.errors)
+    }
+
+    pub fn error(&mut self, path: &str, message: impl Into<String>) {
         let position = self.loc.value(path);
         self.errors.push(PlanError {
             file: self.file.to_string(),
@@ -91,8 +130,8 @@ impl Ctx<'_> {
         });
     }
 
-    /// Deserialises one part of the plan, recording a structural mistake under `prefix`.
-    fn structure<T: serde::de::DeserializeOwned>(
+    /// Deserialises one part of the file, recording a structural mistake under `prefix`.
+    pub fn structure<T: serde::de::DeserializeOwned>(
         &mut self,
         prefix: &str,
         value: serde_yaml::Value,
@@ -119,7 +158,7 @@ impl Ctx<'_> {
         }
     }
 
-    pub(super) fn value(&mut self, path: &str, text: &Text, dim: Dimension) -> Option<f64> {
+    pub fn value(&mut self, path: &str, text: &Text, dim: Dimension) -> Option<f64> {
         match units::parse(&text.0, dim) {
             Ok(v) => Some(v),
             Err(e) => {
@@ -129,7 +168,7 @@ impl Ctx<'_> {
         }
     }
 
-    pub(super) fn optional_value(
+    pub fn optional_value(
         &mut self,
         path: &str,
         text: Option<&Text>,
@@ -141,7 +180,7 @@ impl Ctx<'_> {
         }
     }
 
-    pub(super) fn count(&mut self, path: &str, text: &Text) -> Option<u32> {
+    pub fn count(&mut self, path: &str, text: &Text) -> Option<u32> {
         match text.0.trim().parse::<u32>() {
             Ok(n) if n >= 1 => Some(n),
             _ => {
@@ -157,7 +196,7 @@ impl Ctx<'_> {
         }
     }
 
-    fn non_empty(&mut self, path: &str, text: &Text) -> Option<String> {
+    pub fn non_empty(&mut self, path: &str, text: &Text) -> Option<String> {
         let t = text.0.trim();
         if t.is_empty() {
             self.error(path, "must not be empty");
@@ -179,22 +218,7 @@ fn join_path(prefix: &str, inner: &str) -> String {
 
 /// Validates a whole plan text.
 pub fn validate(file: &str, text: &str) -> Result<Plan, PlanErrors> {
-    let document: serde_yaml::Value = serde_yaml::from_str(text).map_err(|e| {
-        PlanErrors::single(PlanError {
-            file: file.to_string(),
-            position: e.location().map(|l| Position {
-                line: l.line(),
-                column: l.column(),
-            }),
-            path: String::new(),
-            message: format!("not valid YAML: {}", strip_location(&e.to_string())),
-        })
-    })?;
-    let mut ctx = Ctx {
-        file,
-        loc: Locations::of(text),
-        errors: Vec::new(),
-    };
+    let (document, mut ctx) = Document::parse(file, text)?;
     let raw: Option<RawPlan> = ctx.structure("", document.clone());
     // Steps are read one by one even when the top level failed, so that all their mistakes show.
     let step_values = match &raw {

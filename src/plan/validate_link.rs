@@ -111,28 +111,36 @@ fn choice<T: Copy>(
     }
 }
 
-fn port(ctx: &mut Ctx, raw: &super::raw::RawPort) -> Option<PortSettings> {
+/// Port settings under `prefix` (such as `link.port`), with the usual 115200 8N1 defaults.
+pub fn port_settings(
+    ctx: &mut Ctx,
+    prefix: &str,
+    raw: &super::raw::RawPort,
+) -> Option<PortSettings> {
     let d = PortSettings::default();
     let baud = match &raw.baud {
         None => Some(d.baud),
         Some(t) => match t.0.trim().parse::<u32>() {
             Ok(b) if b > 0 => Some(b),
             _ => {
-                ctx.error("link.port.baud", format!("\"{}\" is not a baud rate", t.0));
+                ctx.error(
+                    &format!("{prefix}.baud"),
+                    format!("\"{}\" is not a baud rate", t.0),
+                );
                 None
             }
         },
     };
     let data_bits = choice(
         ctx,
-        "link.port.data_bits",
+        &format!("{prefix}.data_bits"),
         raw.data_bits.as_ref(),
         8u8,
         &[("5", 5), ("6", 6), ("7", 7), ("8", 8)],
     );
     let parity = choice(
         ctx,
-        "link.port.parity",
+        &format!("{prefix}.parity"),
         raw.parity.as_ref(),
         Parity::None,
         &[
@@ -143,14 +151,14 @@ fn port(ctx: &mut Ctx, raw: &super::raw::RawPort) -> Option<PortSettings> {
     );
     let stop_bits = choice(
         ctx,
-        "link.port.stop_bits",
+        &format!("{prefix}.stop_bits"),
         raw.stop_bits.as_ref(),
         1u8,
         &[("1", 1), ("2", 2)],
     );
     let flow_control = choice(
         ctx,
-        "link.port.flow_control",
+        &format!("{prefix}.flow_control"),
         raw.flow_control.as_ref(),
         FlowControl::None,
         &[
@@ -175,7 +183,7 @@ const ENDINGS: [(&str, LineEnding); 3] = [
 ];
 
 pub(super) fn text_link(ctx: &mut Ctx, raw: RawTextLink) -> Option<TextLinkSpec> {
-    let port = port(ctx, &raw.port);
+    let port = port_settings(ctx, "link.port", &raw.port);
     let send_ending = choice(
         ctx,
         "link.line_ending.send",

@@ -1,0 +1,162 @@
+//! A whole simulated station on pseudo-terminals: one port per simulated meter, one for a SCPI
+//! source and one for a SCPI reference meter, all acting on one simulated world, and the station
+//! file that wires them. `meterproof sim-meter` serves it; the tests use it to drive the real
+//! binary through real ports.
+
+use super::RealClock;
+use super::sim::{SimBench, SimConfig};
+use super::sim_device::{Device, Faults, PtyDevice};
+use super::sim_scpi::{REFERENCE_QUERIES, ScpiReferenceDevice, ScpiSourceDevice};
+use std::io;
+use std::sync::Arc;
+use std::time::Duration;
+
+/// The served station; dropping it stops every device.
+pub struct SimStation {
+    pub meters: Vec<PtyDevice>,
+    pub serials: Vec<String>,
+    pub source: PtyDevice,
+    pub reference: PtyDevice,
+    pub seed: u64,
+    pub time_scale: f64,
+}
+
+impl SimStation {
+    /// Serves `config`'s meters, with `faults[i]` injected into meter i, on a clock running
+    /// `time_scale` bench seconds per real second.
+    pub fn serve(config: &SimConfig, time_scale: f64, faults: &[Faults]) -> io::Result<SimStation> {
+        let sim = SimBench::with_clock(config, Arc::new(RealClock::scaled(time_scale)));
+        let mut meters = Vec::new();
+        let mut serials = Vec::new();
+        for i in 0..sim.positions() {
+            let handle = sim.meter(i);
+            serials.push(handle.identity().serial);
+            let f = faults.get(i).cloned().unwrap_or_default();
+            meters.push(PtyDevice::spawn(Device::new(handle, f))?);
+        }
+        let (source, reference) = sim.instruments();
+        Ok(SimStation {
+            meters,
+            serials,
+            source: PtyDevice::spawn(ScpiSourceDevice::new(source))?,
+            reference: PtyDevice::spawn(ScpiReferenceDevice::new(reference))?,
+            seed: config.seed,
+            time_scale,
+        })
+    }
+
+    /// The station file that wires this simulated bench.
+    pub fn station_yaml(&self) -> String {
+        let mut s = format!(
+            "# Station file written by `meterproof sim-meter`: a simulated bench on pseudo-terminals.\n\
+             station: SIM-PTY\n\
+             description: simulated bench on pseudo-terminals, seed {}, {} positions\n\
+             simulation: {{ time_scale: {} }}\n\
+             positions:\n",
+            self.seed,
+            self.meters.len(),
+            self.time_scale
+        );
+        for (i, m) in self.meters.iter().enumerate() {
+            s.push_str(&format!(
+                "  - {{ position: {}, port: {} }}\n",
+                i + 1,
+                m.path
+            ));
+        }
+        s.push_str(&format!(
+            "source:\n  kind: scpi\n  port: {}\n  timeout: 2 s\n  commands:\n    setup: ['*RST', '*CLS']\n    voltage: 'SOUR:VOLT {{value}}'\n    current: 'SOUR:CURR {{value}}'\n    phase: 'SOUR:PHAS {{value}}'\n    frequency: 'SOUR:FREQ {{value}}'\n    output_on: 'OUTP ON'\n    output_off: 'OUTP OFF'\n    sync: '*OPC?'\n",
+            self.source.path
+        ));
+        s.push_str(&format!(
+            "reference:\n  id: SIM-REF-1\n  description: simulated true-RMS reference meter\n  certificate: SIM-0001\n  calibration_due: 2099-12-31\n  accuracy: 0.01 % of reading + 0.005 % of range\n  read:\n    kind: scpi\n    port: {}\n    timeout: 2 s\n    queries:\n",
+            self.reference.path
+        ));
+        for (q, query) in REFERENCE_QUERIES {
+            s.push_str(&format!("      {}: '{}'\n", q.name(), query));
+        }
+        s
+    }
+}
+
+/// Reads a fault given as `POSITION:KIND[=VALUE]`: `2:drop-every=5`, `3:die-after=60`,
+/// `1:slow=300ms`, `4:reboot-after=30`, `2:firmware=2.0.9`, `1:garble-every=4`, `3:echo`.
+pub fn parse_fault(text: &str) -> Result<(usize, Faults), String> {
+    let help = "write a fault as POSITION:KIND[=VALUE], KIND one of drop-every, garble-every, \
+                slow, reboot-after, firmware, die-after, echo";
+    let (position, rest) = text
+        .split_once(':')
+        .ok_or_else(|| format!("\"{text}\": {help}"))?;
+    let position: usize = position
+        .parse()
+        .ok()
+        .filter(|p| *p >= 1)
+        .ok_or_else(|| format!("\"{position}\" is not a position number"))?;
+    let (kind, value) = match rest.split_once('=') {
+        Some((k, v)) => (k, Some(v)),
+        None => (rest, None),
+    };
+    let count = || -> Result<u64, String> {
+        value
+            .and_then(|v| v.parse::<u64>().ok())
+            .filter(|n| *n > 0)
+            .ok_or_else(|| format!("{kind} needs a count, as {kind}=5"))
+    };
+    let mut f = Faults::default();
+    match kind {
+        "drop-every" => f.drop_every = Some(count()?),
+        "garble-every" => f.garble_every = Some(count()?),
+        "reboot-after" => f.reboot_after = Some(count()?),
+        "die-after" => f.die_after = Some(count()?),
+        "slow" => {
+            let v = value.ok_or("slow needs a time, as slow=300ms")?;
+            let s = crate::plan::units::parse(v, crate::plan::units::Dimension::Time)
+                .map_err(|e| e.to_string())?;
+            f.slow = Duration::from_secs_f64(s.max(0.0));
+        }
+        "firmware" => f.firmware = Some(value.ok_or("firmware needs a version")?.to_string()),
+        "echo" => f.echo = true,
+        _ => return Err(format!("unknown fault \"{kind}\": {help}")),
+    }
+    Ok((position, f))
+}
+
+/// Combines faults given for the same position.
+pub fn merge_faults(into: &mut Faults, f: Faults) {
+    into.drop_every = f.drop_every.or(into.drop_every);
+    into.garble_every = f.garble_every.or(into.garble_every);
+    into.reboot_after = f.reboot_after.or(into.reboot_after);
+    into.die_after = f.die_after.or(into.die_after);
+    into.firmware = f.firmware.or(into.firmware.take());
+    into.echo |= f.echo;
+    if !f.slow.is_zero() {
+        into.slow = f.slow;
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn faults_read_as_written() {
+        assert_eq!(parse_fault("2:drop-every=5").unwrap().1.drop_every, Some(5));
+        assert_eq!(
+            parse_fault("1:slow=300 ms").unwrap().1.slow,
+            Duration::from_millis(300)
+        );
+        assert!(parse_fault("3:echo").unwrap().1.echo);
+        assert!(parse_fault("0:echo").is_err());
+        assert!(parse_fault("1:explode").is_err());
+        assert!(parse_fault("1:die-after").is_err());
+    }
+
+    #[test]
+    fn the_station_file_it_writes_is_valid() {
+        let station = SimStation::serve(&SimConfig::new(1, 2), 10.0, &[]).unwrap();
+        let parsed = super::super::station::Station::from_text("x", &station.station_yaml())
+            .unwrap_or_else(|e| panic!("{e}\n{}", station.station_yaml()));
+        assert_eq!(parsed.positions.len(), 2);
+        assert_eq!(parsed.time_scale, 10.0);
+    }
+}

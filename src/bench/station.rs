@@ -1,0 +1,489 @@
+//! Station files: how one bench is wired. The plan says what to test; the station says which
+//! port each position is on, which source drives the load and which reference says what flowed.
+
+use super::scpi::{ScpiReference, ScpiSource, SourceCommands};
+use super::{Bench, InstrumentInfo, Position, RealClock, StationInfo};
+use crate::link::line::{LineSettings, open_port};
+use crate::link::{Unreachable, text};
+use crate::plan::text_link::{LineEnding, PortSettings};
+use crate::plan::units::Dimension;
+use crate::plan::{Document, LinkSpec, Plan, PlanErrors, Quantity, RawPort, Text, port_settings};
+use serde::Deserialize;
+use std::collections::BTreeMap;
+use std::path::Path;
+use std::sync::Arc;
+
+/// A validated station file.
+#[derive(Debug, Clone)]
+pub struct Station {
+    pub id: String,
+    pub description: String,
+    pub file: String,
+    /// Bench seconds per real second: 1 for real benches; more for simulated stations run fast.
+    pub time_scale: f64,
+    pub positions: Vec<StationPosition>,
+    pub source: SourceSpec,
+    pub reference: ReferenceSpec,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct StationPosition {
+    pub number: usize,
+    pub port: String,
+}
+
+/// A serial instrument's port and framing.
+#[derive(Debug, Clone)]
+pub struct InstrumentPort {
+    pub path: String,
+    pub settings: PortSettings,
+    pub line: LineSettings,
+}
+
+#[derive(Debug, Clone)]
+pub enum SourceSpec {
+    Scpi {
+        port: InstrumentPort,
+        commands: SourceCommands,
+    },
+}
+
+#[derive(Debug, Clone)]
+pub struct ReferenceSpec {
+    pub info: InstrumentInfo,
+    pub calibration_due: Option<chrono::NaiveDate>,
+    pub read: ReferenceRead,
+}
+
+#[derive(Debug, Clone)]
+pub enum ReferenceRead {
+    Scpi {
+        port: InstrumentPort,
+        queries: Vec<(Quantity, String)>,
+    },
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawStation {
+    station: Text,
+    #[serde(default)]
+    description: Option<Text>,
+    #[serde(default)]
+    simulation: Option<RawSimulation>,
+    positions: Vec<RawStationPosition>,
+    source: RawSource,
+    reference: RawReference,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawSimulation {
+    time_scale: Text,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawStationPosition {
+    position: Text,
+    port: Text,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields, tag = "kind", rename_all = "snake_case")]
+enum RawSource {
+    Scpi(RawScpiSource),
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawScpiSource {
+    port: Text,
+    #[serde(default)]
+    port_settings: Option<RawPort>,
+    #[serde(default)]
+    line_ending: Option<Text>,
+    #[serde(default)]
+    timeout: Option<Text>,
+    commands: RawSourceCommands,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawSourceCommands {
+    #[serde(default)]
+    setup: Vec<Text>,
+    voltage: Text,
+    current: Text,
+    phase: Text,
+    frequency: Text,
+    output_on: Text,
+    output_off: Text,
+    #[serde(default)]
+    sync: Option<Text>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawReference {
+    id: Text,
+    #[serde(default)]
+    description: Option<Text>,
+    #[serde(default)]
+    certificate: Option<Text>,
+    #[serde(default)]
+    calibration_due: Option<Text>,
+    #[serde(default)]
+    accuracy: Option<Text>,
+    read: RawReferenceRead,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields, tag = "kind", rename_all = "snake_case")]
+enum RawReferenceRead {
+    Scpi(RawScpiRead),
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawScpiRead {
+    port: Text,
+    #[serde(default)]
+    port_settings: Option<RawPort>,
+    #[serde(default)]
+    line_ending: Option<Text>,
+    #[serde(default)]
+    timeout: Option<Text>,
+    queries: BTreeMap<String, Text>,
+}
+
+/// The port fields every serial instrument has.
+struct PortFields<'a> {
+    port: &'a Text,
+    port_settings: Option<&'a RawPort>,
+    line_ending: Option<&'a Text>,
+    timeout: Option<&'a Text>,
+}
+
+impl Station {
+    /// Reads and validates the station file at `path`.
+    pub fn load(path: &Path) -> Result<Station, PlanErrors> {
+        let file = path.display().to_string();
+        let text = std::fs::read_to_string(path).map_err(|e| PlanErrors::io(&file, &e))?;
+        Station::from_text(&file, &text)
+    }
+
+    pub fn from_text(file: &str, text: &str) -> Result<Station, PlanErrors> {
+        let (value, mut doc) = Document::parse(file, text)?;
+        let raw: Option<RawStation> = doc.structure("", value);
+        let station = raw.and_then(|raw| meaning(&mut doc, file, raw));
+        match station {
+            Some(s) if doc.is_clean() => Ok(s),
+            _ => Err(doc.into_errors()),
+        }
+    }
+}
+
+fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
+    let id = doc.non_empty("station", &raw.station);
+    let time_scale = match &raw.simulation {
+        None => Some(1.0),
+        Some(s) => match s.time_scale.0.trim().parse::<f64>() {
+            Ok(v) if v > 0.0 && v.is_finite() => Some(v),
+            _ => {
+                doc.error(
+                    "simulation.time_scale",
+                    "expected a number greater than zero",
+                );
+                None
+            }
+        },
+    };
+    let mut positions = Vec::new();
+    for (i, p) in raw.positions.iter().enumerate() {
+        let path = format!("positions[{i}]");
+        let number = match p.position.0.trim().parse::<usize>() {
+            Ok(n) if n >= 1 => Some(n),
+            _ => {
+                doc.error(
+                    &format!("{path}.position"),
+                    "expected a position number, 1 or more",
+                );
+                None
+            }
+        };
+        let port = doc.non_empty(&format!("{path}.port"), &p.port);
+        if let (Some(number), Some(port)) = (number, port) {
+            if positions
+                .iter()
+                .any(|q: &StationPosition| q.number == number)
+            {
+                doc.error(
+                    &format!("{path}.position"),
+                    format!("position {number} is listed twice"),
+                );
+            }
+            if positions.iter().any(|q: &StationPosition| q.port == port) {
+                doc.error(
+                    &format!("{path}.port"),
+                    format!("port {port} is given to two positions"),
+                );
+            }
+            positions.push(StationPosition { number, port });
+        }
+    }
+    if raw.positions.is_empty() {
+        doc.error("positions", "a station needs at least one position");
+    }
+    let source = match &raw.source {
+        RawSource::Scpi(raw) => {
+            let fields = PortFields {
+                port: &raw.port,
+                port_settings: raw.port_settings.as_ref(),
+                line_ending: raw.line_ending.as_ref(),
+                timeout: raw.timeout.as_ref(),
+            };
+            let port = instrument_port(doc, "source", &fields);
+            let c = &raw.commands;
+            port.map(|port| SourceSpec::Scpi {
+                port,
+                commands: SourceCommands {
+                    setup: c.setup.iter().map(|t| t.0.clone()).collect(),
+                    voltage: c.voltage.0.clone(),
+                    current: c.current.0.clone(),
+                    phase: c.phase.0.clone(),
+                    frequency: c.frequency.0.clone(),
+                    output_on: c.output_on.0.clone(),
+                    output_off: c.output_off.0.clone(),
+                    sync: c.sync.as_ref().map(|t| t.0.clone()),
+                },
+            })
+        }
+    };
+    let reference = reference(doc, &raw.reference);
+    Some(Station {
+        id: id?,
+        description: raw.description.map(|t| t.0).unwrap_or_default(),
+        file: file.to_string(),
+        time_scale: time_scale?,
+        positions,
+        source: source?,
+        reference: reference?,
+    })
+}
+
+fn instrument_port(doc: &mut Document, prefix: &str, raw: &PortFields) -> Option<InstrumentPort> {
+    let path = doc.non_empty(&format!("{prefix}.port"), &raw.port);
+    let settings = port_settings(
+        doc,
+        &format!("{prefix}.port_settings"),
+        raw.port_settings.unwrap_or(&RawPort::default()),
+    );
+    let ending = match raw.line_ending {
+        None => Some(LineEnding::Lf),
+        Some(t) => LineEnding::from_name(t.0.trim()).or_else(|| {
+            doc.error(
+                &format!("{prefix}.line_ending"),
+                format!("\"{}\" is not one of CR, LF, CRLF", t.0),
+            );
+            None
+        }),
+    };
+    let timeout_s = doc
+        .optional_value(&format!("{prefix}.timeout"), raw.timeout, Dimension::Time)
+        .map(|t| t.unwrap_or(2.0));
+    let (ending, timeout_s) = (ending?, timeout_s?);
+    Some(InstrumentPort {
+        path: path?,
+        settings: settings?,
+        line: LineSettings {
+            send_ending: ending,
+            receive_ending: ending,
+            timeout_s,
+            retries: 1,
+            pause_s: 0.0,
+            echo: false,
+            skip: None,
+        },
+    })
+}
+
+fn reference(doc: &mut Document, raw: &RawReference) -> Option<ReferenceSpec> {
+    let id = doc.non_empty("reference.id", &raw.id);
+    let due = match &raw.calibration_due {
+        None => Some(None),
+        Some(t) => match chrono::NaiveDate::parse_from_str(t.0.trim(), "%Y-%m-%d") {
+            Ok(d) => Some(Some(d)),
+            Err(_) => {
+                doc.error(
+                    "reference.calibration_due",
+                    format!("expected a date as YYYY-MM-DD, got \"{}\"", t.0),
+                );
+                None
+            }
+        },
+    };
+    let read = match &raw.read {
+        RawReferenceRead::Scpi(raw) => {
+            let fields = PortFields {
+                port: &raw.port,
+                port_settings: raw.port_settings.as_ref(),
+                line_ending: raw.line_ending.as_ref(),
+                timeout: raw.timeout.as_ref(),
+            };
+            let port = instrument_port(doc, "reference.read", &fields);
+            let mut list = Vec::new();
+            for (name, q) in &raw.queries {
+                match Quantity::from_name(name) {
+                    Some(quantity) => list.push((quantity, q.0.clone())),
+                    None => doc.error(
+                        &format!("reference.read.queries.{name}"),
+                        format!("unknown quantity \"{name}\""),
+                    ),
+                }
+            }
+            port.map(|port| ReferenceRead::Scpi {
+                port,
+                queries: list,
+            })
+        }
+    };
+    Some(ReferenceSpec {
+        info: InstrumentInfo {
+            id: id?,
+            description: raw
+                .description
+                .as_ref()
+                .map(|t| t.0.clone())
+                .unwrap_or_default(),
+            certificate: raw.certificate.as_ref().map(|t| t.0.clone()),
+            calibration_due: raw.calibration_due.as_ref().map(|t| t.0.trim().to_string()),
+            accuracy: raw.accuracy.as_ref().map(|t| t.0.clone()),
+        },
+        calibration_due: due?,
+        read: read?,
+    })
+}
+
+/// Why a station could not be made into a bench.
+#[derive(Debug, thiserror::Error)]
+pub enum StationError {
+    #[error(
+        "the plan's link is `{0}`: a station drives units over serial ports, so the plan needs a `text` link"
+    )]
+    NotSerial(&'static str),
+    #[error("{what}: {why}")]
+    Instrument { what: String, why: String },
+}
+
+/// Opens the station's instruments and ports for `plan`. A position whose port cannot be opened
+/// is kept, with a link that reports why, so its unit is recorded incomplete and the others run.
+pub fn build_bench(station: &Station, plan: &Plan) -> Result<Bench, StationError> {
+    let LinkSpec::Text(spec) = &plan.link else {
+        return Err(StationError::NotSerial(plan.link.kind()));
+    };
+    let spec = Arc::new((**spec).clone());
+    let instrument = |what: &str, port: &InstrumentPort| {
+        open_port(&port.path, port.settings).map_err(|e| StationError::Instrument {
+            what: what.to_string(),
+            why: e.to_string(),
+        })
+    };
+    let SourceSpec::Scpi { port, commands } = &station.source;
+    let source = ScpiSource::new(
+        instrument("source", port)?,
+        port.line.clone(),
+        commands.clone(),
+        &port.path,
+    );
+    let source_description = format!("SCPI source on {}", port.path);
+    let ReferenceRead::Scpi { port, queries } = &station.reference.read;
+    let reference = ScpiReference::new(
+        instrument("reference", port)?,
+        port.line.clone(),
+        queries.clone(),
+        &port.path,
+    );
+    let positions = station
+        .positions
+        .iter()
+        .map(|p| Position {
+            number: p.number,
+            link: text::open(&p.port, spec.clone())
+                .unwrap_or_else(|e| Box::new(Unreachable::new(&p.port, e))),
+            expected_serial: None,
+        })
+        .collect();
+    Ok(Bench {
+        station: StationInfo {
+            id: station.id.clone(),
+            description: station.description.clone(),
+            reference: station.reference.info.clone(),
+            source: source_description,
+        },
+        clock: Arc::new(RealClock::scaled(station.time_scale)),
+        source: Box::new(source),
+        reference: Box::new(reference),
+        positions,
+        parallel: true,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const STATION: &str = "station: EOL-1
+positions:
+  - { position: 1, port: /dev/ttyUSB0 }
+  - { position: 2, port: /dev/ttyUSB1 }
+source:
+  kind: scpi
+  port: /dev/ttyUSB8
+  commands: { voltage: 'SOUR:VOLT {value}', current: 'SOUR:CURR {value}', phase: 'SOUR:PHAS {value}', frequency: 'SOUR:FREQ {value}', output_on: OUTP ON, output_off: OUTP OFF, sync: '*OPC?' }
+reference:
+  id: REF-7
+  certificate: C-1
+  calibration_due: 2027-03-31
+  accuracy: 0.05 % of reading + 0.01 % of range
+  read:
+    kind: scpi
+    port: /dev/ttyUSB9
+    timeout: 1 s
+    queries: { current: 'MEAS:CURR?' }
+";
+
+    #[test]
+    fn reads_a_station() {
+        let s = Station::from_text("s.yaml", STATION).unwrap();
+        assert_eq!(s.positions.len(), 2);
+        assert_eq!(s.positions[1].port, "/dev/ttyUSB1");
+        assert_eq!(
+            s.reference.calibration_due,
+            chrono::NaiveDate::from_ymd_opt(2027, 3, 31)
+        );
+        let ReferenceRead::Scpi { port, queries } = &s.reference.read;
+        assert_eq!(port.line.timeout_s, 1.0);
+        assert_eq!(queries[0], (Quantity::Current, "MEAS:CURR?".to_string()));
+    }
+
+    #[test]
+    fn station_mistakes_have_positions() {
+        let bad = STATION
+            .replace("port: /dev/ttyUSB1", "port: /dev/ttyUSB0")
+            .replace("calibration_due: 2027-03-31", "calibration_due: March");
+        let e = Station::from_text("s.yaml", &bad).unwrap_err().to_string();
+        assert!(e.contains("s.yaml:4:26: positions[1].port"), "{e}");
+        assert!(
+            e.contains("port /dev/ttyUSB0 is given to two positions"),
+            "{e}"
+        );
+        assert!(
+            e.contains("reference.calibration_due: expected a date"),
+            "{e}"
+        );
+        let typo = STATION.replace("certificate:", "certifcate:");
+        let e = Station::from_text("s.yaml", &typo).unwrap_err().to_string();
+        assert!(e.contains("reference.certifcate: unknown field"), "{e}");
+    }
+}
