@@ -273,7 +273,7 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
 }
 
 fn instrument_port(doc: &mut Document, prefix: &str, raw: &PortFields) -> Option<InstrumentPort> {
-    let path = doc.non_empty(&format!("{prefix}.port"), &raw.port);
+    let path = doc.non_empty(&format!("{prefix}.port"), raw.port);
     let settings = port_settings(
         doc,
         &format!("{prefix}.port_settings"),
