@@ -11,6 +11,7 @@ pub(super) fn evaluate_check(
     record: &mut CheckRecord,
     step: &Step,
     reference: Option<Result<ReferenceReading, String>>,
+    window: (f64, f64),
 ) {
     let values: Vec<f64> = record.samples.iter().map(|s| s.value).collect();
     // The spread of a register's contents says nothing; its advance is the measurement.
@@ -39,6 +40,9 @@ pub(super) fn evaluate_check(
     };
     let reference_value = match reference {
         None => None,
+        Some(Ok(r)) if check.quantity.is_register() => {
+            Some(r.value * register_share(&record.samples, window))
+        }
         Some(Ok(r)) => Some(r.value),
         Some(Err(e)) => {
             record.note = Some(format!("no reference: {e}"));
@@ -61,6 +65,17 @@ pub(super) fn evaluate_check(
             record.evaluation = Some(e);
         }
         Err(e) => record.note = Some(e.to_string()),
+    }
+}
+
+/// The share of the reference's window that a unit's register readings span. The reference
+/// energy is for the whole window; a unit whose first or last reading came late (a retry) saw
+/// less of it. The load is steady after settling, so energy scales with time.
+fn register_share(samples: &[crate::record::Sample], window: (f64, f64)) -> f64 {
+    let span = window.1 - window.0;
+    match (samples.first(), samples.last()) {
+        (Some(a), Some(b)) if span > 0.0 => (b.t_s - a.t_s) / span,
+        _ => 1.0,
     }
 }
 
@@ -119,4 +134,18 @@ pub(super) fn unit_verdict(steps: &[StepRecord]) -> UnitVerdict {
         UnitStatus::Accepted
     };
     UnitVerdict { status, reasons }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::record::Sample;
+
+    #[test]
+    fn a_register_read_late_covers_less_of_the_window() {
+        let s = |t_s| Sample { t_s, value: 0.0 };
+        assert_eq!(register_share(&[s(1.0), s(6.0)], (0.0, 10.0)), 0.5);
+        assert_eq!(register_share(&[s(0.0), s(10.0)], (0.0, 10.0)), 1.0);
+        assert_eq!(register_share(&[], (0.0, 10.0)), 1.0);
+    }
 }

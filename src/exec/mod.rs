@@ -368,7 +368,7 @@ fn run_step(step: &Step, started_at_s: f64, bench: &mut Bench, units: &mut [Unit
                 .iter()
                 .find(|(q, _)| *q == check.quantity)
                 .map(|(_, r)| r.clone());
-            decide::evaluate_check(check, check_record, step, reference);
+            decide::evaluate_check(check, check_record, step, reference, window);
         }
         let missing_reference: Vec<String> = references
             .iter()

@@ -64,17 +64,23 @@ pub(super) fn sample_step(
     (series, (t0, clock.now_s()))
 }
 
-/// Reads every wanted quantity once from one unit.
+/// Reads every wanted quantity once from one unit. Each reading is stamped with the time its
+/// reply arrived: after a retry that can be well after the sample was due, and a register's
+/// advance must be set against the time it really covers.
 fn read_once(
     link: &mut dyn DutLink,
     wanted: &[(Quantity, String)],
     k: u32,
     step: &Step,
-) -> Result<Vec<f64>, (Vec<f64>, String)> {
+    clock: &dyn Clock,
+) -> Result<Vec<Sample>, (Vec<Sample>, String)> {
     let mut values = Vec::with_capacity(wanted.len());
     for (quantity, channel) in wanted {
         match link.read(*quantity, channel) {
-            Ok(v) => values.push(v),
+            Ok(value) => values.push(Sample {
+                t_s: clock.now_s(),
+                value,
+            }),
             Err(e) => {
                 let why = format!(
                     "sample {} of {}: reading {} on channel {channel}: {e}",
@@ -89,9 +95,9 @@ fn read_once(
     Ok(values)
 }
 
-fn push(series: &mut Series, values: &[f64], t: f64) {
-    for (s, &value) in series.samples.iter_mut().zip(values) {
-        s.push(Sample { t_s: t, value });
+fn push(series: &mut Series, values: &[Sample]) {
+    for (s, &sample) in series.samples.iter_mut().zip(values) {
+        s.push(sample);
     }
 }
 
@@ -114,11 +120,10 @@ fn on_schedule(
     for k in 0..step.samples {
         let due = t0 + f64::from(k) * step.interval_s;
         clock.sleep_s(due - clock.now_s());
-        let t = clock.now_s();
-        match read_once(link.as_mut(), wanted, k, step) {
-            Ok(values) => push(&mut series, &values, t),
+        match read_once(link.as_mut(), wanted, k, step, clock) {
+            Ok(values) => push(&mut series, &values),
             Err((partial, why)) => {
-                push(&mut series, &partial, t);
+                push(&mut series, &partial);
                 series.fault = Some(why);
                 break;
             }
@@ -146,17 +151,16 @@ fn in_rounds(
         })
         .collect();
     for k in 0..step.samples {
-        let t = clock.now_s();
         let live = slots
             .iter_mut()
             .zip(all.iter_mut())
             .filter(|(slot, series)| slot.is_some() && series.fault.is_none());
         let round = |(slot, series): (&mut Slot, &mut Series)| {
             let link = slot.as_mut().expect("filtered to live slots");
-            match read_once(link.as_mut(), wanted, k, step) {
-                Ok(values) => push(series, &values, t),
+            match read_once(link.as_mut(), wanted, k, step, clock) {
+                Ok(values) => push(series, &values),
                 Err((partial, why)) => {
-                    push(series, &partial, t);
+                    push(series, &partial);
                     series.fault = Some(why);
                 }
             }

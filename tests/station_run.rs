@@ -1,0 +1,308 @@
+//! The real binary on a station of simulated meters and instruments served by
+//! `meterproof sim-meter` on pseudo-terminals: serial links, SCPI source and reference, faults.
+
+use meterproof::record::{self, StepStatus, UnitRecord, UnitStatus};
+use std::io::{BufRead, BufReader};
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+
+fn bin() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_meterproof"))
+}
+
+fn temp_dir(name: &str) -> PathBuf {
+    let d = std::env::temp_dir().join(format!("meterproof-st-{name}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+/// A `sim-meter` process, killed when dropped.
+struct Served {
+    child: Child,
+    station: PathBuf,
+}
+
+impl Drop for Served {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+/// Starts `sim-meter` and waits until it says it serves.
+fn serve(dir: &Path, extra: &[&str]) -> Served {
+    let station = dir.join("station.yaml");
+    let mut child = bin()
+        .args([
+            "sim-meter",
+            "--positions",
+            "4",
+            "--seed",
+            "1",
+            "--time-scale",
+            "25",
+            "--for",
+            "120 s",
+        ])
+        .arg("--station")
+        .arg(&station)
+        .args(extra)
+        .stdout(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let stdout = child.stdout.take().unwrap();
+    let mut lines = BufReader::new(stdout).lines();
+    loop {
+        let line = lines.next().expect("sim-meter ended early").unwrap();
+        if line.starts_with("serving") {
+            break;
+        }
+    }
+    Served { child, station }
+}
+
+fn run(plan: &str, station: &Path, out: &Path, extra: &[&str]) -> (i32, String, Vec<UnitRecord>) {
+    let output = bin()
+        .args(["run", plan, "--quiet", "--bench"])
+        .arg(station)
+        .arg("--out")
+        .arg(out)
+        .args(extra)
+        .output()
+        .unwrap();
+    let code = output.status.code().unwrap();
+    let text = format!(
+        "{}{}",
+        String::from_utf8_lossy(&output.stdout),
+        String::from_utf8_lossy(&output.stderr)
+    );
+    let mut records = Vec::new();
+    if let Ok(dirs) = std::fs::read_dir(out) {
+        for d in dirs {
+            for f in std::fs::read_dir(d.unwrap().path()).unwrap() {
+                let p = f.unwrap().path();
+                if p.extension().is_some_and(|x| x == "json") {
+                    records.push(record::read(&p).unwrap());
+                }
+            }
+        }
+    }
+    records.sort_by_key(|r| r.position);
+    (code, text, records)
+}
+
+#[test]
+fn a_station_run_gives_the_builtin_verdicts() {
+    let dir = temp_dir("plain");
+    let served = serve(&dir, &[]);
+    let (code, text, records) = run(
+        "test-plans/demo-serial.yaml",
+        &served.station,
+        &dir.join("out"),
+        &[],
+    );
+    assert_eq!(code, 1, "{text}");
+    let statuses: Vec<UnitStatus> = records.iter().map(|r| r.verdict.status).collect();
+    // The built-in sim with seed 1 and 4 positions plants its defect at position 2.
+    assert_eq!(
+        statuses,
+        [
+            UnitStatus::Accepted,
+            UnitStatus::Rejected,
+            UnitStatus::Accepted,
+            UnitStatus::Accepted
+        ]
+    );
+    let failed: Vec<String> = records[1]
+        .failed_checks()
+        .map(|(s, c)| format!("{} {}", s.id, c.quantity.name()))
+        .collect();
+    assert_eq!(failed, ["basic-pf0.5 active_power"]);
+    // The reference's traceability goes into every record.
+    let r = &records[0].station.reference;
+    assert_eq!(r.id, "SIM-REF-1");
+    assert_eq!(r.certificate.as_deref(), Some("SIM-0001"));
+    assert_eq!(r.calibration_due.as_deref(), Some("2099-12-31"));
+    assert!(records[0].link.contains("/dev/pts/"));
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn a_dead_unit_and_an_unplugged_port_leave_those_units_incomplete() {
+    let dir = temp_dir("faults");
+    let served = serve(
+        &dir,
+        &[
+            "--fault",
+            "3:die-after=40",
+            "--fault",
+            "1:drop-every=9",
+            "--fault",
+            "4:reboot-after=20",
+        ],
+    );
+    // Position 2's port is unplugged.
+    let text = std::fs::read_to_string(&served.station).unwrap();
+    let pos2 = text
+        .lines()
+        .find(|l| l.contains("position: 2"))
+        .unwrap()
+        .to_string();
+    let station = dir.join("unplugged.yaml");
+    std::fs::write(
+        &station,
+        text.replace(
+            &pos2,
+            "  - { position: 2, port: /dev/meterproof-unplugged }",
+        ),
+    )
+    .unwrap();
+    let (code, out, records) = run(
+        "test-plans/demo-serial.yaml",
+        &station,
+        &dir.join("out"),
+        &[],
+    );
+    assert_eq!(code, 3, "the run did not complete for every unit: {out}");
+    assert_eq!(records.len(), 4);
+    assert_eq!(
+        records[0].verdict.status,
+        UnitStatus::Accepted,
+        "{:?}",
+        records[0].verdict
+    );
+    assert_eq!(
+        records[3].verdict.status,
+        UnitStatus::Accepted,
+        "{:?}",
+        records[3].verdict
+    );
+    let unplugged = &records[1];
+    assert_eq!(unplugged.verdict.status, UnitStatus::Incomplete);
+    assert!(
+        unplugged.verdict.reasons[0].contains("cannot open /dev/meterproof-unplugged"),
+        "{:?}",
+        unplugged.verdict
+    );
+    let dead = &records[2];
+    assert_eq!(dead.verdict.status, UnitStatus::Incomplete);
+    let kept: usize = dead
+        .steps
+        .iter()
+        .flat_map(|s| &s.checks)
+        .map(|c| c.samples.len())
+        .sum();
+    // 40 answered requests: the identity, then 39 readings.
+    assert_eq!(kept, 39);
+    assert!(
+        dead.steps
+            .iter()
+            .any(|s| s.status == StepStatus::Incomplete)
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn an_overdue_reference_is_refused_unless_a_reason_is_given() {
+    let dir = temp_dir("overdue");
+    let served = serve(&dir, &[]);
+    let text = std::fs::read_to_string(&served.station).unwrap();
+    let station = dir.join("overdue.yaml");
+    std::fs::write(
+        &station,
+        text.replace("calibration_due: 2099-12-31", "calibration_due: 2020-01-31"),
+    )
+    .unwrap();
+    let (code, out, records) = run(
+        "test-plans/demo-serial.yaml",
+        &station,
+        &dir.join("refused"),
+        &[],
+    );
+    assert_eq!(code, 2);
+    assert!(
+        out.contains("was due for calibration on 2020-01-31"),
+        "{out}"
+    );
+    assert!(records.is_empty(), "nothing is run");
+    let (code, _, records) = run(
+        "test-plans/demo-serial.yaml",
+        &station,
+        &dir.join("allowed"),
+        &[
+            "--allow-overdue-reference",
+            "recalibration booked; checked against REF-2 today",
+        ],
+    );
+    assert_eq!(code, 1);
+    for r in &records {
+        assert!(
+            r.notes
+                .iter()
+                .any(|n| n
+                    .contains("past its calibration due date 2020-01-31: recalibration booked")),
+            "{:?}",
+            r.notes
+        );
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn a_missing_source_stops_the_run_before_any_step() {
+    let dir = temp_dir("nosource");
+    let served = serve(&dir, &[]);
+    let text = std::fs::read_to_string(&served.station).unwrap();
+    let source_line = text
+        .lines()
+        .skip_while(|l| !l.starts_with("source:"))
+        .nth(2)
+        .unwrap()
+        .to_string();
+    assert!(
+        source_line.trim_start().starts_with("port:"),
+        "{source_line}"
+    );
+    let station = dir.join("nosource.yaml");
+    std::fs::write(
+        &station,
+        text.replace(&source_line, "  port: /dev/meterproof-no-source"),
+    )
+    .unwrap();
+    let (code, out, records) = run(
+        "test-plans/demo-serial.yaml",
+        &station,
+        &dir.join("out"),
+        &[],
+    );
+    assert_eq!(code, 3, "{out}");
+    assert!(
+        out.contains("source: cannot open /dev/meterproof-no-source"),
+        "{out}"
+    );
+    assert!(records.is_empty());
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn a_sim_plan_on_a_station_is_refused() {
+    let dir = temp_dir("simplan");
+    let served = serve(&dir, &[]);
+    let (code, out, _) = run(
+        "test-plans/demo.yaml",
+        &served.station,
+        &dir.join("out"),
+        &[],
+    );
+    assert_eq!(code, 2);
+    assert!(out.contains("the plan needs a `text` link"), "{out}");
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn ports_lists_without_libudev() {
+    let output = bin().arg("ports").output().unwrap();
+    assert_eq!(output.status.code(), Some(0));
+    assert!(!output.stdout.is_empty());
+}
