@@ -306,3 +306,9 @@ fn ports_lists_without_libudev() {
     assert_eq!(output.status.code(), Some(0));
     assert!(!output.stdout.is_empty());
 }
+
+#[test]
+fn the_example_station_file_is_valid() {
+    let s = meterproof::bench::station::Station::load(Path::new("test-plans/station-example.yaml")).unwrap();
+    assert_eq!(s.positions.len(), 4);
+}
