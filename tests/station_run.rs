@@ -309,6 +309,7 @@ fn ports_lists_without_libudev() {
 
 #[test]
 fn the_example_station_file_is_valid() {
-    let s = meterproof::bench::station::Station::load(Path::new("test-plans/station-example.yaml")).unwrap();
+    let s = meterproof::bench::station::Station::load(Path::new("test-plans/station-example.yaml"))
+        .unwrap();
     assert_eq!(s.positions.len(), 4);
 }

@@ -76,7 +76,11 @@ fn step_time(positions: usize) -> f64 {
     let start = Instant::now();
     let records = exec::run(&plan, &mut bench, &ctx, &mut Silent);
     let elapsed = start.elapsed().as_secs_f64();
-    assert!(records.iter().all(|r| r.steps[0].checks[0].samples.len() == 11));
+    assert!(
+        records
+            .iter()
+            .all(|r| r.steps[0].checks[0].samples.len() == 11)
+    );
     elapsed
 }
 
@@ -85,7 +89,10 @@ fn main() {
     let one = transactions_per_second(1, 5_000);
     println!("  1 position:   {one:>8.0} transactions/s");
     let sixteen = transactions_per_second(16, 1_000);
-    println!("  16 positions: {sixteen:>8.0} transactions/s in all ({:.0} per position)", sixteen / 16.0);
+    println!(
+        "  16 positions: {sixteen:>8.0} transactions/s in all ({:.0} per position)",
+        sixteen / 16.0
+    );
     let t1 = step_time(1);
     let t16 = step_time(16);
     println!("one step, 1.3 s scheduled, 2 readings per sample, 11 samples:");
