@@ -4,8 +4,11 @@
 //! Everything here is pure: numbers in, numbers out, no I/O, so that each formula is tested
 //! against its published source beside the code.
 
+pub mod classes;
+pub mod fit;
 pub mod stats;
 pub mod tolerance;
+pub mod uncertainty;
 
 pub use stats::Summary;
 pub use tolerance::{Evaluation, evaluate};

@@ -1,0 +1,209 @@
+//! Uncertainty budgets after the GUM (JCGM 100:2008).
+//!
+//! A budget lists its components as standard uncertainties already multiplied by their
+//! sensitivity coefficients (so in the unit of the result), with their degrees of freedom;
+//! combines them as the root sum of squares (uncorrelated inputs, GUM 5.1.2); takes the effective
+//! degrees of freedom by Welch–Satterthwaite (GUM G.4.1) and the coverage factor from Student's t
+//! for a coverage probability of 95.45 % (GUM G.3.2, Table G.2), which is k = 2 for large ν.
+
+use serde::{Deserialize, Serialize};
+use statrs::distribution::{ContinuousCDF, StudentsT};
+
+/// The coverage probability whose normal quantile is exactly 2: 2Φ(2) − 1.
+pub const P_95_45: f64 = 0.954_499_736_103_642;
+
+/// How a component was evaluated.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub enum Evaluation {
+    /// By statistics of repeated observations.
+    A,
+    /// By other means: a specification, a certificate, a resolution.
+    B,
+}
+
+/// One line of a budget.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Component {
+    pub name: String,
+    pub evaluation: Evaluation,
+    /// Standard uncertainty times its sensitivity coefficient, in the unit of the result.
+    pub u: f64,
+    /// Degrees of freedom; absent means infinite (a Type B estimate taken as exact).
+    pub dof: Option<f64>,
+    /// How the figure was obtained ("s/√n, n = 8", "a/√3, a = ...").
+    pub basis: String,
+}
+
+/// A combined and expanded uncertainty with everything needed to redo the sum.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Budget {
+    pub components: Vec<Component>,
+    pub combined: f64,
+    /// Effective degrees of freedom; absent means infinite.
+    pub dof_eff: Option<f64>,
+    pub coverage_probability: f64,
+    pub k: f64,
+    pub expanded: f64,
+}
+
+/// Type A: the standard uncertainty of the mean of n readings, s/√n, with n − 1 degrees of
+/// freedom (GUM 4.2.3).
+pub fn type_a(name: &str, s: f64, n: usize, sensitivity: f64) -> Component {
+    Component {
+        name: name.into(),
+        evaluation: Evaluation::A,
+        u: (sensitivity * s / (n as f64).sqrt()).abs(),
+        dof: Some(n.saturating_sub(1) as f64),
+        basis: format!("s/√n with s = {s:.6e}, n = {n}"),
+    }
+}
+
+/// Type B, rectangular distribution of half-width a: u = a/√3 (GUM 4.3.7).
+pub fn rectangular(name: &str, half_width: f64, sensitivity: f64, basis: &str) -> Component {
+    Component {
+        name: name.into(),
+        evaluation: Evaluation::B,
+        u: (sensitivity * half_width / 3f64.sqrt()).abs(),
+        dof: None,
+        basis: format!("a/√3 with a = {half_width:.6e} ({basis})"),
+    }
+}
+
+/// Type B, resolution δ of a digital indication: u = δ/√12 (GUM F.2.2.1).
+pub fn resolution(name: &str, step: f64, sensitivity: f64) -> Component {
+    Component {
+        name: name.into(),
+        evaluation: Evaluation::B,
+        u: (sensitivity * step / 12f64.sqrt()).abs(),
+        dof: None,
+        basis: format!("δ/√12 with δ = {step:.6e}"),
+    }
+}
+
+/// Welch–Satterthwaite: ν_eff = u_c⁴ / Σ (uᵢ⁴ / νᵢ); components with infinite ν add nothing.
+/// `None` when every component has infinite degrees of freedom.
+pub fn effective_dof(components: &[Component], combined: f64) -> Option<f64> {
+    let denominator: f64 = components
+        .iter()
+        .filter_map(|c| {
+            c.dof.map(|nu| {
+                if nu > 0.0 {
+                    c.u.powi(4) / nu
+                } else {
+                    f64::INFINITY
+                }
+            })
+        })
+        .sum();
+    if denominator == 0.0 {
+        None
+    } else if denominator.is_infinite() {
+        Some(0.0)
+    } else {
+        Some(combined.powi(4) / denominator)
+    }
+}
+
+/// The coverage factor for `dof` degrees of freedom at probability `p`: the two-sided quantile
+/// of Student's t, or of the normal distribution for infinite ν. Fractional ν are used as they
+/// are (the t distribution is defined for them), not rounded down.
+pub fn coverage_factor(dof: Option<f64>, p: f64) -> f64 {
+    let q = 0.5 * (1.0 + p);
+    match dof {
+        Some(nu) if nu >= 1e7 => normal_quantile(q),
+        Some(nu) if nu > 0.0 => StudentsT::new(0.0, 1.0, nu)
+            .map(|t| t.inverse_cdf(q))
+            .unwrap_or(f64::INFINITY),
+        Some(_) => f64::INFINITY,
+        None => normal_quantile(q),
+    }
+}
+
+fn normal_quantile(q: f64) -> f64 {
+    statrs::distribution::Normal::standard().inverse_cdf(q)
+}
+
+impl Budget {
+    /// Combines `components` and expands at 95.45 %.
+    pub fn of(components: Vec<Component>) -> Budget {
+        let combined = components.iter().map(|c| c.u * c.u).sum::<f64>().sqrt();
+        let dof_eff = effective_dof(&components, combined);
+        let k = coverage_factor(dof_eff, P_95_45);
+        Budget {
+            components,
+            combined,
+            dof_eff,
+            coverage_probability: P_95_45,
+            k,
+            expanded: k * combined,
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// GUM (JCGM 100:2008) Table G.2, p = 95.45 %; exact quantiles from the reference-data note
+    /// (tests/data/README.md): t(1) = 13.96773, t(2) = 4.5265367, t(5) = 2.6486494,
+    /// t(10) = 2.2836782, t(20) = 2.1330255, t(50) = 2.0512482; ν = ∞ gives 2.
+    #[test]
+    fn coverage_factors_match_gum_table_g2() {
+        let exact = [
+            (1.0, 13.96773),
+            (2.0, 4.5265367),
+            (5.0, 2.6486494),
+            (10.0, 2.2836782),
+            (20.0, 2.1330255),
+            (50.0, 2.0512482),
+        ];
+        for (nu, t) in exact {
+            let k = coverage_factor(Some(nu), P_95_45);
+            assert!((k - t).abs() < 2e-5, "ν = {nu}: {k} vs {t}");
+        }
+        // The table's two-decimal figures: ν = 3: 3.31, 4: 2.87.
+        assert!((coverage_factor(Some(3.0), P_95_45) - 3.31).abs() < 0.005);
+        assert!((coverage_factor(Some(4.0), P_95_45) - 2.87).abs() < 0.005);
+        assert!((coverage_factor(None, P_95_45) - 2.0).abs() < 1e-9);
+    }
+
+    /// Student's t at 95 % (GUM Table G.2): t(10) = 2.2281389, t(19) = 2.0930241.
+    #[test]
+    fn coverage_factors_at_95_percent() {
+        assert!((coverage_factor(Some(10.0), 0.95) - 2.2281389).abs() < 1e-6);
+        assert!((coverage_factor(Some(19.0), 0.95) - 2.0930241).abs() < 1e-6);
+    }
+
+    /// GUM G.4.1 example: relative standard uncertainties 0.25 %, 0.57 %, 0.82 % with ν = 9, 4,
+    /// 14 give u_c = 1.0295 % and ν_eff = 18.9987 (reference-data note).
+    #[test]
+    fn welch_satterthwaite_matches_gum_g41() {
+        let c = |u: f64, nu: f64| Component {
+            name: "x".into(),
+            evaluation: Evaluation::A,
+            u,
+            dof: Some(nu),
+            basis: String::new(),
+        };
+        let b = Budget::of(vec![c(0.25, 9.0), c(0.57, 4.0), c(0.82, 14.0)]);
+        assert!((b.combined - 1.0295).abs() < 5e-5, "{}", b.combined);
+        assert!(
+            (b.dof_eff.unwrap() - 18.9987).abs() < 5e-4,
+            "{:?}",
+            b.dof_eff
+        );
+        // U95 = t95(19)·u_c ≈ 2.15 % (GUM rounds to 2.2 %).
+        let u95 = coverage_factor(b.dof_eff, 0.95) * b.combined;
+        assert!((u95 - 2.15).abs() < 0.01, "{u95}");
+    }
+
+    #[test]
+    fn type_b_shapes() {
+        // a/√3 and δ/√12 (GUM 4.3.7 and F.2.2.1).
+        assert!((rectangular("r", 3f64.sqrt(), 1.0, "").u - 1.0).abs() < 1e-12);
+        assert!((resolution("d", 12f64.sqrt(), 1.0).u - 1.0).abs() < 1e-12);
+        let only_b = Budget::of(vec![rectangular("r", 0.3, 1.0, "")]);
+        assert_eq!(only_b.dof_eff, None);
+        assert!((only_b.k - 2.0).abs() < 1e-9);
+    }
+}
