@@ -218,7 +218,7 @@ pub fn plan_summary(plan: &Plan) -> String {
 
 fn tolerance_text(t: &Tolerance, dim: Dimension) -> String {
     let v = |x: f64| report::number(x, dim);
-    match *t {
+    match t.clone() {
         Tolerance::PercentOfReading { percent } => format!("±{percent} %"),
         Tolerance::PercentPlusAbsolute { percent, absolute } => {
             format!("±({percent} % + {})", v(absolute))
@@ -230,6 +230,8 @@ fn tolerance_text(t: &Tolerance, dim: Dimension) -> String {
         } => format!("±({percent} % + {range_percent} % of {})", v(range)),
         Tolerance::Band { half_width } => format!("±{}", v(half_width)),
         Tolerance::AtMost { bound } => format!("≤ {}", v(bound)),
+        Tolerance::AtLeast { bound } => format!("≥ {}", v(bound)),
+        Tolerance::Class { percent, basis } => format!("±{percent} % ({basis})"),
     }
 }
 

@@ -53,6 +53,8 @@ pub struct PlanRef {
     pub sha256: String,
     pub model: String,
     pub class: String,
+    #[serde(default)]
+    pub decision: crate::plan::DecisionRule,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -173,6 +175,12 @@ pub struct CheckRecord {
     pub measured: Option<f64>,
     pub reference: Option<f64>,
     pub evaluation: Option<Evaluation>,
+    /// The uncertainty budget of the error.
+    #[serde(default)]
+    pub uncertainty: Option<crate::metrology::uncertainty::Budget>,
+    /// The decision rule applied, its limits, and the outcome.
+    #[serde(default)]
+    pub decision: Option<crate::metrology::decision::Decision>,
     pub verdict: CheckVerdict,
     pub note: Option<String>,
 }
@@ -184,6 +192,22 @@ pub enum WriteError {
     Io { path: PathBuf, source: io::Error },
     #[error("cannot serialise the record: {0}")]
     Serialise(#[from] serde_json::Error),
+}
+
+impl CheckRecord {
+    /// Whether the result lies within its expanded uncertainty of the tolerance limit.
+    pub fn marginal(&self) -> bool {
+        self.decision.as_ref().is_some_and(|d| d.marginal)
+    }
+
+    /// The verdict in words: "pass", "pass, marginal", "FAIL, marginal", "FAIL" or
+    /// "not evaluated" ("marginal": within U of the tolerance limit).
+    pub fn verdict_words(&self) -> String {
+        match (self.verdict, self.marginal()) {
+            (CheckVerdict::NotEvaluated, _) | (_, false) => self.verdict.word().to_string(),
+            (v, true) => format!("{}, marginal", v.word()),
+        }
+    }
 }
 
 impl UnitRecord {

@@ -62,13 +62,16 @@ fn a_value_of_the_wrong_dimension_names_what_was_expected() {
 fn several_mistakes_are_reported_in_one_pass() {
     let text = GOOD
         .replace("settle: 2 s", "settle: 2 parsecs")
-        .replace("{ percent: 0.5 % } }\n      - { quantity: active_power, tolerance: { percent: 1.0 % } }\n      - { quantity: frequency", "{ percent: 0.5 A } }\n      - { quantity: active_power, tolerance: { percent: 1.0 % } }\n      - { quantity: frequency")
+        .replace(
+            "{ quantity: voltage, tolerance: { percent: 0.5 % } }",
+            "{ quantity: voltage, tolerance: { percent: 0.5 A } }",
+        )
         .replace("quantity: frequency", "quantity: frequence");
     let e = errors(&text);
     let paths: Vec<&str> = e.0.iter().map(|x| x.path.as_str()).collect();
     assert!(paths.contains(&"steps[0].settle"), "{e}");
     assert!(
-        paths.contains(&"steps[2].checks[1].tolerance.percent"),
+        paths.contains(&"steps[2].checks[0].tolerance.percent"),
         "{e}"
     );
     assert!(paths.contains(&"steps[2].checks[3].quantity"), "{e}");

@@ -146,6 +146,9 @@ pub struct InstrumentInfo {
     /// Accuracy specification as the data sheet states it.
     #[serde(default)]
     pub accuracy: Option<String>,
+    /// The instrument's range for each quantity (for the range term of its accuracy), base units.
+    #[serde(default)]
+    pub ranges: std::collections::BTreeMap<String, f64>,
 }
 
 /// The bench as recorded: which station, which reference.

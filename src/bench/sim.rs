@@ -70,6 +70,24 @@ use std::sync::{Arc, Mutex, MutexGuard};
 pub const SIM_MODEL: &str = "TM-16";
 pub const SIM_FIRMWARE: &str = "2.1.4";
 
+/// The simulated reference meter's data-sheet accuracy and ranges.
+pub const SIM_REFERENCE_ACCURACY: &str = "0.01 % of reading + 0.005 % of range";
+
+pub fn sim_reference_ranges() -> std::collections::BTreeMap<String, f64> {
+    [
+        (Quantity::Voltage, 300.0),
+        (Quantity::Current, 20.0),
+        (Quantity::ActivePower, 6000.0),
+        (Quantity::ReactivePower, 6000.0),
+        (Quantity::ApparentPower, 6000.0),
+        (Quantity::PowerFactor, 1.0),
+        (Quantity::Frequency, 100.0),
+    ]
+    .into_iter()
+    .map(|(q, r)| (q.name().to_string(), r))
+    .collect()
+}
+
 /// Readings below this current are suppressed to zero power by the simulated firmware (its
 /// no-load threshold), as meters do to keep the energy register from creeping.
 const NO_LOAD_THRESHOLD_A: f64 = 0.010;
@@ -414,7 +432,8 @@ impl SimBench {
                     description: "simulated true-RMS reference meter, ±0.02 % typical".into(),
                     certificate: None,
                     calibration_due: None,
-                    accuracy: Some("0.01 % of reading + 0.005 % of range".into()),
+                    accuracy: Some(SIM_REFERENCE_ACCURACY.into()),
+                    ranges: sim_reference_ranges(),
                 },
                 source: "simulated lamp-bank load with switch-on surge".into(),
             },
@@ -479,6 +498,10 @@ impl DutLink for SimLink {
 
     fn read(&mut self, quantity: Quantity, _channel: &str) -> Result<f64, LinkError> {
         Ok(lock(&self.world).read(self.index, quantity))
+    }
+
+    fn resolution(&self, quantity: Quantity) -> Option<f64> {
+        Some(1.0 / front_end(quantity).gain)
     }
 
     fn describe(&self) -> String {

@@ -69,7 +69,7 @@ impl SimStation {
             self.source.path
         ));
         s.push_str(&format!(
-            "reference:\n  id: SIM-REF-1\n  description: simulated true-RMS reference meter\n  certificate: SIM-0001\n  calibration_due: 2099-12-31\n  accuracy: 0.01 % of reading + 0.005 % of range\n  read:\n    kind: scpi\n    port: {}\n    timeout: 2 s\n    queries:\n",
+            "reference:\n  id: SIM-REF-1\n  description: simulated true-RMS reference meter\n  certificate: SIM-0001\n  calibration_due: 2099-12-31\n  accuracy: 0.01 % of reading + 0.005 % of range\n  ranges: {{ voltage: 300 V, current: 20 A, active_power: 6 kW, reactive_power: 6 kvar, apparent_power: 6 kVA, power_factor: 1, frequency: 100 Hz }}\n  read:\n    kind: scpi\n    port: {}\n    timeout: 2 s\n    queries:\n",
             self.reference.path
         ));
         for (q, query) in REFERENCE_QUERIES {

@@ -135,6 +135,8 @@ struct RawReference {
     calibration_due: Option<Text>,
     #[serde(default)]
     accuracy: Option<Text>,
+    #[serde(default)]
+    ranges: BTreeMap<String, Text>,
     read: RawReferenceRead,
 }
 
@@ -348,6 +350,42 @@ fn reference(doc: &mut Document, raw: &RawReference) -> Option<ReferenceSpec> {
             })
         }
     };
+    let accuracy = raw.accuracy.as_ref().and_then(|t| {
+        crate::metrology::accuracy::Accuracy::parse(&t.0)
+            .map_err(|e| doc.error("reference.accuracy", e))
+            .ok()
+    });
+    let mut ranges = BTreeMap::new();
+    for (name, text) in &raw.ranges {
+        let path = format!("reference.ranges.{name}");
+        match Quantity::from_name(name) {
+            Some(q) => {
+                if let Some(v) = doc.value(&path, text, q.dimension()) {
+                    ranges.insert(name.clone(), v);
+                }
+            }
+            None => doc.error(&path, format!("unknown quantity \"{name}\"")),
+        }
+    }
+    if let Some(a) = accuracy
+        && a.range_percent != 0.0
+    {
+        let ReferenceRead::Scpi { queries, .. } = read.as_ref()?;
+        {
+            for (q, _) in queries {
+                if !ranges.contains_key(q.name()) {
+                    doc.error(
+                        "reference.ranges",
+                        format!(
+                            "the accuracy has a range term, so the range for {} is needed (reference.ranges.{})",
+                            q.name(),
+                            q.name()
+                        ),
+                    );
+                }
+            }
+        }
+    }
     Some(ReferenceSpec {
         info: InstrumentInfo {
             id: id?,
@@ -359,6 +397,7 @@ fn reference(doc: &mut Document, raw: &RawReference) -> Option<ReferenceSpec> {
             certificate: raw.certificate.as_ref().map(|t| t.0.clone()),
             calibration_due: raw.calibration_due.as_ref().map(|t| t.0.trim().to_string()),
             accuracy: raw.accuracy.as_ref().map(|t| t.0.clone()),
+            ranges,
         },
         calibration_due: due?,
         read: read?,
@@ -446,6 +485,7 @@ reference:
   certificate: C-1
   calibration_due: 2027-03-31
   accuracy: 0.05 % of reading + 0.01 % of range
+  ranges: { current: 20 A }
   read:
     kind: scpi
     port: /dev/ttyUSB9

@@ -1,18 +1,42 @@
 //! From a check's samples and reference to its verdict, and from the steps to the unit's.
 
 use crate::bench::ReferenceReading;
+use crate::metrology::accuracy::Accuracy;
+use crate::metrology::decision::{TUR_WARNING_BELOW, decide};
+use crate::metrology::uncertainty::{self, Budget};
 use crate::metrology::{Summary, evaluate};
-use crate::plan::{Check, Step};
+use crate::plan::{Check, DecisionRule, Quantity, Step};
 use crate::record::{CheckRecord, CheckVerdict, StepRecord, StepStatus, UnitStatus, UnitVerdict};
+use std::collections::BTreeMap;
 
-/// Fills in the statistics, error and verdict of one check.
-pub(super) fn evaluate_check(
-    check: &Check,
-    record: &mut CheckRecord,
-    step: &Step,
-    reference: Option<Result<ReferenceReading, String>>,
-    window: (f64, f64),
-) {
+/// What every check of a run is judged with.
+pub(super) struct Judge<'a> {
+    pub rule: DecisionRule,
+    /// The reference instrument's accuracy specification, when the station states one.
+    pub accuracy: Option<Accuracy>,
+    pub ranges: &'a BTreeMap<String, f64>,
+}
+
+/// What one check is evaluated from.
+pub(super) struct CheckInputs<'a> {
+    pub check: &'a Check,
+    pub step: &'a Step,
+    pub reference: Option<Result<ReferenceReading, String>>,
+    /// Bench times of the reference's window.
+    pub window: (f64, f64),
+    /// The unit's resolution for the quantity, where the link knows it.
+    pub resolution: Option<f64>,
+}
+
+/// Fills in the statistics, error, uncertainty, decision and verdict of one check.
+pub(super) fn evaluate_check(input: CheckInputs, record: &mut CheckRecord, judge: &Judge) {
+    let CheckInputs {
+        check,
+        step,
+        reference,
+        window,
+        resolution,
+    } = input;
     let values: Vec<f64> = record.samples.iter().map(|s| s.value).collect();
     // The spread of a register's contents says nothing; its advance is the measurement.
     record.summary = if check.quantity.is_register() {
@@ -38,11 +62,10 @@ pub(super) fn evaluate_check(
         ));
         return;
     };
+    let share = register_share(&record.samples, window);
     let reference_value = match reference {
         None => None,
-        Some(Ok(r)) if check.quantity.is_register() => {
-            Some(r.value * register_share(&record.samples, window))
-        }
+        Some(Ok(r)) if check.quantity.is_register() => Some(r.value * share),
         Some(Ok(r)) => Some(r.value),
         Some(Err(e)) => {
             record.note = Some(format!("no reference: {e}"));
@@ -50,22 +73,172 @@ pub(super) fn evaluate_check(
         }
     };
     record.reference = reference_value;
-    match evaluate(
+    let evaluation = match evaluate(
         &check.tolerance,
         measured,
         reference_value,
         check.quantity.unit(),
     ) {
-        Ok(e) => {
-            record.verdict = if e.within {
-                CheckVerdict::Pass
-            } else {
-                CheckVerdict::Fail
-            };
-            record.evaluation = Some(e);
+        Ok(e) => e,
+        Err(e) => {
+            record.note = Some(e.to_string());
+            return;
         }
-        Err(e) => record.note = Some(e.to_string()),
+    };
+    let span_s = (window.1 - window.0) * share;
+    let budget = budget(
+        check,
+        record,
+        measured,
+        reference_value,
+        resolution,
+        judge,
+        span_s,
+    );
+    let decision = decide(&evaluation, Some(budget.expanded), judge.rule);
+    record.verdict = if decision.accepted {
+        CheckVerdict::Pass
+    } else {
+        CheckVerdict::Fail
+    };
+    if decision.low_tur() {
+        record.note = Some(format!(
+            "test uncertainty ratio {:.1}:1 is below {}:1",
+            decision.tur.unwrap_or(0.0),
+            TUR_WARNING_BELOW
+        ));
     }
+    record.evaluation = Some(evaluation);
+    record.uncertainty = Some(budget);
+    record.decision = Some(decision);
+}
+
+/// The uncertainty budget of a check's error, in the error's unit (GUM): the spread of the
+/// unit's readings (Type A), its resolution and the reference's accuracy (Type B, rectangular).
+fn budget(
+    check: &Check,
+    record: &CheckRecord,
+    measured: f64,
+    reference: Option<f64>,
+    resolution: Option<f64>,
+    judge: &Judge,
+    span_s: f64,
+) -> Budget {
+    let relative = check.tolerance.is_relative();
+    // Sensitivities of the error to the unit's value and to the reference.
+    let (c_unit, c_ref) = match reference {
+        Some(r) if relative => (100.0 / r, -100.0 * measured / (r * r)),
+        Some(_) => (1.0, -1.0),
+        None => (1.0, 0.0),
+    };
+    let mut components = Vec::new();
+    let mut notes = Vec::new();
+    if let Some(s) = record.summary
+        && let Some(sd) = s.std_dev
+    {
+        components.push(uncertainty::type_a(
+            "repeatability of the unit's readings",
+            sd,
+            s.count,
+            c_unit,
+        ));
+    }
+    match resolution {
+        // A register's advance is the difference of two quantised readings: δ·√2 / √12.
+        Some(d) if check.quantity.is_register() => components.push(uncertainty::resolution(
+            "resolution of the unit's register (two readings)",
+            d * 2f64.sqrt(),
+            c_unit,
+        )),
+        Some(d) => components.push(uncertainty::resolution(
+            "resolution of the unit's reading",
+            d,
+            c_unit,
+        )),
+        None => notes.push("the link does not state the unit's resolution: not included".into()),
+    }
+    if let Some(r) = reference {
+        match reference_half_width(check, r, judge, span_s) {
+            Ok((a, basis)) => components.push(uncertainty::rectangular(
+                "accuracy of the reference instrument",
+                a,
+                c_ref,
+                &basis,
+            )),
+            Err(why) => notes.push(format!("reference accuracy not included: {why}")),
+        }
+    }
+    let mut b = Budget::of(components);
+    b.notes = notes;
+    b
+}
+
+/// The half-width of the reference's error at `reading`, from its specification.
+fn reference_half_width(
+    check: &Check,
+    reading: f64,
+    judge: &Judge,
+    span_s: f64,
+) -> Result<(f64, String), String> {
+    let accuracy = judge
+        .accuracy
+        .ok_or("the station states no accuracy for the reference")?;
+    if check.quantity.is_register() {
+        // Energy from the reference's power reading over the window.
+        let hours = span_s / 3600.0;
+        let power = if hours > 0.0 { reading / hours } else { 0.0 };
+        let range = judge.ranges.get(Quantity::ActivePower.name()).copied();
+        let a = accuracy.half_width(power, range)? * hours;
+        return Ok((a, format!("power specification times {span_s:.3} s")));
+    }
+    let range = judge.ranges.get(check.quantity.name()).copied();
+    let a = accuracy.half_width(reading, range)?;
+    Ok((
+        a,
+        format!(
+            "{} % of reading + {} % of range {}",
+            accuracy.reading_percent,
+            accuracy.range_percent,
+            range.map_or("-".into(), |r| r.to_string())
+        ),
+    ))
+}
+
+/// "error −3.676 % ± 0.092 % (U) is outside the acceptance limit ±0.908 % (tolerance ±1 %, guard
+/// band 1 U)".
+pub(crate) fn failure_text(c: &CheckRecord) -> String {
+    use crate::metrology::tolerance::Sense;
+    let (Some(e), Some(d)) = (&c.evaluation, &c.decision) else {
+        return "failed".into();
+    };
+    let with_unit = |x: f64| {
+        let t = format!("{x:.4}");
+        format!(
+            "{} {}",
+            t.trim_end_matches('0').trim_end_matches('.'),
+            e.error_unit
+        )
+    };
+    let (what, bound, value) = match e.sense {
+        Sense::PlusMinus => {
+            let sign = if e.error < 0.0 { "−" } else { "+" };
+            ("error", "±", format!("{sign}{}", with_unit(e.error.abs())))
+        }
+        Sense::AtMost => ("reading", "≤ ", with_unit(e.error)),
+        Sense::AtLeast => ("reading", "≥ ", with_unit(e.error)),
+    };
+    let u = d
+        .expanded_uncertainty
+        .map_or(String::new(), |u| format!(" (U = {})", with_unit(u)));
+    let guard = match d.rule {
+        DecisionRule::Simple => String::new(),
+        DecisionRule::Guarded { multiple } => format!(", guard band {multiple} U"),
+    };
+    format!(
+        "{what} {value}{u} is outside the acceptance limit {bound}{} (tolerance {bound}{}{guard})",
+        with_unit(d.acceptance_limit),
+        with_unit(d.tolerance_limit)
+    )
 }
 
 /// The share of the reference's window that a unit's register readings span. The reference
@@ -99,18 +272,13 @@ pub(super) fn unit_verdict(steps: &[StepRecord]) -> UnitVerdict {
             match c.verdict {
                 CheckVerdict::Fail => {
                     failed = true;
-                    if let Some(e) = &c.evaluation {
-                        reasons.push(format!(
-                            "step {}: {} on {} is {:+.4} {}, outside ±{:.4} {}",
-                            step.id,
-                            c.quantity.name(),
-                            c.channel,
-                            e.error,
-                            e.error_unit,
-                            e.limit,
-                            e.error_unit
-                        ));
-                    }
+                    reasons.push(format!(
+                        "step {}: {} on {}: {}",
+                        step.id,
+                        c.quantity.name(),
+                        c.channel,
+                        failure_text(c)
+                    ));
                 }
                 CheckVerdict::NotEvaluated if step.status == StepStatus::Done => {
                     unfinished = true;

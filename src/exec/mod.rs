@@ -109,6 +109,17 @@ pub fn run(
             }),
         }
     }
+    let ranges = bench.station.reference.ranges.clone();
+    let judge = decide::Judge {
+        rule: plan.decision,
+        accuracy: bench
+            .station
+            .reference
+            .accuracy
+            .as_deref()
+            .and_then(|a| crate::metrology::accuracy::Accuracy::parse(a).ok()),
+        ranges: &ranges,
+    };
     let mut source_failure: Option<String> = None;
     for (index, step) in plan.steps.iter().enumerate() {
         if let Some(reason) = &source_failure {
@@ -134,7 +145,7 @@ pub fn run(
         }
         let started_at_s = bench.clock.now_s();
         bench.clock.sleep_s(step.settle_s);
-        run_step(step, started_at_s, bench, &mut units);
+        run_step(step, started_at_s, bench, &mut units, &judge);
         reporter.event(&Event::StepFinished {
             index,
             step,
@@ -229,6 +240,7 @@ fn identify(
                 sha256: plan.source.sha256.clone(),
                 model: plan.product.model.clone(),
                 class: plan.ratings.class.clone(),
+                decision: plan.decision,
             },
             lot: ctx.lot.clone(),
             operator: ctx.operator.clone(),
@@ -305,12 +317,14 @@ fn empty_step(step: &Step, started_at_s: Option<f64>) -> StepRecord {
                 quantity: c.quantity,
                 channel: c.channel.clone(),
                 unit: c.quantity.unit().to_string(),
-                tolerance: c.tolerance,
+                tolerance: c.tolerance.clone(),
                 samples: Vec::new(),
                 summary: None,
                 measured: None,
                 reference: None,
                 evaluation: None,
+                uncertainty: None,
+                decision: None,
                 verdict: CheckVerdict::NotEvaluated,
                 note: None,
             })
@@ -333,7 +347,13 @@ fn readings_of(step: &Step) -> Vec<(Quantity, String)> {
 }
 
 /// Samples every active unit, takes the reference readings and evaluates the checks.
-fn run_step(step: &Step, started_at_s: f64, bench: &mut Bench, units: &mut [Unit]) {
+fn run_step(
+    step: &Step,
+    started_at_s: f64,
+    bench: &mut Bench,
+    units: &mut [Unit],
+    judge: &decide::Judge,
+) {
     let wanted = readings_of(step);
     let slots: Vec<sampling::Slot> = bench
         .positions
@@ -368,7 +388,14 @@ fn run_step(step: &Step, started_at_s: f64, bench: &mut Bench, units: &mut [Unit
                 .iter()
                 .find(|(q, _)| *q == check.quantity)
                 .map(|(_, r)| r.clone());
-            decide::evaluate_check(check, check_record, step, reference, window);
+            let input = decide::CheckInputs {
+                check,
+                step,
+                reference,
+                window,
+                resolution: bench.positions[u].link.resolution(check.quantity),
+            };
+            decide::evaluate_check(input, check_record, judge);
         }
         let missing_reference: Vec<String> = references
             .iter()

@@ -58,6 +58,11 @@ pub trait DutLink: Send {
         })
     }
 
+    /// The smallest step of the unit's reading of `quantity`, base units, where known.
+    fn resolution(&self, _quantity: Quantity) -> Option<f64> {
+        None
+    }
+
     /// A short description for records: "sim position 3", "/dev/ttyUSB0 @ 115200".
     fn describe(&self) -> String;
 }

@@ -137,6 +137,13 @@ impl<W: Wire> DutLink for TextLink<W> {
         self.write_named(name, channel, value)
     }
 
+    fn resolution(&self, quantity: Quantity) -> Option<f64> {
+        // One count of the front end, converted as the readings are.
+        self.spec
+            .request_for(quantity)
+            .map(|q| (q.unit_factor / q.gain).abs())
+    }
+
     fn describe(&self) -> String {
         format!(
             "{} (text link, {} baud)",

@@ -239,10 +239,11 @@ pub fn limit(
             return Ok(ClassLimit {
                 percent: row.limits[class],
                 basis: format!(
-                    "{}:{} class {class}, {}{provenance}",
+                    "{}:{} class {class}, {}{provenance}; {}",
                     table.standard,
                     table.edition,
-                    row_text(row, table.base)
+                    row_text(row, table.base),
+                    table.table
                 ),
             });
         }

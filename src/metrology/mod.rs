@@ -4,7 +4,9 @@
 //! Everything here is pure: numbers in, numbers out, no I/O, so that each formula is tested
 //! against its published source beside the code.
 
+pub mod accuracy;
 pub mod classes;
+pub mod decision;
 pub mod fit;
 pub mod stats;
 pub mod tolerance;

@@ -14,11 +14,24 @@ pub struct Evaluation {
     pub error: f64,
     /// `"%"` or the quantity's unit.
     pub error_unit: String,
-    /// The largest error allowed, same unit as `error` (a half-width; the limit is ±limit, or
-    /// 0..limit for upper bounds).
+    /// The tolerance limit, same unit as `error`: a half-width (±limit), an upper bound or a
+    /// lower bound, as `sense` says.
     pub limit: f64,
-    /// Whether the error lies within the limit (the limit itself included).
+    pub sense: Sense,
+    /// Whether the error lies within the tolerance limit (the limit itself included).
     pub within: bool,
+}
+
+/// Which side of its limit an error must lie on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Sense {
+    /// |error| ≤ limit.
+    PlusMinus,
+    /// |reading| ≤ limit.
+    AtMost,
+    /// |reading| ≥ limit.
+    AtLeast,
 }
 
 /// Why an error could not be computed.
@@ -53,10 +66,11 @@ pub fn evaluate(
             error,
             error_unit: "%".into(),
             limit,
+            sense: Sense::PlusMinus,
             within: error.abs() <= limit,
         })
     };
-    match *tolerance {
+    match tolerance.clone() {
         Tolerance::PercentOfReading { percent } => relative(&|_| percent),
         // An absolute term a is a percentage 100·a/|ref| of this reading.
         Tolerance::PercentPlusAbsolute { percent, absolute } => {
@@ -74,6 +88,7 @@ pub fn evaluate(
                 error,
                 error_unit: unit.into(),
                 limit: half_width,
+                sense: Sense::PlusMinus,
                 within: error.abs() <= half_width,
             })
         }
@@ -82,8 +97,17 @@ pub fn evaluate(
             error: measured.abs(),
             error_unit: unit.into(),
             limit: bound,
+            sense: Sense::AtMost,
             within: measured.abs() <= bound,
         }),
+        Tolerance::AtLeast { bound } => Ok(Evaluation {
+            error: measured.abs(),
+            error_unit: unit.into(),
+            limit: bound,
+            sense: Sense::AtLeast,
+            within: measured.abs() >= bound,
+        }),
+        Tolerance::Class { percent, .. } => relative(&|_| percent),
     }
 }
 

@@ -44,6 +44,9 @@ pub struct Budget {
     pub coverage_probability: f64,
     pub k: f64,
     pub expanded: f64,
+    /// What the budget leaves out, and why.
+    #[serde(default)]
+    pub notes: Vec<String>,
 }
 
 /// Type A: the standard uncertainty of the mean of n readings, s/√n, with n − 1 degrees of
@@ -136,6 +139,7 @@ impl Budget {
             coverage_probability: P_95_45,
             k,
             expanded: k * combined,
+            notes: Vec::new(),
         }
     }
 }

@@ -30,9 +30,21 @@ pub struct Plan {
     pub product: Product,
     pub ratings: Ratings,
     pub link: LinkSpec,
+    pub decision: DecisionRule,
     pub steps: Vec<Step>,
     #[serde(skip)]
     pub source: PlanSource,
+}
+
+/// How a measured error and its uncertainty become a verdict (ILAC-G8:09/2019).
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, serde::Deserialize)]
+#[serde(tag = "rule", rename_all = "snake_case")]
+pub enum DecisionRule {
+    /// Accept within the tolerance limit (guard band w = 0).
+    #[default]
+    Simple,
+    /// Accept within the tolerance limit less a guard band w = multiple · U.
+    Guarded { multiple: f64 },
 }
 
 /// The file a plan was read from, kept so that a record names exactly what it was tested against.
@@ -64,6 +76,17 @@ pub struct Ratings {
     pub max_current: f64,
     pub frequency: f64,
     pub class: String,
+    /// Class for reactive energy, if the meter has one.
+    pub reactive_class: Option<String>,
+    /// Itr and Imin (EN 50470-3 classes).
+    pub transitional_current: Option<f64>,
+    pub minimum_current: Option<f64>,
+    /// Meter constant k, impulses per kWh.
+    pub meter_constant: Option<f64>,
+    /// Number of measuring elements m.
+    pub elements: u32,
+    /// Current-sense shunt, ohms.
+    pub shunt: Option<f64>,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
@@ -121,6 +144,23 @@ pub struct Step {
     /// Seconds between samples.
     pub interval_s: f64,
     pub checks: Vec<Check>,
+    /// A test whose load, duration and limit the plan derives from the class tables.
+    pub special: Option<SpecialTest>,
+}
+
+/// The special tests of the standards, with the figures derived for them.
+#[derive(Debug, Clone, PartialEq, Serialize, serde::Deserialize)]
+#[serde(tag = "test", rename_all = "snake_case")]
+pub enum SpecialTest {
+    /// No-load (creep): no current, the register may advance by at most one pulse over the
+    /// duration the standard's formula gives.
+    NoLoad {
+        minutes: f64,
+        allowance_wh: f64,
+        basis: String,
+    },
+    /// Starting: at the class's starting current the register must advance.
+    Starting { current: f64, basis: String },
 }
 
 impl Step {
@@ -273,7 +313,7 @@ pub struct Check {
 }
 
 /// How far a reading may be from the reference.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, serde::Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, serde::Deserialize)]
 #[serde(tag = "kind", rename_all = "snake_case")]
 pub enum Tolerance {
     /// ± percent of the reference value.
@@ -290,6 +330,10 @@ pub enum Tolerance {
     Band { half_width: f64 },
     /// The magnitude of the reading is at most this, in the quantity's unit (no-load steps).
     AtMost { bound: f64 },
+    /// ± the accuracy class's limit at this step's load, looked up in the class tables.
+    Class { percent: f64, basis: String },
+    /// The magnitude of the reading is at least this (a register that must advance).
+    AtLeast { bound: f64 },
 }
 
 impl Tolerance {
@@ -300,11 +344,12 @@ impl Tolerance {
             Tolerance::PercentOfReading { .. }
                 | Tolerance::PercentPlusAbsolute { .. }
                 | Tolerance::PercentPlusRange { .. }
+                | Tolerance::Class { .. }
         )
     }
 
     pub fn needs_reference(&self) -> bool {
-        !matches!(self, Tolerance::AtMost { .. })
+        !matches!(self, Tolerance::AtMost { .. } | Tolerance::AtLeast { .. })
     }
 }
 

@@ -54,7 +54,17 @@ pub struct RawPlan {
     pub link: serde_yaml::Value,
     #[serde(default)]
     pub defaults: RawDefaults,
+    #[serde(default)]
+    pub decision: Option<RawDecision>,
     pub steps: Vec<serde_yaml::Value>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawDecision {
+    pub rule: Text,
+    #[serde(default)]
+    pub guard_band: Option<Text>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -77,6 +87,18 @@ pub struct RawRatings {
     pub max_current: Text,
     pub frequency: Text,
     pub class: Text,
+    #[serde(default)]
+    pub reactive_class: Option<Text>,
+    #[serde(default)]
+    pub transitional_current: Option<Text>,
+    #[serde(default)]
+    pub minimum_current: Option<Text>,
+    #[serde(default)]
+    pub meter_constant: Option<Text>,
+    #[serde(default)]
+    pub elements: Option<Text>,
+    #[serde(default)]
+    pub shunt: Option<Text>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -184,6 +206,8 @@ pub struct RawStep {
     pub id: Text,
     #[serde(default)]
     pub description: Option<Text>,
+    #[serde(default)]
+    pub special: Option<Text>,
     pub load: RawLoad,
     #[serde(default)]
     pub settle: Option<Text>,
@@ -234,4 +258,6 @@ pub struct RawTolerance {
     pub within: Option<Text>,
     #[serde(default)]
     pub at_most: Option<Text>,
+    #[serde(default)]
+    pub class: Option<Text>,
 }

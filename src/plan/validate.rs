@@ -4,9 +4,10 @@ use super::locate::{Locations, Position};
 use super::raw::{RawCheck, RawLink, RawLoad, RawPlan, RawStep, RawTolerance, Text};
 use super::units::{self, Dimension};
 use super::{
-    BaseCurrent, Check, LinkSpec, Load, Plan, PlanSource, Product, Quantity, Ratings, Step,
-    Tolerance,
+    BaseCurrent, Check, DecisionRule, LinkSpec, Load, Plan, PlanSource, Product, Quantity, Ratings,
+    SpecialTest, Step, Tolerance,
 };
+use crate::metrology::classes;
 use std::collections::HashSet;
 use std::fmt;
 
@@ -307,6 +308,7 @@ fn meaning(
     if raw_steps.is_empty() {
         ctx.error("steps", "a plan needs at least one step");
     }
+    let decision = decision(ctx, raw.decision.as_ref());
     let (ratings, link) = (ratings?, link?);
     let mut seen_ids = HashSet::new();
     let mut steps = Vec::new();
@@ -332,9 +334,50 @@ fn meaning(
         product: product?,
         ratings,
         link,
+        decision: decision?,
         steps,
         source: PlanSource::default(),
     })
+}
+
+fn decision(ctx: &mut Ctx, raw: Option<&super::raw::RawDecision>) -> Option<DecisionRule> {
+    let Some(raw) = raw else {
+        return Some(DecisionRule::Simple);
+    };
+    match (raw.rule.0.trim(), &raw.guard_band) {
+        ("simple", None) => Some(DecisionRule::Simple),
+        ("simple", Some(_)) => {
+            ctx.error("decision.guard_band", "simple acceptance has no guard band");
+            None
+        }
+        ("guarded", band) => {
+            let text = band.as_ref().map_or("1 U", |t| t.0.trim());
+            let multiple = text.strip_suffix('U').map(str::trim).map(|n| {
+                if n.is_empty() {
+                    Some(1.0)
+                } else {
+                    n.parse::<f64>().ok()
+                }
+            });
+            match multiple.flatten() {
+                Some(m) if m > 0.0 && m.is_finite() => Some(DecisionRule::Guarded { multiple: m }),
+                _ => {
+                    ctx.error(
+                        "decision.guard_band",
+                        format!("expected a multiple of the expanded uncertainty, such as \"1 U\" or \"0.5 U\", got \"{text}\""),
+                    );
+                    None
+                }
+            }
+        }
+        (other, _) => {
+            ctx.error(
+                "decision.rule",
+                format!("unknown decision rule \"{other}\": use simple or guarded"),
+            );
+            None
+        }
+    }
 }
 
 fn product(ctx: &mut Ctx, raw: &RawPlan) -> Option<Product> {
@@ -415,6 +458,52 @@ fn ratings(ctx: &mut Ctx, raw: &RawPlan) -> Option<Ratings> {
             "the maximum current is below the basic/reference current",
         );
     }
+    let transitional_current = ctx
+        .optional_value(
+            "ratings.transitional_current",
+            r.transitional_current.as_ref(),
+            Dimension::Current,
+        )
+        .flatten();
+    let minimum_current = ctx
+        .optional_value(
+            "ratings.minimum_current",
+            r.minimum_current.as_ref(),
+            Dimension::Current,
+        )
+        .flatten();
+    let shunt = ctx
+        .optional_value("ratings.shunt", r.shunt.as_ref(), Dimension::Resistance)
+        .flatten();
+    let meter_constant = r.meter_constant.as_ref().and_then(|t| {
+        let number = t.0.trim().strip_suffix("imp/kWh").map(str::trim);
+        match number.and_then(|n| n.parse::<f64>().ok()) {
+            Some(k) if k > 0.0 => Some(k),
+            _ => {
+                ctx.error(
+                    "ratings.meter_constant",
+                    format!(
+                        "expected a meter constant such as \"1000 imp/kWh\", got \"{}\"",
+                        t.0
+                    ),
+                );
+                None
+            }
+        }
+    });
+    let elements = match &r.elements {
+        None => 1,
+        Some(t) => match t.0.trim().parse::<u32>() {
+            Ok(m @ 1..=3) => m,
+            _ => {
+                ctx.error(
+                    "ratings.elements",
+                    "a meter has 1, 2 or 3 measuring elements",
+                );
+                1
+            }
+        },
+    };
     Some(Ratings {
         nominal_voltage,
         base_current,
@@ -422,7 +511,67 @@ fn ratings(ctx: &mut Ctx, raw: &RawPlan) -> Option<Ratings> {
         max_current,
         frequency,
         class,
+        reactive_class: r.reactive_class.as_ref().map(|t| t.0.trim().to_string()),
+        transitional_current,
+        minimum_current,
+        meter_constant,
+        elements,
+        shunt,
     })
+}
+
+/// The currents a class lookup needs, for the ratings' kind of class.
+fn class_currents(ratings: &Ratings, class: &str) -> Result<classes::Currents, String> {
+    if ["A", "B", "C"].contains(&class) {
+        let itr = ratings.transitional_current.ok_or_else(|| {
+            format!("class {class} (EN 50470-3) needs ratings.transitional_current (Itr)")
+        })?;
+        return Ok(classes::Currents {
+            base: classes::Base::Itr,
+            base_a: itr,
+            max_a: ratings.max_current,
+            min_a: ratings.minimum_current,
+        });
+    }
+    Ok(classes::Currents {
+        base: match ratings.base_current_kind {
+            BaseCurrent::Basic => classes::Base::Ib,
+            BaseCurrent::Reference => classes::Base::In,
+        },
+        base_a: ratings.base_current,
+        max_a: ratings.max_current,
+        min_a: ratings.minimum_current,
+    })
+}
+
+/// The class limit for `quantity` at `load`.
+fn class_limit(
+    ratings: &Ratings,
+    quantity: Quantity,
+    load: &Load,
+) -> Result<(f64, String), String> {
+    let (class, energy) = match quantity {
+        Quantity::ActivePower | Quantity::ActiveEnergy => {
+            (ratings.class.clone(), classes::Energy::Active)
+        }
+        Quantity::ReactivePower => (
+            ratings
+                .reactive_class
+                .clone()
+                .ok_or("a class limit for reactive power needs ratings.reactive_class")?,
+            classes::Energy::Reactive,
+        ),
+        q => {
+            return Err(format!(
+                "accuracy classes set limits for active and reactive power and energy, not for {}",
+                q.name()
+            ));
+        }
+    };
+    let currents = class_currents(ratings, &class)?;
+    classes::limit(&class, energy, &currents, load.current, load.phase_deg)
+        .map(|l| (l.percent, l.basis))
+        .map_err(|e| e.to_string())
 }
 
 fn link(ctx: &mut Ctx, raw: RawLink) -> Option<LinkSpec> {
@@ -468,7 +617,12 @@ fn step(
     defaults: &StepDefaults,
 ) -> Option<Step> {
     let id = ctx.non_empty(&format!("{path}.id"), &raw.id);
-    let load = load(ctx, &format!("{path}.load"), &raw.load, ratings);
+    let special = special_test(ctx, path, raw, ratings);
+    let mut load = load(ctx, &format!("{path}.load"), &raw.load, ratings);
+    if let (Some(Some(SpecialTest::Starting { current, .. })), Some(l)) = (&special, load.as_mut())
+    {
+        l.current = *current;
+    }
     let settle_s = ctx
         .optional_value(
             &format!("{path}.settle"),
@@ -517,13 +671,41 @@ fn step(
                 ctx,
                 &format!("{path}.checks[{i}]"),
                 c,
-                load.as_ref(),
+                (load.as_ref(), ratings),
                 link,
                 window_s,
             )
         })
         .collect();
-    let checks: Option<Vec<Check>> = checks.into_iter().collect();
+    let mut checks: Vec<Check> = checks.into_iter().collect::<Option<_>>()?;
+    let special = special?;
+    match &special {
+        Some(SpecialTest::NoLoad { allowance_wh, .. }) => checks.push(Check {
+            quantity: Quantity::ActiveEnergy,
+            channel: link.channels().first().cloned().unwrap_or_default(),
+            tolerance: Tolerance::AtMost {
+                bound: *allowance_wh,
+            },
+        }),
+        Some(SpecialTest::Starting { current, .. }) => {
+            let load = load.as_ref()?;
+            let expected_wh = load.voltage * current * window_s / 3600.0;
+            if window_s <= 0.0 {
+                ctx.error(
+                    &format!("{path}.samples"),
+                    "a starting test needs a window: at least 2 samples and an interval",
+                );
+            }
+            checks.push(Check {
+                quantity: Quantity::ActiveEnergy,
+                channel: link.channels().first().cloned().unwrap_or_default(),
+                tolerance: Tolerance::AtLeast {
+                    bound: 0.5 * expected_wh,
+                },
+            });
+        }
+        None => {}
+    }
     Some(Step {
         id: id?,
         description: raw.description.as_ref().map(|t| t.0.clone()),
@@ -531,8 +713,70 @@ fn step(
         settle_s: settle_s?,
         samples: samples?,
         interval_s: interval_s?,
-        checks: checks?,
+        checks,
+        special,
     })
+}
+
+/// The special test a step asks for, with its figures derived from the class tables.
+/// `Some(None)`: no special test; `None`: a mistake was recorded.
+fn special_test(
+    ctx: &mut Ctx,
+    path: &str,
+    raw: &RawStep,
+    ratings: &Ratings,
+) -> Option<Option<SpecialTest>> {
+    let Some(kind) = &raw.special else {
+        return Some(None);
+    };
+    let spath = format!("{path}.special");
+    let fail = |ctx: &mut Ctx, message: String| {
+        ctx.error(&spath, message);
+        None
+    };
+    let currents = match class_currents(ratings, &ratings.class) {
+        Ok(c) => c,
+        Err(e) => return fail(ctx, e),
+    };
+    let Some(values) = classes::special(&ratings.class, currents.base) else {
+        return fail(
+            ctx,
+            format!(
+                "the class tables have no starting or no-load figures for class {}",
+                ratings.class
+            ),
+        );
+    };
+    match kind.0.trim() {
+        "no_load" => {
+            let (Some(k), Some(c)) = (ratings.meter_constant, values.creep_constant) else {
+                return fail(
+                    ctx,
+                    "a no-load test needs ratings.meter_constant and a class with a no-load constant".into(),
+                );
+            };
+            let minutes = classes::creep_minutes(
+                c,
+                k,
+                ratings.elements,
+                ratings.nominal_voltage,
+                ratings.max_current,
+            );
+            Some(Some(SpecialTest::NoLoad {
+                minutes,
+                allowance_wh: 1000.0 / k,
+                basis: values.basis,
+            }))
+        }
+        "starting" => Some(Some(SpecialTest::Starting {
+            current: values.starting_fraction * currents.base_a,
+            basis: values.basis,
+        })),
+        other => fail(
+            ctx,
+            format!("unknown special test \"{other}\": use no_load or starting"),
+        ),
+    }
 }
 
 fn load(ctx: &mut Ctx, path: &str, raw: &RawLoad, ratings: &Ratings) -> Option<Load> {
@@ -656,7 +900,7 @@ fn check(
     ctx: &mut Ctx,
     path: &str,
     raw: &RawCheck,
-    load: Option<&Load>,
+    (load, ratings): (Option<&Load>, &Ratings),
     link: &LinkSpec,
     window_s: f64,
 ) -> Option<Check> {
@@ -701,7 +945,14 @@ fn check(
             ),
         );
     }
-    let tolerance = tolerance(ctx, &format!("{path}.tolerance"), &raw.tolerance, quantity)?;
+    let tolerance = tolerance(
+        ctx,
+        &format!("{path}.tolerance"),
+        &raw.tolerance,
+        quantity,
+        ratings,
+        load,
+    )?;
     if let Some(load) = load
         && tolerance.is_relative()
         && load.nominal(quantity, window_s).abs() < 1e-12
@@ -733,6 +984,8 @@ fn tolerance(
     path: &str,
     raw: &RawTolerance,
     quantity: Quantity,
+    ratings: &Ratings,
+    load: Option<&Load>,
 ) -> Option<Tolerance> {
     let dim = quantity.dimension();
     let p = |k: &str| format!("{path}.{k}");
@@ -743,13 +996,14 @@ fn tolerance(
         raw.range.is_some(),
         raw.within.is_some(),
         raw.at_most.is_some(),
+        raw.class.is_some(),
     ];
     let tol = match given {
-        [true, false, false, false, false, false] => {
+        [true, false, false, false, false, false, false] => {
             let percent = ctx.value(&p("percent"), raw.percent.as_ref()?, Dimension::Percent)?;
             Tolerance::PercentOfReading { percent }
         }
-        [true, true, false, false, false, false] => {
+        [true, true, false, false, false, false, false] => {
             let percent = ctx.value(&p("percent"), raw.percent.as_ref()?, Dimension::Percent);
             let absolute = ctx.value(&p("plus"), raw.plus.as_ref()?, dim);
             Tolerance::PercentPlusAbsolute {
@@ -757,7 +1011,7 @@ fn tolerance(
                 absolute: absolute?,
             }
         }
-        [true, false, true, true, false, false] => {
+        [true, false, true, true, false, false, false] => {
             let percent = ctx.value(&p("percent"), raw.percent.as_ref()?, Dimension::Percent);
             let range_percent = ctx.value(
                 &p("plus_of_range"),
@@ -771,21 +1025,38 @@ fn tolerance(
                 range: range?,
             }
         }
-        [false, false, false, false, true, false] => Tolerance::Band {
+        [false, false, false, false, true, false, false] => Tolerance::Band {
             half_width: ctx.value(&p("within"), raw.within.as_ref()?, dim)?,
         },
-        [false, false, false, false, false, true] => Tolerance::AtMost {
+        [false, false, false, false, false, true, false] => Tolerance::AtMost {
             bound: ctx.value(&p("at_most"), raw.at_most.as_ref()?, dim)?,
         },
+        [false, false, false, false, false, false, true] => {
+            if raw.class.as_ref().map(|t| t.0.trim()) != Some("true") {
+                ctx.error(
+                    &p("class"),
+                    "write class: true to take the limit from the class tables",
+                );
+                return None;
+            }
+            let load = load?;
+            match class_limit(ratings, quantity, load) {
+                Ok((percent, basis)) => Tolerance::Class { percent, basis },
+                Err(message) => {
+                    ctx.error(&p("class"), message);
+                    return None;
+                }
+            }
+        }
         _ => {
             ctx.error(
                 path,
-                "a tolerance is one of: {percent}, {percent, plus}, {percent, plus_of_range, range}, {within} or {at_most}",
+                "a tolerance is one of: {percent}, {percent, plus}, {percent, plus_of_range, range}, {within}, {at_most} or {class: true}",
             );
             return None;
         }
     };
-    let negative = match tol {
+    let negative = match tol.clone() {
         Tolerance::PercentOfReading { percent } => percent < 0.0,
         Tolerance::PercentPlusAbsolute { percent, absolute } => percent < 0.0 || absolute < 0.0,
         Tolerance::PercentPlusRange {
@@ -794,7 +1065,8 @@ fn tolerance(
             range,
         } => percent < 0.0 || range_percent < 0.0 || range <= 0.0,
         Tolerance::Band { half_width } => half_width < 0.0,
-        Tolerance::AtMost { bound } => bound < 0.0,
+        Tolerance::AtMost { bound } | Tolerance::AtLeast { bound } => bound < 0.0,
+        Tolerance::Class { percent, .. } => percent < 0.0,
     };
     if negative {
         ctx.error(path, "tolerance terms cannot be negative");

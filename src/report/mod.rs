@@ -88,7 +88,18 @@ struct UnitView {
     verdict_word: &'static str,
     verdict_symbol: &'static str,
     bench_time: String,
+    decision: String,
     steps: Vec<StepView>,
+}
+
+/// "guarded acceptance, guard band w = 1 U (ILAC-G8)".
+pub fn decision_text(rule: crate::plan::DecisionRule) -> String {
+    match rule {
+        crate::plan::DecisionRule::Simple => "simple acceptance (ILAC-G8: guard band 0)".into(),
+        crate::plan::DecisionRule::Guarded { multiple } => {
+            format!("guarded acceptance (ILAC-G8: guard band w = {multiple} U)")
+        }
+    }
 }
 
 #[derive(Serialize)]
@@ -111,7 +122,10 @@ struct CheckView {
     samples: usize,
     error: String,
     limit: String,
-    verdict_word: &'static str,
+    uncertainty: String,
+    acceptance_limit: String,
+    tur: String,
+    verdict_word: String,
     verdict_symbol: &'static str,
     verdict_class: &'static str,
 }
@@ -122,6 +136,7 @@ impl UnitView {
             verdict_word: record.verdict.status.word(),
             verdict_symbol: record.verdict.status.symbol(),
             bench_time: duration_text(record.bench_time_s),
+            decision: decision_text(record.plan.decision),
             steps: record.steps.iter().map(StepView::of).collect(),
         }
     }
@@ -160,11 +175,26 @@ impl CheckView {
             std_dev: value(c.summary.and_then(|s| s.std_dev)),
             samples: c.samples.len(),
             error: c.evaluation.as_ref().map_or("—".into(), error_text),
-            limit: c
-                .evaluation
+            limit: c.evaluation.as_ref().map_or("—".into(), limit_text),
+            uncertainty: match (&c.evaluation, &c.decision) {
+                (Some(e), Some(d)) => d
+                    .expanded_uncertainty
+                    .map_or("—".into(), |u| magnitude_text(u, &e.error_unit)),
+                _ => "—".into(),
+            },
+            acceptance_limit: match (&c.evaluation, &c.decision) {
+                (Some(e), Some(d)) => limit_text(&crate::metrology::Evaluation {
+                    limit: d.acceptance_limit,
+                    ..e.clone()
+                }),
+                _ => "—".into(),
+            },
+            tur: c
+                .decision
                 .as_ref()
-                .map_or("—".into(), |e| limit_text(c, e)),
-            verdict_word: c.verdict.word(),
+                .and_then(|d| d.tur)
+                .map_or("—".into(), |t| format!("{t:.1}")),
+            verdict_word: c.verdict_words(),
             verdict_symbol: c.verdict.symbol(),
             verdict_class: match c.verdict {
                 crate::record::CheckVerdict::Pass => "pass",
@@ -191,9 +221,18 @@ fn error_text(e: &crate::metrology::Evaluation) -> String {
     }
 }
 
-fn limit_text(c: &CheckRecord, e: &crate::metrology::Evaluation) -> String {
-    match c.tolerance {
-        crate::plan::Tolerance::AtMost { .. } => format!("≤ {:.4} {}", e.limit, e.error_unit),
+fn magnitude_text(x: f64, unit: &str) -> String {
+    if unit == "%" {
+        format!("{x:.3} %")
+    } else {
+        format!("{x:.4} {unit}")
+    }
+}
+
+fn limit_text(e: &crate::metrology::Evaluation) -> String {
+    match e.sense {
+        crate::metrology::tolerance::Sense::AtMost => format!("≤ {:.4} {}", e.limit, e.error_unit),
+        crate::metrology::tolerance::Sense::AtLeast => format!("≥ {:.4} {}", e.limit, e.error_unit),
         _ if e.error_unit == "%" => format!("± {:.3} %", e.limit),
         _ => format!("± {:.4} {}", e.limit, e.error_unit),
     }
@@ -241,7 +280,11 @@ pub fn unit_csv(record: &UnitRecord) -> Result<Vec<u8>, ReportError> {
         "error",
         "error_unit",
         "limit",
+        "expanded_uncertainty",
+        "acceptance_limit",
+        "tur",
         "verdict",
+        "marginal",
     ])?;
     let plain = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x}"));
     for step in &record.steps {
@@ -262,7 +305,11 @@ pub fn unit_csv(record: &UnitRecord) -> Result<Vec<u8>, ReportError> {
                     .as_ref()
                     .map_or(String::new(), |e| e.error_unit.clone()),
                 plain(c.evaluation.as_ref().map(|e| e.limit)),
+                plain(c.decision.as_ref().and_then(|d| d.expanded_uncertainty)),
+                plain(c.decision.as_ref().map(|d| d.acceptance_limit)),
+                plain(c.decision.as_ref().and_then(|d| d.tur)),
                 c.verdict.word().to_lowercase().replace(' ', "_"),
+                c.marginal().to_string(),
             ])?;
         }
     }

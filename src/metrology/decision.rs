@@ -1,0 +1,148 @@
+//! Deciding conformity from a measured error, its expanded uncertainty and the tolerance
+//! (ILAC-G8:09/2019; JCGM 106:2012).
+//!
+//! Simple acceptance accepts within the tolerance limit TL (guard band w = 0). Guarded
+//! acceptance accepts within the acceptance limit AL = TL − w with w = multiple · U, so that the
+//! specific risk of accepting a unit whose true error is outside TL stays small (about 2.3 % at
+//! AL for w = U and a normal distribution). Either way, a result within U of TL is called
+//! *marginal*: the true error may lie on the other side of the limit.
+
+use super::tolerance::{Evaluation, Sense};
+use crate::plan::DecisionRule;
+use serde::{Deserialize, Serialize};
+
+/// Below this test uncertainty ratio (TL / U) a check's uncertainty is worth a warning.
+pub const TUR_WARNING_BELOW: f64 = 4.0;
+
+/// A decision and every figure it rests on.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Decision {
+    pub rule: DecisionRule,
+    pub tolerance_limit: f64,
+    pub guard_band: f64,
+    pub acceptance_limit: f64,
+    /// Expanded uncertainty U of the error, same unit; absent when it could not be estimated.
+    pub expanded_uncertainty: Option<f64>,
+    /// Test uncertainty ratio TL / U.
+    pub tur: Option<f64>,
+    pub accepted: bool,
+    /// The measured value lies within U of the tolerance limit.
+    pub marginal: bool,
+}
+
+impl Decision {
+    /// Whether the test uncertainty ratio is below the usual 4:1.
+    pub fn low_tur(&self) -> bool {
+        self.tur.is_some_and(|t| t < TUR_WARNING_BELOW)
+    }
+}
+
+/// Decides on an evaluated error with expanded uncertainty `u` (same unit as the error).
+pub fn decide(e: &Evaluation, u: Option<f64>, rule: DecisionRule) -> Decision {
+    let guard_band = match (rule, u) {
+        (DecisionRule::Guarded { multiple }, Some(u)) => multiple * u,
+        _ => 0.0,
+    };
+    let tl = e.limit;
+    let magnitude = match e.sense {
+        Sense::PlusMinus => e.error.abs(),
+        Sense::AtMost | Sense::AtLeast => e.error,
+    };
+    let (acceptance_limit, accepted) = match e.sense {
+        Sense::PlusMinus | Sense::AtMost => {
+            let al = (tl - guard_band).max(0.0);
+            (al, magnitude <= al)
+        }
+        Sense::AtLeast => {
+            let al = tl + guard_band;
+            (al, magnitude >= al)
+        }
+    };
+    let marginal = u.is_some_and(|u| (magnitude - tl).abs() < u);
+    Decision {
+        rule,
+        tolerance_limit: tl,
+        guard_band,
+        acceptance_limit,
+        expanded_uncertainty: u,
+        tur: u.filter(|u| *u > 0.0).map(|u| tl / u),
+        accepted,
+        marginal,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn error(e: f64, limit: f64) -> Evaluation {
+        Evaluation {
+            error: e,
+            error_unit: "%".into(),
+            limit,
+            sense: Sense::PlusMinus,
+            within: e.abs() <= limit,
+        }
+    }
+
+    /// ILAC-G8:09/2019 guarded acceptance with w = U: tolerance ±1.0 %, U = 0.3 % gives the
+    /// acceptance limit 0.7 %; +0.8 % passes simple acceptance but not guarded.
+    #[test]
+    fn guarded_acceptance_moves_the_limit_in_by_u() {
+        let simple = decide(&error(0.8, 1.0), Some(0.3), DecisionRule::Simple);
+        assert!(simple.accepted && simple.marginal);
+        assert_eq!(simple.acceptance_limit, 1.0);
+        let guarded = decide(
+            &error(0.8, 1.0),
+            Some(0.3),
+            DecisionRule::Guarded { multiple: 1.0 },
+        );
+        assert!(!guarded.accepted);
+        assert!((guarded.acceptance_limit - 0.7).abs() < 1e-12);
+        assert!((guarded.tur.unwrap() - 1.0 / 0.3).abs() < 1e-12);
+        assert!(guarded.low_tur());
+    }
+
+    #[test]
+    fn clear_results_are_not_marginal() {
+        let clear_pass = decide(&error(0.2, 1.0), Some(0.1), DecisionRule::Simple);
+        assert!(clear_pass.accepted && !clear_pass.marginal);
+        let clear_fail = decide(&error(-1.5, 1.0), Some(0.1), DecisionRule::Simple);
+        assert!(!clear_fail.accepted && !clear_fail.marginal);
+        let near_fail = decide(&error(1.05, 1.0), Some(0.1), DecisionRule::Simple);
+        assert!(!near_fail.accepted && near_fail.marginal);
+        // A reading exactly at the acceptance limit is accepted.
+        let at_limit = decide(
+            &error(0.9, 1.0),
+            Some(0.1),
+            DecisionRule::Guarded { multiple: 1.0 },
+        );
+        assert!(at_limit.accepted);
+    }
+
+    #[test]
+    fn one_sided_limits() {
+        let mut creep = error(0.4, 0.5);
+        creep.sense = Sense::AtMost;
+        assert!(decide(&creep, Some(0.05), DecisionRule::Simple).accepted);
+        assert!(!decide(&creep, Some(0.2), DecisionRule::Guarded { multiple: 1.0 }).accepted);
+        let mut start = error(2.0, 1.0);
+        start.sense = Sense::AtLeast;
+        assert!(decide(&start, Some(0.5), DecisionRule::Guarded { multiple: 1.0 }).accepted);
+        assert!(!decide(&start, Some(1.5), DecisionRule::Guarded { multiple: 1.0 }).accepted);
+    }
+
+    /// Conformance probability (JCGM 106:2012, normal result): tolerance ±1.0 %, measured
+    /// +0.8 %, U = 0.3 % (k = 2): P(true error > 1.0 %) = 1 − Φ((1.0 − 0.8)/0.15) = 0.0912
+    /// (domain notes §5, computed).
+    #[test]
+    fn risk_at_a_marginal_pass() {
+        use statrs::distribution::{ContinuousCDF, Normal};
+        let u = 0.3 / 2.0;
+        let p = 1.0 - Normal::standard().cdf((1.0 - 0.8) / u);
+        assert!((p - 0.0912).abs() < 5e-5, "{p}");
+        // At the guarded acceptance limit (w = U) the risk is 1 − Φ(2) ≈ 2.3 %.
+        let at_al = 1.0 - Normal::standard().cdf(2.0);
+        assert!((at_al - 0.02275).abs() < 1e-5);
+    }
+}
