@@ -97,7 +97,7 @@ pub fn fit(model: Model, x: &[f64], y: &[f64]) -> Result<Fit, FitError> {
     }
     // Scale every column to unit norm: QR is then insensitive to the columns' magnitudes.
     let scales: Vec<f64> = (0..p).map(|j| design.column(j).norm()).collect();
-    if scales.iter().any(|s| *s == 0.0) {
+    if scales.contains(&0.0) {
         return Err(FitError::Singular);
     }
     for (j, s) in scales.iter().enumerate() {
