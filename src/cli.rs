@@ -212,7 +212,39 @@ pub fn plan_summary(plan: &Plan) -> String {
                 checks.join("; ")
             }
         ));
+        let mut bases: Vec<&str> = Vec::new();
+        for c in &step.checks {
+            if let Tolerance::Class { basis, .. } = &c.tolerance
+                && !bases.contains(&basis.as_str())
+            {
+                bases.push(basis);
+            }
+        }
+        for b in bases {
+            s.push_str(&format!("  {:<14} class limit: {b}\n", ""));
+        }
+        match &step.special {
+            Some(crate::plan::SpecialTest::NoLoad {
+                minutes,
+                allowance_wh,
+                basis,
+            }) => s.push_str(&format!(
+                "  {:<14} no-load test: {minutes:.2} min, register advance at most {} (one pulse); {basis}\n",
+                "",
+                report::number(*allowance_wh, Dimension::ActiveEnergy)
+            )),
+            Some(crate::plan::SpecialTest::Starting { current, basis }) => s.push_str(&format!(
+                "  {:<14} starting test at {}; {basis}\n",
+                "",
+                report::number(*current, Dimension::Current)
+            )),
+            None => {}
+        }
     }
+    s.push_str(&format!(
+        "  decision rule: {}\n",
+        report::decision_text(plan.decision)
+    ));
     s
 }
 
@@ -231,7 +263,7 @@ fn tolerance_text(t: &Tolerance, dim: Dimension) -> String {
         Tolerance::Band { half_width } => format!("±{}", v(half_width)),
         Tolerance::AtMost { bound } => format!("≤ {}", v(bound)),
         Tolerance::AtLeast { bound } => format!("≥ {}", v(bound)),
-        Tolerance::Class { percent, basis } => format!("±{percent} % ({basis})"),
+        Tolerance::Class { percent, .. } => format!("±{percent} % (class)"),
     }
 }
 

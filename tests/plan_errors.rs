@@ -178,3 +178,79 @@ fn the_plan_hash_is_of_the_exact_text() {
     assert_eq!(a.source.sha256.len(), 64);
     assert_ne!(a.source.sha256, b.source.sha256);
 }
+
+#[test]
+fn class_tolerances_resolve_from_the_tables_or_are_refused() {
+    let plan = Plan::from_text("p.yaml", GOOD).unwrap();
+    // basic-pf0.5 active power: IEC 62053-21 class 1 at 0.2 Ib ≤ I ≤ Imax, 0.5 inductive: ±1.0 %
+    // (from memory, as the class data says).
+    match &plan.steps[4].checks[1].tolerance {
+        meterproof::plan::Tolerance::Class { percent, basis } => {
+            assert_eq!(*percent, 1.0);
+            assert!(
+                basis.contains("0.2 Ib ≤ I ≤ Imax at PF 0.5i/0.8c"),
+                "{basis}"
+            );
+        }
+        other => panic!("{other:?}"),
+    }
+    // A load point the table does not cover: 0.02 Ib.
+    let low = GOOD.replace("load: { current: 500 mA }", "load: { current: 100 mA }");
+    let e = errors(&low);
+    assert_eq!(e.0[0].path, "steps[1].checks[1].tolerance.class");
+    assert!(
+        e.0[0].message.contains("class 1 has no limit at 0.1 A"),
+        "{e}"
+    );
+    // A power factor the table does not cover.
+    let pf = GOOD.replace("power_factor: 0.5 inductive", "power_factor: 0.7 inductive");
+    assert!(errors(&pf).to_string().contains("has no limit"));
+    // A class applies to power and energy, not to current.
+    let current = GOOD.replace(
+        "{ quantity: current, tolerance: { percent: 0.5 % } }",
+        "{ quantity: current, tolerance: { class: true } }",
+    );
+    assert!(errors(&current).to_string().contains("not for current"));
+    // An unknown class.
+    let unknown = GOOD.replace("class: \"1\"", "class: \"0.7\"");
+    assert!(errors(&unknown).to_string().contains("known: 1, 2"));
+    // Reactive power needs a reactive class.
+    let last = GOOD.rfind("quantity: active_power").unwrap();
+    let reactive = format!(
+        "{}quantity: reactive_power{}",
+        &GOOD[..last],
+        &GOOD[last + "quantity: active_power".len()..]
+    );
+    assert!(
+        errors(&reactive).to_string().contains("reactive_class"),
+        "{}",
+        errors(&reactive)
+    );
+}
+
+#[test]
+fn decision_rules_and_special_tests_are_checked() {
+    let bad = GOOD.replace("guard_band: 1 U", "guard_band: 1 %");
+    assert_eq!(errors(&bad).0[0].path, "decision.guard_band");
+    let bad = GOOD.replace("rule: guarded", "rule: lenient");
+    assert!(
+        errors(&bad)
+            .to_string()
+            .contains("unknown decision rule \"lenient\"")
+    );
+    let no_constant = GOOD
+        .replace("  meter_constant: 1000 imp/kWh\n", "")
+        .replace(
+            "  - id: no-load\n    description: Voltage applied, no current; nothing may register\n",
+            "  - id: no-load\n    special: no_load\n",
+        );
+    assert!(
+        errors(&no_constant)
+            .to_string()
+            .contains("needs ratings.meter_constant"),
+        "{}",
+        errors(&no_constant)
+    );
+    let bad_constant = GOOD.replace("1000 imp/kWh", "1000 pulses");
+    assert_eq!(errors(&bad_constant).0[0].path, "ratings.meter_constant");
+}

@@ -108,6 +108,9 @@ pub struct SimConfig {
     pub plant_defect: bool,
     /// Spread of the meters' settling time constants, seconds (min, max).
     pub tau_range_s: (f64, f64),
+    /// Give every meter a creep fault: no no-load threshold and a 3 mA current offset, so the
+    /// register advances with no load.
+    pub creep_fault: bool,
 }
 
 impl SimConfig {
@@ -118,6 +121,7 @@ impl SimConfig {
             serials: None,
             plant_defect: true,
             tau_range_s: (0.15, 0.45),
+            creep_fault: false,
         }
     }
 }
@@ -141,6 +145,8 @@ struct MeterModel {
     phase_error_deg: f64,
     noise_relative: f64,
     tau_s: f64,
+    /// Below this current the firmware reports no power and its register stands still.
+    no_load_threshold_a: f64,
 }
 
 /// A meter's settling state: what it saw when the load last changed.
@@ -186,7 +192,7 @@ impl World {
     fn meter_power(&self, meter: &MeterState, t: f64) -> f64 {
         let (v, i) = self.seen(meter, t);
         let i_meas = i * (1.0 + meter.model.gain_current) + meter.model.offset_current_a;
-        if i_meas.abs() < NO_LOAD_THRESHOLD_A {
+        if i_meas.abs() < meter.model.no_load_threshold_a {
             return 0.0;
         }
         let phi = (self.actual.phase_deg + meter.model.phase_error_deg).to_radians();
@@ -245,7 +251,7 @@ impl World {
         let i_meas = (i * (1.0 + m.gain_current) + m.offset_current_a) * jitter();
         let v_meas = v * (1.0 + m.gain_voltage) * jitter();
         let phi = (actual.phase_deg + m.phase_error_deg).to_radians();
-        let live = i_meas.abs() >= NO_LOAD_THRESHOLD_A;
+        let live = i_meas.abs() >= m.no_load_threshold_a && i_meas != 0.0;
         let value = match quantity {
             Quantity::Current => i_meas,
             Quantity::Voltage => v_meas,
@@ -319,6 +325,10 @@ impl SimBench {
             .enumerate()
             .map(|(i, serial)| {
                 let mut model = meter_model(config, i, serial);
+                if config.creep_fault {
+                    model.no_load_threshold_a = 0.0;
+                    model.offset_current_a = 0.003;
+                }
                 if config.plant_defect && i == defect_index {
                     model.phase_error_deg += 1.2;
                     defects.push(PlantedDefect {
@@ -464,6 +474,7 @@ fn meter_model(config: &SimConfig, index: usize, serial: &str) -> MeterModel {
         phase_error_deg: normal(0.05).sample(&mut rng),
         noise_relative: 0.0005,
         tau_s: uniform(&mut rng, config.tau_range_s.0, config.tau_range_s.1),
+        no_load_threshold_a: NO_LOAD_THRESHOLD_A,
     }
 }
 

@@ -5,9 +5,11 @@
 //! against its published source beside the code.
 
 pub mod accuracy;
+pub mod calibration;
 pub mod classes;
 pub mod decision;
 pub mod fit;
+pub mod pulses;
 pub mod stats;
 pub mod tolerance;
 pub mod uncertainty;

@@ -630,17 +630,28 @@ fn step(
             Dimension::Time,
         )
         .map(|v| v.unwrap_or(defaults.settle_s));
-    let samples = match &raw.samples {
+    let mut samples = match &raw.samples {
         Some(t) => ctx.count(&format!("{path}.samples"), t),
         None => Some(defaults.samples),
     };
-    let interval_s = ctx
+    let mut interval_s = ctx
         .optional_value(
             &format!("{path}.interval"),
             raw.interval.as_ref(),
             Dimension::Time,
         )
         .map(|v| v.unwrap_or(defaults.interval_s));
+    if let Some(Some(SpecialTest::NoLoad { minutes, .. })) = &special {
+        // The register is read at the start and the end of the standard's duration.
+        if raw.samples.is_some() || raw.interval.is_some() {
+            ctx.error(
+                &format!("{path}.special"),
+                "a no-load test takes its duration from the standard: leave out samples and interval",
+            );
+        }
+        samples = Some(2);
+        interval_s = Some(minutes * 60.0);
+    }
     if let Some(s) = settle_s
         && s < 0.0
     {
@@ -780,13 +791,19 @@ fn special_test(
 }
 
 fn load(ctx: &mut Ctx, path: &str, raw: &RawLoad, ratings: &Ratings) -> Option<Load> {
-    let voltage = ctx
-        .optional_value(
-            &format!("{path}.voltage"),
-            raw.voltage.as_ref(),
-            Dimension::Voltage,
-        )
-        .map(|v| v.unwrap_or(ratings.nominal_voltage));
+    // A voltage may be given as a percentage of the nominal one ("115 %" for the no-load test).
+    let voltage = match &raw.voltage {
+        Some(t) if t.0.trim().ends_with('%') => ctx
+            .value(&format!("{path}.voltage"), t, Dimension::Percent)
+            .map(|p| p / 100.0 * ratings.nominal_voltage),
+        other => ctx
+            .optional_value(
+                &format!("{path}.voltage"),
+                other.as_ref(),
+                Dimension::Voltage,
+            )
+            .map(|v| v.unwrap_or(ratings.nominal_voltage)),
+    };
     let current = ctx.value(&format!("{path}.current"), &raw.current, Dimension::Current);
     let frequency = ctx
         .optional_value(

@@ -1,0 +1,135 @@
+//! Class limits, uncertainty and decision rules through whole simulated runs.
+
+use meterproof::bench::sim::{SimBench, SimConfig};
+use meterproof::exec::{self, RunContext, Silent};
+use meterproof::plan::{Plan, SpecialTest};
+use meterproof::record::{CheckVerdict, UnitRecord, UnitStatus};
+
+fn ctx() -> RunContext {
+    RunContext {
+        run_id: "test".into(),
+        operator: "tester".into(),
+        lot: None,
+        tool_version: "test".into(),
+        notes: Vec::new(),
+    }
+}
+
+fn run(plan: &Plan, config: &SimConfig) -> Vec<UnitRecord> {
+    exec::run(
+        plan,
+        &mut SimBench::new(config).into_bench(),
+        &ctx(),
+        &mut Silent,
+    )
+}
+
+fn demo_text() -> String {
+    std::fs::read_to_string("test-plans/demo.yaml").unwrap()
+}
+
+#[test]
+fn every_check_carries_its_budget_and_decision() {
+    let plan = Plan::from_text("demo.yaml", &demo_text()).unwrap();
+    let records = run(&plan, &SimConfig::new(1, 4));
+    for r in &records {
+        for c in r.steps.iter().flat_map(|s| &s.checks) {
+            let b = c.uncertainty.as_ref().expect("a budget");
+            let d = c.decision.as_ref().expect("a decision");
+            // An auditor can redo the sum: the components' root sum of squares is u_c, and
+            // U = k·u_c (GUM 5.1.2, 6.2.1).
+            let rss = b.components.iter().map(|x| x.u * x.u).sum::<f64>().sqrt();
+            assert!((rss - b.combined).abs() <= 1e-12 * b.combined.max(1e-300));
+            assert!((b.k * b.combined - b.expanded).abs() <= 1e-12 * b.expanded.max(1e-300));
+            assert_eq!(d.expanded_uncertainty, Some(b.expanded));
+            // Guarded acceptance with w = 1 U (the demo's rule).
+            assert!((d.acceptance_limit - (d.tolerance_limit - b.expanded).max(0.0)).abs() < 1e-12);
+            assert_eq!(c.verdict == CheckVerdict::Pass, d.accepted);
+        }
+    }
+}
+
+/// One check of the demo, made to lie between the acceptance limit and the tolerance limit:
+/// simple acceptance passes it (marginally); guarded acceptance with w = U rejects it.
+#[test]
+fn the_decision_rule_decides_a_result_between_the_limits() {
+    let plan = Plan::from_text("demo.yaml", &demo_text()).unwrap();
+    let config = SimConfig {
+        plant_defect: false,
+        ..SimConfig::new(1, 1)
+    };
+    let first = run(&plan, &config);
+    let check = &first[0].steps[2].checks[1]; // basic-Ib, current, ±0.5 %
+    assert_eq!(check.quantity.name(), "current");
+    let error = check.evaluation.as_ref().unwrap().error.abs();
+    let u = check
+        .decision
+        .as_ref()
+        .unwrap()
+        .expanded_uncertainty
+        .unwrap();
+    // A tolerance half a U above the measured error: inside TL, outside TL − U.
+    let tolerance = error + 0.5 * u;
+    let text = demo_text().replace(
+        "      - { quantity: current, tolerance: { percent: 0.5 % } }\n      - { quantity: active_power, tolerance: { class: true } }\n      - { quantity: frequency",
+        &format!("      - {{ quantity: current, tolerance: {{ percent: {tolerance} % }} }}\n      - {{ quantity: active_power, tolerance: {{ class: true }} }}\n      - {{ quantity: frequency"),
+    );
+    assert_ne!(text, demo_text(), "the basic-Ib current check was found");
+    let guarded = Plan::from_text("g.yaml", &text).unwrap();
+    let simple = Plan::from_text(
+        "s.yaml",
+        &text.replace("rule: guarded, guard_band: 1 U", "rule: simple"),
+    )
+    .unwrap();
+    let g = &run(&guarded, &config)[0].steps[2].checks[1];
+    let s = &run(&simple, &config)[0].steps[2].checks[1];
+    // The same readings either way.
+    assert_eq!(g.samples, s.samples);
+    assert_eq!(s.verdict, CheckVerdict::Pass);
+    assert_eq!(s.verdict_words(), "pass, marginal");
+    assert_eq!(g.verdict, CheckVerdict::Fail);
+    assert_eq!(g.verdict_words(), "FAIL, marginal");
+}
+
+#[test]
+fn no_load_and_starting_tests_follow_the_class_tables() {
+    let plan = Plan::load(std::path::Path::new("test-plans/type-tests.yaml")).unwrap();
+    // IEC 62053-21 class 1: Δt ≥ 600·10⁶ / (k·m·Un·Imax) min (constant from memory) with
+    // k = 1000, m = 1, Un = 230 V, Imax = 16 A: 163.04 min; starting current 0.004 Ib = 20 mA.
+    let Some(SpecialTest::NoLoad {
+        minutes,
+        allowance_wh,
+        ..
+    }) = &plan.steps[0].special
+    else {
+        panic!("a no-load step")
+    };
+    assert!((minutes - 163.043).abs() < 0.001);
+    assert_eq!(*allowance_wh, 1.0);
+    assert!(
+        (plan.steps[0].load.voltage - 264.5).abs() < 1e-9,
+        "115 % of 230 V"
+    );
+    assert!((plan.steps[1].load.current - 0.020).abs() < 1e-12);
+
+    let good = run(&plan, &SimConfig::new(3, 2));
+    assert!(
+        good.iter()
+            .all(|r| r.verdict.status == UnitStatus::Accepted),
+        "{:?}",
+        good[0].verdict
+    );
+
+    // Meters whose firmware lets the register creep at no load fail the no-load test only.
+    let creeping = run(
+        &plan,
+        &SimConfig {
+            creep_fault: true,
+            ..SimConfig::new(3, 2)
+        },
+    );
+    for r in &creeping {
+        let failed: Vec<&str> = r.failed_checks().map(|(s, _)| s.id.as_str()).collect();
+        assert_eq!(failed, ["creep"], "{:?}", r.verdict);
+    }
+}
