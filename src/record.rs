@@ -40,6 +40,9 @@ pub struct UnitRecord {
     /// Remarks that apply to the whole run (an overdue reference accepted, and why).
     #[serde(default)]
     pub notes: Vec<String>,
+    /// The unit's calibration, when the plan calibrates.
+    #[serde(default)]
+    pub calibration: Option<CalibrationRecord>,
     pub steps: Vec<StepRecord>,
 }
 
@@ -117,8 +120,48 @@ pub struct StepRecord {
     pub started_at_s: Option<f64>,
     pub status: StepStatus,
     pub reason: Option<String>,
+    /// The raw counts taken at a calibration point.
+    #[serde(default)]
+    pub calibration_point: Option<CalibrationPoint>,
     pub references: Vec<ReferenceRecord>,
     pub checks: Vec<CheckRecord>,
+}
+
+/// The front end's counts at one calibration point, and the reference they are set against.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct CalibrationPoint {
+    pub quantity: Quantity,
+    pub channel: String,
+    pub samples: Vec<Sample>,
+    pub mean_counts: Option<f64>,
+    pub reference: Option<f64>,
+}
+
+/// A unit's calibration: the fit, and the constants before, written and read back.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct CalibrationRecord {
+    pub quantity: Quantity,
+    pub channel: String,
+    pub result: Option<crate::metrology::calibration::Calibration>,
+    /// (offset, gain) in the unit before calibration, where it could be read.
+    pub before: Option<(f64, f64)>,
+    pub written: Option<(f64, f64)>,
+    pub read_back: Option<(f64, f64)>,
+    pub status: CalibrationStatus,
+    pub reason: Option<String>,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum CalibrationStatus {
+    /// Fitted; the plan writes nothing back.
+    Fitted,
+    /// Fitted, written and read back equal.
+    Written,
+    /// Not enough good points to fit, or the link failed while writing.
+    NotDone,
+    /// The constants read back differ from those written.
+    Mismatch,
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]

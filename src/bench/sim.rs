@@ -153,10 +153,32 @@ struct MeterModel {
 #[derive(Debug, Clone)]
 struct MeterState {
     model: MeterModel,
+    /// The firmware's calibration constants, by quantity: nominal until calibrated.
+    constants: Vec<(Quantity, FrontEnd)>,
     seen_at_change: (f64, f64),
     energy_wh: f64,
     energy_until_s: f64,
     noise: ChaCha8Rng,
+}
+
+impl MeterState {
+    fn constants_for(&self, quantity: Quantity) -> FrontEnd {
+        self.constants
+            .iter()
+            .find(|(q, _)| *q == quantity)
+            .map(|(_, fe)| *fe)
+            .unwrap_or_else(|| front_end(quantity))
+    }
+}
+
+/// The firmware constant a name refers to: `offset_<quantity>` or `gain_<quantity>`.
+fn constant_name(name: &str) -> Option<(bool, Quantity)> {
+    let (is_gain, rest) = match name.split_once('_') {
+        Some(("offset", rest)) => (false, rest),
+        Some(("gain", rest)) => (true, rest),
+        _ => return None,
+    };
+    Quantity::from_name(rest).map(|q| (is_gain, q))
 }
 
 /// The shared physical state of the bench.
@@ -272,9 +294,10 @@ impl World {
         fe.to_counts(value)
     }
 
-    /// What meter `index` reports for `quantity`, converted with the nominal front-end constants.
+    /// What meter `index` reports for `quantity`, converted with its firmware's constants.
     fn read(&mut self, index: usize, quantity: Quantity) -> f64 {
-        front_end(quantity).to_value(self.read_counts(index, quantity) as f64)
+        let counts = self.read_counts(index, quantity) as f64;
+        self.meters[index].constants_for(quantity).to_value(counts)
     }
 }
 
@@ -339,6 +362,7 @@ impl SimBench {
                 }
                 MeterState {
                     model,
+                    constants: Quantity::ALL.iter().map(|q| (*q, front_end(*q))).collect(),
                     seen_at_change: (0.0, 0.0),
                     energy_wh: 0.0,
                     energy_until_s: 0.0,
@@ -490,6 +514,37 @@ impl SimMeterHandle {
         lock(&self.world).meters[self.index].model.identity.clone()
     }
 
+    /// The meter's calibrated reading of `quantity`, as its firmware reports it.
+    pub fn read_value(&self, quantity: Quantity) -> f64 {
+        lock(&self.world).read(self.index, quantity)
+    }
+
+    /// A firmware constant by name (`offset_current`, `gain_current`...).
+    pub fn constant(&self, name: &str) -> Option<f64> {
+        let (is_gain, q) = constant_name(name)?;
+        let fe = lock(&self.world).meters[self.index].constants_for(q);
+        Some(if is_gain { fe.gain } else { fe.offset })
+    }
+
+    /// Sets a firmware constant; a gain must not be zero.
+    pub fn set_constant(&self, name: &str, value: f64) -> Result<(), String> {
+        let (is_gain, q) = constant_name(name).ok_or_else(|| format!("no constant {name}"))?;
+        if !value.is_finite() || (is_gain && value == 0.0) {
+            return Err(format!("{value} is not a valid {name}"));
+        }
+        let mut world = lock(&self.world);
+        let meter = &mut world.meters[self.index];
+        let mut fe = meter.constants_for(q);
+        if is_gain {
+            fe.gain = value;
+        } else {
+            fe.offset = value;
+        }
+        meter.constants.retain(|(k, _)| *k != q);
+        meter.constants.push((q, fe));
+        Ok(())
+    }
+
     /// The meter's reading of `quantity` now, in front-end counts.
     pub fn read_counts(&self, quantity: Quantity) -> i64 {
         lock(&self.world).read_counts(self.index, quantity)
@@ -502,6 +557,15 @@ struct SimLink {
     index: usize,
 }
 
+impl SimLink {
+    fn handle(&self) -> SimMeterHandle {
+        SimMeterHandle {
+            world: self.world.clone(),
+            index: self.index,
+        }
+    }
+}
+
 impl DutLink for SimLink {
     fn identify(&mut self) -> Result<Identity, LinkError> {
         Ok(lock(&self.world).meters[self.index].model.identity.clone())
@@ -509,6 +573,28 @@ impl DutLink for SimLink {
 
     fn read(&mut self, quantity: Quantity, _channel: &str) -> Result<f64, LinkError> {
         Ok(lock(&self.world).read(self.index, quantity))
+    }
+
+    fn read_raw(&mut self, quantity: Quantity, _channel: &str) -> Result<f64, LinkError> {
+        Ok(lock(&self.world).read_counts(self.index, quantity) as f64)
+    }
+
+    fn write_constant(&mut self, name: &str, channel: &str, value: f64) -> Result<(), LinkError> {
+        self.handle()
+            .set_constant(name, value)
+            .map_err(|why| LinkError::Unsupported {
+                quantity: format!("write {name}: {why}"),
+                channel: channel.into(),
+            })
+    }
+
+    fn read_constant(&mut self, name: &str, channel: &str) -> Result<f64, LinkError> {
+        self.handle()
+            .constant(name)
+            .ok_or_else(|| LinkError::Unsupported {
+                quantity: format!("read {name}"),
+                channel: channel.into(),
+            })
     }
 
     fn resolution(&self, quantity: Quantity) -> Option<f64> {

@@ -30,6 +30,8 @@ pub struct Faults {
     pub die_after: Option<u64>,
     /// Echo every request before replying.
     pub echo: bool,
+    /// Acknowledge constant writes without storing them (a firmware bug, or write protection).
+    pub ignore_writes: bool,
 }
 
 /// The protocol's quantity codes.
@@ -141,6 +143,32 @@ impl Device {
                 Some(q) => format!("= {code} {channel} {}", self.meter.read_counts(q)),
                 None => format!("err unknown quantity {code}"),
             },
+            ["rv", code, channel] => match quantity_from_code(code) {
+                Some(q) => format!("= rv {code} {channel} {:.6}", self.meter.read_value(q)),
+                None => format!("err unknown quantity {code}"),
+            },
+            [cmd @ ("ro" | "rg"), code, channel] => {
+                let kind = if *cmd == "ro" { "offset" } else { "gain" };
+                match quantity_from_code(code)
+                    .and_then(|q| self.meter.constant(&format!("{kind}_{}", q.name())))
+                {
+                    Some(v) => format!("= {cmd} {code} {channel} {v}"),
+                    None => format!("err unknown quantity {code}"),
+                }
+            }
+            ["wo" | "wg", _, _, _] if self.faults.ignore_writes => "ok".into(),
+            [cmd @ ("wo" | "wg"), code, _channel, value] => {
+                let kind = if *cmd == "wo" { "offset" } else { "gain" };
+                match (quantity_from_code(code), value.parse::<f64>()) {
+                    (Some(q), Ok(v)) => {
+                        match self.meter.set_constant(&format!("{kind}_{}", q.name()), v) {
+                            Ok(()) => "ok".into(),
+                            Err(e) => format!("err {e}"),
+                        }
+                    }
+                    _ => "err bad constant".into(),
+                }
+            }
             [] => "err empty request".into(),
             _ => "err unknown command".into(),
         }

@@ -83,7 +83,7 @@ impl SimStation {
 /// `1:slow=300ms`, `4:reboot-after=30`, `2:firmware=2.0.9`, `1:garble-every=4`, `3:echo`.
 pub fn parse_fault(text: &str) -> Result<(usize, Faults), String> {
     let help = "write a fault as POSITION:KIND[=VALUE], KIND one of drop-every, garble-every, \
-                slow, reboot-after, firmware, die-after, echo";
+                slow, reboot-after, firmware, die-after, echo, ignore-writes";
     let (position, rest) = text
         .split_once(':')
         .ok_or_else(|| format!("\"{text}\": {help}"))?;
@@ -116,6 +116,7 @@ pub fn parse_fault(text: &str) -> Result<(usize, Faults), String> {
         }
         "firmware" => f.firmware = Some(value.ok_or("firmware needs a version")?.to_string()),
         "echo" => f.echo = true,
+        "ignore-writes" => f.ignore_writes = true,
         _ => return Err(format!("unknown fault \"{kind}\": {help}")),
     }
     Ok((position, f))
@@ -129,6 +130,7 @@ pub fn merge_faults(into: &mut Faults, f: Faults) {
     into.die_after = f.die_after.or(into.die_after);
     into.firmware = f.firmware.or(into.firmware.take());
     into.echo |= f.echo;
+    into.ignore_writes |= f.ignore_writes;
     if !f.slow.is_zero() {
         into.slow = f.slow;
     }

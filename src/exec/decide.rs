@@ -15,6 +15,7 @@ pub(super) struct Judge<'a> {
     /// The reference instrument's accuracy specification, when the station states one.
     pub accuracy: Option<Accuracy>,
     pub ranges: &'a BTreeMap<String, f64>,
+    pub calibration: Option<&'a crate::plan::CalibrationSpec>,
 }
 
 /// What one check is evaluated from.

@@ -6,15 +6,17 @@
 //! that unit's step incomplete and keeps every reading already taken; the other positions carry
 //! on.
 
+mod calibrate;
 mod decide;
 mod sampling;
 
 use crate::bench::{Bench, Position, ReferenceRequest};
 use crate::link::Identity;
+use crate::plan::CalibrationSpec;
 use crate::plan::{Plan, Quantity, Step};
 use crate::record::{
-    CheckRecord, CheckVerdict, PlanRef, RECORD_FORMAT, ReferenceRecord, StepRecord, StepStatus,
-    UnitRecord, UnitStatus, UnitVerdict,
+    CalibrationPoint, CheckRecord, CheckVerdict, PlanRef, RECORD_FORMAT, ReferenceRecord,
+    StepRecord, StepStatus, UnitRecord, UnitStatus, UnitVerdict,
 };
 
 /// Who runs what, for the records.
@@ -119,6 +121,7 @@ pub fn run(
             .as_deref()
             .and_then(|a| crate::metrology::accuracy::Accuracy::parse(a).ok()),
         ranges: &ranges,
+        calibration: plan.calibration.as_ref(),
     };
     let mut source_failure: Option<String> = None;
     for (index, step) in plan.steps.iter().enumerate() {
@@ -146,6 +149,11 @@ pub fn run(
         let started_at_s = bench.clock.now_s();
         bench.clock.sleep_s(step.settle_s);
         run_step(step, started_at_s, bench, &mut units, &judge);
+        if let Some(cal) = &plan.calibration
+            && cal.last_point(&plan.steps) == Some(index)
+        {
+            calibrate_units(cal, bench, &mut units);
+        }
         reporter.event(&Event::StepFinished {
             index,
             step,
@@ -175,6 +183,17 @@ pub fn run(
             u.record.bench_time_s = bench_time_s;
             if u.active {
                 u.record.verdict = decide::unit_verdict(&u.record.steps);
+                if let Some(c) = &u.record.calibration
+                    && c.status == crate::record::CalibrationStatus::NotDone
+                {
+                    if u.record.verdict.status == UnitStatus::Accepted {
+                        u.record.verdict.status = UnitStatus::Incomplete;
+                    }
+                    u.record.verdict.reasons.push(format!(
+                        "calibration not done: {}",
+                        c.reason.as_deref().unwrap_or("no reason given")
+                    ));
+                }
             }
             if let Some(e) = &off_failure {
                 u.record.verdict.reasons.push(format!("after the run: {e}"));
@@ -191,6 +210,31 @@ pub fn run(
 
 fn now_iso() -> String {
     chrono::Local::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, false)
+}
+
+/// Calibrates every unit still under test; a unit whose constants did not take is tested no
+/// further.
+fn calibrate_units(cal: &CalibrationSpec, bench: &mut Bench, units: &mut [Unit]) {
+    for (unit, position) in units.iter_mut().zip(bench.positions.iter_mut()) {
+        if !unit.active {
+            continue;
+        }
+        let record = calibrate::calibrate_unit(cal, &unit.record.steps, position.link.as_mut());
+        if record.status == crate::record::CalibrationStatus::Mismatch {
+            unit.active = false;
+            unit.record.verdict = UnitVerdict {
+                status: UnitStatus::Rejected,
+                reasons: vec![format!(
+                    "calibration: {}: the unit was not tested further",
+                    record
+                        .reason
+                        .as_deref()
+                        .unwrap_or("the constants did not take")
+                )],
+            };
+        }
+        unit.record.calibration = Some(record);
+    }
 }
 
 /// Reads a position's identity and decides whether the unit may be tested.
@@ -251,6 +295,7 @@ fn identify(
             bench_time_s: 0.0,
             verdict: UnitVerdict { status, reasons },
             notes: ctx.notes.clone(),
+            calibration: None,
             steps: Vec::new(),
         },
         active,
@@ -309,6 +354,7 @@ fn empty_step(step: &Step, started_at_s: Option<f64>) -> StepRecord {
         started_at_s,
         status: StepStatus::Done,
         reason: None,
+        calibration_point: None,
         references: Vec::new(),
         checks: step
             .checks
@@ -332,16 +378,26 @@ fn empty_step(step: &Step, started_at_s: Option<f64>) -> StepRecord {
     }
 }
 
-/// The distinct (quantity, channel) pairs a step reads from each unit, in check order.
-fn readings_of(step: &Step) -> Vec<(Quantity, String)> {
-    let mut out: Vec<(Quantity, String)> = Vec::new();
+/// The distinct readings a step takes from each unit: its checks' (quantity, channel) pairs in
+/// check order, then the raw counts of a calibration point.
+fn readings_of(step: &Step, calibration: Option<&CalibrationSpec>) -> Vec<sampling::Wanted> {
+    let mut out: Vec<sampling::Wanted> = Vec::new();
     for c in &step.checks {
-        if !out
-            .iter()
-            .any(|(q, ch)| *q == c.quantity && *ch == c.channel)
-        {
-            out.push((c.quantity, c.channel.clone()));
+        let w = sampling::Wanted {
+            quantity: c.quantity,
+            channel: c.channel.clone(),
+            raw: false,
+        };
+        if !out.contains(&w) {
+            out.push(w);
         }
+    }
+    if let Some(cal) = calibration.filter(|c| c.points.contains(&step.id)) {
+        out.push(sampling::Wanted {
+            quantity: cal.quantity,
+            channel: cal.channel.clone(),
+            raw: true,
+        });
     }
     out
 }
@@ -354,7 +410,8 @@ fn run_step(
     units: &mut [Unit],
     judge: &decide::Judge,
 ) {
-    let wanted = readings_of(step);
+    let calibration = judge.calibration.filter(|c| c.points.contains(&step.id));
+    let wanted = readings_of(step, calibration);
     let slots: Vec<sampling::Slot> = bench
         .positions
         .iter_mut()
@@ -363,7 +420,7 @@ fn run_step(
         .collect();
     let (mut series, window) =
         sampling::sample_step(step, &wanted, bench.clock.as_ref(), slots, bench.parallel);
-    let references = take_references(step, bench, window);
+    let references = take_references(step, calibration, bench, window);
     for (u, unit) in units.iter_mut().enumerate() {
         if !unit.active {
             continue;
@@ -381,7 +438,7 @@ fn run_step(
         for (check, check_record) in step.checks.iter().zip(record.checks.iter_mut()) {
             let w = wanted
                 .iter()
-                .position(|(q, ch)| *q == check.quantity && *ch == check.channel)
+                .position(|w| !w.raw && w.quantity == check.quantity && w.channel == check.channel)
                 .expect("every check's reading is wanted");
             check_record.samples = series[u].samples.get(w).cloned().unwrap_or_default();
             let reference = references
@@ -396,6 +453,26 @@ fn run_step(
                 resolution: bench.positions[u].link.resolution(check.quantity),
             };
             decide::evaluate_check(input, check_record, judge);
+        }
+        if let Some(cal) = calibration {
+            let w = wanted
+                .iter()
+                .position(|w| w.raw)
+                .expect("a raw reading is wanted");
+            let samples = series[u].samples.get(w).cloned().unwrap_or_default();
+            let counts: Vec<f64> = samples.iter().map(|s| s.value).collect();
+            record.calibration_point = Some(CalibrationPoint {
+                quantity: cal.quantity,
+                channel: cal.channel.clone(),
+                mean_counts: (counts.len() == step.samples as usize)
+                    .then(|| crate::metrology::Summary::of(&counts).map(|s| s.mean))
+                    .flatten(),
+                samples,
+                reference: references
+                    .iter()
+                    .find(|(q, _)| *q == cal.quantity)
+                    .and_then(|(_, r)| r.as_ref().ok().map(|r| r.value)),
+            });
         }
         let missing_reference: Vec<String> = references
             .iter()
@@ -420,22 +497,30 @@ type ReferenceResult = Result<crate::bench::ReferenceReading, String>;
 /// One reference reading per quantity the step checks against a reference.
 fn take_references(
     step: &Step,
+    calibration: Option<&CalibrationSpec>,
     bench: &mut Bench,
     window: (f64, f64),
 ) -> Vec<(Quantity, ReferenceResult)> {
+    let mut quantities: Vec<Quantity> = step
+        .checks
+        .iter()
+        .filter(|c| c.tolerance.needs_reference())
+        .map(|c| c.quantity)
+        .collect();
+    quantities.extend(calibration.map(|c| c.quantity));
     let mut out: Vec<(Quantity, ReferenceResult)> = Vec::new();
-    for check in &step.checks {
-        if !check.tolerance.needs_reference() || out.iter().any(|(q, _)| *q == check.quantity) {
+    for quantity in quantities {
+        if out.iter().any(|(q, _)| *q == quantity) {
             continue;
         }
         let request = ReferenceRequest {
             step_id: &step.id,
-            quantity: check.quantity,
+            quantity,
             load: &step.load,
             window,
         };
         let reading = bench.reference.read(&request).map_err(|e| e.to_string());
-        out.push((check.quantity, reading));
+        out.push((quantity, reading));
     }
     out
 }

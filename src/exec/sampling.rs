@@ -17,13 +17,22 @@ pub(super) struct Series {
     pub fault: Option<String>,
 }
 
+/// One reading taken from each unit at every sample.
+#[derive(Debug, Clone, PartialEq)]
+pub(super) struct Wanted {
+    pub quantity: Quantity,
+    pub channel: String,
+    /// The front end's counts (for calibration) instead of the converted value.
+    pub raw: bool,
+}
+
 /// A position to sample: its link, or `None` when the unit is not being tested.
 pub(super) type Slot<'a> = Option<&'a mut Box<dyn DutLink>>;
 
 /// Samples every slot over the step's window; returns the series and the window's bench times.
 pub(super) fn sample_step(
     step: &Step,
-    wanted: &[(Quantity, String)],
+    wanted: &[Wanted],
     clock: &dyn Clock,
     slots: Vec<Slot>,
     parallel: bool,
@@ -69,14 +78,24 @@ pub(super) fn sample_step(
 /// advance must be set against the time it really covers.
 fn read_once(
     link: &mut dyn DutLink,
-    wanted: &[(Quantity, String)],
+    wanted: &[Wanted],
     k: u32,
     step: &Step,
     clock: &dyn Clock,
 ) -> Result<Vec<Sample>, (Vec<Sample>, String)> {
     let mut values = Vec::with_capacity(wanted.len());
-    for (quantity, channel) in wanted {
-        match link.read(*quantity, channel) {
+    for Wanted {
+        quantity,
+        channel,
+        raw,
+    } in wanted
+    {
+        let reading = if *raw {
+            link.read_raw(*quantity, channel)
+        } else {
+            link.read(*quantity, channel)
+        };
+        match reading {
             Ok(value) => values.push(Sample {
                 t_s: clock.now_s(),
                 value,
@@ -111,7 +130,7 @@ fn empty(wanted: usize) -> Series {
 /// One unit on its own thread, sample k at t0 + k·interval.
 fn on_schedule(
     step: &Step,
-    wanted: &[(Quantity, String)],
+    wanted: &[Wanted],
     clock: &dyn Clock,
     t0: f64,
     link: &mut Box<dyn DutLink>,
@@ -135,7 +154,7 @@ fn on_schedule(
 /// Every unit per round; the virtual clock moves between rounds.
 fn in_rounds(
     step: &Step,
-    wanted: &[(Quantity, String)],
+    wanted: &[Wanted],
     clock: &dyn Clock,
     mut slots: Vec<Slot>,
     parallel: bool,

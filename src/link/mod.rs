@@ -50,6 +50,22 @@ pub trait DutLink: Send {
     /// (energy) this is the register's current content.
     fn read(&mut self, quantity: Quantity, channel: &str) -> Result<f64, LinkError>;
 
+    /// Reads one quantity as the front end counts it, before any conversion (for calibration).
+    fn read_raw(&mut self, quantity: Quantity, channel: &str) -> Result<f64, LinkError> {
+        Err(LinkError::Unsupported {
+            quantity: format!("raw {}", quantity.name()),
+            channel: channel.to_string(),
+        })
+    }
+
+    /// Reads back a named constant.
+    fn read_constant(&mut self, name: &str, channel: &str) -> Result<f64, LinkError> {
+        Err(LinkError::Unsupported {
+            quantity: format!("read {name}"),
+            channel: channel.to_string(),
+        })
+    }
+
     /// Writes a named constant (a calibration gain or offset) and waits for its acknowledgement.
     fn write_constant(&mut self, name: &str, channel: &str, _value: f64) -> Result<(), LinkError> {
         Err(LinkError::Unsupported {

@@ -26,6 +26,19 @@ pub fn line_settings(spec: &TextLinkSpec) -> LineSettings {
     }
 }
 
+/// A captured value as a finite number.
+fn number(request: &str, text: &str) -> Result<f64, LinkError> {
+    text.trim()
+        .parse::<f64>()
+        .ok()
+        .filter(|v| v.is_finite())
+        .ok_or_else(|| LinkError::Garbled {
+            request: request.to_string(),
+            reply: text.to_string(),
+            why: "the value is not a finite number".into(),
+        })
+}
+
 /// A unit reached over a text protocol.
 pub struct TextLink<W: Wire> {
     spec: Arc<TextLinkSpec>,
@@ -137,11 +150,41 @@ impl<W: Wire> DutLink for TextLink<W> {
         self.write_named(name, channel, value)
     }
 
-    fn resolution(&self, quantity: Quantity) -> Option<f64> {
-        // One count of the front end, converted as the readings are.
-        self.spec
+    fn read_raw(&mut self, quantity: Quantity, channel: &str) -> Result<f64, LinkError> {
+        let spec = self.spec.clone();
+        let q = spec
             .request_for(quantity)
-            .map(|q| (q.unit_factor / q.gain).abs())
+            .ok_or_else(|| LinkError::Unsupported {
+                quantity: quantity.name().into(),
+                channel: channel.into(),
+            })?;
+        // The raw request where there is one; otherwise the reading itself, unconverted.
+        let (request, pattern) = match &q.raw {
+            Some(raw) => (raw.request.replace("{channel}", channel), &raw.reply.regex),
+            None => (q.request.replace("{channel}", channel), &q.reply.regex),
+        };
+        let text = self.captured(&request, pattern, "value")?;
+        number(&request, &text)
+    }
+
+    fn read_constant(&mut self, name: &str, channel: &str) -> Result<f64, LinkError> {
+        let spec = self.spec.clone();
+        let readback = spec
+            .writes
+            .iter()
+            .find(|w| w.name == name)
+            .and_then(|w| w.readback.as_ref())
+            .ok_or_else(|| LinkError::Unsupported {
+                quantity: format!("read back {name}"),
+                channel: channel.into(),
+            })?;
+        let request = readback.request.replace("{channel}", channel);
+        let text = self.captured(&request, &readback.reply.regex, "value")?;
+        number(&request, &text)
+    }
+
+    fn resolution(&self, quantity: Quantity) -> Option<f64> {
+        self.spec.request_for(quantity).and_then(|q| q.resolution)
     }
 
     fn describe(&self) -> String {

@@ -31,9 +31,30 @@ pub struct Plan {
     pub ratings: Ratings,
     pub link: LinkSpec,
     pub decision: DecisionRule,
+    pub calibration: Option<CalibrationSpec>,
     pub steps: Vec<Step>,
     #[serde(skip)]
     pub source: PlanSource,
+}
+
+/// Calibration of one quantity's front end from some of the plan's steps, with optional
+/// write-back of the constants; the steps after the last point verify the result.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct CalibrationSpec {
+    pub quantity: Quantity,
+    pub channel: String,
+    pub model: crate::metrology::fit::Model,
+    /// Ids of the steps whose raw counts and reference readings are the calibration points.
+    pub points: Vec<String>,
+    /// Names of the link's writes for the offset and the gain.
+    pub write: Option<(String, String)>,
+}
+
+impl CalibrationSpec {
+    /// Index of the last calibration point among `steps`: the constants are fitted after it.
+    pub fn last_point(&self, steps: &[Step]) -> Option<usize> {
+        steps.iter().rposition(|s| self.points.contains(&s.id))
+    }
 }
 
 /// How a measured error and its uncertainty become a verdict (ILAC-G8:09/2019).

@@ -56,7 +56,29 @@ pub struct RawPlan {
     pub defaults: RawDefaults,
     #[serde(default)]
     pub decision: Option<RawDecision>,
+    #[serde(default)]
+    pub calibration: Option<RawCalibration>,
     pub steps: Vec<serde_yaml::Value>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawCalibration {
+    pub quantity: Text,
+    #[serde(default)]
+    pub channel: Option<Text>,
+    #[serde(default)]
+    pub fit: Option<Text>,
+    pub points: Vec<Text>,
+    #[serde(default)]
+    pub write: Option<RawCalibrationWrite>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawCalibrationWrite {
+    pub offset: Text,
+    pub gain: Text,
 }
 
 #[derive(Debug, Deserialize)]
@@ -185,6 +207,12 @@ pub struct RawIdentity {
 pub struct RawQuantityRequest {
     pub request: Text,
     pub reply: Text,
+    /// How to read the front end's counts, when `request` gives calibrated values.
+    #[serde(default)]
+    pub raw: Option<RawIdentity>,
+    /// The smallest step of the reading, when the reply is not in counts.
+    #[serde(default)]
+    pub resolution: Option<Text>,
     #[serde(default)]
     pub offset: Option<Text>,
     #[serde(default)]
@@ -198,6 +226,9 @@ pub struct RawQuantityRequest {
 pub struct RawWrite {
     pub request: Text,
     pub ack: Text,
+    /// How to read the constant back; its reply has a `value` group.
+    #[serde(default)]
+    pub readback: Option<RawIdentity>,
 }
 
 #[derive(Debug, Deserialize)]

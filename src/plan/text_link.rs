@@ -104,6 +104,18 @@ pub struct QuantityRequest {
     pub gain: f64,
     /// The factor from `unit` to the quantity's base unit (1 for the base unit, 1e-3 for mA).
     pub unit_factor: f64,
+    /// How to read the raw counts, when `request` gives calibrated values.
+    pub raw: Option<Exchange>,
+    /// The smallest step of the reading, base units: stated, or one count when the reply is in
+    /// counts (a gain is given); otherwise unknown.
+    pub resolution: Option<f64>,
+}
+
+/// A request and the pattern of its reply (with a `value` group).
+#[derive(Debug, Clone, Serialize)]
+pub struct Exchange {
+    pub request: String,
+    pub reply: Pattern,
 }
 
 impl QuantityRequest {
@@ -120,6 +132,7 @@ pub struct WriteRequest {
     /// The line to send; `{channel}` and `{value}` are replaced.
     pub request: String,
     pub ack: Pattern,
+    pub readback: Option<Exchange>,
 }
 
 /// A line protocol over a serial port.

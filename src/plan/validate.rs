@@ -327,9 +327,14 @@ fn meaning(
             steps.push(step);
         }
     }
+    let calibration = match &raw.calibration {
+        None => Some(None),
+        Some(c) => calibration(ctx, c, &steps, &link).map(Some),
+    };
     Some(Plan {
         id: id?,
         revision: revision?,
+        calibration: calibration?,
         title: raw.title.map(|t| t.0),
         product: product?,
         ratings,
@@ -337,6 +342,111 @@ fn meaning(
         decision: decision?,
         steps,
         source: PlanSource::default(),
+    })
+}
+
+fn calibration(
+    ctx: &mut Ctx,
+    raw: &super::raw::RawCalibration,
+    steps: &[Step],
+    link: &LinkSpec,
+) -> Option<super::CalibrationSpec> {
+    use crate::metrology::fit::Model;
+    let quantity = Quantity::from_name(raw.quantity.0.trim());
+    if quantity.is_none() || quantity.is_some_and(|q| q.is_register()) {
+        ctx.error(
+            "calibration.quantity",
+            format!(
+                "\"{}\" cannot be calibrated: give an instantaneous quantity such as current",
+                raw.quantity.0
+            ),
+        );
+    }
+    let channel = match &raw.channel {
+        None => link.channels().first().cloned(),
+        Some(t) if link.channels().iter().any(|c| c == t.0.trim()) => Some(t.0.trim().to_string()),
+        Some(t) => {
+            ctx.error(
+                "calibration.channel",
+                format!("unknown channel \"{}\"", t.0),
+            );
+            None
+        }
+    };
+    let model = match raw.fit.as_ref().map(|t| t.0.trim()) {
+        None | Some("line") => Some(Model::Line),
+        Some("quadratic") => Some(Model::Quadratic),
+        Some(other) => {
+            ctx.error(
+                "calibration.fit",
+                format!("unknown fit \"{other}\": use line or quadratic"),
+            );
+            None
+        }
+    };
+    let mut points = Vec::new();
+    for (i, p) in raw.points.iter().enumerate() {
+        let id = p.0.trim().to_string();
+        if !steps.iter().any(|s| s.id == id) {
+            ctx.error(
+                &format!("calibration.points[{i}]"),
+                format!("no step has the id \"{id}\""),
+            );
+        } else if points.contains(&id) {
+            ctx.error(
+                &format!("calibration.points[{i}]"),
+                format!("step \"{id}\" is listed twice"),
+            );
+        } else {
+            points.push(id);
+        }
+    }
+    let needed = match model {
+        Some(Model::Quadratic) => 4,
+        _ => 3,
+    };
+    if points.len() < needed {
+        ctx.error(
+            "calibration.points",
+            format!(
+                "the fit needs at least {needed} points to leave a residual, got {}",
+                points.len()
+            ),
+        );
+    }
+    let write = raw
+        .write
+        .as_ref()
+        .map(|w| (w.offset.0.trim().to_string(), w.gain.0.trim().to_string()));
+    if let Some((offset, gain)) = &write {
+        if model == Some(Model::Quadratic) {
+            ctx.error(
+                "calibration.write",
+                "the unit's constants are an offset and a gain: write-back needs fit: line",
+            );
+        }
+        if let LinkSpec::Text(t) = link {
+            for (key, name) in [("offset", offset), ("gain", gain)] {
+                match t.writes.iter().find(|w| &w.name == name) {
+                    None => ctx.error(
+                        &format!("calibration.write.{key}"),
+                        format!("the link has no write named \"{name}\" (link.writes)"),
+                    ),
+                    Some(w) if w.readback.is_none() => ctx.error(
+                        &format!("calibration.write.{key}"),
+                        format!("the link's write \"{name}\" has no readback: a written constant must be read back"),
+                    ),
+                    Some(_) => {}
+                }
+            }
+        }
+    }
+    Some(super::CalibrationSpec {
+        quantity: quantity?,
+        channel: channel?,
+        model: model?,
+        points,
+        write,
     })
 }
 

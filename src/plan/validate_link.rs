@@ -3,8 +3,8 @@
 use super::Quantity;
 use super::raw::{RawTextLink, Text};
 use super::text_link::{
-    FlowControl, IdentityRequest, LineEnding, Parity, Pattern, PortSettings, QuantityRequest,
-    TextLinkSpec, WriteRequest,
+    Exchange, FlowControl, IdentityRequest, LineEnding, Parity, Pattern, PortSettings,
+    QuantityRequest, TextLinkSpec, WriteRequest,
 };
 use super::units::{self, Dimension};
 use super::validate::{Ctx, channel_names};
@@ -40,6 +40,15 @@ fn pattern(ctx: &mut Ctx, path: &str, text: &Text, groups: &[&str]) -> Option<Pa
         text: text.0.clone(),
         regex,
     })
+}
+
+/// A request with `{channel}` and a reply pattern with a `value` group.
+fn exchange(ctx: &mut Ctx, path: &str, raw: &super::raw::RawIdentity) -> Option<Option<Exchange>> {
+    let request = template(ctx, &format!("{path}.request"), &raw.request, &["channel"]);
+    let reply = pattern(ctx, &format!("{path}.reply"), &raw.reply, &["value"]);
+    request
+        .zip(reply)
+        .map(|(request, reply)| Some(Exchange { request, reply }))
 }
 
 /// Checks that a request template uses only the placeholders it may.
@@ -272,20 +281,43 @@ pub(super) fn text_link(ctx: &mut Ctx, raw: RawTextLink) -> Option<TextLinkSpec>
                 "a gain of zero would divide by zero",
             );
         }
+        let raw_exchange = match &q.raw {
+            None => Some(None),
+            Some(r) => exchange(ctx, &format!("{path}.raw"), r),
+        };
         let unit_factor = match &q.unit {
             None => Some(1.0),
             Some(u) => unit_factor(ctx, &format!("{path}.unit"), u, quantity.dimension()),
         };
-        match (request, reply, offset, gain, unit_factor) {
-            (Some(request), Some(reply), Some(offset), Some(gain), Some(unit_factor)) => quantities
-                .push(QuantityRequest {
-                    quantity,
-                    request,
-                    reply,
-                    offset,
-                    gain,
-                    unit_factor,
-                }),
+        let resolution = match &q.resolution {
+            Some(t) => ctx
+                .value(&format!("{path}.resolution"), t, quantity.dimension())
+                .map(Some),
+            None => Some(
+                q.gain
+                    .is_some()
+                    .then(|| unit_factor.zip(gain).map(|(f, g)| (f / g).abs()))
+                    .flatten(),
+            ),
+        };
+        match (request, reply, offset, gain, unit_factor, raw_exchange) {
+            (
+                Some(request),
+                Some(reply),
+                Some(offset),
+                Some(gain),
+                Some(unit_factor),
+                Some(raw),
+            ) => quantities.push(QuantityRequest {
+                quantity,
+                request,
+                reply,
+                offset,
+                gain,
+                unit_factor,
+                raw,
+                resolution: resolution.flatten(),
+            }),
             _ => quantities_ok = false,
         }
     }
@@ -300,11 +332,16 @@ pub(super) fn text_link(ctx: &mut Ctx, raw: RawTextLink) -> Option<TextLinkSpec>
             &["channel", "value"],
         );
         let ack = pattern(ctx, &format!("{path}.ack"), &w.ack, &[]);
-        match (request, ack) {
-            (Some(request), Some(ack)) => writes.push(WriteRequest {
+        let readback = match &w.readback {
+            None => Some(None),
+            Some(r) => exchange(ctx, &format!("{path}.readback"), r),
+        };
+        match (request, ack, readback) {
+            (Some(request), Some(ack), Some(readback)) => writes.push(WriteRequest {
                 name: name.clone(),
                 request,
                 ack,
+                readback,
             }),
             _ => writes_ok = false,
         }

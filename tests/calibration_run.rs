@@ -1,0 +1,214 @@
+//! Calibration steps: fit, write-back, read-back and verification, on the simulated bench and
+//! through the text link over pseudo-terminals.
+
+use meterproof::bench::sim::{SimBench, SimConfig};
+use meterproof::bench::sim_device::{Device, Faults, PtyDevice};
+use meterproof::exec::{self, RunContext, Silent};
+use meterproof::link::text;
+use meterproof::plan::{LinkSpec, Plan};
+use meterproof::record::{CalibrationStatus, UnitRecord, UnitStatus};
+use std::sync::Arc;
+
+fn ctx() -> RunContext {
+    RunContext {
+        run_id: "test".into(),
+        operator: "tester".into(),
+        lot: None,
+        tool_version: "test".into(),
+        notes: Vec::new(),
+    }
+}
+
+fn plan(name: &str) -> Plan {
+    Plan::load(std::path::Path::new(&format!("test-plans/{name}"))).unwrap()
+}
+
+fn config() -> SimConfig {
+    SimConfig {
+        plant_defect: false,
+        ..SimConfig::new(1, 6)
+    }
+}
+
+/// Mean |error| of the verification steps' current checks, percent.
+fn verification_error(r: &UnitRecord) -> f64 {
+    let errors: Vec<f64> = r
+        .steps
+        .iter()
+        .filter(|s| s.id.starts_with("verify"))
+        .flat_map(|s| &s.checks)
+        .map(|c| c.evaluation.as_ref().unwrap().error.abs())
+        .collect();
+    errors.iter().sum::<f64>() / errors.len() as f64
+}
+
+#[test]
+fn calibration_written_back_brings_every_unit_within_limits() {
+    let with_write = plan("calibrate.yaml");
+    let text = std::fs::read_to_string("test-plans/calibrate.yaml").unwrap();
+    let fit_only = Plan::from_text(
+        "fit-only.yaml",
+        &text.replace(
+            "  write: { offset: offset_current, gain: gain_current }\n",
+            "",
+        ),
+    )
+    .unwrap();
+    let calibrated = exec::run(
+        &with_write,
+        &mut SimBench::new(&config()).into_bench(),
+        &ctx(),
+        &mut Silent,
+    );
+    let uncalibrated = exec::run(
+        &fit_only,
+        &mut SimBench::new(&config()).into_bench(),
+        &ctx(),
+        &mut Silent,
+    );
+    for (c, u) in calibrated.iter().zip(&uncalibrated) {
+        assert_eq!(
+            c.verdict.status,
+            UnitStatus::Accepted,
+            "{}: {:?}",
+            c.serial,
+            c.verdict
+        );
+        let cal = c.calibration.as_ref().unwrap();
+        assert_eq!(cal.status, CalibrationStatus::Written);
+        // The constants before are the front end's nominal ones; those read back are those written.
+        assert_eq!(cal.before, Some((395.0, 1700.0)));
+        assert_eq!(cal.read_back, cal.written);
+        let fit = cal.result.as_ref().unwrap();
+        assert_eq!(fit.points.len(), 4);
+        assert_eq!(fit.fit.residuals.len(), 4);
+        assert!(fit.linearity_error_percent < 0.1);
+        assert_eq!(
+            u.calibration.as_ref().unwrap().status,
+            CalibrationStatus::Fitted
+        );
+        // The new constants reduce the error the verification steps see.
+        assert!(
+            verification_error(c) < verification_error(u),
+            "{}",
+            c.serial
+        );
+    }
+    // Without write-back, the unit with the largest gain error fails its ±0.2 % verification.
+    assert!(
+        uncalibrated
+            .iter()
+            .any(|r| r.verdict.status == UnitStatus::Rejected)
+    );
+}
+
+/// The serial calibration plan over pseudo-terminals; `faults[i]` for meter i.
+fn serial_run(faults: &[Faults]) -> Vec<UnitRecord> {
+    let p = plan("calibrate-serial.yaml");
+    let LinkSpec::Text(spec) = &p.link else {
+        panic!()
+    };
+    let spec = Arc::new((**spec).clone());
+    let sim = SimBench::new(&config());
+    let devices: Vec<PtyDevice> = (0..sim.positions())
+        .map(|i| {
+            PtyDevice::spawn(Device::new(
+                sim.meter(i),
+                faults.get(i).cloned().unwrap_or_default(),
+            ))
+            .unwrap()
+        })
+        .collect();
+    let mut bench = sim.into_bench();
+    for (pos, d) in bench.positions.iter_mut().zip(&devices) {
+        pos.link = text::open(&d.path, spec.clone()).unwrap();
+    }
+    bench.parallel = true;
+    exec::run(&p, &mut bench, &ctx(), &mut Silent)
+}
+
+#[test]
+fn calibration_over_serial_writes_reads_back_and_refuses_constants_that_did_not_take() {
+    let faults = [
+        Faults::default(),
+        Faults {
+            ignore_writes: true,
+            ..Faults::default()
+        },
+    ];
+    let records = serial_run(&faults);
+    let good = &records[0];
+    assert_eq!(
+        good.verdict.status,
+        UnitStatus::Accepted,
+        "{:?}",
+        good.verdict
+    );
+    let cal = good.calibration.as_ref().unwrap();
+    assert_eq!(cal.status, CalibrationStatus::Written);
+    assert_eq!(
+        cal.read_back, cal.written,
+        "the shortest f64 text reads back exactly"
+    );
+
+    let stubborn = &records[1];
+    assert_eq!(stubborn.verdict.status, UnitStatus::Rejected);
+    let cal = stubborn.calibration.as_ref().unwrap();
+    assert_eq!(cal.status, CalibrationStatus::Mismatch);
+    assert_eq!(
+        cal.read_back,
+        Some((395.0, 1700.0)),
+        "the nominal constants stayed"
+    );
+    assert!(
+        stubborn.verdict.reasons[0].contains("was not tested further"),
+        "{:?}",
+        stubborn.verdict
+    );
+    assert!(
+        !stubborn.steps.iter().any(|s| s.id.starts_with("verify")),
+        "no verification ran"
+    );
+    // The other units were calibrated and verified as on the built-in bench.
+    for r in &records[2..] {
+        assert_eq!(
+            r.verdict.status,
+            UnitStatus::Accepted,
+            "{}: {:?}",
+            r.serial,
+            r.verdict
+        );
+    }
+}
+
+#[test]
+fn calibration_mistakes_in_a_plan_are_refused() {
+    let text = std::fs::read_to_string("test-plans/calibrate-serial.yaml").unwrap();
+    let missing = text.replace(
+        "points: [cal-0A, cal-1.2A, cal-2.4A, cal-3.6A]",
+        "points: [cal-0A, cal-9A, cal-2.4A]",
+    );
+    let e = Plan::from_text("c.yaml", &missing).unwrap_err().to_string();
+    assert!(
+        e.contains("calibration.points[1]: no step has the id \"cal-9A\""),
+        "{e}"
+    );
+    assert!(e.contains("needs at least 3 points"), "{e}");
+    let no_readback = text.replace(
+        "      readback: { request: \"rg I {channel}\", reply: '^= rg I \\S+ (?P<value>\\S+)$' }\n",
+        "",
+    );
+    assert_ne!(no_readback, text);
+    let e = Plan::from_text("c.yaml", &no_readback)
+        .unwrap_err()
+        .to_string();
+    assert!(
+        e.contains("calibration.write.gain: the link's write \"gain_current\" has no readback"),
+        "{e}"
+    );
+    let quadratic = text.replace("fit: line", "fit: quadratic");
+    let e = Plan::from_text("c.yaml", &quadratic)
+        .unwrap_err()
+        .to_string();
+    assert!(e.contains("write-back needs fit: line"), "{e}");
+}
