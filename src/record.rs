@@ -13,6 +13,10 @@ use std::fs::{self, File, OpenOptions};
 use std::io::{self, Write};
 use std::path::{Path, PathBuf};
 
+fn first_attempt() -> u32 {
+    1
+}
+
 /// Names the layout of a record, so that later versions can still read old ones.
 pub const RECORD_FORMAT: &str = "meterproof-unit-record/1";
 
@@ -120,6 +124,9 @@ pub struct StepRecord {
     pub started_at_s: Option<f64>,
     pub status: StepStatus,
     pub reason: Option<String>,
+    /// 1 for the first time the step was run for this unit; more after a resume.
+    #[serde(default = "first_attempt")]
+    pub attempt: u32,
     /// The raw counts taken at a calibration point.
     #[serde(default)]
     pub calibration_point: Option<CalibrationPoint>,

@@ -15,9 +15,10 @@ use crate::link::Identity;
 use crate::plan::CalibrationSpec;
 use crate::plan::{Plan, Quantity, Step};
 use crate::record::{
-    CalibrationPoint, CheckRecord, CheckVerdict, PlanRef, RECORD_FORMAT, ReferenceRecord,
+    CalibrationPoint, CheckRecord, CheckVerdict, PlanRef, RECORD_FORMAT, ReferenceRecord, Sample,
     StepRecord, StepStatus, UnitRecord, UnitStatus, UnitVerdict,
 };
+use std::collections::BTreeMap;
 
 /// Who runs what, for the records.
 #[derive(Debug, Clone)]
@@ -74,11 +75,65 @@ impl Reporter for Silent {
     fn event(&mut self, _: &Event) {}
 }
 
+/// Where the engine puts each reading and record as soon as it exists: the archive, which
+/// commits them so that a crash loses at most the reading in flight. Implementations keep their
+/// own first error; the engine carries on (the records are also returned and exported).
+pub trait Recorder: Sync {
+    fn reading(&self, key: &ReadingKey, sample: Sample);
+    fn step_finished(&self, position: usize, step_index: usize, record: &StepRecord);
+    fn unit_finished(&self, record: &UnitRecord);
+}
+
+/// Which reading a sample is.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ReadingKey {
+    pub position: usize,
+    pub step_index: usize,
+    pub attempt: u32,
+    pub quantity: Quantity,
+    pub channel: String,
+    pub raw: bool,
+}
+
+/// A recorder that keeps nothing.
+pub struct NoRecorder;
+
+impl Recorder for NoRecorder {
+    fn reading(&self, _: &ReadingKey, _: Sample) {}
+    fn step_finished(&self, _: usize, _: usize, _: &StepRecord) {}
+    fn unit_finished(&self, _: &UnitRecord) {}
+}
+
+/// What an interrupted run had finished, to continue from it.
+#[derive(Debug, Clone, Default)]
+pub struct Resume {
+    /// The serial each position's unit had, to make sure the same unit is still there.
+    pub serials: BTreeMap<usize, String>,
+    /// Steps a position finished, by step index.
+    pub done: BTreeMap<usize, BTreeMap<usize, StepRecord>>,
+    /// How many attempts each (position, step index) has had so far.
+    pub attempts: BTreeMap<(usize, usize), u32>,
+    /// When the run was started first.
+    pub first_started_at: String,
+}
+
 /// One position's state during the run.
 struct Unit {
     record: UnitRecord,
     /// Whether the unit is still being tested (not refused at identification).
     active: bool,
+    /// Steps run again after a resume.
+    repeated: Vec<String>,
+}
+
+/// What `run_step` needs to know about the step beyond the plan.
+struct StepContext<'a> {
+    index: usize,
+    started_at_s: f64,
+    /// Which units to sample at this step (the others are refused or kept from before).
+    to_run: &'a [bool],
+    attempts: Option<&'a BTreeMap<(usize, usize), u32>>,
+    recorder: &'a dyn Recorder,
 }
 
 /// Runs `plan` on `bench` and returns one record per position.
@@ -88,7 +143,29 @@ pub fn run(
     ctx: &RunContext,
     reporter: &mut dyn Reporter,
 ) -> Vec<UnitRecord> {
-    let started_at = now_iso();
+    run_with(plan, bench, ctx, reporter, &NoRecorder, None)
+}
+
+/// Runs `plan` on `bench`, handing every reading and record to `recorder` as it is taken, and
+/// continuing from `resume` where an interrupted run left off: a step a unit finished is kept,
+/// every other step is run again from its load and settling.
+pub fn run_with(
+    plan: &Plan,
+    bench: &mut Bench,
+    ctx: &RunContext,
+    reporter: &mut dyn Reporter,
+    recorder: &dyn Recorder,
+    resume: Option<&Resume>,
+) -> Vec<UnitRecord> {
+    let resumed_at = resume.map(|_| now_iso());
+    let started_at = resume.map_or_else(now_iso, |r| r.first_started_at.clone());
+    if let Some(r) = resume {
+        for p in bench.positions.iter_mut() {
+            if p.expected_serial.is_none() {
+                p.expected_serial = r.serials.get(&p.number).cloned();
+            }
+        }
+    }
     let t_start = bench.clock.now_s();
     reporter.event(&Event::RunStarted {
         plan,
@@ -133,6 +210,39 @@ pub fn run(
             }
             continue;
         }
+        // Steps an interrupted run finished are kept as they were.
+        let kept: Vec<Option<StepRecord>> = units
+            .iter()
+            .map(|u| {
+                resume
+                    .and_then(|r| r.done.get(&u.record.position))
+                    .and_then(|d| d.get(&index))
+                    .cloned()
+            })
+            .collect();
+        let to_run: Vec<bool> = units
+            .iter()
+            .zip(&kept)
+            .map(|(u, k)| u.active && k.is_none())
+            .collect();
+        for (u, k) in units.iter_mut().zip(&kept) {
+            if let (true, Some(k)) = (u.active, k) {
+                u.record.steps.push(k.clone());
+            }
+        }
+        if !to_run.iter().any(|r| *r) {
+            if let Some(cal) = &plan.calibration
+                && cal.last_point(&plan.steps) == Some(index)
+            {
+                calibrate_units(cal, bench, &mut units);
+            }
+            continue;
+        }
+        for (u, run) in units.iter_mut().zip(&to_run) {
+            if *run && resume.is_some() {
+                u.repeated.push(step.id.clone());
+            }
+        }
         reporter.event(&Event::StepStarted {
             index,
             total: plan.steps.len(),
@@ -148,7 +258,14 @@ pub fn run(
         }
         let started_at_s = bench.clock.now_s();
         bench.clock.sleep_s(step.settle_s);
-        run_step(step, started_at_s, bench, &mut units, &judge);
+        let ctx_step = StepContext {
+            index,
+            started_at_s,
+            to_run: &to_run,
+            attempts: resume.map(|r| &r.attempts),
+            recorder,
+        };
+        run_step(step, &ctx_step, bench, &mut units, &judge);
         if let Some(cal) = &plan.calibration
             && cal.last_point(&plan.steps) == Some(index)
         {
@@ -198,6 +315,17 @@ pub fn run(
             if let Some(e) = &off_failure {
                 u.record.verdict.reasons.push(format!("after the run: {e}"));
             }
+            if let Some(at) = &resumed_at {
+                u.record.notes.push(format!(
+                    "resumed at {at} after an interruption; steps run again: {}",
+                    if u.repeated.is_empty() {
+                        "none".to_string()
+                    } else {
+                        u.repeated.join(", ")
+                    }
+                ));
+            }
+            recorder.unit_finished(&u.record);
             u.record
         })
         .collect();
@@ -269,6 +397,7 @@ fn identify(
         None => (UnitStatus::Incomplete, Vec::new(), true),
     };
     Unit {
+        repeated: Vec::new(),
         record: UnitRecord {
             format: RECORD_FORMAT.into(),
             tool_version: ctx.tool_version.clone(),
@@ -354,6 +483,7 @@ fn empty_step(step: &Step, started_at_s: Option<f64>) -> StepRecord {
         started_at_s,
         status: StepStatus::Done,
         reason: None,
+        attempt: 1,
         calibration_point: None,
         references: Vec::new(),
         checks: step
@@ -405,27 +535,55 @@ fn readings_of(step: &Step, calibration: Option<&CalibrationSpec>) -> Vec<sampli
 /// Samples every active unit, takes the reference readings and evaluates the checks.
 fn run_step(
     step: &Step,
-    started_at_s: f64,
+    sc: &StepContext,
     bench: &mut Bench,
     units: &mut [Unit],
     judge: &decide::Judge,
 ) {
+    let started_at_s = sc.started_at_s;
+    let attempt_of = |position: usize| {
+        sc.attempts
+            .and_then(|a| a.get(&(position, sc.index)))
+            .copied()
+            .unwrap_or(0)
+            + 1
+    };
     let calibration = judge.calibration.filter(|c| c.points.contains(&step.id));
     let wanted = readings_of(step, calibration);
+    let numbers: Vec<usize> = bench.positions.iter().map(|p| p.number).collect();
     let slots: Vec<sampling::Slot> = bench
         .positions
         .iter_mut()
         .zip(units.iter())
-        .map(|(p, u)| u.active.then_some(&mut p.link))
+        .zip(sc.to_run)
+        .map(|((p, _), run)| run.then_some(&mut p.link))
         .collect();
-    let (mut series, window) =
-        sampling::sample_step(step, &wanted, bench.clock.as_ref(), slots, bench.parallel);
+    let on_reading = |slot: usize, w: usize, sample: Sample| {
+        let want = &wanted[w];
+        let key = ReadingKey {
+            position: numbers[slot],
+            step_index: sc.index,
+            attempt: attempt_of(numbers[slot]),
+            quantity: want.quantity,
+            channel: want.channel.clone(),
+            raw: want.raw,
+        };
+        sc.recorder.reading(&key, sample);
+    };
+    let sampler = sampling::Sampler {
+        step,
+        wanted: &wanted,
+        clock: bench.clock.as_ref(),
+        on_reading: &on_reading,
+    };
+    let (mut series, window) = sampling::sample_step(sampler, slots, bench.parallel);
     let references = take_references(step, calibration, bench, window);
     for (u, unit) in units.iter_mut().enumerate() {
-        if !unit.active {
+        if !sc.to_run[u] {
             continue;
         }
         let mut record = empty_step(step, Some(started_at_s));
+        record.attempt = attempt_of(unit.record.position);
         record.references = references
             .iter()
             .filter_map(|(q, r)| {
@@ -488,6 +646,8 @@ fn run_step(
                 missing_reference.join("; ")
             ));
         }
+        sc.recorder
+            .step_finished(unit.record.position, sc.index, &record);
         unit.record.steps.push(record);
     }
 }

@@ -3,6 +3,7 @@
 //! On a real clock each position follows the step's sample schedule in its own thread, so a slow
 //! or dead unit delays nobody else. On the simulator's virtual clock the positions are read in
 //! rounds (time only moves between rounds), concurrently when their links are real ports.
+//! Every reading is handed to `on_reading` as soon as it is taken, so the archive can commit it.
 
 use crate::bench::Clock;
 use crate::link::DutLink;
@@ -19,34 +20,45 @@ pub(super) struct Series {
 
 /// One reading taken from each unit at every sample.
 #[derive(Debug, Clone, PartialEq)]
-pub(super) struct Wanted {
+pub struct Wanted {
     pub quantity: Quantity,
     pub channel: String,
     /// The front end's counts (for calibration) instead of the converted value.
     pub raw: bool,
 }
 
-/// A position to sample: its link, or `None` when the unit is not being tested.
+/// A position to sample: its link, or `None` when the unit is not being sampled.
 pub(super) type Slot<'a> = Option<&'a mut Box<dyn DutLink>>;
+
+/// Called with (slot index, wanted index, sample) for every reading taken.
+pub(super) type OnReading<'a> = &'a (dyn Fn(usize, usize, Sample) + Sync);
+
+/// What every position's sampling of one step shares.
+#[derive(Clone, Copy)]
+pub(super) struct Sampler<'a> {
+    pub step: &'a Step,
+    pub wanted: &'a [Wanted],
+    pub clock: &'a dyn Clock,
+    pub on_reading: OnReading<'a>,
+}
 
 /// Samples every slot over the step's window; returns the series and the window's bench times.
 pub(super) fn sample_step(
-    step: &Step,
-    wanted: &[Wanted],
-    clock: &dyn Clock,
+    s: Sampler,
     slots: Vec<Slot>,
     parallel: bool,
 ) -> (Vec<Series>, (f64, f64)) {
-    let t0 = clock.now_s();
-    let series = if clock.is_virtual() {
-        in_rounds(step, wanted, clock, slots, parallel)
+    let t0 = s.clock.now_s();
+    let series = if s.clock.is_virtual() {
+        in_rounds(s, slots, parallel)
     } else if parallel {
         std::thread::scope(|scope| {
             let handles: Vec<_> = slots
                 .into_iter()
-                .map(|slot| {
+                .enumerate()
+                .map(|(i, slot)| {
                     scope.spawn(move || {
-                        slot.map(|link| on_schedule(step, wanted, clock, t0, link))
+                        slot.map(|link| on_schedule(s, i, t0, link))
                             .unwrap_or_default()
                     })
                 })
@@ -64,60 +76,54 @@ pub(super) fn sample_step(
     } else {
         slots
             .into_iter()
-            .map(|slot| {
-                slot.map(|link| on_schedule(step, wanted, clock, t0, link))
+            .enumerate()
+            .map(|(i, slot)| {
+                slot.map(|link| on_schedule(s, i, t0, link))
                     .unwrap_or_default()
             })
             .collect()
     };
-    (series, (t0, clock.now_s()))
+    (series, (t0, s.clock.now_s()))
 }
 
-/// Reads every wanted quantity once from one unit. Each reading is stamped with the time its
-/// reply arrived: after a retry that can be well after the sample was due, and a register's
-/// advance must be set against the time it really covers.
+/// Reads every wanted quantity once from one unit, keeping each reading as it arrives. Each
+/// reading is stamped with the time its reply arrived: after a retry that can be well after the
+/// sample was due, and a register's advance must be set against the time it really covers.
+/// Returns the fault that stopped the series, if one did.
 fn read_once(
+    s: Sampler,
+    slot: usize,
     link: &mut dyn DutLink,
-    wanted: &[Wanted],
     k: u32,
-    step: &Step,
-    clock: &dyn Clock,
-) -> Result<Vec<Sample>, (Vec<Sample>, String)> {
-    let mut values = Vec::with_capacity(wanted.len());
-    for Wanted {
-        quantity,
-        channel,
-        raw,
-    } in wanted
-    {
-        let reading = if *raw {
-            link.read_raw(*quantity, channel)
+    series: &mut Series,
+) -> Option<String> {
+    for (w, want) in s.wanted.iter().enumerate() {
+        let reading = if want.raw {
+            link.read_raw(want.quantity, &want.channel)
         } else {
-            link.read(*quantity, channel)
+            link.read(want.quantity, &want.channel)
         };
         match reading {
-            Ok(value) => values.push(Sample {
-                t_s: clock.now_s(),
-                value,
-            }),
+            Ok(value) => {
+                let sample = Sample {
+                    t_s: s.clock.now_s(),
+                    value,
+                };
+                series.samples[w].push(sample);
+                (s.on_reading)(slot, w, sample);
+            }
             Err(e) => {
-                let why = format!(
-                    "sample {} of {}: reading {} on channel {channel}: {e}",
+                return Some(format!(
+                    "sample {} of {}: reading {} on channel {}: {e}",
                     k + 1,
-                    step.samples,
-                    quantity.name()
-                );
-                return Err((values, why));
+                    s.step.samples,
+                    want.quantity.name(),
+                    want.channel
+                ));
             }
         }
     }
-    Ok(values)
-}
-
-fn push(series: &mut Series, values: &[Sample]) {
-    for (s, &sample) in series.samples.iter_mut().zip(values) {
-        s.push(sample);
-    }
+    None
 }
 
 fn empty(wanted: usize) -> Series {
@@ -128,61 +134,40 @@ fn empty(wanted: usize) -> Series {
 }
 
 /// One unit on its own thread, sample k at t0 + k·interval.
-fn on_schedule(
-    step: &Step,
-    wanted: &[Wanted],
-    clock: &dyn Clock,
-    t0: f64,
-    link: &mut Box<dyn DutLink>,
-) -> Series {
-    let mut series = empty(wanted.len());
-    for k in 0..step.samples {
-        let due = t0 + f64::from(k) * step.interval_s;
-        clock.sleep_s(due - clock.now_s());
-        match read_once(link.as_mut(), wanted, k, step, clock) {
-            Ok(values) => push(&mut series, &values),
-            Err((partial, why)) => {
-                push(&mut series, &partial);
-                series.fault = Some(why);
-                break;
-            }
+fn on_schedule(s: Sampler, slot: usize, t0: f64, link: &mut Box<dyn DutLink>) -> Series {
+    let mut series = empty(s.wanted.len());
+    for k in 0..s.step.samples {
+        let due = t0 + f64::from(k) * s.step.interval_s;
+        s.clock.sleep_s(due - s.clock.now_s());
+        if let Some(fault) = read_once(s, slot, link.as_mut(), k, &mut series) {
+            series.fault = Some(fault);
+            break;
         }
     }
     series
 }
 
 /// Every unit per round; the virtual clock moves between rounds.
-fn in_rounds(
-    step: &Step,
-    wanted: &[Wanted],
-    clock: &dyn Clock,
-    mut slots: Vec<Slot>,
-    parallel: bool,
-) -> Vec<Series> {
+fn in_rounds(s: Sampler, mut slots: Vec<Slot>, parallel: bool) -> Vec<Series> {
     let mut all: Vec<Series> = slots
         .iter()
-        .map(|s| {
-            if s.is_some() {
-                empty(wanted.len())
+        .map(|slot| {
+            if slot.is_some() {
+                empty(s.wanted.len())
             } else {
                 Series::default()
             }
         })
         .collect();
-    for k in 0..step.samples {
+    for k in 0..s.step.samples {
         let live = slots
             .iter_mut()
             .zip(all.iter_mut())
-            .filter(|(slot, series)| slot.is_some() && series.fault.is_none());
-        let round = |(slot, series): (&mut Slot, &mut Series)| {
+            .enumerate()
+            .filter(|(_, (slot, series))| slot.is_some() && series.fault.is_none());
+        let round = |(i, (slot, series)): (usize, (&mut Slot, &mut Series))| {
             let link = slot.as_mut().expect("filtered to live slots");
-            match read_once(link.as_mut(), wanted, k, step, clock) {
-                Ok(values) => push(series, &values),
-                Err((partial, why)) => {
-                    push(series, &partial);
-                    series.fault = Some(why);
-                }
-            }
+            series.fault = read_once(s, i, link.as_mut(), k, series);
         };
         if parallel {
             std::thread::scope(|scope| {
@@ -193,8 +178,8 @@ fn in_rounds(
         } else {
             live.for_each(round);
         }
-        if k + 1 < step.samples {
-            clock.sleep_s(step.interval_s);
+        if k + 1 < s.step.samples {
+            s.clock.sleep_s(s.step.interval_s);
         }
     }
     all
