@@ -6,6 +6,7 @@
 //! The [`metrology`] module holds the arithmetic, free of I/O. [`cli`] is the only place that
 //! prints errors or chooses exit codes.
 
+pub mod archive;
 pub mod bench;
 pub mod cli;
 pub mod exec;

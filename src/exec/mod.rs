@@ -81,6 +81,8 @@ impl Reporter for Silent {
 pub trait Recorder: Sync {
     fn reading(&self, key: &ReadingKey, sample: Sample);
     fn step_finished(&self, position: usize, step_index: usize, record: &StepRecord);
+    /// A unit has identified itself (or failed to) and its testing begins.
+    fn unit_started(&self, _record: &UnitRecord) {}
     fn unit_finished(&self, record: &UnitRecord);
 }
 
@@ -177,6 +179,7 @@ pub fn run_with(
         .map(|p| identify(plan, p, ctx, &bench.station, &started_at))
         .collect();
     for u in &units {
+        recorder.unit_started(&u.record);
         match (&u.record.identity, u.active) {
             (Some(identity), true) => reporter.event(&Event::UnitIdentified {
                 position: u.record.position,

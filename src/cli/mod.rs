@@ -4,6 +4,9 @@
 //! Exit status: 0 every unit accepted (or every plan valid); 1 at least one unit rejected;
 //! 2 an invalid plan or invalid arguments; 3 the run could not complete.
 
+mod archive_cmds;
+
+use crate::archive::{Archive, RunRecorder, RunRow};
 use crate::bench::Bench;
 use crate::bench::sim::{SimBench, SimConfig};
 use crate::bench::station::{self, Station};
@@ -42,6 +45,16 @@ enum Command {
     SimMeter(SimMeterArgs),
     /// List the serial ports this machine has.
     Ports,
+    /// Continue an interrupted run from the archive.
+    Resume(archive_cmds::ResumeArgs),
+    /// Every run of a unit, newest first.
+    History(archive_cmds::HistoryArgs),
+    /// Runs, with their counts of accepted, rejected and incomplete units.
+    Runs(archive_cmds::RunsArgs),
+    /// Write the records of a run or a serial number, with their plan texts, to a folder.
+    Export(archive_cmds::ExportArgs),
+    /// Check every record in the archive against its hash and the chain.
+    Verify(archive_cmds::VerifyArgs),
 }
 
 #[derive(clap::Args)]
@@ -105,6 +118,9 @@ struct RunArgs {
     /// recorded with every unit.
     #[arg(long, value_name = "REASON")]
     allow_overdue_reference: Option<String>,
+    /// The archive database (default: archive.sqlite in the --out folder).
+    #[arg(long)]
+    archive: Option<PathBuf>,
 }
 
 /// A failure of a command, rendered once here.
@@ -135,6 +151,11 @@ pub fn main() -> i32 {
         Command::Run(args) => run(&args),
         Command::SimMeter(args) => sim_meter(&args),
         Command::Ports => ports(),
+        Command::Resume(args) => archive_cmds::resume(&args),
+        Command::History(args) => archive_cmds::history(&args),
+        Command::Runs(args) => archive_cmds::runs(&args),
+        Command::Export(args) => archive_cmds::export(&args),
+        Command::Verify(args) => archive_cmds::verify(&args),
     };
     match result {
         Ok(code) => code,
@@ -273,11 +294,22 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
     let templates =
         Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
     let serials = checked_serials(args.serials.as_deref())?;
-    let (mut bench, notes) = if args.bench == "sim" {
-        (sim_bench(args, serials)?, Vec::new())
+    let spec = if args.bench == "sim" {
+        BenchSpec::Sim {
+            seed: args.seed,
+            positions: sim_positions(&serials, args.positions)?,
+            serials,
+        }
     } else {
-        station_bench(args, &plan, serials)?
+        BenchSpec::Station {
+            path: std::fs::canonicalize(&args.bench)
+                .unwrap_or_else(|_| PathBuf::from(&args.bench))
+                .display()
+                .to_string(),
+            serials,
+        }
     };
+    let (mut bench, notes) = build_bench(&spec, &plan, args)?;
     let ctx = RunContext {
         run_id: new_run_id(),
         operator: args.operator.clone(),
@@ -285,7 +317,7 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
         tool_version: crate::VERSION.to_string(),
         notes,
     };
-    // The output folder must be writable before any load is applied, not after the run.
+    // The output folder and the archive must be writable before any load is applied.
     let run_dir = args.out.join(&ctx.run_id);
     std::fs::create_dir_all(&run_dir).map_err(|e| {
         CliError::Run(format!(
@@ -293,8 +325,38 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
             run_dir.display()
         ))
     })?;
+    let archive_path = args
+        .archive
+        .clone()
+        .unwrap_or_else(|| args.out.join("archive.sqlite"));
+    let archive = Archive::open(&archive_path).map_err(|e| CliError::Run(e.to_string()))?;
+    archive
+        .begin_run(
+            &plan,
+            &RunRow {
+                run_id: ctx.run_id.clone(),
+                plan_sha256: plan.source.sha256.clone(),
+                plan_id: plan.id.clone(),
+                revision: plan.revision.clone(),
+                lot: ctx.lot.clone(),
+                station: bench.station.id.clone(),
+                operator: ctx.operator.clone(),
+                bench: serde_json::to_string(&spec).expect("a bench spec serialises"),
+                tool_version: ctx.tool_version.clone(),
+                started_at: chrono::Local::now()
+                    .to_rfc3339_opts(chrono::SecondsFormat::Millis, false),
+                finished_at: None,
+                state: "running".into(),
+            },
+        )
+        .map_err(|e| CliError::Run(e.to_string()))?;
     let mut reporter = TerminalReporter { quiet: args.quiet };
-    let records = exec::run(&plan, &mut bench, &ctx, &mut reporter);
+    let recorder = RunRecorder {
+        archive: &archive,
+        run_id: ctx.run_id.clone(),
+    };
+    let records = exec::run_with(&plan, &mut bench, &ctx, &mut reporter, &recorder, None);
+    finish_run(&archive, &ctx.run_id, &records)?;
     let written = write_outputs(&run_dir, &records, &templates)?;
     print_summary(&records, &written);
     println!(
@@ -313,9 +375,80 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
     Ok(exit_status(&records))
 }
 
-/// The built-in simulated bench, sized by --positions or --serials.
-fn sim_bench(args: &RunArgs, serials: Option<Vec<String>>) -> Result<Bench, CliError> {
-    let positions = match (&serials, args.positions) {
+/// How a run's bench was made, kept in the archive so that a resume can make it again.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+enum BenchSpec {
+    Sim {
+        seed: u64,
+        positions: usize,
+        serials: Option<Vec<String>>,
+    },
+    Station {
+        path: String,
+        serials: Option<Vec<String>>,
+    },
+}
+
+/// Options that shape how a bench is made.
+trait BenchOptions {
+    fn quiet(&self) -> bool;
+    fn allow_overdue_reference(&self) -> Option<&str>;
+}
+
+impl BenchOptions for RunArgs {
+    fn quiet(&self) -> bool {
+        self.quiet
+    }
+    fn allow_overdue_reference(&self) -> Option<&str> {
+        self.allow_overdue_reference.as_deref()
+    }
+}
+
+fn build_bench(
+    spec: &BenchSpec,
+    plan: &Plan,
+    options: &dyn BenchOptions,
+) -> Result<(Bench, Vec<String>), CliError> {
+    match spec {
+        BenchSpec::Sim {
+            seed,
+            positions,
+            serials,
+        } => {
+            let mut config = SimConfig::new(*seed, *positions);
+            config.serials = serials.clone();
+            Ok((SimBench::new(&config).into_bench(), Vec::new()))
+        }
+        BenchSpec::Station { path, serials } => {
+            station_bench(Path::new(path), plan, serials.clone(), options)
+        }
+    }
+}
+
+/// Marks the run finished in the archive, or says why the archive is not complete.
+fn finish_run(archive: &Archive, run_id: &str, records: &[UnitRecord]) -> Result<(), CliError> {
+    let finished_at = records
+        .first()
+        .map(|r| r.finished_at.clone())
+        .unwrap_or_default();
+    archive
+        .finish_run(run_id, &finished_at)
+        .map_err(|e| CliError::Run(e.to_string()))?;
+    if let Some(e) = archive.failure() {
+        return Err(CliError::Run(format!(
+            "the archive did not take every reading ({e}); the records are still written as files"
+        )));
+    }
+    Ok(())
+}
+
+/// The number of simulated positions, from --positions or --serials.
+fn sim_positions(
+    serials: &Option<Vec<String>>,
+    positions: Option<usize>,
+) -> Result<usize, CliError> {
+    let positions = match (serials, positions) {
         (Some(s), Some(n)) if s.len() != n => {
             return Err(CliError::Usage(format!(
                 "--positions {n} but {} serial numbers were given",
@@ -327,24 +460,23 @@ fn sim_bench(args: &RunArgs, serials: Option<Vec<String>>) -> Result<Bench, CliE
         (None, Some(n)) => n,
         (None, None) => 4,
     };
-    let mut config = SimConfig::new(args.seed, positions);
-    config.serials = serials;
-    Ok(SimBench::new(&config).into_bench())
+    Ok(positions)
 }
 
 /// A bench from a station file: its ports, source and reference.
 fn station_bench(
-    args: &RunArgs,
+    path: &Path,
     plan: &Plan,
     serials: Option<Vec<String>>,
+    options: &dyn BenchOptions,
 ) -> Result<(Bench, Vec<String>), CliError> {
-    let station = Station::load(Path::new(&args.bench)).map_err(CliError::Plan)?;
+    let station = Station::load(path).map_err(CliError::Plan)?;
     let mut notes = Vec::new();
     if let Some(due) = station.reference.calibration_due {
         let today = chrono::Local::now().date_naive();
         if due < today {
             let id = &station.reference.info.id;
-            match &args.allow_overdue_reference {
+            match options.allow_overdue_reference() {
                 Some(reason) => notes.push(format!(
                     "reference {id} was used past its calibration due date {due}: {reason}"
                 )),
@@ -375,7 +507,7 @@ fn station_bench(
             p.expected_serial = Some(s);
         }
     }
-    if !args.quiet {
+    if !options.quiet() {
         eprintln!("{MAINS_CAUTION}");
     }
     Ok((bench, notes))
@@ -420,6 +552,19 @@ fn new_run_id() -> String {
     )
 }
 
+/// `stem`, or `stem.2`, `stem.3`... where files of that name exist already (a resumed run whose
+/// first attempt got as far as its reports): nothing is ever overwritten.
+fn unused_stem(dir: &Path, stem: &str) -> String {
+    let taken = |s: &str| dir.join(format!("{s}.json")).exists();
+    if !taken(stem) {
+        return stem.to_string();
+    }
+    (2..)
+        .map(|n| format!("{stem}.{n}"))
+        .find(|s| !taken(s))
+        .expect("some suffix is free")
+}
+
 /// Files written for one unit.
 struct Written {
     html: PathBuf,
@@ -433,7 +578,10 @@ fn write_outputs(
     let mut written = Vec::new();
     let run_err = |e: &dyn std::fmt::Display| CliError::Run(e.to_string());
     for r in records {
-        let stem = format!("{}-p{}", record::safe_file_stem(&r.serial), r.position);
+        let stem = unused_stem(
+            dir,
+            &format!("{}-p{}", record::safe_file_stem(&r.serial), r.position),
+        );
         // The record first: it is what the reports are made from and what must not be lost.
         let json = record::to_json(r).map_err(|e| run_err(&e))?;
         record::write_new_file(dir, &format!("{stem}.json"), &json).map_err(|e| run_err(&e))?;

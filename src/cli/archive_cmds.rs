@@ -1,0 +1,297 @@
+//! The archive's commands: resume an interrupted run, query, export and verify.
+
+use super::{
+    BenchOptions, BenchSpec, CliError, TerminalReporter, build_bench, exit_status, finish_run,
+    print_summary, write_outputs,
+};
+use crate::archive::{Archive, RunFilter, RunRecorder};
+use crate::exec::{self, RunContext};
+use crate::plan::Plan;
+use crate::record;
+use crate::report::Templates;
+use std::path::{Path, PathBuf};
+
+#[derive(clap::Args)]
+pub(super) struct ResumeArgs {
+    /// The run id to continue.
+    run: String,
+    /// The archive database the run is in.
+    #[arg(long)]
+    archive: PathBuf,
+    /// Folder for records and reports (the run's subfolder is reused).
+    #[arg(long)]
+    out: PathBuf,
+    /// Folder of templates that replace the embedded ones.
+    #[arg(long)]
+    templates: Option<PathBuf>,
+    #[arg(long)]
+    quiet: bool,
+    /// As for `run`.
+    #[arg(long, value_name = "REASON")]
+    allow_overdue_reference: Option<String>,
+}
+
+impl BenchOptions for ResumeArgs {
+    fn quiet(&self) -> bool {
+        self.quiet
+    }
+    fn allow_overdue_reference(&self) -> Option<&str> {
+        self.allow_overdue_reference.as_deref()
+    }
+}
+
+fn open(path: &Path) -> Result<Archive, CliError> {
+    if !path.exists() {
+        return Err(CliError::Usage(format!("no archive at {}", path.display())));
+    }
+    Archive::open(path).map_err(|e| CliError::Run(e.to_string()))
+}
+
+fn db(e: crate::archive::ArchiveError) -> CliError {
+    match e {
+        crate::archive::ArchiveError::NotFound(what) => CliError::Usage(what),
+        other => CliError::Run(other.to_string()),
+    }
+}
+
+/// Continues an interrupted run: each unit from the first step it did not finish.
+pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
+    let archive = open(&args.archive)?;
+    let run = archive.run(&args.run).map_err(db)?;
+    if run.state == "finished" {
+        return Err(CliError::Usage(format!(
+            "run {} finished at {}: there is nothing to resume",
+            run.run_id,
+            run.finished_at.unwrap_or_default()
+        )));
+    }
+    let (file, text) = archive.plan_text(&run.plan_sha256).map_err(db)?;
+    let plan = Plan::from_text(&file, &text).map_err(CliError::Plan)?;
+    let spec: BenchSpec = serde_json::from_str(&run.bench)
+        .map_err(|e| CliError::Run(format!("the archived bench cannot be read: {e}")))?;
+    let templates =
+        Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
+    let (mut bench, mut notes) = build_bench(&spec, &plan, args)?;
+    let state = archive.resume_state(&run.run_id).map_err(db)?;
+    notes.insert(0, format!("plan as archived (SHA-256 {})", run.plan_sha256));
+    let ctx = RunContext {
+        run_id: run.run_id.clone(),
+        operator: run.operator.clone(),
+        lot: run.lot.clone(),
+        tool_version: crate::VERSION.to_string(),
+        notes,
+    };
+    let run_dir = args.out.join(&run.run_id);
+    std::fs::create_dir_all(&run_dir)
+        .map_err(|e| CliError::Run(format!("cannot create {}: {e}", run_dir.display())))?;
+    let recorder = RunRecorder {
+        archive: &archive,
+        run_id: run.run_id.clone(),
+    };
+    let mut reporter = TerminalReporter { quiet: args.quiet };
+    let records = exec::run_with(
+        &plan,
+        &mut bench,
+        &ctx,
+        &mut reporter,
+        &recorder,
+        Some(&state),
+    );
+    finish_run(&archive, &run.run_id, &records)?;
+    // Units that had already finished keep the record the archive has.
+    let records = archive.unit_records(&run.run_id).map_err(db)?;
+    let mut records = records;
+    records.sort_by_key(|r| r.position);
+    let written = write_outputs(&run_dir, &records, &templates)?;
+    print_summary(&records, &written);
+    Ok(exit_status(&records))
+}
+
+#[derive(clap::Args)]
+pub(super) struct HistoryArgs {
+    serial: String,
+    #[arg(long)]
+    archive: PathBuf,
+    /// Print JSON for machines.
+    #[arg(long)]
+    json: bool,
+}
+
+pub(super) fn history(args: &HistoryArgs) -> Result<i32, CliError> {
+    let archive = open(&args.archive)?;
+    let rows = archive.history(&args.serial).map_err(db)?;
+    if args.json {
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&rows).expect("rows serialise")
+        );
+        return Ok(0);
+    }
+    if rows.is_empty() {
+        println!("no runs of serial {}", args.serial);
+        return Ok(0);
+    }
+    println!(
+        "{:<30} {:<28} {:<16} {:<10} {:<12} {:<12} verdict",
+        "finished", "run", "plan", "firmware", "station", "operator"
+    );
+    for r in rows {
+        println!(
+            "{:<30} {:<28} {:<16} {:<10} {:<12} {:<12} {}",
+            r.finished_at,
+            r.run_id,
+            format!("{} rev {}", r.plan_id, r.revision),
+            r.firmware.unwrap_or_default(),
+            r.station,
+            r.operator,
+            r.status.to_uppercase()
+        );
+    }
+    Ok(0)
+}
+
+#[derive(clap::Args)]
+pub(super) struct RunsArgs {
+    #[arg(long)]
+    archive: PathBuf,
+    #[arg(long)]
+    lot: Option<String>,
+    /// Plan id.
+    #[arg(long)]
+    plan: Option<String>,
+    /// Runs started on or after this date (YYYY-MM-DD) or time.
+    #[arg(long)]
+    since: Option<String>,
+    /// Runs with at least one unit of this verdict: accepted, rejected or incomplete.
+    #[arg(long)]
+    verdict: Option<String>,
+    #[arg(long)]
+    json: bool,
+}
+
+pub(super) fn runs(args: &RunsArgs) -> Result<i32, CliError> {
+    if let Some(v) = &args.verdict
+        && !["accepted", "rejected", "incomplete"].contains(&v.as_str())
+    {
+        return Err(CliError::Usage(format!(
+            "--verdict {v}: use accepted, rejected or incomplete"
+        )));
+    }
+    if let Some(s) = &args.since
+        && chrono::NaiveDate::parse_from_str(&s[..s.len().min(10)], "%Y-%m-%d").is_err()
+    {
+        return Err(CliError::Usage(format!(
+            "--since {s}: expected a date as YYYY-MM-DD"
+        )));
+    }
+    let archive = open(&args.archive)?;
+    let filter = RunFilter {
+        lot: args.lot.clone(),
+        plan: args.plan.clone(),
+        since: args.since.clone(),
+        verdict: args.verdict.clone(),
+    };
+    let rows = archive.runs(&filter).map_err(db)?;
+    if args.json {
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&rows).expect("rows serialise")
+        );
+        return Ok(0);
+    }
+    println!(
+        "{:<28} {:<30} {:<16} {:<10} {:<10} {:>8} {:>8} {:>10}",
+        "run", "started", "plan", "lot", "state", "accepted", "rejected", "incomplete"
+    );
+    for r in rows {
+        println!(
+            "{:<28} {:<30} {:<16} {:<10} {:<10} {:>8} {:>8} {:>10}",
+            r.run_id,
+            r.started_at,
+            format!("{} rev {}", r.plan_id, r.revision),
+            r.lot.unwrap_or_default(),
+            r.state,
+            r.accepted,
+            r.rejected,
+            r.incomplete
+        );
+    }
+    Ok(0)
+}
+
+#[derive(clap::Args)]
+pub(super) struct ExportArgs {
+    /// A run id or a serial number.
+    what: String,
+    #[arg(long)]
+    archive: PathBuf,
+    /// Folder to write the records and plan texts into.
+    #[arg(long)]
+    to: PathBuf,
+}
+
+pub(super) fn export(args: &ExportArgs) -> Result<i32, CliError> {
+    let archive = open(&args.archive)?;
+    let by_run = archive.unit_records(&args.what).map_err(db)?;
+    let records = if by_run.is_empty() {
+        archive.serial_records(&args.what).map_err(db)?
+    } else {
+        by_run
+    };
+    if records.is_empty() {
+        return Err(CliError::Usage(format!(
+            "no run and no serial number \"{}\" in the archive",
+            args.what
+        )));
+    }
+    std::fs::create_dir_all(&args.to)
+        .map_err(|e| CliError::Run(format!("cannot create {}: {e}", args.to.display())))?;
+    let mut plans = Vec::new();
+    for r in &records {
+        let name = format!(
+            "{}-{}-p{}.json",
+            record::safe_file_stem(&r.run_id),
+            record::safe_file_stem(&r.serial),
+            r.position
+        );
+        let json = record::to_json(r).map_err(|e| CliError::Run(e.to_string()))?;
+        record::write_new_file(&args.to, &name, &json).map_err(|e| CliError::Run(e.to_string()))?;
+        if !plans.contains(&r.plan.sha256) {
+            let (_, text) = archive.plan_text(&r.plan.sha256).map_err(db)?;
+            record::write_new_file(
+                &args.to,
+                &format!("plan-{}.yaml", r.plan.sha256),
+                text.as_bytes(),
+            )
+            .map_err(|e| CliError::Run(e.to_string()))?;
+            plans.push(r.plan.sha256.clone());
+        }
+    }
+    println!(
+        "{} records and {} plan texts written to {}",
+        records.len(),
+        plans.len(),
+        args.to.display()
+    );
+    Ok(0)
+}
+
+#[derive(clap::Args)]
+pub(super) struct VerifyArgs {
+    #[arg(long)]
+    archive: PathBuf,
+}
+
+/// Checks every record's hash and the chain; exit 1 if any record fails.
+pub(super) fn verify(args: &VerifyArgs) -> Result<i32, CliError> {
+    let archive = open(&args.archive)?;
+    let (checked, failures) = archive.verify().map_err(db)?;
+    for f in &failures {
+        println!(
+            "record {} (run {}, serial {}): {}",
+            f.seq, f.run_id, f.serial, f.why
+        );
+    }
+    println!("{checked} records checked, {} failed", failures.len());
+    Ok(if failures.is_empty() { 0 } else { 1 })
+}

@@ -1,0 +1,429 @@
+//! The archive through the real binary: queries, integrity, concurrent writers, and a run killed
+//! with SIGKILL and resumed.
+
+use meterproof::record::UnitStatus;
+use rusqlite::Connection;
+use std::io::{BufRead, BufReader};
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::time::{Duration, Instant};
+
+fn bin() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_meterproof"))
+}
+
+fn temp_dir(name: &str) -> PathBuf {
+    let d = std::env::temp_dir().join(format!("meterproof-ar-{name}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+fn run_demo(out: &Path, extra: &[&str]) -> i32 {
+    bin()
+        .args(["run", "test-plans/demo.yaml", "--quiet", "--out"])
+        .arg(out)
+        .args(extra)
+        .status()
+        .unwrap()
+        .code()
+        .unwrap()
+}
+
+fn cmd(args: &[&str], archive: &Path) -> (i32, String) {
+    let o = bin()
+        .args(args)
+        .arg("--archive")
+        .arg(archive)
+        .output()
+        .unwrap();
+    (
+        o.status.code().unwrap(),
+        format!(
+            "{}{}",
+            String::from_utf8_lossy(&o.stdout),
+            String::from_utf8_lossy(&o.stderr)
+        ),
+    )
+}
+
+#[test]
+fn the_demo_lands_in_the_archive_and_can_be_queried() {
+    let dir = temp_dir("query");
+    assert_eq!(
+        run_demo(
+            &dir,
+            &["--lot", "LOT-1", "--serials", "A-1,B-2,O'Hara;--,D-4"]
+        ),
+        1
+    );
+    assert_eq!(
+        run_demo(
+            &dir,
+            &[
+                "--lot",
+                "LOT-2",
+                "--serials",
+                "A-1,B-2,C-3,D-4",
+                "--seed",
+                "2"
+            ]
+        ),
+        1
+    );
+    let archive = dir.join("archive.sqlite");
+    let (code, text) = cmd(&["history", "A-1"], &archive);
+    assert_eq!(code, 0);
+    let lines: Vec<&str> = text.lines().collect();
+    assert_eq!(lines.len(), 3, "header and two runs: {text}");
+    let (_, json) = cmd(&["history", "A-1", "--json"], &archive);
+    let rows: serde_json::Value = serde_json::from_str(&json).unwrap();
+    assert_eq!(rows.as_array().unwrap().len(), 2);
+    assert!(
+        rows[0]["finished_at"].as_str() >= rows[1]["finished_at"].as_str(),
+        "newest first"
+    );
+    // A serial with quotes and semicolons is data, never SQL.
+    let (_, text) = cmd(&["history", "O'Hara;--"], &archive);
+    assert_eq!(text.lines().count(), 2, "{text}");
+    let (_, json) = cmd(&["runs", "--lot", "LOT-1", "--json"], &archive);
+    let runs: serde_json::Value = serde_json::from_str(&json).unwrap();
+    assert_eq!(runs.as_array().unwrap().len(), 1);
+    let r = &runs[0];
+    assert_eq!(
+        r["accepted"].as_u64().unwrap() + r["rejected"].as_u64().unwrap(),
+        4
+    );
+    let (_, json) = cmd(&["runs", "--verdict", "incomplete", "--json"], &archive);
+    assert_eq!(json.trim(), "[]");
+    let (code, _) = cmd(&["runs", "--verdict", "maybe"], &archive);
+    assert_eq!(code, 2);
+    // Export by serial: both runs' records and the plan text, byte for byte the plan file.
+    let to = dir.join("export");
+    let (code, text) = cmd(&["export", "A-1", "--to", to.to_str().unwrap()], &archive);
+    assert_eq!(code, 0, "{text}");
+    let plan = std::fs::read("test-plans/demo.yaml").unwrap();
+    let sha = meterproof::plan::sha256_hex(&plan);
+    assert_eq!(
+        std::fs::read(to.join(format!("plan-{sha}.yaml"))).unwrap(),
+        plan
+    );
+    let exported: Vec<_> = std::fs::read_dir(&to).unwrap().collect();
+    assert_eq!(exported.len(), 3);
+    // The exported record equals the one written beside the reports, sample for sample.
+    let run_id = r["run_id"].as_str().unwrap();
+    let beside = meterproof::record::read(&dir.join(run_id).join("A-1-p1.json")).unwrap();
+    let from_archive = meterproof::record::read(&to.join(format!("{run_id}-A-1-p1.json"))).unwrap();
+    assert_eq!(beside, from_archive);
+    let (code, text) = cmd(&["verify"], &archive);
+    assert_eq!(code, 0, "{text}");
+    assert!(text.contains("8 records checked, 0 failed"), "{text}");
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn tampering_is_found_by_verify() {
+    let dir = temp_dir("tamper");
+    run_demo(&dir, &[]);
+    run_demo(&dir, &["--seed", "3"]);
+    let archive = dir.join("archive.sqlite");
+    let copy = |name: &str| {
+        let p = dir.join(name);
+        std::fs::copy(&archive, &p).unwrap();
+        p
+    };
+    let verify = |p: &Path| cmd(&["verify"], p);
+
+    // A changed reading.
+    let a = copy("reading.sqlite");
+    Connection::open(&a)
+        .unwrap()
+        .execute(
+            "UPDATE readings SET value = value * 1.001 WHERE id = 100",
+            [],
+        )
+        .unwrap();
+    let (code, text) = verify(&a);
+    assert_eq!(code, 1);
+    assert!(text.contains("no longer matches its hash"), "{text}");
+    assert!(
+        text.contains("1 failed"),
+        "exactly the unit of that reading: {text}"
+    );
+
+    // A changed verdict in a stored record.
+    let b = copy("verdict.sqlite");
+    Connection::open(&b)
+        .unwrap()
+        .execute(
+            "UPDATE units SET record = replace(record, '\"rejected\"', '\"accepted\"') WHERE status = 'rejected'",
+            [],
+        )
+        .unwrap();
+    let (code, text) = verify(&b);
+    assert_eq!(code, 1);
+    assert!(text.contains("no longer matches its hash"), "{text}");
+
+    // A record deleted from the middle of the chain.
+    let c = copy("deleted.sqlite");
+    Connection::open(&c)
+        .unwrap()
+        .execute("DELETE FROM units WHERE seq = 3", [])
+        .unwrap();
+    let (code, text) = verify(&c);
+    assert_eq!(code, 1);
+    assert!(
+        text.contains("record 4") && text.contains("missing, reordered or changed"),
+        "{text}"
+    );
+
+    // The newest record deleted.
+    let d = copy("newest.sqlite");
+    Connection::open(&d)
+        .unwrap()
+        .execute("DELETE FROM units WHERE seq = 8", [])
+        .unwrap();
+    let (code, text) = verify(&d);
+    assert_eq!(code, 1);
+    assert!(text.contains("newest records were removed"), "{text}");
+
+    // Untouched, it verifies.
+    assert_eq!(verify(&archive).0, 0);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn two_runs_writing_one_archive_at_once_lose_nothing() {
+    let dir = temp_dir("concurrent");
+    let archive = dir.join("shared.sqlite");
+    let spawn = |seed: &str, out: &str| {
+        bin()
+            .args([
+                "run",
+                "test-plans/demo.yaml",
+                "--quiet",
+                "--positions",
+                "6",
+                "--seed",
+                seed,
+            ])
+            .arg("--out")
+            .arg(dir.join(out))
+            .arg("--archive")
+            .arg(&archive)
+            .stdout(Stdio::null())
+            .spawn()
+            .unwrap()
+    };
+    let mut a = spawn("11", "a");
+    let mut b = spawn("12", "b");
+    assert!(a.wait().unwrap().code().is_some_and(|c| c <= 1));
+    assert!(b.wait().unwrap().code().is_some_and(|c| c <= 1));
+    let conn = Connection::open(&archive).unwrap();
+    let units: i64 = conn
+        .query_row("SELECT COUNT(*) FROM units", [], |r| r.get(0))
+        .unwrap();
+    assert_eq!(units, 12);
+    let (code, text) = cmd(&["verify"], &archive);
+    assert_eq!(code, 0, "{text}");
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn a_read_only_archive_is_refused_before_any_step() {
+    let dir = temp_dir("readonly");
+    let archive = dir.join("ro.sqlite");
+    std::fs::write(&archive, b"this is not a database").unwrap();
+    let o = bin()
+        .args(["run", "test-plans/demo.yaml", "--quiet", "--out"])
+        .arg(dir.join("out"))
+        .arg("--archive")
+        .arg(&archive)
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(3));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        err.contains("archive") && err.contains("ro.sqlite"),
+        "{err}"
+    );
+    // No reports were written: nothing ran.
+    let runs: Vec<_> = std::fs::read_dir(dir.join("out"))
+        .unwrap()
+        .flatten()
+        .collect();
+    assert!(
+        runs.iter()
+            .all(|d| std::fs::read_dir(d.path()).unwrap().count() == 0)
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// `sim-meter`, killed when dropped.
+struct Served(std::process::Child);
+
+impl Drop for Served {
+    fn drop(&mut self) {
+        let _ = self.0.kill();
+        let _ = self.0.wait();
+    }
+}
+
+#[test]
+fn a_run_killed_mid_way_resumes_with_no_reading_lost() {
+    let dir = temp_dir("kill");
+    let station = dir.join("station.yaml");
+    let mut child = bin()
+        .args([
+            "sim-meter",
+            "--positions",
+            "4",
+            "--seed",
+            "1",
+            "--time-scale",
+            "10",
+            "--for",
+            "300 s",
+            "--station",
+        ])
+        .arg(&station)
+        .stdout(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
+    while !lines.next().unwrap().unwrap().starts_with("serving") {}
+    let _served = Served(child);
+    let archive = dir.join("archive.sqlite");
+    let out = dir.join("out");
+    let mut run = bin()
+        .args(["run", "test-plans/demo-serial.yaml", "--quiet", "--bench"])
+        .arg(&station)
+        .arg("--out")
+        .arg(&out)
+        .arg("--archive")
+        .arg(&archive)
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    // Wait until two steps are done for every unit and the third has begun, then SIGKILL.
+    let deadline = Instant::now() + Duration::from_secs(60);
+    loop {
+        assert!(
+            Instant::now() < deadline,
+            "the run never got to its third step"
+        );
+        std::thread::sleep(Duration::from_millis(20));
+        let Ok(conn) = Connection::open(&archive) else {
+            continue;
+        };
+        let done: i64 = conn
+            .query_row("SELECT COUNT(*) FROM steps WHERE step_index = 1", [], |r| {
+                r.get(0)
+            })
+            .unwrap_or(0);
+        let third: i64 = conn
+            .query_row(
+                "SELECT COUNT(*) FROM readings WHERE step_index = 2",
+                [],
+                |r| r.get(0),
+            )
+            .unwrap_or(0);
+        if done == 4 && third > 0 {
+            break;
+        }
+    }
+    run.kill().unwrap(); // SIGKILL on Unix
+    run.wait().unwrap();
+    let before: Vec<(i64, f64)> = {
+        let conn = Connection::open(&archive).unwrap();
+        let mut stmt = conn
+            .prepare("SELECT id, value FROM readings ORDER BY id")
+            .unwrap();
+        stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+            .unwrap()
+            .map(|x| x.unwrap())
+            .collect()
+    };
+    assert!(!before.is_empty());
+    let run_id: String = Connection::open(&archive)
+        .unwrap()
+        .query_row("SELECT run_id FROM runs", [], |r| r.get(0))
+        .unwrap();
+    let (code, text) = cmd(&["runs"], &archive);
+    assert_eq!(code, 0);
+    assert!(
+        text.contains("running"),
+        "the killed run is still open: {text}"
+    );
+
+    let o = bin()
+        .args(["resume", &run_id, "--quiet", "--out"])
+        .arg(&out)
+        .arg("--archive")
+        .arg(&archive)
+        .output()
+        .unwrap();
+    let text = format!(
+        "{}{}",
+        String::from_utf8_lossy(&o.stdout),
+        String::from_utf8_lossy(&o.stderr)
+    );
+    assert_eq!(o.status.code(), Some(1), "{text}");
+
+    // Every reading taken before the kill is still there, unchanged.
+    let conn = Connection::open(&archive).unwrap();
+    for (id, value) in &before {
+        let v: f64 = conn
+            .query_row("SELECT value FROM readings WHERE id = ?1", [id], |r| {
+                r.get(0)
+            })
+            .unwrap();
+        assert_eq!(v, *value);
+    }
+    // The verdicts are those of an uninterrupted run: the planted defect at position 2.
+    let mut records: Vec<meterproof::record::UnitRecord> = std::fs::read_dir(out.join(&run_id))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|x| x == "json"))
+        .map(|p| meterproof::record::read(&p).unwrap())
+        .collect();
+    records.sort_by_key(|r| r.position);
+    let statuses: Vec<UnitStatus> = records.iter().map(|r| r.verdict.status).collect();
+    assert_eq!(
+        statuses,
+        [
+            UnitStatus::Accepted,
+            UnitStatus::Rejected,
+            UnitStatus::Accepted,
+            UnitStatus::Accepted
+        ]
+    );
+    for r in &records {
+        let attempts: Vec<u32> = r.steps.iter().map(|s| s.attempt).collect();
+        eprintln!("{} attempts {attempts:?} notes {:?}", r.serial, r.notes);
+        // The first two steps are kept from before the kill; the third was run again.
+        assert_eq!(r.steps[0].attempt, 1);
+        assert_eq!(r.steps[1].attempt, 1);
+        assert_eq!(r.steps[2].attempt, 2);
+        assert!(
+            r.notes
+                .iter()
+                .any(|n| n.contains("resumed at") && n.contains("basic-Ib")),
+            "{:?}",
+            r.notes
+        );
+        assert!(
+            !r.notes.iter().any(|n| n.contains("no-load,")),
+            "kept steps are not repeated"
+        );
+    }
+    let (code, text) = cmd(&["verify"], &archive);
+    assert_eq!(code, 0, "{text}");
+    let (code, _) = cmd(
+        &["resume", &run_id, "--out", out.to_str().unwrap()],
+        &archive,
+    );
+    assert_eq!(code, 2, "a finished run cannot be resumed");
+    std::fs::remove_dir_all(&dir).unwrap();
+}
