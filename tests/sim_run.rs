@@ -36,6 +36,7 @@ fn run_demo(out: &Path, extra: &[&str]) -> (i32, PathBuf, Vec<UnitRecord>) {
     let run_dir = std::fs::read_dir(out)
         .unwrap()
         .map(|e| e.unwrap().path())
+        .filter(|p| p.is_dir())
         .max()
         .expect("a run folder");
     let mut records: Vec<UnitRecord> = std::fs::read_dir(&run_dir)

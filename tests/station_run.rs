@@ -79,8 +79,8 @@ fn run(plan: &str, station: &Path, out: &Path, extra: &[&str]) -> (i32, String, 
     );
     let mut records = Vec::new();
     if let Ok(dirs) = std::fs::read_dir(out) {
-        for d in dirs {
-            for f in std::fs::read_dir(d.unwrap().path()).unwrap() {
+        for d in dirs.map(|d| d.unwrap().path()).filter(|p| p.is_dir()) {
+            for f in std::fs::read_dir(d).unwrap() {
                 let p = f.unwrap().path();
                 if p.extension().is_some_and(|x| x == "json") {
                     records.push(record::read(&p).unwrap());
