@@ -574,6 +574,88 @@ impl Archive {
         Ok(())
     }
 
+    /// Stores finished unit records whole, readings and chain, in one transaction: the path
+    /// for imports and for generating large archives, where a transaction per reading would only
+    /// measure the disk's fsync.
+    pub fn import_units(&self, records: &[UnitRecord]) -> Result<(), ArchiveError> {
+        let mut conn = self.conn();
+        let tx = conn.transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
+        let mut prev: String = tx
+            .query_row(
+                "SELECT record_sha256 FROM units ORDER BY seq DESC LIMIT 1",
+                [],
+                |r| r.get(0),
+            )
+            .optional()?
+            .unwrap_or_else(|| GENESIS.to_string());
+        let mut head = None;
+        {
+            let mut reading = tx.prepare_cached(INSERT_READING)?;
+            let mut unit = tx.prepare_cached(
+                "INSERT INTO units (run_id, position, serial, firmware, status, finished_at, record, record_sha256, prev_sha256)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9)",
+            )?;
+            for r in records {
+                for (index, step) in r.steps.iter().enumerate() {
+                    let series = step
+                        .checks
+                        .iter()
+                        .map(|c| (c.quantity, &c.channel, false, &c.samples))
+                        .chain(
+                            step.calibration_point
+                                .iter()
+                                .map(|p| (p.quantity, &p.channel, true, &p.samples)),
+                        );
+                    let mut seen = Vec::new();
+                    for (q, ch, raw, samples) in series {
+                        // Checks sharing a reading share its rows.
+                        if seen.contains(&(q, ch, raw)) {
+                            continue;
+                        }
+                        seen.push((q, ch, raw));
+                        for s in samples {
+                            reading.execute(params![
+                                r.run_id,
+                                r.position as i64,
+                                index as i64,
+                                step.attempt as i64,
+                                q.name(),
+                                ch,
+                                raw,
+                                s.t_s,
+                                s.value
+                            ])?;
+                        }
+                    }
+                }
+                let hash = canonical_hash(r);
+                let text = serde_json::to_string(&stripped(r)).expect("a record serialises");
+                unit.execute(params![
+                    r.run_id,
+                    r.position as i64,
+                    r.serial,
+                    r.identity.as_ref().map(|i| i.firmware.clone()),
+                    format!("{:?}", r.verdict.status).to_lowercase(),
+                    r.finished_at,
+                    text,
+                    hash,
+                    prev
+                ])?;
+                head = Some(format!("{}:{hash}", tx.last_insert_rowid()));
+                prev = hash;
+            }
+        }
+        if let Some(head) = head {
+            tx.execute(
+                "INSERT INTO meta (key, value) VALUES ('chain_head', ?1)
+                 ON CONFLICT(key) DO UPDATE SET value = excluded.value",
+                [head],
+            )?;
+        }
+        tx.commit()?;
+        Ok(())
+    }
+
     /// Records which unit is in which position, once it has identified itself.
     pub fn note_unit(&self, record: &UnitRecord) -> Result<(), ArchiveError> {
         self.conn().execute(
