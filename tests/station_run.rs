@@ -32,6 +32,11 @@ impl Drop for Served {
 
 /// Starts `sim-meter` and waits until it says it serves.
 fn serve(dir: &Path, extra: &[&str]) -> Served {
+    serve_at(dir, "25", extra)
+}
+
+/// As [`serve`], at a given time scale.
+fn serve_at(dir: &Path, time_scale: &str, extra: &[&str]) -> Served {
     let station = dir.join("station.yaml");
     let mut child = bin()
         .args([
@@ -41,7 +46,7 @@ fn serve(dir: &Path, extra: &[&str]) -> Served {
             "--seed",
             "1",
             "--time-scale",
-            "25",
+            time_scale,
             "--for",
             "120 s",
         ])
@@ -312,4 +317,119 @@ fn the_example_station_file_is_valid() {
     let s = meterproof::bench::station::Station::load(Path::new("test-plans/station-example.yaml"))
         .unwrap();
     assert_eq!(s.positions.len(), 4);
+}
+
+#[test]
+fn a_station_with_typed_references_gets_the_builtin_verdicts() {
+    use std::io::Write;
+    let dir = temp_dir("typed");
+    // Slow enough that link latency is a small part of the energy window.
+    let served = serve_at(&dir, "5", &[]);
+    let text = std::fs::read_to_string(&served.station).unwrap();
+    let cut = text.find("  read:\n").expect("a read block");
+    let station = dir.join("typed.yaml");
+    std::fs::write(
+        &station,
+        format!("{}  read: {{ kind: operator }}\n", &text[..cut]),
+    )
+    .unwrap();
+    let plan = meterproof::plan::Plan::load(Path::new("test-plans/demo-serial.yaml")).unwrap();
+    // The operator types what the reference meter shows: the simulated source's real output.
+    // The library replays the station's SCPI commands on a simulator of the same seed, so the
+    // source draws its errors exactly as the served one does.
+    use meterproof::bench::sim_device::LineDevice;
+    let sim = meterproof::bench::sim::SimBench::new(&meterproof::bench::sim::SimConfig::new(1, 4));
+    let (source, mut reference) = sim.instruments();
+    let mut source = meterproof::bench::sim_scpi::ScpiSourceDevice::new(source);
+    for c in ["*RST", "*CLS"] {
+        source.handle(c);
+    }
+    let mut input = String::new();
+    for (i, s) in plan.steps.iter().enumerate() {
+        for c in [
+            format!("SOUR:VOLT {}", s.load.voltage),
+            format!("SOUR:CURR {}", s.load.current),
+            format!("SOUR:PHAS {}", s.load.phase_deg),
+            format!("SOUR:FREQ {}", s.load.frequency),
+        ] {
+            source.handle(&c);
+        }
+        if i == 0 {
+            source.handle("OUTP ON");
+        }
+        let mut asked = Vec::new();
+        for c in &s.checks {
+            if c.tolerance.needs_reference() && !asked.contains(&c.quantity) {
+                asked.push(c.quantity);
+                let request = meterproof::bench::ReferenceRequest {
+                    step_id: &s.id,
+                    quantity: c.quantity,
+                    load: &s.load,
+                    window: (0.0, s.sampling_window_s()),
+                };
+                let v = reference.read(&request).unwrap().value;
+                input.push_str(&format!("{v} {}\n\n", c.quantity.unit()));
+            }
+        }
+    }
+    let mut child = bin()
+        .args(["run", "test-plans/demo-serial.yaml", "--quiet", "--bench"])
+        .arg(&station)
+        .arg("--out")
+        .arg(dir.join("out"))
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    child
+        .stdin
+        .take()
+        .unwrap()
+        .write_all(input.as_bytes())
+        .unwrap();
+    let o = child.wait_with_output().unwrap();
+    assert_eq!(
+        o.status.code(),
+        Some(1),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let (_, _, records) = run_records(&dir.join("out"));
+    let statuses: Vec<UnitStatus> = records.iter().map(|r| r.verdict.status).collect();
+    assert_eq!(
+        statuses,
+        [
+            UnitStatus::Accepted,
+            UnitStatus::Rejected,
+            UnitStatus::Accepted,
+            UnitStatus::Accepted
+        ],
+        "{:?}",
+        records
+            .iter()
+            .map(|r| &r.verdict.reasons)
+            .collect::<Vec<_>>()
+    );
+    assert_eq!(records[0].steps[1].references[0].reading.source, "operator");
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// The records of the one run in `out`.
+fn run_records(out: &Path) -> (i32, String, Vec<UnitRecord>) {
+    let mut records = Vec::new();
+    for d in std::fs::read_dir(out)
+        .unwrap()
+        .map(|d| d.unwrap().path())
+        .filter(|p| p.is_dir())
+    {
+        for f in std::fs::read_dir(d).unwrap() {
+            let p = f.unwrap().path();
+            if p.extension().is_some_and(|x| x == "json") {
+                records.push(record::read(&p).unwrap());
+            }
+        }
+    }
+    records.sort_by_key(|r| r.position);
+    (0, String::new(), records)
 }

@@ -3,6 +3,8 @@
 //! Each piece of hardware sits behind a trait, so that the built-in simulator and a real station
 //! drive the same executor.
 
+pub mod operator;
+pub mod reference_file;
 pub mod scpi;
 pub mod sim;
 pub mod sim_device;
@@ -95,6 +97,12 @@ pub enum BenchError {
     Source(String),
     #[error("reference: {0}")]
     Reference(String),
+    /// The operator skipped the step.
+    #[error("skipped by the operator: {0}")]
+    Skipped(String),
+    /// The run was stopped: by the operator, Ctrl-C or the end of input.
+    #[error("aborted: {0}")]
+    Aborted(String),
 }
 
 /// What drives the current through the positions.
@@ -125,6 +133,9 @@ pub struct ReferenceReading {
     /// The text as typed or imported, where a person or a file gave it.
     #[serde(skip_serializing_if = "Option::is_none", default)]
     pub as_given: Option<String>,
+    /// Everything the operator typed for this reading, refused entries and corrections included.
+    #[serde(skip_serializing_if = "Vec::is_empty", default)]
+    pub entries: Vec<operator::TypedEntry>,
 }
 
 /// The instrument (or person, or file) that says what really flowed.
@@ -178,6 +189,8 @@ pub struct Bench {
     pub positions: Vec<Position>,
     /// Whether positions are read concurrently (links that wait on real ports).
     pub parallel: bool,
+    /// Set by Ctrl-C: the run stops at the next reading, keeps what it took, and ends.
+    pub interrupt: Arc<std::sync::atomic::AtomicBool>,
 }
 
 #[cfg(test)]

@@ -153,6 +153,7 @@ impl<W: Wire> ReferenceMeter for ScpiReference<W> {
             source: "instrument".into(),
             taken_at_s: request.window.1,
             as_given: None,
+            entries: Vec::new(),
         })
     }
 }

@@ -476,6 +476,7 @@ impl SimBench {
             reference,
             positions,
             parallel: false,
+            interrupt: Default::default(),
         }
     }
 }
@@ -675,6 +676,7 @@ impl ReferenceMeter for SimReference {
             source: "instrument".into(),
             taken_at_s: now,
             as_given: None,
+            entries: Vec::new(),
         })
     }
 }

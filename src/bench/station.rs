@@ -1,8 +1,9 @@
 //! Station files: how one bench is wired. The plan says what to test; the station says which
 //! port each position is on, which source drives the load and which reference says what flowed.
 
+use super::operator::{ManualSource, SharedConsole, TypedReference};
 use super::scpi::{ScpiReference, ScpiSource, SourceCommands};
-use super::{Bench, InstrumentInfo, Position, RealClock, StationInfo};
+use super::{Bench, InstrumentInfo, LoadSource, Position, RealClock, ReferenceMeter, StationInfo};
 use crate::link::line::{LineSettings, open_port};
 use crate::link::{Unreachable, text};
 use crate::plan::text_link::{LineEnding, PortSettings};
@@ -43,9 +44,11 @@ pub struct InstrumentPort {
 #[derive(Debug, Clone)]
 pub enum SourceSpec {
     Scpi {
-        port: InstrumentPort,
-        commands: SourceCommands,
+        port: Box<InstrumentPort>,
+        commands: Box<SourceCommands>,
     },
+    /// The operator switches the load by hand, prompted at each step.
+    Manual,
 }
 
 #[derive(Debug, Clone)]
@@ -61,6 +64,8 @@ pub enum ReferenceRead {
         port: InstrumentPort,
         queries: Vec<(Quantity, String)>,
     },
+    /// The operator reads the reference meter and types each reading.
+    Operator,
 }
 
 #[derive(Debug, Deserialize)]
@@ -92,7 +97,8 @@ struct RawStationPosition {
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields, tag = "kind", rename_all = "snake_case")]
 enum RawSource {
-    Scpi(RawScpiSource),
+    Scpi(Box<RawScpiSource>),
+    Manual {},
 }
 
 #[derive(Debug, Deserialize)]
@@ -143,7 +149,8 @@ struct RawReference {
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields, tag = "kind", rename_all = "snake_case")]
 enum RawReferenceRead {
-    Scpi(RawScpiRead),
+    Scpi(Box<RawScpiRead>),
+    Operator {},
 }
 
 #[derive(Debug, Deserialize)]
@@ -248,8 +255,8 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
             let port = instrument_port(doc, "source", &fields);
             let c = &raw.commands;
             port.map(|port| SourceSpec::Scpi {
-                port,
-                commands: SourceCommands {
+                port: Box::new(port),
+                commands: Box::new(SourceCommands {
                     setup: c.setup.iter().map(|t| t.0.clone()).collect(),
                     voltage: c.voltage.0.clone(),
                     current: c.current.0.clone(),
@@ -258,9 +265,10 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
                     output_on: c.output_on.0.clone(),
                     output_off: c.output_off.0.clone(),
                     sync: c.sync.as_ref().map(|t| t.0.clone()),
-                },
+                }),
             })
         }
+        RawSource::Manual {} => Some(SourceSpec::Manual),
     };
     let reference = reference(doc, &raw.reference);
     Some(Station {
@@ -349,6 +357,7 @@ fn reference(doc: &mut Document, raw: &RawReference) -> Option<ReferenceSpec> {
                 queries: list,
             })
         }
+        RawReferenceRead::Operator {} => Some(ReferenceRead::Operator),
     };
     let accuracy = raw.accuracy.as_ref().and_then(|t| {
         crate::metrology::accuracy::Accuracy::parse(&t.0)
@@ -369,21 +378,20 @@ fn reference(doc: &mut Document, raw: &RawReference) -> Option<ReferenceSpec> {
     }
     if let Some(a) = accuracy
         && a.range_percent != 0.0
+        && let ReferenceRead::Scpi { queries, .. } = read.as_ref()?
     {
-        let ReferenceRead::Scpi { queries, .. } = read.as_ref()?;
+        for (q, _) in queries
+            .iter()
+            .filter(|(q, _)| !ranges.contains_key(q.name()))
         {
-            for (q, _) in queries {
-                if !ranges.contains_key(q.name()) {
-                    doc.error(
-                        "reference.ranges",
-                        format!(
-                            "the accuracy has a range term, so the range for {} is needed (reference.ranges.{})",
-                            q.name(),
-                            q.name()
-                        ),
-                    );
-                }
-            }
+            doc.error(
+                "reference.ranges",
+                format!(
+                    "the accuracy has a range term, so the range for {} is needed (reference.ranges.{})",
+                    q.name(),
+                    q.name()
+                ),
+            );
         }
     }
     Some(ReferenceSpec {
@@ -417,7 +425,12 @@ pub enum StationError {
 
 /// Opens the station's instruments and ports for `plan`. A position whose port cannot be opened
 /// is kept, with a link that reports why, so its unit is recorded incomplete and the others run.
-pub fn build_bench(station: &Station, plan: &Plan) -> Result<Bench, StationError> {
+/// `console` is the operator's, for a manual source or typed reference readings.
+pub fn build_bench(
+    station: &Station,
+    plan: &Plan,
+    console: Option<SharedConsole>,
+) -> Result<Bench, StationError> {
     let LinkSpec::Text(spec) = &plan.link else {
         return Err(StationError::NotSerial(plan.link.kind()));
     };
@@ -428,21 +441,39 @@ pub fn build_bench(station: &Station, plan: &Plan) -> Result<Bench, StationError
             why: e.to_string(),
         })
     };
-    let SourceSpec::Scpi { port, commands } = &station.source;
-    let source = ScpiSource::new(
-        instrument("source", port)?,
-        port.line.clone(),
-        commands.clone(),
-        &port.path,
-    );
-    let source_description = format!("SCPI source on {}", port.path);
-    let ReferenceRead::Scpi { port, queries } = &station.reference.read;
-    let reference = ScpiReference::new(
-        instrument("reference", port)?,
-        port.line.clone(),
-        queries.clone(),
-        &port.path,
-    );
+    let need_console = || {
+        console.clone().ok_or_else(|| StationError::Instrument {
+            what: "operator".into(),
+            why: "this station needs an operator at the terminal".into(),
+        })
+    };
+    let (source, source_description): (Box<dyn LoadSource>, String) = match &station.source {
+        SourceSpec::Scpi { port, commands } => (
+            Box::new(ScpiSource::new(
+                instrument("source", port)?,
+                port.line.clone(),
+                (**commands).clone(),
+                &port.path,
+            )),
+            format!("SCPI source on {}", port.path),
+        ),
+        SourceSpec::Manual => (
+            Box::new(ManualSource::new(need_console()?, None)),
+            "load set by the operator".into(),
+        ),
+    };
+    let reference: Box<dyn ReferenceMeter> = match &station.reference.read {
+        ReferenceRead::Scpi { port, queries } => Box::new(ScpiReference::new(
+            instrument("reference", port)?,
+            port.line.clone(),
+            queries.clone(),
+            &port.path,
+        )),
+        ReferenceRead::Operator => Box::new(TypedReference::new(
+            need_console()?,
+            plan.reference_plausibility,
+        )),
+    };
     let positions = station
         .positions
         .iter()
@@ -461,10 +492,11 @@ pub fn build_bench(station: &Station, plan: &Plan) -> Result<Bench, StationError
             source: source_description,
         },
         clock: Arc::new(RealClock::scaled(station.time_scale)),
-        source: Box::new(source),
-        reference: Box::new(reference),
+        source,
+        reference,
         positions,
         parallel: true,
+        interrupt: Default::default(),
     })
 }
 
@@ -502,7 +534,9 @@ reference:
             s.reference.calibration_due,
             chrono::NaiveDate::from_ymd_opt(2027, 3, 31)
         );
-        let ReferenceRead::Scpi { port, queries } = &s.reference.read;
+        let ReferenceRead::Scpi { port, queries } = &s.reference.read else {
+            panic!("an SCPI reference")
+        };
         assert_eq!(port.line.timeout_s, 1.0);
         assert_eq!(queries[0], (Quantity::Current, "MEAS:CURR?".to_string()));
     }

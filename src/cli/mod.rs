@@ -8,6 +8,8 @@ mod archive_cmds;
 
 use crate::archive::{Archive, RunRecorder, RunRow};
 use crate::bench::Bench;
+use crate::bench::operator::{Console, ManualSource, SharedConsole, TypedReference};
+use crate::bench::reference_file::FileReference;
 use crate::bench::sim::{SimBench, SimConfig};
 use crate::bench::station::{self, Station};
 use crate::exec::{self, Event, Reporter, RunContext};
@@ -18,6 +20,8 @@ use crate::report::{self, Templates};
 use clap::{Parser, Subcommand};
 use std::io::Write;
 use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
 use std::time::Instant;
 
 #[derive(Parser)]
@@ -106,8 +110,17 @@ struct RunArgs {
     #[arg(long)]
     lot: Option<String>,
     /// Operator id recorded with every unit.
-    #[arg(long, default_value = "unattended")]
-    operator: String,
+    /// Operator id recorded with every unit (asked for with --ask; else "unattended").
+    #[arg(long)]
+    operator: Option<String>,
+    /// Ask at the terminal: operator, lot and serial numbers; on the simulated bench also each
+    /// load change and each reference reading, as on a bench with a hand-switched load.
+    #[arg(long)]
+    ask: bool,
+    /// Reference readings from a CSV file (columns step, quantity, value, unit), checked against
+    /// the plan before any load is applied.
+    #[arg(long, value_name = "FILE.csv")]
+    reference: Option<PathBuf>,
     /// Folder of templates that replace the embedded ones, file by file.
     #[arg(long)]
     templates: Option<PathBuf>,
@@ -146,6 +159,15 @@ impl CliError {
 /// Runs the command line and returns the exit status.
 pub fn main() -> i32 {
     let cli = Cli::parse();
+    // The first Ctrl-C asks the run to stop cleanly; a second one stops the process at once.
+    let _ = ctrlc::set_handler(|| {
+        if INTERRUPT.swap(true, Ordering::SeqCst) {
+            std::process::exit(130);
+        }
+        eprintln!(
+            "\nstopping: finishing the records of what was taken (Ctrl-C again to quit at once)"
+        );
+    });
     let result = match cli.command {
         Command::Check { plans } => check(&plans),
         Command::Run(args) => run(&args),
@@ -293,12 +315,34 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
     let plan = Plan::load(&args.plan).map_err(CliError::Plan)?;
     let templates =
         Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
-    let serials = checked_serials(args.serials.as_deref())?;
+    let mut serials = checked_serials(args.serials.as_deref())?;
+    // The reference file is checked against the plan before anything else happens.
+    let file_reference = match &args.reference {
+        Some(path) => {
+            Some(FileReference::load(path, &plan).map_err(|e| CliError::Usage(e.to_string()))?)
+        }
+        None => None,
+    };
+    let operator = match (&args.operator, args.ask) {
+        (Some(o), _) => o.clone(),
+        (None, true) => ask_non_empty("Operator id: ")?,
+        (None, false) => "unattended".into(),
+    };
+    let lot = match (&args.lot, args.ask) {
+        (Some(l), _) => Some(l.clone()),
+        (None, true) => Some(ask_non_empty("Lot id: ")?),
+        (None, false) => None,
+    };
     let spec = if args.bench == "sim" {
+        let positions = sim_positions(&serials, args.positions)?;
+        if serials.is_none() && args.ask {
+            serials = Some(ask_serials(positions)?);
+        }
         BenchSpec::Sim {
             seed: args.seed,
-            positions: sim_positions(&serials, args.positions)?,
+            positions,
             serials,
+            ask: args.ask,
         }
     } else {
         BenchSpec::Station {
@@ -310,10 +354,13 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
         }
     };
     let (mut bench, notes) = build_bench(&spec, &plan, args)?;
+    if let Some(r) = file_reference {
+        bench.reference = Box::new(r);
+    }
     let ctx = RunContext {
         run_id: new_run_id(),
-        operator: args.operator.clone(),
-        lot: args.lot.clone(),
+        operator,
+        lot,
         tool_version: crate::VERSION.to_string(),
         notes,
     };
@@ -383,6 +430,9 @@ enum BenchSpec {
         seed: u64,
         positions: usize,
         serials: Option<Vec<String>>,
+        /// The operator confirms loads and types references, as at a hand-switched bench.
+        #[serde(default)]
+        ask: bool,
     },
     Station {
         path: String,
@@ -394,11 +444,18 @@ enum BenchSpec {
 trait BenchOptions {
     fn quiet(&self) -> bool;
     fn allow_overdue_reference(&self) -> Option<&str>;
+    /// Whether to ask the operator for what is not given.
+    fn ask(&self) -> bool {
+        false
+    }
 }
 
 impl BenchOptions for RunArgs {
     fn quiet(&self) -> bool {
         self.quiet
+    }
+    fn ask(&self) -> bool {
+        self.ask
     }
     fn allow_overdue_reference(&self) -> Option<&str> {
         self.allow_overdue_reference.as_deref()
@@ -415,10 +472,20 @@ fn build_bench(
             seed,
             positions,
             serials,
+            ask,
         } => {
             let mut config = SimConfig::new(*seed, *positions);
             config.serials = serials.clone();
-            Ok((SimBench::new(&config).into_bench(), Vec::new()))
+            let mut bench = SimBench::new(&config).into_bench();
+            if *ask {
+                // The operator confirms each load; the simulator then really applies it.
+                let sim_source = std::mem::replace(&mut bench.source, Box::new(NoSource));
+                bench.source = Box::new(ManualSource::new(console(), Some(sim_source)));
+                bench.reference =
+                    Box::new(TypedReference::new(console(), plan.reference_plausibility));
+            }
+            bench.interrupt = INTERRUPT.clone();
+            Ok((bench, Vec::new()))
         }
         BenchSpec::Station { path, serials } => {
             station_bench(Path::new(path), plan, serials.clone(), options)
@@ -498,15 +565,24 @@ fn station_bench(
             s.len()
         )));
     }
-    let mut bench = station::build_bench(&station, plan).map_err(|e| match e {
-        station::StationError::NotSerial(_) => CliError::Usage(e.to_string()),
-        station::StationError::Instrument { .. } => CliError::Run(e.to_string()),
-    })?;
+    let needs_operator = matches!(station.source, station::SourceSpec::Manual)
+        || matches!(station.reference.read, station::ReferenceRead::Operator);
+    let serials = match serials {
+        None if options.ask() => Some(ask_serials(station.positions.len())?),
+        other => other,
+    };
+    let mut bench = station::build_bench(&station, plan, needs_operator.then(console)).map_err(
+        |e| match e {
+            station::StationError::NotSerial(_) => CliError::Usage(e.to_string()),
+            station::StationError::Instrument { .. } => CliError::Run(e.to_string()),
+        },
+    )?;
     if let Some(serials) = serials {
         for (p, s) in bench.positions.iter_mut().zip(serials) {
             p.expected_serial = Some(s);
         }
     }
+    bench.interrupt = INTERRUPT.clone();
     if !options.quiet() {
         eprintln!("{MAINS_CAUTION}");
     }
@@ -518,6 +594,67 @@ pub const MAINS_CAUTION: &str = "CAUTION: this bench applies mains voltage to th
 Only qualified people may operate it; keep terminals enclosed, keep the PC isolated from the \
 mains side, and de-energise the load before any wiring change. Local electrical codes and \
 licensed practice take precedence.";
+
+/// A placeholder while a source is being wrapped.
+struct NoSource;
+
+impl crate::bench::LoadSource for NoSource {
+    fn describe(&self) -> String {
+        "none".into()
+    }
+    fn apply(&mut self, _: &crate::plan::Load) -> Result<(), crate::bench::BenchError> {
+        Ok(())
+    }
+    fn off(&mut self) -> Result<(), crate::bench::BenchError> {
+        Ok(())
+    }
+}
+
+/// Set by Ctrl-C: the run stops, keeps every reading taken and ends with status 3.
+static INTERRUPT: std::sync::LazyLock<Arc<AtomicBool>> =
+    std::sync::LazyLock::new(|| Arc::new(AtomicBool::new(false)));
+
+/// The operator's console, one for the whole process.
+fn console() -> SharedConsole {
+    static CONSOLE: std::sync::OnceLock<SharedConsole> = std::sync::OnceLock::new();
+    CONSOLE
+        .get_or_init(|| Arc::new(Mutex::new(Console::stdin(INTERRUPT.clone()))))
+        .clone()
+}
+
+fn ask(prompt: &str) -> Result<String, CliError> {
+    let c = console();
+    let c = c.lock().unwrap_or_else(|p| p.into_inner());
+    c.ask(prompt)
+        .map_err(|e| CliError::Run(format!("no answer to \"{}\": {e}", prompt.trim())))
+}
+
+fn ask_non_empty(prompt: &str) -> Result<String, CliError> {
+    loop {
+        let answer = ask(prompt)?;
+        if !answer.is_empty() {
+            return Ok(answer);
+        }
+    }
+}
+
+/// Asks for the serial number of each position (typed or scanned); refuses a serial twice.
+fn ask_serials(positions: usize) -> Result<Vec<String>, CliError> {
+    let mut serials: Vec<String> = Vec::new();
+    while serials.len() < positions {
+        let n = serials.len() + 1;
+        let s = ask_non_empty(&format!("Scan or type the serial number of position {n}: "))?;
+        if let Some(i) = serials.iter().position(|x| *x == s) {
+            eprintln!(
+                "  {s} is already in position {}: scan the unit in position {n}",
+                i + 1
+            );
+            continue;
+        }
+        serials.push(s);
+    }
+    Ok(serials)
+}
 
 /// Serial numbers given on the command line: none empty, none twice.
 fn checked_serials(serials: Option<&[String]>) -> Result<Option<Vec<String>>, CliError> {

@@ -251,8 +251,28 @@ pub fn run_with(
             total: plan.steps.len(),
             step,
         });
+        if bench.interrupt.load(std::sync::atomic::Ordering::SeqCst) {
+            let reason = "interrupted (Ctrl-C)".to_string();
+            for (u, run) in units.iter_mut().zip(&to_run) {
+                if *run {
+                    u.record
+                        .steps
+                        .push(not_run(step, &format!("not run: {reason}")));
+                }
+            }
+            source_failure = Some(reason);
+            continue;
+        }
         if let Err(e) = bench.source.apply(&step.load) {
             let reason = e.to_string();
+            if let crate::bench::BenchError::Skipped(_) = e {
+                for (u, run) in units.iter_mut().zip(&to_run) {
+                    if *run {
+                        u.record.steps.push(not_run(step, &reason));
+                    }
+                }
+                continue;
+            }
             for u in units.iter_mut().filter(|u| u.active) {
                 u.record.steps.push(not_run(step, &reason));
             }
@@ -268,7 +288,9 @@ pub fn run_with(
             attempts: resume.map(|r| &r.attempts),
             recorder,
         };
-        run_step(step, &ctx_step, bench, &mut units, &judge);
+        if let Some(reason) = run_step(step, &ctx_step, bench, &mut units, &judge) {
+            source_failure = Some(reason);
+        }
         if let Some(cal) = &plan.calibration
             && cal.last_point(&plan.steps) == Some(index)
         {
@@ -542,7 +564,7 @@ fn run_step(
     bench: &mut Bench,
     units: &mut [Unit],
     judge: &decide::Judge,
-) {
+) -> Option<String> {
     let started_at_s = sc.started_at_s;
     let attempt_of = |position: usize| {
         sc.attempts
@@ -573,11 +595,13 @@ fn run_step(
         };
         sc.recorder.reading(&key, sample);
     };
+    let interrupt = bench.interrupt.clone();
     let sampler = sampling::Sampler {
         step,
         wanted: &wanted,
         clock: bench.clock.as_ref(),
         on_reading: &on_reading,
+        interrupt: &interrupt,
     };
     let (mut series, window) = sampling::sample_step(sampler, slots, bench.parallel);
     let references = take_references(step, calibration, bench, window);
@@ -653,6 +677,19 @@ fn run_step(
             .step_finished(unit.record.position, sc.index, &record);
         unit.record.steps.push(record);
     }
+    // An operator who aborted at a reference prompt, or Ctrl-C, ends the run here.
+    let aborted = references.iter().find_map(|(_, r)| {
+        r.as_ref()
+            .err()
+            .filter(|e| e.starts_with("aborted"))
+            .cloned()
+    });
+    aborted.or_else(|| {
+        bench
+            .interrupt
+            .load(std::sync::atomic::Ordering::SeqCst)
+            .then(|| "interrupted (Ctrl-C)".to_string())
+    })
 }
 
 type ReferenceResult = Result<crate::bench::ReferenceReading, String>;

@@ -40,6 +40,16 @@ pub(super) struct Sampler<'a> {
     pub wanted: &'a [Wanted],
     pub clock: &'a dyn Clock,
     pub on_reading: OnReading<'a>,
+    /// Set by Ctrl-C: sampling stops before the next sample.
+    pub interrupt: &'a std::sync::atomic::AtomicBool,
+}
+
+const INTERRUPTED: &str = "interrupted (Ctrl-C) before this sample";
+
+impl Sampler<'_> {
+    fn interrupted(&self) -> bool {
+        self.interrupt.load(std::sync::atomic::Ordering::SeqCst)
+    }
 }
 
 /// Samples every slot over the step's window; returns the series and the window's bench times.
@@ -139,6 +149,10 @@ fn on_schedule(s: Sampler, slot: usize, t0: f64, link: &mut Box<dyn DutLink>) ->
     for k in 0..s.step.samples {
         let due = t0 + f64::from(k) * s.step.interval_s;
         s.clock.sleep_s(due - s.clock.now_s());
+        if s.interrupted() {
+            series.fault = Some(INTERRUPTED.into());
+            break;
+        }
         if let Some(fault) = read_once(s, slot, link.as_mut(), k, &mut series) {
             series.fault = Some(fault);
             break;
@@ -160,6 +174,14 @@ fn in_rounds(s: Sampler, mut slots: Vec<Slot>, parallel: bool) -> Vec<Series> {
         })
         .collect();
     for k in 0..s.step.samples {
+        if s.interrupted() {
+            for (slot, series) in slots.iter().zip(all.iter_mut()) {
+                if slot.is_some() && series.fault.is_none() {
+                    series.fault = Some(INTERRUPTED.into());
+                }
+            }
+            break;
+        }
         let live = slots
             .iter_mut()
             .zip(all.iter_mut())

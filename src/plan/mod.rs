@@ -32,6 +32,9 @@ pub struct Plan {
     pub link: LinkSpec,
     pub decision: DecisionRule,
     pub calibration: Option<CalibrationSpec>,
+    /// A typed reference reading further than this fraction from the step's nominal value
+    /// must be confirmed (default 0.10).
+    pub reference_plausibility: f64,
     pub steps: Vec<Step>,
     #[serde(skip)]
     pub source: PlanSource,
@@ -258,7 +261,9 @@ fn trim_number(x: f64, decimals: usize) -> String {
 }
 
 /// A quantity read from a unit under test.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, serde::Deserialize)]
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize, serde::Deserialize,
+)]
 #[serde(rename_all = "snake_case")]
 pub enum Quantity {
     Current,

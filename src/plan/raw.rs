@@ -58,6 +58,8 @@ pub struct RawPlan {
     pub decision: Option<RawDecision>,
     #[serde(default)]
     pub calibration: Option<RawCalibration>,
+    #[serde(default)]
+    pub reference_plausibility: Option<Text>,
     pub steps: Vec<serde_yaml::Value>,
 }
 

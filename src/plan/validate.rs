@@ -331,10 +331,18 @@ fn meaning(
         None => Some(None),
         Some(c) => calibration(ctx, c, &steps, &link).map(Some),
     };
+    let plausibility = ctx
+        .optional_value(
+            "reference_plausibility",
+            raw.reference_plausibility.as_ref(),
+            Dimension::Percent,
+        )
+        .map(|p| p.map_or(0.10, |p| p / 100.0));
     Some(Plan {
         id: id?,
         revision: revision?,
         calibration: calibration?,
+        reference_plausibility: plausibility?,
         title: raw.title.map(|t| t.0),
         product: product?,
         ratings,

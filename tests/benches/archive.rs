@@ -52,9 +52,13 @@ fn main() {
         tool_version: meterproof::VERSION.into(),
         notes: Vec::new(),
     };
-    let template: UnitRecord =
-        exec::run(&plan, &mut SimBench::new(&SimConfig::new(1, 1)).into_bench(), &ctx, &mut Silent)
-            .remove(0);
+    let template: UnitRecord = exec::run(
+        &plan,
+        &mut SimBench::new(&SimConfig::new(1, 1)).into_bench(),
+        &ctx,
+        &mut Silent,
+    )
+    .remove(0);
     // About a tenth of the serials come back for a retest in a later lot.
     let distinct_serials = (units as f64 * 0.9) as usize;
     println!("archive benchmark: {units} unit runs of 100 readings, lots of {LOT}");
@@ -86,14 +90,25 @@ fn main() {
                 r.run_id = run_id.clone();
                 r.position = i + 1;
                 r.serial = format!("S{:08}", (lot * LOT + i) % distinct_serials);
-                r.finished_at = format!("2026-{:02}-01T00:{:02}:{:02}+00:00", 1 + lot % 12, (lot / 60) % 60, lot % 60);
+                r.finished_at = format!(
+                    "2026-{:02}-01T00:{:02}:{:02}+00:00",
+                    1 + lot % 12,
+                    (lot / 60) % 60,
+                    lot % 60
+                );
                 r
             })
             .collect();
         archive.import_units(&records).unwrap();
-        archive.finish_run(&run_id, "2026-12-01T00:00:00+00:00").unwrap();
+        archive
+            .finish_run(&run_id, "2026-12-01T00:00:00+00:00")
+            .unwrap();
         if (lot + 1) % 100 == 0 {
-            eprintln!("  {} units in {:.0} s", (lot + 1) * LOT, start.elapsed().as_secs_f64());
+            eprintln!(
+                "  {} units in {:.0} s",
+                (lot + 1) * LOT,
+                start.elapsed().as_secs_f64()
+            );
         }
     }
     let ingest = start.elapsed().as_secs_f64();
@@ -121,7 +136,10 @@ fn main() {
         times.push(t.elapsed().as_secs_f64() * 1e3);
         assert!(!rows.is_empty());
     }
-    println!("history of one serial: median {:.3} ms (goal under 20 ms)", median(times));
+    println!(
+        "history of one serial: median {:.3} ms (goal under 20 ms)",
+        median(times)
+    );
     let mut times = Vec::new();
     for k in 0..50 {
         let filter = RunFilter {
@@ -133,7 +151,10 @@ fn main() {
         times.push(t.elapsed().as_secs_f64() * 1e3);
         assert_eq!(rows.len(), 1);
     }
-    println!("runs --lot for a lot of {LOT} units: median {:.3} ms (goal under 200 ms)", median(times));
+    println!(
+        "runs --lot for a lot of {LOT} units: median {:.3} ms (goal under 200 ms)",
+        median(times)
+    );
     let t = Instant::now();
     let (checked, failures) = archive.verify().unwrap();
     let v = t.elapsed().as_secs_f64();

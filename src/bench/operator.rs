@@ -1,0 +1,299 @@
+//! The operator at the bench: a console that asks and reads answers, a load source the operator
+//! sets by hand, and reference readings typed from a true-RMS meter.
+//!
+//! Answers are read line by line on a thread of their own, so that Ctrl-C is noticed at once
+//! even while a prompt waits; a barcode scanner types its text and Enter like a keyboard.
+
+use super::{BenchError, LoadSource, ReferenceMeter, ReferenceReading, ReferenceRequest};
+use crate::plan::Load;
+use crate::plan::units::{self, DecimalSeparator};
+use serde::{Deserialize, Serialize};
+use std::io::{BufRead, Write};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::mpsc::{Receiver, RecvTimeoutError, channel};
+use std::sync::{Arc, Mutex};
+use std::time::Duration;
+
+/// Shown wherever a prompt asks for a change of load or wiring.
+pub const PROMPT_CAUTION: &str = "CAUTION: mains voltage. Qualified people only; de-energise before touching wiring, keep terminals enclosed.";
+
+/// Why a prompt got no answer.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum Interrupted {
+    #[error("interrupted (Ctrl-C)")]
+    Signal,
+    #[error("the input ended")]
+    EndOfInput,
+}
+
+/// Prompts on standard error; answers from standard input (or any line source, for tests).
+pub struct Console {
+    lines: Receiver<String>,
+    interrupt: Arc<AtomicBool>,
+}
+
+impl Console {
+    /// A console on standard input, stopping when `interrupt` is set.
+    pub fn stdin(interrupt: Arc<AtomicBool>) -> Console {
+        let (tx, rx) = channel();
+        std::thread::spawn(move || {
+            let stdin = std::io::stdin();
+            for line in stdin.lock().lines() {
+                let Ok(line) = line else { break };
+                if tx.send(line).is_err() {
+                    break;
+                }
+            }
+        });
+        Console {
+            lines: rx,
+            interrupt,
+        }
+    }
+
+    /// Prints `prompt` and waits for one line.
+    pub fn ask(&self, prompt: &str) -> Result<String, Interrupted> {
+        eprint!("{prompt}");
+        let _ = std::io::stderr().flush();
+        loop {
+            if self.interrupt.load(Ordering::SeqCst) {
+                eprintln!();
+                return Err(Interrupted::Signal);
+            }
+            match self.lines.recv_timeout(Duration::from_millis(100)) {
+                Ok(line) => return Ok(line.trim().to_string()),
+                Err(RecvTimeoutError::Timeout) => {}
+                Err(RecvTimeoutError::Disconnected) => {
+                    eprintln!();
+                    return Err(Interrupted::EndOfInput);
+                }
+            }
+        }
+    }
+
+    /// Prints a line for the operator.
+    pub fn say(&self, text: &str) {
+        eprintln!("{text}");
+    }
+}
+
+/// A console shared by the parts of the bench that talk to the operator.
+pub type SharedConsole = Arc<Mutex<Console>>;
+
+fn lock(c: &SharedConsole) -> std::sync::MutexGuard<'_, Console> {
+    c.lock().unwrap_or_else(|p| p.into_inner())
+}
+
+/// What the operator answered at a step's load prompt: Enter (or anything else) goes on;
+/// `skip REASON` skips the step; `abort REASON` ends the run.
+fn step_answer(answer: &str) -> Result<(), BenchError> {
+    let (word, rest) = answer
+        .split_once(char::is_whitespace)
+        .unwrap_or((answer, ""));
+    let reason = match rest.trim() {
+        "" => "no reason given".to_string(),
+        r => r.to_string(),
+    };
+    match word.to_lowercase().as_str() {
+        "skip" => Err(BenchError::Skipped(reason)),
+        "abort" => Err(BenchError::Aborted(reason)),
+        _ => Ok(()),
+    }
+}
+
+/// A load the operator sets by hand, possibly on top of a source that really applies it (the
+/// simulator, so the flow can be practised without mains).
+pub struct ManualSource {
+    console: SharedConsole,
+    inner: Option<Box<dyn LoadSource>>,
+}
+
+impl ManualSource {
+    pub fn new(console: SharedConsole, inner: Option<Box<dyn LoadSource>>) -> ManualSource {
+        ManualSource { console, inner }
+    }
+}
+
+impl LoadSource for ManualSource {
+    fn describe(&self) -> String {
+        "load set by the operator".into()
+    }
+
+    fn apply(&mut self, load: &Load) -> Result<(), BenchError> {
+        let console = lock(&self.console);
+        console.say(PROMPT_CAUTION);
+        let answer = console
+            .ask(&format!(
+                "Set the load to {}. Press Enter when it is set (or type: skip REASON / abort REASON): ",
+                load.describe()
+            ))
+            .map_err(|e| BenchError::Aborted(e.to_string()))?;
+        step_answer(&answer)?;
+        drop(console);
+        match &mut self.inner {
+            Some(inner) => inner.apply(load),
+            None => Ok(()),
+        }
+    }
+
+    fn off(&mut self) -> Result<(), BenchError> {
+        lock(&self.console)
+            .say("Switch the load off and de-energise the positions before removing the units.");
+        match &mut self.inner {
+            Some(inner) => inner.off(),
+            None => Ok(()),
+        }
+    }
+}
+
+/// One thing the operator typed for a reading, and what became of it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TypedEntry {
+    /// Wall-clock time, ISO 8601.
+    pub at: String,
+    pub text: String,
+    /// "refused: ...", "confirm", "corrected" or "accepted".
+    pub outcome: String,
+}
+
+/// Reference readings typed by the operator from a reference meter.
+pub struct TypedReference {
+    console: SharedConsole,
+    /// A reading further than this fraction from the step's nominal value must be confirmed.
+    plausibility: f64,
+}
+
+impl TypedReference {
+    pub fn new(console: SharedConsole, plausibility: f64) -> TypedReference {
+        TypedReference {
+            console,
+            plausibility,
+        }
+    }
+}
+
+fn now() -> String {
+    chrono::Local::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, false)
+}
+
+impl ReferenceMeter for TypedReference {
+    fn read(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError> {
+        let q = request.quantity;
+        let nominal = request.load.nominal(q, request.window.1 - request.window.0);
+        let console = lock(&self.console);
+        let mut entries = Vec::new();
+        let mut pending: Option<(f64, String)> = None;
+        let abort = |e: Interrupted| BenchError::Aborted(e.to_string());
+        let accepted = loop {
+            let prompt = match &pending {
+                None => format!(
+                    "Reference {} for step {} (nominal {}): ",
+                    q.name(),
+                    request.step_id,
+                    units::Display(nominal, q.dimension())
+                ),
+                Some((_, text)) => format!("  {text}: Enter to record it, or type it again: "),
+            };
+            let text = console.ask(&prompt).map_err(abort)?;
+            if text.is_empty() {
+                if let Some((value, typed)) = pending.take() {
+                    entries.push(TypedEntry {
+                        at: now(),
+                        text: typed.clone(),
+                        outcome: "accepted".into(),
+                    });
+                    break (value, typed);
+                }
+                continue;
+            }
+            match units::parse_with(&text, q.dimension(), DecimalSeparator::PointOrComma) {
+                Err(e) => {
+                    console.say(&format!("  refused: {e}"));
+                    entries.push(TypedEntry {
+                        at: now(),
+                        text,
+                        outcome: format!("refused: {e}"),
+                    });
+                    pending = None;
+                }
+                Ok(value) => {
+                    // A new value replaces one not yet recorded: the old one was a typo.
+                    if let Some((_, old)) = pending.take() {
+                        entries.push(TypedEntry {
+                            at: now(),
+                            text: old,
+                            outcome: "corrected".into(),
+                        });
+                    }
+                    let far =
+                        nominal != 0.0 && ((value - nominal) / nominal).abs() > self.plausibility;
+                    if far {
+                        console.say(&format!(
+                            "  {text} is {:.1} % from the nominal {}: type it again to confirm it, or enter another value",
+                            (value - nominal) / nominal * 100.0,
+                            units::Display(nominal, q.dimension())
+                        ));
+                        entries.push(TypedEntry {
+                            at: now(),
+                            text: text.clone(),
+                            outcome: "confirm".into(),
+                        });
+                        pending = None;
+                        let again = console.ask("  again: ").map_err(abort)?;
+                        let confirmed = units::parse_with(
+                            &again,
+                            q.dimension(),
+                            DecimalSeparator::PointOrComma,
+                        )
+                        .is_ok_and(|v| v == value);
+                        if confirmed {
+                            entries.push(TypedEntry {
+                                at: now(),
+                                text: again.clone(),
+                                outcome: "accepted".into(),
+                            });
+                            break (value, again);
+                        }
+                        entries.push(TypedEntry {
+                            at: now(),
+                            text: again,
+                            outcome: "refused: not confirmed".into(),
+                        });
+                        console.say("  not confirmed; enter the reading again");
+                        continue;
+                    }
+                    pending = Some((value, text));
+                }
+            }
+        };
+        Ok(ReferenceReading {
+            value: accepted.0,
+            source: "operator".into(),
+            taken_at_s: request.window.1,
+            as_given: Some(accepted.1),
+            entries,
+        })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn skip_and_abort_carry_their_reasons() {
+        assert_eq!(step_answer(""), Ok(()));
+        assert_eq!(
+            step_answer("skip lamp bank fuse blown"),
+            Err(BenchError::Skipped("lamp bank fuse blown".into()))
+        );
+        assert_eq!(
+            step_answer("abort end of shift"),
+            Err(BenchError::Aborted("end of shift".into()))
+        );
+        assert_eq!(
+            step_answer("abort"),
+            Err(BenchError::Aborted("no reason given".into()))
+        );
+    }
+}
