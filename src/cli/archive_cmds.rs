@@ -88,7 +88,7 @@ pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
         archive: &archive,
         run_id: run.run_id.clone(),
     };
-    let mut reporter = TerminalReporter { quiet: args.quiet };
+    let mut reporter = TerminalReporter::new(args.quiet);
     let records = exec::run_with(
         &plan,
         &mut bench,

@@ -397,7 +397,7 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
             },
         )
         .map_err(|e| CliError::Run(e.to_string()))?;
-    let mut reporter = TerminalReporter { quiet: args.quiet };
+    let mut reporter = TerminalReporter::new(args.quiet);
     let recorder = RunRecorder {
         archive: &archive,
         run_id: ctx.run_id.clone(),
@@ -773,6 +773,50 @@ fn exit_status(records: &[UnitRecord]) -> i32 {
 /// Progress on standard error, one line per step.
 struct TerminalReporter {
     quiet: bool,
+    /// The bar of the step being measured, and the flag that stops its ticker.
+    bar: Option<(indicatif::ProgressBar, Arc<AtomicBool>)>,
+}
+
+impl TerminalReporter {
+    fn new(quiet: bool) -> TerminalReporter {
+        TerminalReporter { quiet, bar: None }
+    }
+
+    /// A bar with the time left while a step settles and samples; indicatif draws nothing
+    /// when standard error is not a terminal.
+    fn start_bar(&mut self, step: &crate::plan::Step, real_s: f64) {
+        let bar = indicatif::ProgressBar::new((real_s * 1000.0) as u64);
+        bar.set_style(
+            indicatif::ProgressStyle::with_template("      {prefix} [{bar:30}] {msg}")
+                .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar())
+                .progress_chars("=> "),
+        );
+        bar.set_prefix(step.id.clone());
+        let stop = Arc::new(AtomicBool::new(false));
+        let (b, s) = (bar.clone(), stop.clone());
+        std::thread::spawn(move || {
+            let start = Instant::now();
+            while !s.load(Ordering::SeqCst) {
+                let elapsed = start.elapsed().as_secs_f64();
+                if elapsed >= real_s {
+                    b.finish_and_clear();
+                    return;
+                }
+                b.set_position((elapsed * 1000.0) as u64);
+                b.set_message(format!("{:.0} s left", (real_s - elapsed).ceil()));
+                std::thread::sleep(std::time::Duration::from_millis(200));
+            }
+            b.finish_and_clear();
+        });
+        self.bar = Some((bar, stop));
+    }
+
+    fn stop_bar(&mut self) {
+        if let Some((bar, stop)) = self.bar.take() {
+            stop.store(true, Ordering::SeqCst);
+            bar.finish_and_clear();
+        }
+    }
 }
 
 impl Reporter for TerminalReporter {
@@ -801,7 +845,13 @@ impl Reporter for TerminalReporter {
                 step.id,
                 step.load.describe()
             ),
+            Event::Measuring { step, real_s } => {
+                if *real_s > 0.5 {
+                    self.start_bar(step, *real_s);
+                }
+            }
             Event::StepFinished { results, .. } => {
+                self.stop_bar();
                 let marks: Vec<String> = results
                     .iter()
                     .map(|(pos, status, failed)| {

@@ -51,6 +51,12 @@ pub enum Event<'a> {
         total: usize,
         step: &'a Step,
     },
+    /// The load is applied: settling and sampling take `real_s` seconds of real time (zero on
+    /// the virtual clock).
+    Measuring {
+        step: &'a Step,
+        real_s: f64,
+    },
     StepFinished {
         index: usize,
         step: &'a Step,
@@ -280,6 +286,14 @@ pub fn run_with(
             continue;
         }
         let started_at_s = bench.clock.now_s();
+        reporter.event(&Event::Measuring {
+            step,
+            real_s: if bench.clock.is_virtual() {
+                0.0
+            } else {
+                step.scheduled_s() / bench.clock.scale()
+            },
+        });
         bench.clock.sleep_s(step.settle_s);
         let ctx_step = StepContext {
             index,
