@@ -1,23 +1,15 @@
 //! The archive through the real binary: queries, integrity, concurrent writers, and a run killed
 //! with SIGKILL and resumed.
 
+mod common;
+use common::{bin, temp_dir};
+
 use meterproof::record::UnitStatus;
 use rusqlite::Connection;
 use std::io::{BufRead, BufReader};
-use std::path::{Path, PathBuf};
-use std::process::{Command, Stdio};
+use std::path::Path;
+use std::process::Stdio;
 use std::time::{Duration, Instant};
-
-fn bin() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_meterproof"))
-}
-
-fn temp_dir(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("meterproof-ar-{name}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
-}
 
 fn run_demo(out: &Path, extra: &[&str]) -> i32 {
     bin()

@@ -1,23 +1,16 @@
 //! Calibration steps: fit, write-back, read-back and verification, on the simulated bench and
 //! through the text link over pseudo-terminals.
 
+mod common;
+use common::ctx;
+
 use meterproof::bench::sim::{SimBench, SimConfig};
 use meterproof::bench::sim_device::{Device, Faults, PtyDevice};
-use meterproof::exec::{self, RunContext, Silent};
+use meterproof::exec::{self, Silent};
 use meterproof::link::text;
 use meterproof::plan::{LinkSpec, Plan};
 use meterproof::record::{CalibrationStatus, UnitRecord, UnitStatus};
 use std::sync::Arc;
-
-fn ctx() -> RunContext {
-    RunContext {
-        run_id: "test".into(),
-        operator: "tester".into(),
-        lot: None,
-        tool_version: "test".into(),
-        notes: Vec::new(),
-    }
-}
 
 fn plan(name: &str) -> Plan {
     Plan::load(std::path::Path::new(&format!("test-plans/{name}"))).unwrap()

@@ -1,8 +1,11 @@
 //! The step engine under link faults: an unfinished unit is never accepted, and no reading
 //! already taken is lost.
 
+mod common;
+use common::ctx;
+
 use meterproof::bench::sim::{SimBench, SimConfig};
-use meterproof::exec::{self, RunContext, Silent};
+use meterproof::exec::{self, Silent};
 use meterproof::link::{DutLink, Identity, LinkError};
 use meterproof::plan::{Plan, Quantity};
 use meterproof::record::{StepStatus, UnitStatus};
@@ -31,16 +34,6 @@ impl DutLink for Flaky {
     }
     fn describe(&self) -> String {
         "flaky".into()
-    }
-}
-
-fn ctx() -> RunContext {
-    RunContext {
-        run_id: "test".into(),
-        operator: "tester".into(),
-        lot: None,
-        tool_version: "test".into(),
-        notes: Vec::new(),
     }
 }
 

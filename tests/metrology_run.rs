@@ -1,19 +1,12 @@
 //! Class limits, uncertainty and decision rules through whole simulated runs.
 
+mod common;
+use common::ctx;
+
 use meterproof::bench::sim::{SimBench, SimConfig};
-use meterproof::exec::{self, RunContext, Silent};
+use meterproof::exec::{self, Silent};
 use meterproof::plan::{Plan, SpecialTest};
 use meterproof::record::{CheckVerdict, UnitRecord, UnitStatus};
-
-fn ctx() -> RunContext {
-    RunContext {
-        run_id: "test".into(),
-        operator: "tester".into(),
-        lot: None,
-        tool_version: "test".into(),
-        notes: Vec::new(),
-    }
-}
 
 fn run(plan: &Plan, config: &SimConfig) -> Vec<UnitRecord> {
     exec::run(

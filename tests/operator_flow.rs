@@ -2,22 +2,14 @@
 //! serials and reference readings (with typos, wrong units, implausible values), skips, aborts,
 //! Ctrl-C, and reference readings imported from CSV.
 
+mod common;
+use common::{bin, records_in, temp_dir};
+
 use meterproof::plan::{Plan, Quantity};
-use meterproof::record::{StepStatus, UnitRecord, UnitStatus};
+use meterproof::record::{StepStatus, UnitStatus};
 use std::io::Write;
-use std::path::{Path, PathBuf};
+use std::path::Path;
 use std::process::{Command, Output, Stdio};
-
-fn bin() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_meterproof"))
-}
-
-fn temp_dir(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("meterproof-op-{name}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
-}
 
 fn demo() -> Plan {
     Plan::load(Path::new("test-plans/demo.yaml")).unwrap()
@@ -60,19 +52,6 @@ fn run_with_input(args: &[&str], out: &Path, input: &str) -> Output {
     child.wait_with_output().unwrap()
 }
 
-fn records(out: &Path) -> Vec<UnitRecord> {
-    let mut rs: Vec<UnitRecord> = std::fs::read_dir(out)
-        .unwrap()
-        .map(|e| e.unwrap().path())
-        .filter(|p| p.is_dir())
-        .flat_map(|d| std::fs::read_dir(d).unwrap().map(|e| e.unwrap().path()))
-        .filter(|p| p.extension().is_some_and(|x| x == "json"))
-        .map(|p| meterproof::record::read(&p).unwrap())
-        .collect();
-    rs.sort_by_key(|r| r.position);
-    rs
-}
-
 #[test]
 fn a_typed_session_with_mistakes_gets_the_right_verdicts() {
     let plan = demo();
@@ -107,7 +86,7 @@ fn a_typed_session_with_mistakes_gets_the_right_verdicts() {
         "{stderr}"
     );
     assert!(stderr.contains("CAUTION: mains voltage"));
-    let rs = records(&dir);
+    let rs = records_in(&dir);
     let serials: Vec<&str> = rs.iter().map(|r| r.serial.as_str()).collect();
     assert_eq!(serials, ["TM-A", "TM-B", "TM-C", "TM-D"]);
     // The simulator's defect sits at position 2 with seed 1: only that unit is rejected.
@@ -173,7 +152,7 @@ fn an_implausible_value_confirmed_is_taken() {
         &input,
     );
     assert_eq!(o.status.code(), Some(1));
-    let rs = records(&dir);
+    let rs = records_in(&dir);
     let c = &rs[0].steps[2].checks[1];
     assert_eq!(c.quantity, Quantity::Current);
     assert_eq!(c.reference, Some(5.8));
@@ -199,7 +178,7 @@ fn skip_and_abort_go_into_the_records() {
         &input,
     );
     assert_eq!(o.status.code(), Some(3), "the run did not complete");
-    for r in records(&dir) {
+    for r in records_in(&dir) {
         assert_eq!(r.verdict.status, UnitStatus::Incomplete);
         assert_eq!(r.steps[0].status, StepStatus::NotRun);
         assert_eq!(
@@ -250,7 +229,7 @@ fn ctrl_c_at_a_prompt_keeps_what_was_taken_and_exits_3() {
         "{}",
         String::from_utf8_lossy(&o.stderr)
     );
-    for r in records(&dir) {
+    for r in records_in(&dir) {
         assert_eq!(r.verdict.status, UnitStatus::Incomplete);
         assert_eq!(
             r.steps[0].status,
@@ -302,7 +281,7 @@ fn a_reference_file_needs_no_typing() {
         "{}",
         String::from_utf8_lossy(&o.stderr)
     );
-    let rs = records(&dir.join("out"));
+    let rs = records_in(&dir.join("out"));
     let statuses: Vec<UnitStatus> = rs.iter().map(|r| r.verdict.status).collect();
     assert_eq!(
         statuses,
@@ -362,6 +341,6 @@ fn a_bad_reference_file_is_refused_before_any_step_with_every_bad_line() {
         assert!(err.contains(&expected), "missing «{expected}» in:\n{err}");
     }
     // Nothing ran: no run folder has any record.
-    assert!(!dir.join("out").exists() || records(&dir.join("out")).is_empty());
+    assert!(!dir.join("out").exists() || records_in(&dir.join("out")).is_empty());
     std::fs::remove_dir_all(&dir).unwrap();
 }

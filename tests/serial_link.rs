@@ -1,25 +1,18 @@
 //! The `text` link end to end: simulated meters on pseudo-terminals, driven through the real
 //! serialport code path, all positions read concurrently.
 
+mod common;
+use common::ctx;
+
 use meterproof::bench::Bench;
 use meterproof::bench::sim::{SimBench, SimConfig};
 use meterproof::bench::sim_device::{Device, Faults, PtyDevice};
-use meterproof::exec::{self, RunContext, Silent};
+use meterproof::exec::{self, Silent};
 use meterproof::link::text;
 use meterproof::plan::{LinkSpec, Plan};
 use meterproof::record::{CheckVerdict, StepStatus, UnitRecord, UnitStatus};
 use std::sync::Arc;
 use std::time::Duration;
-
-fn ctx() -> RunContext {
-    RunContext {
-        run_id: "test".into(),
-        operator: "tester".into(),
-        lot: None,
-        tool_version: "test".into(),
-        notes: Vec::new(),
-    }
-}
 
 fn plan(name: &str) -> Plan {
     let path = format!("test-plans/{name}");

@@ -1,21 +1,12 @@
 //! A whole acceptance run on the built-in simulated bench, through the real binary, with its
 //! records and reports read back.
 
+mod common;
+use common::{bin, temp_dir};
+
 use meterproof::bench::sim::{SimBench, SimConfig};
 use meterproof::record::{self, CheckVerdict, UnitRecord, UnitStatus};
 use std::path::{Path, PathBuf};
-use std::process::Command;
-
-fn bin() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_meterproof"))
-}
-
-fn temp_dir(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("meterproof-test-{name}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
-}
 
 /// Runs the demo plan and returns (exit code, run folder, records by position).
 fn run_demo(out: &Path, extra: &[&str]) -> (i32, PathBuf, Vec<UnitRecord>) {

@@ -1,21 +1,13 @@
 //! The real binary on a station of simulated meters and instruments served by
 //! `meterproof sim-meter` on pseudo-terminals: serial links, SCPI source and reference, faults.
 
+mod common;
+use common::{bin, temp_dir};
+
 use meterproof::record::{self, StepStatus, UnitRecord, UnitStatus};
 use std::io::{BufRead, BufReader};
 use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Stdio};
-
-fn bin() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_meterproof"))
-}
-
-fn temp_dir(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("meterproof-st-{name}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
-}
+use std::process::{Child, Stdio};
 
 /// A `sim-meter` process, killed when dropped.
 struct Served {
@@ -395,7 +387,7 @@ fn a_station_with_typed_references_gets_the_builtin_verdicts() {
         "{}",
         String::from_utf8_lossy(&o.stderr)
     );
-    let (_, _, records) = run_records(&dir.join("out"));
+    let records = common::records_in(&dir.join("out"));
     let statuses: Vec<UnitStatus> = records.iter().map(|r| r.verdict.status).collect();
     assert_eq!(
         statuses,
@@ -413,23 +405,4 @@ fn a_station_with_typed_references_gets_the_builtin_verdicts() {
     );
     assert_eq!(records[0].steps[1].references[0].reading.source, "operator");
     std::fs::remove_dir_all(&dir).unwrap();
-}
-
-/// The records of the one run in `out`.
-fn run_records(out: &Path) -> (i32, String, Vec<UnitRecord>) {
-    let mut records = Vec::new();
-    for d in std::fs::read_dir(out)
-        .unwrap()
-        .map(|d| d.unwrap().path())
-        .filter(|p| p.is_dir())
-    {
-        for f in std::fs::read_dir(d).unwrap() {
-            let p = f.unwrap().path();
-            if p.extension().is_some_and(|x| x == "json") {
-                records.push(record::read(&p).unwrap());
-            }
-        }
-    }
-    records.sort_by_key(|r| r.position);
-    (0, String::new(), records)
 }
