@@ -547,29 +547,8 @@ impl Archive {
             )
             .optional()?
             .unwrap_or_else(|| GENESIS.to_string());
-        let hash = canonical_hash(record);
-        let text = serde_json::to_string(&stripped(record)).expect("a record serialises");
-        tx.execute(
-            "INSERT INTO units (run_id, position, serial, firmware, status, finished_at, record, record_sha256, prev_sha256)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9)",
-            params![
-                record.run_id,
-                record.position as i64,
-                record.serial,
-                record.identity.as_ref().map(|i| i.firmware.clone()),
-                format!("{:?}", record.verdict.status).to_lowercase(),
-                record.finished_at,
-                text,
-                hash,
-                prev
-            ],
-        )?;
-        let seq = tx.last_insert_rowid();
-        tx.execute(
-            "INSERT INTO meta (key, value) VALUES ('chain_head', ?1)
-             ON CONFLICT(key) DO UPDATE SET value = excluded.value",
-            [format!("{seq}:{hash}")],
-        )?;
+        let (seq, hash) = insert_unit_row(&tx, record, &prev)?;
+        set_chain_head(&tx, seq, &hash)?;
         tx.commit()?;
         Ok(())
     }
@@ -591,10 +570,6 @@ impl Archive {
         let mut head = None;
         {
             let mut reading = tx.prepare_cached(INSERT_READING)?;
-            let mut unit = tx.prepare_cached(
-                "INSERT INTO units (run_id, position, serial, firmware, status, finished_at, record, record_sha256, prev_sha256)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9)",
-            )?;
             for r in records {
                 for (index, step) in r.steps.iter().enumerate() {
                     let series = step
@@ -628,29 +603,13 @@ impl Archive {
                         }
                     }
                 }
-                let hash = canonical_hash(r);
-                let text = serde_json::to_string(&stripped(r)).expect("a record serialises");
-                unit.execute(params![
-                    r.run_id,
-                    r.position as i64,
-                    r.serial,
-                    r.identity.as_ref().map(|i| i.firmware.clone()),
-                    format!("{:?}", r.verdict.status).to_lowercase(),
-                    r.finished_at,
-                    text,
-                    hash,
-                    prev
-                ])?;
-                head = Some(format!("{}:{hash}", tx.last_insert_rowid()));
+                let (seq, hash) = insert_unit_row(&tx, r, &prev)?;
+                head = Some((seq, hash.clone()));
                 prev = hash;
             }
         }
-        if let Some(head) = head {
-            tx.execute(
-                "INSERT INTO meta (key, value) VALUES ('chain_head', ?1)
-                 ON CONFLICT(key) DO UPDATE SET value = excluded.value",
-                [head],
-            )?;
+        if let Some((seq, hash)) = head {
+            set_chain_head(&tx, seq, &hash)?;
         }
         tx.commit()?;
         Ok(())
@@ -664,34 +623,43 @@ impl Archive {
         )?;
         Ok(())
     }
+}
 
-    /// Bulk-loads readings in one transaction (for benchmarks and imports).
-    pub fn insert_readings(
-        &self,
-        run_id: &str,
-        readings: &[(ReadingKey, Sample)],
-    ) -> Result<(), ArchiveError> {
-        let mut conn = self.conn();
-        let tx = conn.transaction()?;
-        {
-            let mut stmt = tx.prepare_cached(INSERT_READING)?;
-            for (k, s) in readings {
-                stmt.execute(params![
-                    run_id,
-                    k.position as i64,
-                    k.step_index as i64,
-                    k.attempt as i64,
-                    k.quantity.name(),
-                    k.channel,
-                    k.raw,
-                    s.t_s,
-                    s.value
-                ])?;
-            }
-        }
-        tx.commit()?;
-        Ok(())
-    }
+/// Inserts a unit record (without samples) after `prev` in the chain; returns its sequence
+/// number and hash.
+fn insert_unit_row(
+    conn: &Connection,
+    r: &UnitRecord,
+    prev: &str,
+) -> rusqlite::Result<(i64, String)> {
+    let hash = canonical_hash(r);
+    let text = serde_json::to_string(&stripped(r)).expect("a record serialises");
+    conn.prepare_cached(
+        "INSERT INTO units (run_id, position, serial, firmware, status, finished_at, record, record_sha256, prev_sha256)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9)",
+    )?
+    .execute(params![
+        r.run_id,
+        r.position as i64,
+        r.serial,
+        r.identity.as_ref().map(|i| i.firmware.clone()),
+        format!("{:?}", r.verdict.status).to_lowercase(),
+        r.finished_at,
+        text,
+        hash,
+        prev
+    ])?;
+    Ok((conn.last_insert_rowid(), hash))
+}
+
+/// Records the newest record of the chain, so that removing it is noticed.
+fn set_chain_head(conn: &Connection, seq: i64, hash: &str) -> rusqlite::Result<()> {
+    conn.execute(
+        "INSERT INTO meta (key, value) VALUES ('chain_head', ?1)
+         ON CONFLICT(key) DO UPDATE SET value = excluded.value",
+        [format!("{seq}:{hash}")],
+    )?;
+    Ok(())
 }
 
 const INSERT_READING: &str = "INSERT INTO readings (run_id, position, step_index, attempt, quantity, channel, raw, t_s, value)
