@@ -124,6 +124,14 @@ pub struct StepRecord {
     pub started_at_s: Option<f64>,
     pub status: StepStatus,
     pub reason: Option<String>,
+    /// With settling until stable: the bench seconds it took, and whether it was reached.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub settle_actual_s: Option<f64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub settled: Option<bool>,
+    /// With sampling until decided: how many samples were taken, under which rule.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub sampling_note: Option<String>,
     /// 1 for the first time the step was run for this unit; more after a resume.
     #[serde(default = "first_attempt")]
     pub attempt: u32,

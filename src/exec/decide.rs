@@ -114,6 +114,65 @@ pub(super) fn evaluate_check(input: CheckInputs, record: &mut CheckRecord, judge
     record.decision = Some(decision);
 }
 
+/// A step's samples so far, to decide whether sampling may stop.
+pub(super) struct Partial<'a> {
+    pub step: &'a Step,
+    /// The step's empty check records, to fill in.
+    pub blank: &'a StepRecord,
+    pub wanted: &'a [super::sampling::Wanted],
+    pub references: &'a [(Quantity, Result<ReferenceReading, String>)],
+    /// Each position's resolution for each check.
+    pub resolutions: &'a [Vec<Option<f64>>],
+}
+
+impl Partial<'_> {
+    /// Whether, after `n` samples, no decision of any unit still sampling can change: each
+    /// check's error with its expanded uncertainty lies wholly inside the acceptance limit or
+    /// wholly beyond the tolerance limit. A unit whose series has stopped (a fault) does not
+    /// hold the others back.
+    pub(super) fn all_settled(
+        &self,
+        series: &[super::sampling::Series],
+        n: u32,
+        judge: &Judge,
+    ) -> bool {
+        let mut step_so_far = self.step.clone();
+        step_so_far.samples = n;
+        for (u, s) in series.iter().enumerate() {
+            if s.samples.is_empty() || s.fault.is_some() {
+                continue;
+            }
+            for (i, check) in self.step.checks.iter().enumerate() {
+                let Some(w) = self.wanted.iter().position(|w| {
+                    !w.raw && w.quantity == check.quantity && w.channel == check.channel
+                }) else {
+                    return false;
+                };
+                let mut record = self.blank.checks[i].clone();
+                record.samples = s.samples[w].clone();
+                let reference = self
+                    .references
+                    .iter()
+                    .find(|(q, _)| *q == check.quantity)
+                    .map(|(_, r)| r.clone());
+                let input = CheckInputs {
+                    check,
+                    step: &step_so_far,
+                    reference,
+                    window: (0.0, 0.0),
+                    resolution: self.resolutions.get(u).and_then(|r| r[i]),
+                };
+                evaluate_check(input, &mut record, judge);
+                match (&record.evaluation, &record.decision) {
+                    (Some(e), Some(d)) if crate::metrology::decision::settled(e, d) => {}
+                    _ => return false,
+                }
+            }
+        }
+        true
+    }
+}
+
 /// The uncertainty budget of a check's error, in the error's unit (GUM): the spread of the
 /// unit's readings (Type A), its resolution and the reference's accuracy (Type B, rectangular).
 fn budget(

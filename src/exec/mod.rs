@@ -9,6 +9,7 @@
 mod calibrate;
 mod decide;
 mod sampling;
+mod settle;
 
 use crate::bench::{Bench, Position, ReferenceRequest};
 use crate::link::Identity;
@@ -136,6 +137,8 @@ struct Unit {
 
 /// What `run_step` needs to know about the step beyond the plan.
 struct StepContext<'a> {
+    /// How an adaptive settling went; `None` for a fixed settle time.
+    settle: Option<settle::SettleOutcome>,
     index: usize,
     started_at_s: f64,
     /// Which units to sample at this step (the others are refused or kept from before).
@@ -294,8 +297,21 @@ pub fn run_with(
                 step.scheduled_s() / bench.clock.scale()
             },
         });
-        bench.clock.sleep_s(step.settle_s);
+        let settle = match &step.settle_until {
+            Some(rule) => Some(settle::settle_until(
+                rule,
+                bench.clock.as_ref(),
+                &mut bench.positions,
+                &to_run,
+                &bench.interrupt,
+            )),
+            None => {
+                bench.clock.sleep_s(step.settle_s);
+                None
+            }
+        };
         let ctx_step = StepContext {
+            settle,
             index,
             started_at_s,
             to_run: &to_run,
@@ -522,6 +538,9 @@ fn empty_step(step: &Step, started_at_s: Option<f64>) -> StepRecord {
         started_at_s,
         status: StepStatus::Done,
         reason: None,
+        settle_actual_s: None,
+        settled: None,
+        sampling_note: None,
         attempt: 1,
         calibration_point: None,
         references: Vec::new(),
@@ -590,6 +609,17 @@ fn run_step(
     let calibration = judge.calibration.filter(|c| c.points.contains(&step.id));
     let wanted = readings_of(step, calibration);
     let numbers: Vec<usize> = bench.positions.iter().map(|p| p.number).collect();
+    let resolutions: Vec<Vec<Option<f64>>> = bench
+        .positions
+        .iter()
+        .map(|p| {
+            step.checks
+                .iter()
+                .map(|c| p.link.resolution(c.quantity))
+                .collect()
+        })
+        .collect();
+    let blank = empty_step(step, None);
     let slots: Vec<sampling::Slot> = bench
         .positions
         .iter_mut()
@@ -617,14 +647,67 @@ fn run_step(
         on_reading: &on_reading,
         interrupt: &interrupt,
     };
-    let (mut series, window) = sampling::sample_step(sampler, slots, bench.parallel);
-    let references = take_references(step, calibration, bench, window);
+    // Sampling until decided reads the references once the minimum is taken, and stops as soon
+    // as no decision of any unit can change any more.
+    let mut early_references: Option<Vec<(Quantity, ReferenceResult)>> = None;
+    let reference = &mut bench.reference;
+    let clock = bench.clock.clone();
+    let mut stop_rule = |n: u32, all: &[sampling::Series]| -> bool {
+        let Some(rule) = step.sequential else {
+            return false;
+        };
+        if n < rule.min {
+            return false;
+        }
+        let t0 = clock.now_s() - f64::from(n - 1) * step.interval_s;
+        let refs = early_references.get_or_insert_with(|| {
+            take_references(step, calibration, reference.as_mut(), (t0, clock.now_s()))
+        });
+        let partial = decide::Partial {
+            step,
+            blank: &blank,
+            wanted: &wanted,
+            references: refs,
+            resolutions: &resolutions,
+        };
+        partial.all_settled(all, n, judge)
+    };
+    let stop: Option<sampling::StopRule> = if step.sequential.is_some() {
+        Some(&mut stop_rule)
+    } else {
+        None
+    };
+    let (mut series, window) = sampling::sample_step(sampler, slots, bench.parallel, stop);
+    // A step sampled until decided is evaluated on the samples it took.
+    let mut evaluated_step = step.clone();
+    if step.sequential.is_some() {
+        evaluated_step.samples = series
+            .iter()
+            .map(|s| s.samples.first().map_or(0, Vec::len))
+            .max()
+            .unwrap_or(0) as u32;
+    }
+    let references = match early_references.take() {
+        Some(r) => r,
+        None => take_references(step, calibration, bench.reference.as_mut(), window),
+    };
     for (u, unit) in units.iter_mut().enumerate() {
         if !sc.to_run[u] {
             continue;
         }
         let mut record = empty_step(step, Some(started_at_s));
         record.attempt = attempt_of(unit.record.position);
+        if let Some(s) = sc.settle {
+            record.settle_actual_s = Some(s.actual_s);
+            record.settled = Some(s.settled);
+        }
+        if let Some(rule) = step.sequential {
+            let taken = series[u].samples.first().map_or(0, |s| s.len());
+            record.sampling_note = Some(format!(
+                "sampled until decided: {taken} samples (at least {}, at most {})",
+                rule.min, rule.max
+            ));
+        }
         record.references = references
             .iter()
             .filter_map(|(q, r)| {
@@ -634,7 +717,9 @@ fn run_step(
                 })
             })
             .collect();
-        for (check, check_record) in step.checks.iter().zip(record.checks.iter_mut()) {
+        for (i, (check, check_record)) in
+            step.checks.iter().zip(record.checks.iter_mut()).enumerate()
+        {
             let w = wanted
                 .iter()
                 .position(|w| !w.raw && w.quantity == check.quantity && w.channel == check.channel)
@@ -646,10 +731,10 @@ fn run_step(
                 .map(|(_, r)| r.clone());
             let input = decide::CheckInputs {
                 check,
-                step,
+                step: &evaluated_step,
                 reference,
                 window,
-                resolution: bench.positions[u].link.resolution(check.quantity),
+                resolution: resolutions[u][i],
             };
             decide::evaluate_check(input, check_record, judge);
         }
@@ -712,7 +797,7 @@ type ReferenceResult = Result<crate::bench::ReferenceReading, String>;
 fn take_references(
     step: &Step,
     calibration: Option<&CalibrationSpec>,
-    bench: &mut Bench,
+    reference: &mut dyn crate::bench::ReferenceMeter,
     window: (f64, f64),
 ) -> Vec<(Quantity, ReferenceResult)> {
     let mut quantities: Vec<Quantity> = step
@@ -733,7 +818,7 @@ fn take_references(
             load: &step.load,
             window,
         };
-        let reading = bench.reference.read(&request).map_err(|e| e.to_string());
+        let reading = reference.read(&request).map_err(|e| e.to_string());
         out.push((quantity, reading));
     }
     out

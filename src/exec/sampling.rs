@@ -52,15 +52,20 @@ impl Sampler<'_> {
     }
 }
 
+/// Decides after each round (with the number of samples taken) whether sampling may stop.
+pub(super) type StopRule<'a> = &'a mut dyn FnMut(u32, &[Series]) -> bool;
+
 /// Samples every slot over the step's window; returns the series and the window's bench times.
+/// With a stop rule the positions are sampled in rounds, so that they stop together.
 pub(super) fn sample_step(
     s: Sampler,
     slots: Vec<Slot>,
     parallel: bool,
+    stop: Option<StopRule>,
 ) -> (Vec<Series>, (f64, f64)) {
     let t0 = s.clock.now_s();
-    let series = if s.clock.is_virtual() {
-        in_rounds(s, slots, parallel)
+    let series = if s.clock.is_virtual() || stop.is_some() {
+        in_rounds(s, slots, parallel, t0, stop)
     } else if parallel {
         std::thread::scope(|scope| {
             let handles: Vec<_> = slots
@@ -161,8 +166,15 @@ fn on_schedule(s: Sampler, slot: usize, t0: f64, link: &mut Box<dyn DutLink>) ->
     series
 }
 
-/// Every unit per round; the virtual clock moves between rounds.
-fn in_rounds(s: Sampler, mut slots: Vec<Slot>, parallel: bool) -> Vec<Series> {
+/// Every unit per round, round k due at t0 + k·interval (on the virtual clock time only moves
+/// between rounds); after each round the stop rule, if any, may end the sampling.
+fn in_rounds(
+    s: Sampler,
+    mut slots: Vec<Slot>,
+    parallel: bool,
+    t0: f64,
+    mut stop: Option<StopRule>,
+) -> Vec<Series> {
     let mut all: Vec<Series> = slots
         .iter()
         .map(|slot| {
@@ -200,8 +212,18 @@ fn in_rounds(s: Sampler, mut slots: Vec<Slot>, parallel: bool) -> Vec<Series> {
         } else {
             live.for_each(round);
         }
+        if let Some(stop) = stop.as_mut()
+            && stop(k + 1, &all)
+        {
+            break;
+        }
         if k + 1 < s.step.samples {
-            s.clock.sleep_s(s.step.interval_s);
+            if s.clock.is_virtual() {
+                s.clock.sleep_s(s.step.interval_s);
+            } else {
+                let due = t0 + f64::from(k + 1) * s.step.interval_s;
+                s.clock.sleep_s(due - s.clock.now_s());
+            }
         }
     }
     all

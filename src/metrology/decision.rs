@@ -71,6 +71,25 @@ pub fn decide(e: &Evaluation, u: Option<f64>, rule: DecisionRule) -> Decision {
     }
 }
 
+/// Whether more samples could not change the decision: the error with its expanded uncertainty
+/// lies wholly inside the acceptance limit, or wholly beyond the tolerance limit. A result at
+/// the acceptance limit itself is not settled.
+pub fn settled(e: &Evaluation, d: &Decision) -> bool {
+    let Some(u) = d.expanded_uncertainty else {
+        return false;
+    };
+    match e.sense {
+        Sense::PlusMinus | Sense::AtMost => {
+            let magnitude = match e.sense {
+                Sense::PlusMinus => e.error.abs(),
+                _ => e.error,
+            };
+            magnitude + u < d.acceptance_limit || magnitude - u > d.tolerance_limit
+        }
+        Sense::AtLeast => e.error - u > d.acceptance_limit || e.error + u < d.tolerance_limit,
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -130,6 +149,20 @@ mod tests {
         start.sense = Sense::AtLeast;
         assert!(decide(&start, Some(0.5), DecisionRule::Guarded { multiple: 1.0 }).accepted);
         assert!(!decide(&start, Some(1.5), DecisionRule::Guarded { multiple: 1.0 }).accepted);
+    }
+
+    #[test]
+    fn a_decision_is_settled_only_clear_of_both_limits() {
+        let rule = DecisionRule::Guarded { multiple: 1.0 };
+        let clear = error(0.2, 1.0);
+        assert!(settled(&clear, &decide(&clear, Some(0.1), rule)));
+        let far_out = error(1.5, 1.0);
+        assert!(settled(&far_out, &decide(&far_out, Some(0.1), rule)));
+        // Exactly at the acceptance limit (0.9 = 1.0 − U): more samples could tip it.
+        let at_limit = error(0.9, 1.0);
+        assert!(!settled(&at_limit, &decide(&at_limit, Some(0.1), rule)));
+        let between = error(1.05, 1.0);
+        assert!(!settled(&between, &decide(&between, Some(0.1), rule)));
     }
 
     /// Conformance probability (JCGM 106:2012, normal result): tolerance ±1.0 %, measured

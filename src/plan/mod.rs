@@ -170,6 +170,34 @@ pub struct Step {
     pub checks: Vec<Check>,
     /// A test whose load, duration and limit the plan derives from the class tables.
     pub special: Option<SpecialTest>,
+    /// Settle until stable instead of for a fixed time (then `settle_s` is the most it waits).
+    pub settle_until: Option<SettleRule>,
+    /// Sample until decided instead of a fixed count (then `samples` is the most it takes).
+    pub sequential: Option<SequentialRule>,
+}
+
+/// "Settle until stable": every `every_s`, each position's `quantity` is read; the step goes on
+/// once the last `readings` readings of every position lie within `band`, after at least
+/// `min_s`; after `max_s` it goes on anyway and the record says it did not settle.
+#[derive(Debug, Clone, PartialEq, Serialize, serde::Deserialize)]
+pub struct SettleRule {
+    pub quantity: Quantity,
+    pub channel: String,
+    /// Spread allowed: a fraction of the readings' mean (relative) or an absolute value.
+    pub band: f64,
+    pub relative: bool,
+    pub readings: u32,
+    pub every_s: f64,
+    pub min_s: f64,
+    pub max_s: f64,
+}
+
+/// "Sample until decided": after `min` samples, stop as soon as no decision of the step can
+/// change (see DEVELOPERS.md), at the latest after `max`.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, serde::Deserialize)]
+pub struct SequentialRule {
+    pub min: u32,
+    pub max: u32,
 }
 
 /// The special tests of the standards, with the figures derived for them.

@@ -134,6 +134,36 @@ pub struct RawDefaults {
     pub samples: Option<Text>,
     #[serde(default)]
     pub interval: Option<Text>,
+    #[serde(default)]
+    pub settle_until: Option<RawSettleUntil>,
+    #[serde(default)]
+    pub samples_until_decided: Option<RawSequential>,
+}
+
+/// Settle until every position's readings are stable.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawSettleUntil {
+    /// "0.05 %" of the readings' mean, or an absolute band in the quantity's unit.
+    pub stable_within: Text,
+    /// How many consecutive readings must lie within the band.
+    #[serde(default)]
+    pub readings: Option<Text>,
+    #[serde(default)]
+    pub every: Option<Text>,
+    #[serde(default)]
+    pub at_least: Option<Text>,
+    pub at_most: Text,
+    #[serde(default)]
+    pub quantity: Option<Text>,
+}
+
+/// Take samples until every decision is settled.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawSequential {
+    pub min: Text,
+    pub max: Text,
 }
 
 #[derive(Debug, Deserialize)]
@@ -248,6 +278,10 @@ pub struct RawStep {
     pub samples: Option<Text>,
     #[serde(default)]
     pub interval: Option<Text>,
+    #[serde(default)]
+    pub settle_until: Option<RawSettleUntil>,
+    #[serde(default)]
+    pub samples_until_decided: Option<RawSequential>,
     #[serde(default)]
     pub checks: Vec<RawCheck>,
 }

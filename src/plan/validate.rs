@@ -268,6 +268,8 @@ struct StepDefaults {
     settle_s: f64,
     samples: u32,
     interval_s: f64,
+    settle_until: Option<super::raw::RawSettleUntil>,
+    samples_until_decided: Option<super::raw::RawSequential>,
 }
 
 fn meaning(
@@ -304,6 +306,8 @@ fn meaning(
             )
             .flatten()
             .unwrap_or(1.0),
+        settle_until: raw.defaults.settle_until.clone(),
+        samples_until_decided: raw.defaults.samples_until_decided.clone(),
     };
     if raw_steps.is_empty() {
         ctx.error("steps", "a plan needs at least one step");
@@ -787,6 +791,49 @@ fn step(
             "the sample interval must be greater than zero when a step takes several samples",
         );
     }
+    // Adaptive rules: the step's own, else the defaults' unless the step fixes its own time/count.
+    let settle_raw = raw.settle_until.clone().or_else(|| {
+        raw.settle
+            .is_none()
+            .then(|| defaults.settle_until.clone())
+            .flatten()
+    });
+    if raw.settle_until.is_some() && raw.settle.is_some() {
+        ctx.error(
+            &format!("{path}.settle_until"),
+            "give settle or settle_until, not both",
+        );
+    }
+    let sequential_raw = raw.samples_until_decided.clone().or_else(|| {
+        raw.samples
+            .is_none()
+            .then(|| defaults.samples_until_decided.clone())
+            .flatten()
+    });
+    if raw.samples_until_decided.is_some() && raw.samples.is_some() {
+        ctx.error(
+            &format!("{path}.samples_until_decided"),
+            "give samples or samples_until_decided, not both",
+        );
+    }
+    let sequential = sequential_raw.as_ref().and_then(|r| {
+        let p = format!("{path}.samples_until_decided");
+        let min = ctx.count(&format!("{p}.min"), &r.min);
+        let max = ctx.count(&format!("{p}.max"), &r.max);
+        match (min, max) {
+            (Some(min), Some(max)) if min >= 2 && max >= min => {
+                Some(super::SequentialRule { min, max })
+            }
+            (Some(_), Some(_)) => {
+                ctx.error(&p, "min must be at least 2 and max at least min");
+                None
+            }
+            _ => None,
+        }
+    });
+    if let Some(rule) = sequential {
+        samples = Some(rule.max);
+    }
     let window_s = match (samples, interval_s) {
         (Some(n), Some(i)) => f64::from(n.saturating_sub(1)) * i,
         _ => 0.0,
@@ -807,6 +854,20 @@ fn step(
         })
         .collect();
     let mut checks: Vec<Check> = checks.into_iter().collect::<Option<_>>()?;
+    if sequential.is_some() && checks.iter().any(|c| c.quantity.is_register()) {
+        ctx.error(
+            &format!("{path}.samples_until_decided"),
+            "an energy register needs its whole window: a step with an energy check cannot stop early",
+        );
+    }
+    let settle_until = match &settle_raw {
+        None => None,
+        Some(r) => settle_rule(ctx, &format!("{path}.settle_until"), r, &checks),
+    };
+    let settle_s = match (&settle_until, settle_s) {
+        (Some(rule), _) => Some(rule.max_s),
+        (None, s) => s,
+    };
     let special = special?;
     match &special {
         Some(SpecialTest::NoLoad { allowance_wh, .. }) => checks.push(Check {
@@ -844,6 +905,100 @@ fn step(
         interval_s: interval_s?,
         checks,
         special,
+        settle_until,
+        sequential,
+    })
+}
+
+fn settle_rule(
+    ctx: &mut Ctx,
+    path: &str,
+    raw: &super::raw::RawSettleUntil,
+    checks: &[Check],
+) -> Option<super::SettleRule> {
+    let watched = match &raw.quantity {
+        Some(t) => match Quantity::from_name(t.0.trim()) {
+            Some(q) => checks
+                .iter()
+                .find(|c| c.quantity == q)
+                .map(|c| (q, c.channel.clone())),
+            None => {
+                ctx.error(
+                    &format!("{path}.quantity"),
+                    format!("unknown quantity \"{}\"", t.0),
+                );
+                return None;
+            }
+        },
+        // The current is what a load change moves most and slowest; watch it by default.
+        None => checks
+            .iter()
+            .find(|c| c.quantity == Quantity::Current)
+            .or_else(|| checks.iter().find(|c| !c.quantity.is_register()))
+            .map(|c| (Quantity::Current, c.channel.clone())),
+    };
+    let Some((quantity, channel)) = watched else {
+        ctx.error(
+            path,
+            "settling until stable needs a quantity the step checks (not an energy register) to watch",
+        );
+        return None;
+    };
+    let band_text = raw.stable_within.0.trim();
+    let (band, relative) = if band_text.ends_with('%') {
+        (
+            ctx.value(
+                &format!("{path}.stable_within"),
+                &raw.stable_within,
+                Dimension::Percent,
+            )? / 100.0,
+            true,
+        )
+    } else {
+        (
+            ctx.value(
+                &format!("{path}.stable_within"),
+                &raw.stable_within,
+                quantity.dimension(),
+            )?,
+            false,
+        )
+    };
+    let readings = match &raw.readings {
+        None => Some(5),
+        Some(t) => ctx.count(&format!("{path}.readings"), t),
+    }?;
+    let every_s = ctx
+        .optional_value(
+            &format!("{path}.every"),
+            raw.every.as_ref(),
+            Dimension::Time,
+        )?
+        .unwrap_or(0.1);
+    let min_s = ctx
+        .optional_value(
+            &format!("{path}.at_least"),
+            raw.at_least.as_ref(),
+            Dimension::Time,
+        )?
+        .unwrap_or(0.0);
+    let max_s = ctx.value(&format!("{path}.at_most"), &raw.at_most, Dimension::Time)?;
+    if readings < 2 || every_s <= 0.0 || max_s < min_s || band <= 0.0 {
+        ctx.error(
+            path,
+            "settle_until needs readings ≥ 2, every > 0, a band > 0 and at_most ≥ at_least",
+        );
+        return None;
+    }
+    Some(super::SettleRule {
+        quantity,
+        channel,
+        band,
+        relative,
+        readings,
+        every_s,
+        min_s,
+        max_s,
     })
 }
 

@@ -1,0 +1,120 @@
+//! Benchmark of bench time: 1,000 simulated units (250 runs of 4 positions) through the demo plan
+//! with fixed settle and sample times and through its adaptive variant (settle until stable,
+//! sample until decided); then the real-time overhead of the engine over a plan's scheduled
+//! time for 1 and 16 positions. Run with `cargo bench --bench bench_time`; it asserts nothing.
+
+use meterproof::archive::{Archive, RunRecorder};
+use meterproof::bench::RealClock;
+use meterproof::bench::sim::{SimBench, SimConfig};
+use meterproof::exec::{self, RunContext, Silent};
+use meterproof::plan::Plan;
+use meterproof::record::UnitRecord;
+use std::sync::Arc;
+use std::time::Instant;
+
+fn ctx() -> RunContext {
+    RunContext {
+        run_id: "bench".into(),
+        operator: "bench".into(),
+        lot: None,
+        tool_version: meterproof::VERSION.into(),
+        notes: Vec::new(),
+    }
+}
+
+fn plan(path: &str) -> Plan {
+    Plan::load(std::path::Path::new(path)).unwrap()
+}
+
+/// Whether a unit's verdict rests on a check within its uncertainty of the limit.
+fn marginal(r: &UnitRecord) -> bool {
+    r.steps.iter().flat_map(|s| &s.checks).any(|c| c.marginal())
+}
+
+fn main() {
+    let fixed = plan("test-plans/demo.yaml");
+    let adaptive = plan("test-plans/demo-adaptive.yaml");
+    let runs = 250u64;
+    let (mut t_fixed, mut t_adaptive) = (0.0, 0.0);
+    let (mut agree, mut disagree, mut disagree_marginal, mut units) = (0, 0, 0, 0);
+    let (mut checks_fixed_failed, mut checks_adaptive_failed) = (0, 0);
+    for seed in 1..=runs {
+        let config = SimConfig::new(seed, 4);
+        let a = exec::run(
+            &fixed,
+            &mut SimBench::new(&config).into_bench(),
+            &ctx(),
+            &mut Silent,
+        );
+        let b = exec::run(
+            &adaptive,
+            &mut SimBench::new(&config).into_bench(),
+            &ctx(),
+            &mut Silent,
+        );
+        t_fixed += a[0].bench_time_s;
+        t_adaptive += b[0].bench_time_s;
+        for (x, y) in a.iter().zip(&b) {
+            units += 1;
+            checks_fixed_failed += x.failed_checks().count();
+            checks_adaptive_failed += y.failed_checks().count();
+            if x.verdict.status == y.verdict.status {
+                agree += 1;
+            } else {
+                disagree += 1;
+                if marginal(x) || marginal(y) {
+                    disagree_marginal += 1;
+                }
+            }
+        }
+    }
+    let per_fixed = t_fixed / (runs * 4) as f64;
+    let per_adaptive = t_adaptive / (runs * 4) as f64;
+    println!("bench time per unit, {units} simulated units in runs of 4 positions:");
+    println!("  fixed settle and sample times:  {per_fixed:.2} s");
+    println!("  settle until stable, sample until decided: {per_adaptive:.2} s");
+    println!(
+        "  ratio {:.3}: {:.1} % less bench time (goal: at least 40 %)",
+        per_adaptive / per_fixed,
+        (1.0 - per_adaptive / per_fixed) * 100.0
+    );
+    println!(
+        "  verdicts agree for {agree} of {units} units; {disagree} disagree, {disagree_marginal} of them on a marginal check (within U of its limit)"
+    );
+    println!("  failed checks: {checks_fixed_failed} fixed, {checks_adaptive_failed} adaptive");
+
+    println!("real-time overhead over the scheduled time (simulator on a real clock, archive on):");
+    let text = std::fs::read_to_string("test-plans/demo.yaml").unwrap();
+    let cut = text.find("steps:").unwrap();
+    let mut quick = format!("{}steps:\n", &text[..cut]);
+    for (i, current) in ["1 A", "5 A", "10 A"].iter().enumerate() {
+        quick.push_str(&format!(
+            "  - id: s{i}\n    load: {{ current: {current} }}\n    settle: 500 ms\n    samples: 6\n    interval: 100 ms\n    checks:\n      - {{ quantity: current, tolerance: {{ percent: 0.5 % }} }}\n      - {{ quantity: active_power, tolerance: {{ class: true }} }}\n"
+        ));
+    }
+    let quick = Plan::from_text("quick.yaml", &quick).unwrap();
+    let scheduled = quick.scheduled_s();
+    let dir = std::env::temp_dir().join(format!("meterproof-bench-time-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    for positions in [1usize, 16] {
+        let mut config = SimConfig::new(7, positions);
+        config.plant_defect = false;
+        let mut bench = SimBench::with_clock(&config, Arc::new(RealClock::default())).into_bench();
+        bench.parallel = true;
+        let archive = Archive::open(&dir.join(format!("a{positions}.sqlite"))).unwrap();
+        let recorder = RunRecorder {
+            archive: &archive,
+            run_id: format!("rt{positions}"),
+        };
+        let start = Instant::now();
+        exec::run_with(&quick, &mut bench, &ctx(), &mut Silent, &recorder, None);
+        let wall = start.elapsed().as_secs_f64();
+        let allowed = scheduled * 1.01 + 0.020 * quick.steps.len() as f64;
+        println!(
+            "  {positions:>2} positions: {wall:.3} s for {scheduled:.3} s scheduled: overhead {:.1} ms per step (allowed {:.1} ms per step)",
+            (wall - scheduled) * 1000.0 / quick.steps.len() as f64,
+            (allowed - scheduled) * 1000.0 / quick.steps.len() as f64
+        );
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}
