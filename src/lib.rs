@@ -14,6 +14,7 @@ pub mod link;
 pub mod metrology;
 pub mod plan;
 pub mod record;
+pub mod regression;
 pub mod report;
 
 /// The version recorded in every unit record.

@@ -393,6 +393,35 @@ impl Archive {
         self.records_where("u.serial = ?1", serial)
     }
 
+    /// Unit records selected by `key=value` (`run`, `lot` or `firmware`), optionally of one plan.
+    pub fn select(
+        &self,
+        key: &str,
+        value: &str,
+        plan_id: Option<&str>,
+    ) -> Result<Vec<UnitRecord>, ArchiveError> {
+        let column = match key {
+            "run" => "u.run_id",
+            "lot" => "r.lot",
+            "firmware" => "u.firmware",
+            other => {
+                return Err(ArchiveError::NotFound(format!(
+                    "cannot select by \"{other}\": use run, lot or firmware"
+                )));
+            }
+        };
+        let conn = self.conn();
+        let mut stmt = conn.prepare(&format!(
+            "SELECT u.record FROM units u JOIN runs r ON r.run_id = u.run_id
+             JOIN plans p ON p.sha256 = r.plan_sha256
+             WHERE {column} = ?1 AND (?2 IS NULL OR p.plan_id = ?2) ORDER BY u.seq"
+        ))?;
+        let texts: Vec<String> = stmt
+            .query_map(params![value, plan_id], |r| r.get(0))?
+            .collect::<Result<_, _>>()?;
+        texts.iter().map(|t| reassemble(&conn, t)).collect()
+    }
+
     fn records_where(&self, condition: &str, value: &str) -> Result<Vec<UnitRecord>, ArchiveError> {
         let conn = self.conn();
         let mut stmt = conn.prepare(&format!(

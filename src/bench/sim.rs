@@ -111,6 +111,21 @@ pub struct SimConfig {
     /// Give every meter a creep fault: no no-load threshold and a 3 mA current offset, so the
     /// register advances with no load.
     pub creep_fault: bool,
+    /// A firmware change to simulate: the version the meters report, a gain step on the
+    /// current range above a threshold (amperes, relative step), and extra noise.
+    pub firmware: FirmwareChange,
+    /// Offsets the noise streams: the same meters tested again give other noise.
+    pub noise_stream_offset: u64,
+}
+
+/// What a simulated firmware does differently from the factory one.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct FirmwareChange {
+    pub version: Option<String>,
+    /// (threshold A, relative gain step) applied to currents at or above the threshold.
+    pub gain_step_above: Option<(f64, f64)>,
+    /// Relative noise added to every rms reading.
+    pub extra_noise: f64,
 }
 
 impl SimConfig {
@@ -122,6 +137,8 @@ impl SimConfig {
             plant_defect: true,
             tau_range_s: (0.15, 0.45),
             creep_fault: false,
+            firmware: FirmwareChange::default(),
+            noise_stream_offset: 0,
         }
     }
 }
@@ -145,6 +162,8 @@ struct MeterModel {
     phase_error_deg: f64,
     noise_relative: f64,
     tau_s: f64,
+    /// (threshold A, relative gain step) of a simulated firmware change.
+    gain_step_above: Option<(f64, f64)>,
     /// Below this current the firmware reports no power and its register stands still.
     no_load_threshold_a: f64,
 }
@@ -159,6 +178,16 @@ struct MeterState {
     energy_wh: f64,
     energy_until_s: f64,
     noise: ChaCha8Rng,
+}
+
+impl MeterModel {
+    /// The simulated firmware change's gain factor at current `i`.
+    fn gain_step(&self, i: f64) -> f64 {
+        match self.gain_step_above {
+            Some((threshold, step)) if i.abs() >= threshold => 1.0 + step,
+            _ => 1.0,
+        }
+    }
 }
 
 impl MeterState {
@@ -213,7 +242,8 @@ impl World {
     /// The meter's noiseless active power at time `t` (what its energy register integrates).
     fn meter_power(&self, meter: &MeterState, t: f64) -> f64 {
         let (v, i) = self.seen(meter, t);
-        let i_meas = i * (1.0 + meter.model.gain_current) + meter.model.offset_current_a;
+        let i_meas = i * (1.0 + meter.model.gain_current) * meter.model.gain_step(i)
+            + meter.model.offset_current_a;
         if i_meas.abs() < meter.model.no_load_threshold_a {
             return 0.0;
         }
@@ -270,7 +300,8 @@ impl World {
         let m = &meter.model;
         let noise = Normal::new(0.0, m.noise_relative).expect("noise is a finite spread");
         let mut jitter = || 1.0 + noise.sample(&mut meter.noise);
-        let i_meas = (i * (1.0 + m.gain_current) + m.offset_current_a) * jitter();
+        let step = m.gain_step(i);
+        let i_meas = (i * (1.0 + m.gain_current) * step + m.offset_current_a) * jitter();
         let v_meas = v * (1.0 + m.gain_voltage) * jitter();
         let phi = (actual.phase_deg + m.phase_error_deg).to_radians();
         let live = i_meas.abs() >= m.no_load_threshold_a && i_meas != 0.0;
@@ -366,7 +397,10 @@ impl SimBench {
                     seen_at_change: (0.0, 0.0),
                     energy_wh: 0.0,
                     energy_until_s: 0.0,
-                    noise: stream(config.seed, STREAM_NOISE_BASE + i as u64),
+                    noise: stream(
+                        config.seed,
+                        STREAM_NOISE_BASE + i as u64 + 10_000 * config.noise_stream_offset,
+                    ),
                 }
             })
             .collect();
@@ -491,15 +525,20 @@ fn meter_model(config: &SimConfig, index: usize, serial: &str) -> MeterModel {
         identity: Identity {
             model: SIM_MODEL.into(),
             serial: serial.into(),
-            firmware: SIM_FIRMWARE.into(),
+            firmware: config
+                .firmware
+                .version
+                .clone()
+                .unwrap_or_else(|| SIM_FIRMWARE.into()),
         },
         gain_current: normal(0.0012).sample(&mut rng),
         gain_voltage: normal(0.0008).sample(&mut rng),
         offset_current_a: normal(0.0015).sample(&mut rng),
         phase_error_deg: normal(0.05).sample(&mut rng),
-        noise_relative: 0.0005,
+        noise_relative: 0.0005 + config.firmware.extra_noise,
         tau_s: uniform(&mut rng, config.tau_range_s.0, config.tau_range_s.1),
         no_load_threshold_a: NO_LOAD_THRESHOLD_A,
+        gain_step_above: config.firmware.gain_step_above,
     }
 }
 

@@ -295,3 +295,111 @@ pub(super) fn verify(args: &VerifyArgs) -> Result<i32, CliError> {
     println!("{checked} records checked, {} failed", failures.len());
     Ok(if failures.is_empty() { 0 } else { 1 })
 }
+
+#[derive(clap::Args)]
+pub(super) struct CompareArgs {
+    #[arg(long)]
+    archive: PathBuf,
+    /// The baseline: run=ID, lot=L or firmware=VERSION.
+    #[arg(long)]
+    baseline: String,
+    /// The candidate, selected the same way.
+    #[arg(long)]
+    candidate: String,
+    /// Only records of this plan id.
+    #[arg(long)]
+    plan: Option<String>,
+    /// The shift allowed, as a percentage of each check's tolerance limit (default: the plan's
+    /// regression_allowance, else 20 %).
+    #[arg(long)]
+    allowance: Option<String>,
+    #[arg(long)]
+    json: bool,
+    /// Write the comparison as JUnit XML for a CI gate.
+    #[arg(long, value_name = "FILE")]
+    junit: Option<PathBuf>,
+}
+
+fn selector(text: &str) -> Result<(&str, &str), CliError> {
+    text.split_once('=')
+        .filter(|(k, v)| !k.is_empty() && !v.is_empty())
+        .ok_or_else(|| {
+            CliError::Usage(format!(
+                "\"{text}\": select as run=ID, lot=L or firmware=VERSION"
+            ))
+        })
+}
+
+/// Compares two sets of runs check by check; exit 1 when a check moved beyond its allowance or
+/// a unit newly fails.
+pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
+    use crate::plan::units::{Dimension, parse};
+    let archive = open(&args.archive)?;
+    let (bk, bv) = selector(&args.baseline)?;
+    let (ck, cv) = selector(&args.candidate)?;
+    let baseline = archive.select(bk, bv, args.plan.as_deref()).map_err(db)?;
+    let candidate = archive.select(ck, cv, args.plan.as_deref()).map_err(db)?;
+    for (side, records) in [("baseline", &baseline), ("candidate", &candidate)] {
+        if records.is_empty() {
+            return Err(CliError::Usage(format!(
+                "the {side} selects no unit records"
+            )));
+        }
+    }
+    // The plan (as archived) gives the golden units and the default allowance.
+    let (_, text) = archive.plan_text(&candidate[0].plan.sha256).map_err(db)?;
+    let plan = Plan::from_text(&candidate[0].plan.file, &text).map_err(CliError::Plan)?;
+    let allowance = match &args.allowance {
+        Some(t) => {
+            parse(t, Dimension::Percent)
+                .map_err(|e| CliError::Usage(format!("--allowance: {e}")))?
+                / 100.0
+        }
+        None => plan.regression_allowance,
+    };
+    let result = crate::regression::compare(&baseline, &candidate, allowance, &plan.golden_units);
+    for g in &result.missing_golden {
+        eprintln!("warning: golden unit {g} is missing from the baseline or the candidate");
+    }
+    if let Some(path) = &args.junit {
+        let xml = crate::regression::junit(
+            &result,
+            &format!("{} against {}", args.candidate, args.baseline),
+        );
+        std::fs::write(path, xml)
+            .map_err(|e| CliError::Run(format!("cannot write {}: {e}", path.display())))?;
+    }
+    if args.json {
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&result).expect("serialises")
+        );
+    } else {
+        println!(
+            "{} against {}: {} checks, {} units paired by serial number, allowance {} % of each limit",
+            args.candidate,
+            args.baseline,
+            result.checks.len(),
+            result.paired_units.len(),
+            allowance * 100.0
+        );
+        println!(
+            "{:<14} {:<16} {:>10} {:>10} {:>10} {:>9} {:>9}  verdict",
+            "step", "quantity", "baseline", "candidate", "shift", "allowed", "p"
+        );
+        for c in &result.checks {
+            println!(
+                "{:<14} {:<16} {:>10.4} {:>10.4} {:>+10.4} {:>9.4} {:>9.2e}  {}",
+                c.step,
+                c.quantity.name(),
+                c.baseline_mean,
+                c.candidate_mean,
+                c.shift,
+                c.allowance,
+                c.test.map_or(f64::NAN, |t| t.p),
+                c.movement.words()
+            );
+        }
+    }
+    Ok(if result.gates() { 1 } else { 0 })
+}

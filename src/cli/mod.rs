@@ -59,6 +59,8 @@ enum Command {
     Export(archive_cmds::ExportArgs),
     /// Check every record in the archive against its hash and the chain.
     Verify(archive_cmds::VerifyArgs),
+    /// Compare two sets of runs (before and after a firmware change) check by check.
+    Compare(archive_cmds::CompareArgs),
 }
 
 #[derive(clap::Args)]
@@ -178,6 +180,7 @@ pub fn main() -> i32 {
         Command::Runs(args) => archive_cmds::runs(&args),
         Command::Export(args) => archive_cmds::export(&args),
         Command::Verify(args) => archive_cmds::verify(&args),
+        Command::Compare(args) => archive_cmds::compare(&args),
     };
     match result {
         Ok(code) => code,

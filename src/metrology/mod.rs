@@ -7,6 +7,7 @@
 pub mod accuracy;
 pub mod calibration;
 pub mod classes;
+pub mod compare;
 pub mod decision;
 pub mod fit;
 pub mod pulses;

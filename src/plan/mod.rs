@@ -32,6 +32,10 @@ pub struct Plan {
     pub link: LinkSpec,
     pub decision: DecisionRule,
     pub calibration: Option<CalibrationSpec>,
+    /// Serial numbers of the golden units kept for regression checks.
+    pub golden_units: Vec<String>,
+    /// The shift a regression check allows, as a fraction of each check's tolerance limit.
+    pub regression_allowance: f64,
     /// A typed reference reading further than this fraction from the step's nominal value
     /// must be confirmed (default 0.10).
     pub reference_plausibility: f64,

@@ -60,6 +60,10 @@ pub struct RawPlan {
     pub calibration: Option<RawCalibration>,
     #[serde(default)]
     pub reference_plausibility: Option<Text>,
+    #[serde(default)]
+    pub golden_units: Vec<Text>,
+    #[serde(default)]
+    pub regression_allowance: Option<Text>,
     pub steps: Vec<serde_yaml::Value>,
 }
 

@@ -342,9 +342,22 @@ fn meaning(
             Dimension::Percent,
         )
         .map(|p| p.map_or(0.10, |p| p / 100.0));
+    let allowance = ctx
+        .optional_value(
+            "regression_allowance",
+            raw.regression_allowance.as_ref(),
+            Dimension::Percent,
+        )
+        .map(|p| p.map_or(0.2, |p| p / 100.0));
     Some(Plan {
         id: id?,
         revision: revision?,
+        golden_units: raw
+            .golden_units
+            .iter()
+            .map(|t| t.0.trim().to_string())
+            .collect(),
+        regression_allowance: allowance?,
         calibration: calibration?,
         reference_plausibility: plausibility?,
         title: raw.title.map(|t| t.0),

@@ -1,0 +1,246 @@
+//! Regression checks after a simulated firmware change, through the archive and the binary.
+
+mod common;
+use common::{bin, ctx, temp_dir};
+use meterproof::archive::{Archive, RunRow};
+use meterproof::bench::sim::{FirmwareChange, SimBench, SimConfig};
+use meterproof::exec::{self, Silent};
+use meterproof::plan::Plan;
+use meterproof::record::UnitRecord;
+use meterproof::regression::{Movement, compare};
+
+/// The demo plan, accepting every 2.x firmware (a plan for the firmware team's golden units).
+fn plan_for_any_2x() -> Plan {
+    let text = std::fs::read_to_string("test-plans/demo.yaml")
+        .unwrap()
+        .replace(r"'^2\.1\.\d+$'", r"'^2\.\d+\.\d+$'");
+    Plan::from_text("demo.yaml", &text).unwrap()
+}
+
+fn golden(firmware: FirmwareChange, noise_stream_offset: u64) -> SimConfig {
+    SimConfig {
+        plant_defect: false,
+        serials: Some((1..=8).map(|i| format!("GOLD-{i}")).collect()),
+        firmware,
+        noise_stream_offset,
+        ..SimConfig::new(1, 8)
+    }
+}
+
+fn run(plan: &Plan, config: &SimConfig, run_id: &str) -> Vec<UnitRecord> {
+    let mut c = ctx();
+    c.run_id = run_id.into();
+    exec::run(
+        plan,
+        &mut SimBench::new(config).into_bench(),
+        &c,
+        &mut Silent,
+    )
+}
+
+fn gain_step() -> FirmwareChange {
+    // A new filter that reads 0.3 % high on the range above 10 A.
+    FirmwareChange {
+        version: Some("2.2.0".into()),
+        gain_step_above: Some((10.0, 0.003)),
+        extra_noise: 0.0,
+    }
+}
+
+fn more_noise() -> FirmwareChange {
+    // A faster sampling rate: twice the noise, no bias.
+    FirmwareChange {
+        version: Some("2.2.1".into()),
+        gain_step_above: None,
+        extra_noise: 0.0005,
+    }
+}
+
+#[test]
+fn a_gain_step_is_flagged_on_exactly_the_checks_it_touches() {
+    let plan = plan_for_any_2x();
+    let base = run(&plan, &golden(FirmwareChange::default(), 0), "base");
+    let cand = run(&plan, &golden(gain_step(), 1), "cand");
+    let result = compare(&base, &cand, 0.2, &[]);
+    assert_eq!(result.paired_units.len(), 8);
+    let gating: Vec<(String, &str)> = result
+        .checks
+        .iter()
+        .filter(|c| c.movement.gates())
+        .map(|c| (c.step.clone(), c.quantity.name()))
+        .collect();
+    // Only the 16 A step lies above 10 A: its current, power and energy moved by 0.3 %.
+    let mut expected = vec![
+        ("max-Imax".to_string(), "current"),
+        ("max-Imax".to_string(), "active_power"),
+        ("max-Imax".to_string(), "active_energy"),
+    ];
+    let mut got = gating.clone();
+    got.sort();
+    expected.sort();
+    assert_eq!(got, expected);
+    for c in result.checks.iter().filter(|c| c.movement.gates()) {
+        // A unit near its limit may now fail outright; the others moved beyond the allowance.
+        assert!(
+            matches!(
+                c.movement,
+                Movement::MovedBeyondAllowance | Movement::NewlyFailing
+            ),
+            "{:?}",
+            c.movement
+        );
+        assert!(
+            (c.shift - 0.3).abs() < 0.05,
+            "{} {}: {}",
+            c.step,
+            c.quantity.name(),
+            c.shift
+        );
+        assert!(c.test.unwrap().paired);
+    }
+    assert!(result.gates());
+}
+
+#[test]
+fn more_noise_within_the_allowance_is_not_flagged() {
+    let plan = plan_for_any_2x();
+    let base = run(&plan, &golden(FirmwareChange::default(), 0), "base");
+    let cand = run(&plan, &golden(more_noise(), 2), "cand");
+    let result = compare(&base, &cand, 0.2, &[]);
+    assert!(
+        !result.gates(),
+        "{:?}",
+        result
+            .checks
+            .iter()
+            .map(|c| (&c.step, c.quantity, c.movement))
+            .collect::<Vec<_>>()
+    );
+    assert!(
+        result
+            .checks
+            .iter()
+            .filter(|c| c.movement == Movement::Unchanged)
+            .count()
+            >= 10
+    );
+}
+
+fn archive_run(archive: &Archive, plan: &Plan, records: &[UnitRecord], run_id: &str) {
+    archive
+        .begin_run(
+            plan,
+            &RunRow {
+                run_id: run_id.into(),
+                plan_sha256: plan.source.sha256.clone(),
+                plan_id: plan.id.clone(),
+                revision: plan.revision.clone(),
+                lot: None,
+                station: "sim".into(),
+                operator: "tester".into(),
+                bench: "{}".into(),
+                tool_version: "test".into(),
+                started_at: "2026-12-01T00:00:00+00:00".into(),
+                finished_at: None,
+                state: "running".into(),
+            },
+        )
+        .unwrap();
+    archive.import_units(records).unwrap();
+    archive
+        .finish_run(run_id, "2026-12-01T00:01:00+00:00")
+        .unwrap();
+}
+
+#[test]
+fn the_release_gate_fails_for_a_real_regression_and_passes_for_none() {
+    let dir = temp_dir("compare");
+    let path = dir.join("archive.sqlite");
+    let text = std::fs::read_to_string("test-plans/demo.yaml")
+        .unwrap()
+        .replace(r"'^2\.1\.\d+$'", r"'^2\.\d+\.\d+$'");
+    // The plan names its golden units, one of which is not on the bench.
+    let text = text.replace(
+        "decision: { rule: guarded",
+        "golden_units: [GOLD-1, GOLD-2, GOLD-9]\ndecision: { rule: guarded",
+    );
+    let plan = Plan::from_text("demo.yaml", &text).unwrap();
+    let archive = Archive::open(&path).unwrap();
+    archive_run(
+        &archive,
+        &plan,
+        &run(&plan, &golden(FirmwareChange::default(), 0), "R-base"),
+        "R-base",
+    );
+    archive_run(
+        &archive,
+        &plan,
+        &run(&plan, &golden(gain_step(), 1), "R-step"),
+        "R-step",
+    );
+    archive_run(
+        &archive,
+        &plan,
+        &run(&plan, &golden(more_noise(), 2), "R-noise"),
+        "R-noise",
+    );
+    drop(archive);
+    let gate = |candidate: &str, junit: &std::path::Path| {
+        bin()
+            .args([
+                "compare",
+                "--baseline",
+                "firmware=2.1.4",
+                "--candidate",
+                candidate,
+                "--archive",
+            ])
+            .arg(&path)
+            .arg("--junit")
+            .arg(junit)
+            .output()
+            .unwrap()
+    };
+    let step_xml = dir.join("step.xml");
+    let o = gate("firmware=2.2.0", &step_xml);
+    assert_eq!(
+        o.status.code(),
+        Some(1),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let stdout = String::from_utf8_lossy(&o.stdout);
+    // What moved comes first.
+    for line in stdout.lines().skip(2).take(3) {
+        assert!(
+            line.contains("MOVED BEYOND ALLOWANCE") || line.contains("NEWLY FAILING"),
+            "moved checks first:\n{stdout}"
+        );
+    }
+    assert!(String::from_utf8_lossy(&o.stderr).contains("golden unit GOLD-9 is missing"));
+    let noise_xml = dir.join("noise.xml");
+    assert_eq!(gate("firmware=2.2.1", &noise_xml).status.code(), Some(0));
+    // A standard XML parser reads the JUnit files: 13 test cases each, 3 failures and none.
+    let count = |path: &std::path::Path| {
+        let xml = std::fs::read_to_string(path).unwrap();
+        let mut reader = quick_xml::Reader::from_str(&xml);
+        let (mut cases, mut failures) = (0, 0);
+        loop {
+            match reader.read_event().unwrap() {
+                quick_xml::events::Event::Start(e) | quick_xml::events::Event::Empty(e) => {
+                    match e.name().as_ref() {
+                        "testcase" => cases += 1,
+                        "failure" => failures += 1,
+                        _ => {}
+                    }
+                }
+                quick_xml::events::Event::Eof => break,
+                _ => {}
+            }
+        }
+        (cases, failures)
+    };
+    assert_eq!(count(&step_xml), (13, 3));
+    assert_eq!(count(&noise_xml), (13, 0));
+    std::fs::remove_dir_all(&dir).unwrap();
+}
