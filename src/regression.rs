@@ -107,10 +107,20 @@ impl Comparison {
 
 type Key = (String, Quantity, String);
 
-/// Per serial (the newest record of each), per check: (error, verdict, unit, limit).
-fn errors_by_check(
-    records: &[UnitRecord],
-) -> BTreeMap<Key, BTreeMap<String, (f64, CheckVerdict, String, f64)>> {
+/// One unit's result for one check.
+#[derive(Debug, Clone)]
+struct UnitResult {
+    error: f64,
+    verdict: CheckVerdict,
+    unit: String,
+    limit: f64,
+}
+
+/// Results by serial number.
+type ByUnit = BTreeMap<String, UnitResult>;
+
+/// Per check, the result of each serial (its newest record).
+fn errors_by_check(records: &[UnitRecord]) -> BTreeMap<Key, ByUnit> {
     let mut newest: BTreeMap<&str, &UnitRecord> = BTreeMap::new();
     for r in records {
         let keep = newest
@@ -120,8 +130,7 @@ fn errors_by_check(
             newest.insert(&r.serial, r);
         }
     }
-    let mut out: BTreeMap<Key, BTreeMap<String, (f64, CheckVerdict, String, f64)>> =
-        BTreeMap::new();
+    let mut out: BTreeMap<Key, ByUnit> = BTreeMap::new();
     for (serial, r) in newest {
         for s in &r.steps {
             for c in &s.checks {
@@ -130,7 +139,12 @@ fn errors_by_check(
                         .or_default()
                         .insert(
                             serial.to_string(),
-                            (e.error, c.verdict, e.error_unit.clone(), d.tolerance_limit),
+                            UnitResult {
+                                error: e.error,
+                                verdict: c.verdict,
+                                unit: e.error_unit.clone(),
+                                limit: d.tolerance_limit,
+                            },
                         );
                 }
             }
@@ -159,13 +173,14 @@ pub fn compare(
                 paired_units.push((*s).clone());
             }
         }
-        let (_, _, unit, limit) = b.values().next().expect("a unit").clone();
+        let first = b.values().next().expect("a unit").clone();
+        let (unit, limit) = (first.unit, first.limit);
         let eps = allowance * limit;
-        let b_errors: Vec<f64> = b.values().map(|v| v.0).collect();
-        let c_errors: Vec<f64> = c.values().map(|v| v.0).collect();
+        let b_errors: Vec<f64> = b.values().map(|v| v.error).collect();
+        let c_errors: Vec<f64> = c.values().map(|v| v.error).collect();
         let mean = |x: &[f64]| x.iter().sum::<f64>() / x.len() as f64;
         let (test, shift) = if common.len() >= 2 {
-            let d: Vec<f64> = common.iter().map(|s| c[*s].0 - b[*s].0).collect();
+            let d: Vec<f64> = common.iter().map(|s| c[*s].error - b[*s].error).collect();
             (compare::paired(&d), mean(&d))
         } else {
             (
@@ -174,11 +189,12 @@ pub fn compare(
             )
         };
         let equivalence_p = test.as_ref().map(|t| compare::equivalence_p(t, eps));
-        let newly = |from: &BTreeMap<String, (f64, CheckVerdict, String, f64)>,
-                     to: &BTreeMap<String, (f64, CheckVerdict, String, f64)>| {
+        let newly = |from: &ByUnit, to: &ByUnit| {
             common
                 .iter()
-                .filter(|s| from[**s].1 == CheckVerdict::Pass && to[**s].1 == CheckVerdict::Fail)
+                .filter(|s| {
+                    from[**s].verdict == CheckVerdict::Pass && to[**s].verdict == CheckVerdict::Fail
+                })
                 .map(|s| (*s).clone())
                 .collect::<Vec<String>>()
         };
@@ -186,9 +202,9 @@ pub fn compare(
         let mut newly_passing = newly(c, b);
         if common.is_empty() {
             // Unpaired: a side with no failure against one with some.
-            let fails = |m: &BTreeMap<String, (f64, CheckVerdict, String, f64)>| {
+            let fails = |m: &ByUnit| {
                 m.iter()
-                    .filter(|(_, v)| v.1 == CheckVerdict::Fail)
+                    .filter(|(_, v)| v.verdict == CheckVerdict::Fail)
                     .map(|(s, _)| s.clone())
                     .collect::<Vec<_>>()
             };
