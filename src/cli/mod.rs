@@ -49,6 +49,12 @@ enum Command {
     SimMeter(SimMeterArgs),
     /// List the serial ports this machine has.
     Ports,
+    /// Write the embedded report templates to a folder, for editing (use with --templates).
+    Templates {
+        /// The folder to write them to.
+        #[arg(long)]
+        export: PathBuf,
+    },
     /// Continue an interrupted run from the archive.
     Resume(archive_cmds::ResumeArgs),
     /// Every run of a unit, newest first.
@@ -136,6 +142,9 @@ struct RunArgs {
     /// The archive database (default: archive.sqlite in the --out folder).
     #[arg(long)]
     archive: Option<PathBuf>,
+    /// Also write the run as JUnit XML (a test suite per unit, a test case per check).
+    #[arg(long, value_name = "FILE")]
+    junit: Option<PathBuf>,
 }
 
 /// A failure of a command, rendered once here.
@@ -175,6 +184,7 @@ pub fn main() -> i32 {
         Command::Run(args) => run(&args),
         Command::SimMeter(args) => sim_meter(&args),
         Command::Ports => ports(),
+        Command::Templates { export } => export_templates(&export),
         Command::Resume(args) => archive_cmds::resume(&args),
         Command::History(args) => archive_cmds::history(&args),
         Command::Runs(args) => archive_cmds::runs(&args),
@@ -408,6 +418,10 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
     let records = exec::run_with(&plan, &mut bench, &ctx, &mut reporter, &recorder, None);
     finish_run(&archive, &ctx.run_id, &records)?;
     let written = write_outputs(&run_dir, &records, &templates)?;
+    if let Some(path) = &args.junit {
+        std::fs::write(path, report::run_junit(&records))
+            .map_err(|e| CliError::Run(format!("cannot write {}: {e}", path.display())))?;
+    }
     print_summary(&records, &written);
     println!(
         "bench time {} ({}), wall time {:.2} s; records and reports in {}",
@@ -939,6 +953,17 @@ fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
             return Ok(0);
         }
     }
+}
+
+fn export_templates(dir: &Path) -> Result<i32, CliError> {
+    std::fs::create_dir_all(dir)
+        .map_err(|e| CliError::Run(format!("cannot create {}: {e}", dir.display())))?;
+    for (name, text) in report::DEFAULT_TEMPLATES {
+        record::write_new_file(dir, name, text.as_bytes())
+            .map_err(|e| CliError::Run(format!("{e} (templates already there are kept)")))?;
+        println!("{}", dir.join(name).display());
+    }
+    Ok(0)
 }
 
 fn ports() -> Result<i32, CliError> {

@@ -266,7 +266,7 @@ fn reference_half_width(
 
 /// "error −3.676 % ± 0.092 % (U) is outside the acceptance limit ±0.908 % (tolerance ±1 %, guard
 /// band 1 U)".
-pub(crate) fn failure_text(c: &CheckRecord) -> String {
+pub fn failure_text(c: &CheckRecord) -> String {
     use crate::metrology::tolerance::Sense;
     let (Some(e), Some(d)) = (&c.evaluation, &c.decision) else {
         return "failed".into();

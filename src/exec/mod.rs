@@ -8,6 +8,8 @@
 
 mod calibrate;
 mod decide;
+
+pub use decide::failure_text;
 mod sampling;
 mod settle;
 

@@ -6,6 +6,8 @@
 //! the same name. HTML templates are autoescaped (by their `.html` name) and undefined variables
 //! are errors, so a misspelt name in an edited template fails loudly instead of printing nothing.
 
+pub mod plot;
+
 use crate::plan::units::{self, Dimension};
 use crate::record::{CheckRecord, StepRecord, StepStatus, UnitRecord};
 use minijinja::{Environment, UndefinedBehavior};
@@ -89,6 +91,8 @@ struct UnitView {
     verdict_symbol: &'static str,
     bench_time: String,
     decision: String,
+    /// The error plot as inline SVG, marked safe (it is built here, with its text escaped).
+    plot: Option<minijinja::Value>,
     steps: Vec<StepView>,
 }
 
@@ -137,6 +141,7 @@ impl UnitView {
             verdict_symbol: record.verdict.status.symbol(),
             bench_time: duration_text(record.bench_time_s),
             decision: decision_text(record.plan.decision),
+            plot: plot::error_plot(record).map(minijinja::Value::from_safe_string),
             steps: record.steps.iter().map(StepView::of).collect(),
         }
     }
@@ -251,6 +256,43 @@ pub fn duration_text(seconds: f64) -> String {
             ((seconds % 3600.0) / 60.0).floor()
         )
     }
+}
+
+/// A run's records as JUnit XML: one test suite per unit, one test case per check; a failed
+/// check is a failure with its error and limit, a check not evaluated (or a step not done) an
+/// error, so that a CI system shows an acceptance run like any test run.
+pub fn run_junit(records: &[UnitRecord]) -> String {
+    use quick_junit::{NonSuccessKind, Report, TestCase, TestCaseStatus, TestSuite};
+    let mut report = Report::new("meterproof");
+    for r in records {
+        let mut suite = TestSuite::new(format!("{} position {}", r.serial, r.position));
+        for s in &r.steps {
+            for c in &s.checks {
+                let name = format!("{} {} {}", s.id, c.quantity.name(), c.channel);
+                let status = match c.verdict {
+                    crate::record::CheckVerdict::Pass => TestCaseStatus::success(),
+                    crate::record::CheckVerdict::Fail => {
+                        let mut st = TestCaseStatus::non_success(NonSuccessKind::Failure);
+                        st.set_message(crate::exec::failure_text(c));
+                        st
+                    }
+                    crate::record::CheckVerdict::NotEvaluated => {
+                        let mut st = TestCaseStatus::non_success(NonSuccessKind::Error);
+                        st.set_message(
+                            c.note
+                                .clone()
+                                .or_else(|| s.reason.clone())
+                                .unwrap_or_else(|| "not evaluated".into()),
+                        );
+                        st
+                    }
+                };
+                suite.add_test_case(TestCase::new(name, status));
+            }
+        }
+        report.add_test_suite(suite);
+    }
+    report.to_string().unwrap_or_default()
 }
 
 /// Makes a text cell safe for spreadsheets: a cell that starts with `=`, `+`, `-`, `@`, a tab or

@@ -1,0 +1,148 @@
+//! Reports through the binary: the error plot, templates overridden and exported, template
+//! errors, JUnit output, and byte-for-byte reproducible rendering.
+
+mod common;
+use common::{bin, records_in, temp_dir};
+use meterproof::report::Templates;
+
+fn count_xml(xml: &str, names: &[&str]) -> Vec<usize> {
+    let mut reader = quick_xml::Reader::from_str(xml);
+    let mut counts = vec![0; names.len()];
+    loop {
+        match reader.read_event().expect("well-formed XML") {
+            quick_xml::events::Event::Start(e) | quick_xml::events::Event::Empty(e) => {
+                let name = e.name().as_ref().to_string();
+                if let Some(i) = names.iter().position(|n| *n == name) {
+                    counts[i] += 1;
+                }
+            }
+            quick_xml::events::Event::Eof => break,
+            _ => {}
+        }
+    }
+    counts
+}
+
+#[test]
+fn the_unit_report_has_a_well_formed_plot_and_the_run_a_junit_file() {
+    let dir = temp_dir("reports");
+    let junit = dir.join("run.xml");
+    let o = bin()
+        .args(["run", "test-plans/demo.yaml", "--quiet", "--out"])
+        .arg(dir.join("out"))
+        .arg("--junit")
+        .arg(&junit)
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(1));
+    let records = records_in(&dir.join("out"));
+    let run_dir = std::fs::read_dir(dir.join("out"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .find(|p| p.is_dir())
+        .unwrap();
+    let html =
+        std::fs::read_to_string(run_dir.join(format!("{}-p2.html", records[1].serial))).unwrap();
+    let start = html.find("<svg").expect("an inline plot");
+    let end = html.find("</svg>").unwrap() + "</svg>".len();
+    // The plot parses as XML, with one error bar per percentage check and the limit envelopes.
+    let counts = count_xml(&html[start..end], &["svg", "path", "line"]);
+    assert_eq!(counts[0], 1);
+    assert!(counts[1] >= 4, "two tolerance and two acceptance envelopes");
+    assert!(
+        html.contains("Tested by") && html.contains("Reviewed by"),
+        "an approval block"
+    );
+    assert!(html.contains("@media print"));
+    // No external assets or scripts: the file opens offline.
+    assert!(!html.contains("<script") && !html.contains("<link") && !html.contains("src="));
+    // JUnit: a suite per unit, a case per check, a failure per failed check.
+    let xml = std::fs::read_to_string(&junit).unwrap();
+    let counts = count_xml(&xml, &["testsuite", "testcase", "failure"]);
+    let checks: usize = records
+        .iter()
+        .map(|r| r.steps.iter().map(|s| s.checks.len()).sum::<usize>())
+        .sum();
+    let failed: usize = records.iter().map(|r| r.failed_checks().count()).sum();
+    assert_eq!(counts, vec![records.len(), checks, failed]);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn templates_are_exported_overridden_and_their_errors_named() {
+    let dir = temp_dir("templates");
+    let export = dir.join("t");
+    let o = bin()
+        .args(["templates", "--export"])
+        .arg(&export)
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(0));
+    let exported = std::fs::read_to_string(export.join("unit-report.html")).unwrap();
+    assert_eq!(exported, meterproof::report::DEFAULT_TEMPLATES[0].1);
+    // An edited template is used.
+    std::fs::write(
+        export.join("unit-report.html"),
+        exported.replace("<h1>Acceptance record:", "<h1>Hall B acceptance record:"),
+    )
+    .unwrap();
+    let run = |templates: &std::path::Path, out: &str| {
+        bin()
+            .args(["run", "test-plans/demo.yaml", "--quiet", "--templates"])
+            .arg(templates)
+            .arg("--out")
+            .arg(dir.join(out))
+            .output()
+            .unwrap()
+    };
+    assert_eq!(run(&export, "a").status.code(), Some(1));
+    let run_dir = std::fs::read_dir(dir.join("a"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .find(|p| p.is_dir())
+        .unwrap();
+    let any_html = std::fs::read_dir(&run_dir)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .find(|p| p.extension().is_some_and(|x| x == "html"))
+        .unwrap();
+    assert!(
+        std::fs::read_to_string(any_html)
+            .unwrap()
+            .contains("Hall B acceptance record:")
+    );
+    // A misspelt variable is an error that names the template and its line.
+    let broken = dir.join("broken");
+    std::fs::create_dir_all(&broken).unwrap();
+    std::fs::write(
+        broken.join("unit-report.html"),
+        "<p>\n{{ record.serail }}</p>\n",
+    )
+    .unwrap();
+    let o = run(&broken, "b");
+    assert_ne!(o.status.code(), Some(0));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        err.contains("template unit-report.html") && err.contains("line 2"),
+        "{err}"
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn the_same_record_and_templates_render_the_same_bytes() {
+    let dir = temp_dir("bytes");
+    bin()
+        .args(["run", "test-plans/demo.yaml", "--quiet", "--out"])
+        .arg(&dir)
+        .output()
+        .unwrap();
+    let r = &records_in(&dir)[0];
+    let t = Templates::load(None).unwrap();
+    assert_eq!(t.unit_html(r).unwrap(), t.unit_html(r).unwrap());
+    assert_eq!(
+        meterproof::report::unit_csv(r).unwrap(),
+        meterproof::report::unit_csv(r).unwrap()
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
