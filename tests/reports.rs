@@ -146,3 +146,64 @@ fn the_same_record_and_templates_render_the_same_bytes() {
     );
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+#[test]
+fn the_lot_summary_counts_the_yield_and_the_rejections() {
+    let dir = temp_dir("summary");
+    for seed in ["1", "2"] {
+        let o = bin()
+            .args([
+                "run",
+                "test-plans/demo.yaml",
+                "--quiet",
+                "--lot",
+                "LOT-S",
+                "--positions",
+                "5",
+                "--seed",
+                seed,
+                "--out",
+            ])
+            .arg(&dir)
+            .output()
+            .unwrap();
+        assert_eq!(o.status.code(), Some(1));
+    }
+    let o = bin()
+        .args(["summary", "--lot", "LOT-S", "--json", "--out"])
+        .arg(&dir)
+        .arg("--archive")
+        .arg(dir.join("archive.sqlite"))
+        .output()
+        .unwrap();
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let s: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    let records = records_in(&dir);
+    let accepted = records
+        .iter()
+        .filter(|r| r.verdict.status == meterproof::record::UnitStatus::Accepted)
+        .count();
+    assert_eq!(s["units"], 10);
+    assert_eq!(s["accepted"].as_u64().unwrap() as usize, accepted);
+    assert!((s["yield_percent"].as_f64().unwrap() - accepted as f64 * 10.0).abs() < 1e-9);
+    // The planted phase defect (one per run) is the most frequent rejection.
+    assert_eq!(s["rejections"][0][0], "basic-pf0.5 active_power L");
+    assert!(s["rejections"][0][1].as_u64().unwrap() >= 2);
+    let html = std::fs::read_to_string(dir.join("summary-lot-LOT-S.html")).unwrap();
+    assert_eq!(html.matches("<svg").count(), 13, "a histogram per check");
+    // Every unit links to its report, which exists.
+    for r in &records {
+        let link = format!("{}/{}-p{}.html", r.run_id, r.serial, r.position);
+        // The template escapes "/" in attributes; a browser reads it back as "/".
+        assert!(html.contains(&link.replace('/', "&#x2f;")), "{link}");
+        assert!(dir.join(&link).exists());
+    }
+    let csv = std::fs::read_to_string(dir.join("summary-lot-LOT-S.csv")).unwrap();
+    assert_eq!(csv.lines().count(), 14);
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -403,3 +403,91 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
     }
     Ok(if result.gates() { 1 } else { 0 })
 }
+
+#[derive(clap::Args)]
+pub(super) struct SummaryArgs {
+    #[arg(long)]
+    archive: PathBuf,
+    /// The lot to summarise.
+    #[arg(long, conflicts_with = "run")]
+    lot: Option<String>,
+    /// Or one run.
+    #[arg(long)]
+    run: Option<String>,
+    /// The folder the runs' reports are in (the runs' --out); the summary is written there.
+    #[arg(long)]
+    out: PathBuf,
+    #[arg(long)]
+    templates: Option<PathBuf>,
+    /// Also write the units' checks as JUnit XML.
+    #[arg(long, value_name = "FILE")]
+    junit: Option<PathBuf>,
+    #[arg(long)]
+    json: bool,
+}
+
+/// The lot summary, as HTML and CSV beside the runs' folders.
+pub(super) fn summary(args: &SummaryArgs) -> Result<i32, CliError> {
+    use crate::report::summary::LotSummary;
+    let archive = open(&args.archive)?;
+    let (key, value) = match (&args.lot, &args.run) {
+        (Some(l), None) => ("lot", l.as_str()),
+        (None, Some(r)) => ("run", r.as_str()),
+        _ => return Err(CliError::Usage("give --lot L or --run ID".into())),
+    };
+    let mut records = archive.select(key, value, None).map_err(db)?;
+    if records.is_empty() {
+        return Err(CliError::Usage(format!(
+            "no unit records with {key} {value}"
+        )));
+    }
+    records.sort_by_key(|r| (r.run_id.clone(), r.position));
+    let report_name = |r: &crate::record::UnitRecord| {
+        format!(
+            "{}/{}-p{}.html",
+            r.run_id,
+            record::safe_file_stem(&r.serial),
+            r.position
+        )
+    };
+    let summary = LotSummary::of(&format!("{key} {value}"), &records, &report_name);
+    let templates =
+        Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
+    let html = templates
+        .lot_html(&summary)
+        .map_err(|e| CliError::Run(e.to_string()))?;
+    let csv = summary.csv().map_err(|e| CliError::Run(e.to_string()))?;
+    std::fs::create_dir_all(&args.out)
+        .map_err(|e| CliError::Run(format!("cannot create {}: {e}", args.out.display())))?;
+    let stem = super::unused_stem(
+        &args.out,
+        &format!("summary-{key}-{}", record::safe_file_stem(value)),
+        "html",
+    );
+    let html_path = record::write_new_file(&args.out, &format!("{stem}.html"), html.as_bytes())
+        .map_err(|e| CliError::Run(e.to_string()))?;
+    record::write_new_file(&args.out, &format!("{stem}.csv"), &csv)
+        .map_err(|e| CliError::Run(e.to_string()))?;
+    if let Some(path) = &args.junit {
+        std::fs::write(path, crate::report::run_junit(&records))
+            .map_err(|e| CliError::Run(format!("cannot write {}: {e}", path.display())))?;
+    }
+    if args.json {
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&summary).expect("serialises")
+        );
+    } else {
+        println!(
+            "{}: yield {:.1} % ({} of {} accepted, {} rejected, {} incomplete); {}",
+            summary.title,
+            summary.yield_percent,
+            summary.accepted,
+            summary.units,
+            summary.rejected,
+            summary.incomplete,
+            html_path.display()
+        );
+    }
+    Ok(0)
+}

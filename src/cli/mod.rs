@@ -67,6 +67,8 @@ enum Command {
     Verify(archive_cmds::VerifyArgs),
     /// Compare two sets of runs (before and after a firmware change) check by check.
     Compare(archive_cmds::CompareArgs),
+    /// The summary of a lot or a run: yield, rejections by check, error distributions, Cpk.
+    Summary(archive_cmds::SummaryArgs),
 }
 
 #[derive(clap::Args)]
@@ -191,6 +193,7 @@ pub fn main() -> i32 {
         Command::Export(args) => archive_cmds::export(&args),
         Command::Verify(args) => archive_cmds::verify(&args),
         Command::Compare(args) => archive_cmds::compare(&args),
+        Command::Summary(args) => archive_cmds::summary(&args),
     };
     match result {
         Ok(code) => code,
@@ -708,8 +711,8 @@ fn new_run_id() -> String {
 
 /// `stem`, or `stem.2`, `stem.3`... where files of that name exist already (a resumed run whose
 /// first attempt got as far as its reports): nothing is ever overwritten.
-fn unused_stem(dir: &Path, stem: &str) -> String {
-    let taken = |s: &str| dir.join(format!("{s}.json")).exists();
+fn unused_stem(dir: &Path, stem: &str, ext: &str) -> String {
+    let taken = |s: &str| dir.join(format!("{s}.{ext}")).exists();
     if !taken(stem) {
         return stem.to_string();
     }
@@ -735,6 +738,7 @@ fn write_outputs(
         let stem = unused_stem(
             dir,
             &format!("{}-p{}", record::safe_file_stem(&r.serial), r.position),
+            "json",
         );
         // The record first: it is what the reports are made from and what must not be lost.
         let json = record::to_json(r).map_err(|e| run_err(&e))?;

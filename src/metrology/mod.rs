@@ -6,6 +6,7 @@
 
 pub mod accuracy;
 pub mod calibration;
+pub mod capability;
 pub mod classes;
 pub mod compare;
 pub mod decision;

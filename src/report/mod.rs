@@ -7,6 +7,7 @@
 //! are errors, so a misspelt name in an edited template fails loudly instead of printing nothing.
 
 pub mod plot;
+pub mod summary;
 
 use crate::plan::units::{self, Dimension};
 use crate::record::{CheckRecord, StepRecord, StepStatus, UnitRecord};
@@ -15,10 +16,16 @@ use serde::Serialize;
 use std::path::{Path, PathBuf};
 
 /// The embedded default templates, by file name.
-pub const DEFAULT_TEMPLATES: &[(&str, &str)] = &[(
-    "unit-report.html",
-    include_str!("../../templates/unit-report.html"),
-)];
+pub const DEFAULT_TEMPLATES: &[(&str, &str)] = &[
+    (
+        "unit-report.html",
+        include_str!("../../templates/unit-report.html"),
+    ),
+    (
+        "lot-summary.html",
+        include_str!("../../templates/lot-summary.html"),
+    ),
+];
 
 #[derive(Debug, thiserror::Error)]
 pub enum ReportError {
@@ -79,6 +86,33 @@ impl Templates {
             .render(minijinja::context! {
                 record => minijinja::value::Serde(record),
                 view => minijinja::value::Serde(UnitView::of(record)),
+            })
+            .map_err(|e| template_error(name, &e))
+    }
+}
+
+impl Templates {
+    /// Renders the HTML summary of a lot.
+    pub fn lot_html(&self, s: &summary::LotSummary) -> Result<String, ReportError> {
+        let name = "lot-summary.html";
+        let template = self
+            .env
+            .get_template(name)
+            .map_err(|e| template_error(name, &e))?;
+        let checks: Vec<minijinja::Value> = s
+            .checks
+            .iter()
+            .map(|c| {
+                minijinja::context! {
+                    stats => minijinja::value::Serde(c),
+                    histogram => minijinja::Value::from_safe_string(c.histogram.clone()),
+                }
+            })
+            .collect();
+        template
+            .render(minijinja::context! {
+                summary => minijinja::value::Serde(s),
+                checks => checks,
             })
             .map_err(|e| template_error(name, &e))
     }

@@ -1,0 +1,240 @@
+//! The lot summary: yield, rejections by check, and each check's error distribution across the
+//! lot with its capability against the limits.
+
+use crate::metrology::Summary;
+use crate::metrology::capability;
+use crate::record::{CheckVerdict, UnitRecord, UnitStatus};
+use serde::Serialize;
+use std::collections::BTreeMap;
+use std::fmt::Write;
+
+/// One check across the lot.
+#[derive(Debug, Clone, Serialize)]
+pub struct CheckStats {
+    pub step: String,
+    pub quantity: String,
+    pub channel: String,
+    pub error_unit: String,
+    pub tolerance_limit: f64,
+    pub units: usize,
+    pub failed: usize,
+    pub mean: f64,
+    pub std_dev: Option<f64>,
+    /// Against ±tolerance limit (two-sided checks only).
+    pub cpk: Option<f64>,
+    /// Inline SVG histogram, marked safe when rendered.
+    #[serde(skip)]
+    pub histogram: String,
+    #[serde(skip)]
+    errors: Vec<f64>,
+}
+
+/// One unit's line in the summary.
+#[derive(Debug, Clone, Serialize)]
+pub struct UnitLine {
+    pub serial: String,
+    pub position: usize,
+    pub run_id: String,
+    pub status: UnitStatus,
+    pub word: &'static str,
+    pub symbol: &'static str,
+    pub report: String,
+    pub reasons: Vec<String>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct LotSummary {
+    pub title: String,
+    pub units: usize,
+    pub accepted: usize,
+    pub rejected: usize,
+    pub incomplete: usize,
+    /// Accepted / all units, percent.
+    pub yield_percent: f64,
+    /// (check, units failing it), most frequent first.
+    pub rejections: Vec<(String, usize)>,
+    pub checks: Vec<CheckStats>,
+    pub unit_lines: Vec<UnitLine>,
+}
+
+impl LotSummary {
+    /// Summarises `records`; `report_name` gives each unit's report file name.
+    pub fn of(
+        title: &str,
+        records: &[UnitRecord],
+        report_name: &dyn Fn(&UnitRecord) -> String,
+    ) -> LotSummary {
+        let count = |s: UnitStatus| records.iter().filter(|r| r.verdict.status == s).count();
+        let mut by_check: BTreeMap<(String, String, String), CheckStats> = BTreeMap::new();
+        for r in records {
+            for s in &r.steps {
+                for c in &s.checks {
+                    let Some(e) = &c.evaluation else { continue };
+                    let key = (
+                        s.id.clone(),
+                        c.quantity.name().to_string(),
+                        c.channel.clone(),
+                    );
+                    let entry = by_check.entry(key).or_insert_with(|| CheckStats {
+                        step: s.id.clone(),
+                        quantity: c.quantity.name().into(),
+                        channel: c.channel.clone(),
+                        error_unit: e.error_unit.clone(),
+                        tolerance_limit: e.limit,
+                        units: 0,
+                        failed: 0,
+                        mean: 0.0,
+                        std_dev: None,
+                        cpk: None,
+                        histogram: String::new(),
+                        errors: Vec::new(),
+                    });
+                    entry.units += 1;
+                    entry.errors.push(e.error);
+                    entry.tolerance_limit = entry.tolerance_limit.min(e.limit);
+                    if c.verdict == CheckVerdict::Fail {
+                        entry.failed += 1;
+                    }
+                }
+            }
+        }
+        let mut checks: Vec<CheckStats> = by_check
+            .into_values()
+            .map(|mut c| {
+                if let Some(s) = Summary::of(&c.errors) {
+                    c.mean = s.mean;
+                    c.std_dev = s.std_dev;
+                    c.cpk = s.std_dev.and_then(|sd| {
+                        capability::cpk(-c.tolerance_limit, c.tolerance_limit, s.mean, sd)
+                    });
+                }
+                c.histogram = histogram(&c.errors, c.tolerance_limit, &c.error_unit);
+                c
+            })
+            .collect();
+        checks.sort_by(|a, b| {
+            (a.step.clone(), a.quantity.clone()).cmp(&(b.step.clone(), b.quantity.clone()))
+        });
+        let mut rejections: Vec<(String, usize)> = checks
+            .iter()
+            .filter(|c| c.failed > 0)
+            .map(|c| (format!("{} {} {}", c.step, c.quantity, c.channel), c.failed))
+            .collect();
+        rejections.sort_by(|a, b| b.1.cmp(&a.1).then(a.0.cmp(&b.0)));
+        let unit_lines = records
+            .iter()
+            .map(|r| UnitLine {
+                serial: r.serial.clone(),
+                position: r.position,
+                run_id: r.run_id.clone(),
+                status: r.verdict.status,
+                word: r.verdict.status.word(),
+                symbol: r.verdict.status.symbol(),
+                report: report_name(r),
+                reasons: r.verdict.reasons.clone(),
+            })
+            .collect();
+        let units = records.len();
+        LotSummary {
+            title: title.into(),
+            units,
+            accepted: count(UnitStatus::Accepted),
+            rejected: count(UnitStatus::Rejected),
+            incomplete: count(UnitStatus::Incomplete),
+            yield_percent: if units == 0 {
+                0.0
+            } else {
+                count(UnitStatus::Accepted) as f64 / units as f64 * 100.0
+            },
+            rejections,
+            checks,
+            unit_lines,
+        }
+    }
+
+    /// One row per check, for spreadsheets.
+    pub fn csv(&self) -> Result<Vec<u8>, csv::Error> {
+        let mut w = csv::Writer::from_writer(Vec::new());
+        w.write_record([
+            "step",
+            "quantity",
+            "channel",
+            "units",
+            "failed",
+            "mean_error",
+            "std_dev",
+            "error_unit",
+            "tolerance_limit",
+            "cpk",
+        ])?;
+        let opt = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x}"));
+        for c in &self.checks {
+            w.write_record([
+                super::spreadsheet_safe(&c.step),
+                c.quantity.clone(),
+                super::spreadsheet_safe(&c.channel),
+                c.units.to_string(),
+                c.failed.to_string(),
+                format!("{}", c.mean),
+                opt(c.std_dev),
+                c.error_unit.clone(),
+                format!("{}", c.tolerance_limit),
+                opt(c.cpk),
+            ])?;
+        }
+        w.flush()?;
+        w.into_inner().map_err(|e| csv::Error::from(e.into_error()))
+    }
+}
+
+/// A histogram of errors with the ±limit drawn, as inline SVG.
+fn histogram(errors: &[f64], limit: f64, unit: &str) -> String {
+    const W: f64 = 320.0;
+    const H: f64 = 120.0;
+    const BINS: usize = 20;
+    let extent = errors
+        .iter()
+        .fold(limit, |m, e| m.max(e.abs()))
+        .max(f64::MIN_POSITIVE)
+        * 1.1;
+    let mut counts = [0usize; BINS];
+    for e in errors {
+        let i = (((e + extent) / (2.0 * extent)) * BINS as f64).floor() as usize;
+        counts[i.min(BINS - 1)] += 1;
+    }
+    let max = counts.iter().copied().max().unwrap_or(1).max(1) as f64;
+    let plot_h = H - 24.0;
+    let bar_w = W / BINS as f64;
+    let x_of = |v: f64| (v + extent) / (2.0 * extent) * W;
+    let mut svg = format!(
+        r##"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 -4 {W} {H}" width="{W}" height="{H}" role="img" aria-label="Distribution of the error" font-family="sans-serif" font-size="10">"##
+    );
+    for (i, c) in counts.iter().enumerate() {
+        let h = *c as f64 / max * plot_h;
+        let _ = write!(
+            svg,
+            r##"<rect x="{:.1}" y="{:.1}" width="{:.1}" height="{h:.1}" fill="#777" stroke="#000" stroke-width="0.5"/>"##,
+            i as f64 * bar_w,
+            plot_h - h,
+            bar_w
+        );
+    }
+    for v in [-limit, limit] {
+        let x = x_of(v);
+        let _ = write!(
+            svg,
+            r##"<line x1="{x:.1}" x2="{x:.1}" y1="0" y2="{plot_h:.1}" stroke="#000" stroke-width="1.5" stroke-dasharray="6 3"/>"##
+        );
+    }
+    let _ = write!(
+        svg,
+        r##"<text x="0" y="{:.1}">{:+.3} {unit}</text><text x="{:.1}" y="{:.1}" text-anchor="middle">0</text><text x="{W}" y="{:.1}" text-anchor="end">{:+.3} {unit}</text></svg>"##,
+        H - 8.0,
+        -extent,
+        W / 2.0,
+        H - 8.0,
+        H - 8.0,
+        extent
+    );
+    svg
+}
