@@ -207,3 +207,96 @@ fn the_lot_summary_counts_the_yield_and_the_rejections() {
     assert_eq!(csv.lines().count(), 14);
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// Parses a whole document as XML: every element closed, every attribute quoted.
+fn well_formed(doc: &str) -> Result<(), String> {
+    let mut reader = quick_xml::Reader::from_str(doc);
+    reader.config_mut().check_end_names = true;
+    let mut depth: i64 = 0;
+    loop {
+        match reader.read_event().map_err(|e| e.to_string())? {
+            quick_xml::events::Event::Start(_) => depth += 1,
+            quick_xml::events::Event::End(_) => depth -= 1,
+            quick_xml::events::Event::Eof => break,
+            _ => {}
+        }
+    }
+    if depth == 0 {
+        Ok(())
+    } else {
+        Err(format!("{depth} elements left open"))
+    }
+}
+
+#[test]
+fn reports_are_well_formed_and_can_be_rendered_again_from_the_archive() {
+    let dir = temp_dir("rerender");
+    let o = bin()
+        .args([
+            "run",
+            "test-plans/calibrate.yaml",
+            "--quiet",
+            "--json",
+            "--lot",
+            "L1",
+            "--out",
+        ])
+        .arg(&dir)
+        .output()
+        .unwrap();
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let printed: Vec<meterproof::record::UnitRecord> = serde_json::from_slice(&o.stdout).unwrap();
+    let written = records_in(&dir);
+    assert_eq!(printed, written, "--json prints the records as written");
+    // Every unit report and the lot summary parse as XML documents.
+    let run_dir = std::fs::read_dir(&dir)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .find(|p| p.is_dir())
+        .unwrap();
+    for f in std::fs::read_dir(&run_dir)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+    {
+        if f.extension().is_some_and(|x| x == "html") {
+            let html = std::fs::read_to_string(&f).unwrap();
+            well_formed(&html).unwrap_or_else(|e| panic!("{}: {e}", f.display()));
+        }
+    }
+    let archive = dir.join("archive.sqlite");
+    let o = bin()
+        .args(["summary", "--lot", "L1", "--out"])
+        .arg(&dir)
+        .arg("--archive")
+        .arg(&archive)
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(0));
+    well_formed(&std::fs::read_to_string(dir.join("summary-lot-L1.html")).unwrap()).unwrap();
+    // Rendered again from the archive, a report is the same bytes as the first time.
+    let again = dir.join("again");
+    let o = bin()
+        .args(["report", &written[0].run_id, "--out"])
+        .arg(&again)
+        .arg("--archive")
+        .arg(&archive)
+        .output()
+        .unwrap();
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let name = format!("{}-p1.html", written[0].serial);
+    assert_eq!(
+        std::fs::read(run_dir.join(&name)).unwrap(),
+        std::fs::read(again.join(&name)).unwrap()
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}

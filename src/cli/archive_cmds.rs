@@ -491,3 +491,47 @@ pub(super) fn summary(args: &SummaryArgs) -> Result<i32, CliError> {
     }
     Ok(0)
 }
+
+#[derive(clap::Args)]
+pub(super) struct ReportArgs {
+    /// A run id or a serial number.
+    what: String,
+    #[arg(long)]
+    archive: PathBuf,
+    /// Folder to write the reports into.
+    #[arg(long)]
+    out: PathBuf,
+    #[arg(long)]
+    templates: Option<PathBuf>,
+    /// Also write the records' checks as JUnit XML.
+    #[arg(long, value_name = "FILE")]
+    junit: Option<PathBuf>,
+}
+
+/// Renders the reports of a run or a serial number again, from the archive.
+pub(super) fn report(args: &ReportArgs) -> Result<i32, CliError> {
+    let archive = open(&args.archive)?;
+    let by_run = archive.unit_records(&args.what).map_err(db)?;
+    let records = if by_run.is_empty() {
+        archive.serial_records(&args.what).map_err(db)?
+    } else {
+        by_run
+    };
+    if records.is_empty() {
+        return Err(CliError::Usage(format!(
+            "no run and no serial number \"{}\" in the archive",
+            args.what
+        )));
+    }
+    let templates =
+        Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
+    std::fs::create_dir_all(&args.out)
+        .map_err(|e| CliError::Run(format!("cannot create {}: {e}", args.out.display())))?;
+    let written = write_outputs(&args.out, &records, &templates)?;
+    if let Some(path) = &args.junit {
+        std::fs::write(path, crate::report::run_junit(&records))
+            .map_err(|e| CliError::Run(format!("cannot write {}: {e}", path.display())))?;
+    }
+    print_summary(&records, &written);
+    Ok(0)
+}

@@ -69,6 +69,8 @@ enum Command {
     Compare(archive_cmds::CompareArgs),
     /// The summary of a lot or a run: yield, rejections by check, error distributions, Cpk.
     Summary(archive_cmds::SummaryArgs),
+    /// Render the reports of a run or a serial number again, from the archive.
+    Report(archive_cmds::ReportArgs),
 }
 
 #[derive(clap::Args)]
@@ -147,6 +149,9 @@ struct RunArgs {
     /// Also write the run as JUnit XML (a test suite per unit, a test case per check).
     #[arg(long, value_name = "FILE")]
     junit: Option<PathBuf>,
+    /// Print the unit records as JSON on standard output instead of the summary table.
+    #[arg(long)]
+    json: bool,
 }
 
 /// A failure of a command, rendered once here.
@@ -194,6 +199,7 @@ pub fn main() -> i32 {
         Command::Verify(args) => archive_cmds::verify(&args),
         Command::Compare(args) => archive_cmds::compare(&args),
         Command::Summary(args) => archive_cmds::summary(&args),
+        Command::Report(args) => archive_cmds::report(&args),
     };
     match result {
         Ok(code) => code,
@@ -424,6 +430,13 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
     if let Some(path) = &args.junit {
         std::fs::write(path, report::run_junit(&records))
             .map_err(|e| CliError::Run(format!("cannot write {}: {e}", path.display())))?;
+    }
+    if args.json {
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&records).expect("records serialise")
+        );
+        return Ok(exit_status(&records));
     }
     print_summary(&records, &written);
     println!(
