@@ -230,20 +230,25 @@ pub(super) struct ExportArgs {
     to: PathBuf,
 }
 
-pub(super) fn export(args: &ExportArgs) -> Result<i32, CliError> {
-    let archive = open(&args.archive)?;
-    let by_run = archive.unit_records(&args.what).map_err(db)?;
+/// The records of a run id, or else of a serial number.
+fn records_of(archive: &Archive, what: &str) -> Result<Vec<crate::record::UnitRecord>, CliError> {
+    let by_run = archive.unit_records(what).map_err(db)?;
     let records = if by_run.is_empty() {
-        archive.serial_records(&args.what).map_err(db)?
+        archive.serial_records(what).map_err(db)?
     } else {
         by_run
     };
     if records.is_empty() {
         return Err(CliError::Usage(format!(
-            "no run and no serial number \"{}\" in the archive",
-            args.what
+            "no run and no serial number \"{what}\" in the archive"
         )));
     }
+    Ok(records)
+}
+
+pub(super) fn export(args: &ExportArgs) -> Result<i32, CliError> {
+    let archive = open(&args.archive)?;
+    let records = records_of(&archive, &args.what)?;
     std::fs::create_dir_all(&args.to)
         .map_err(|e| CliError::Run(format!("cannot create {}: {e}", args.to.display())))?;
     let mut plans = Vec::new();
@@ -511,18 +516,7 @@ pub(super) struct ReportArgs {
 /// Renders the reports of a run or a serial number again, from the archive.
 pub(super) fn report(args: &ReportArgs) -> Result<i32, CliError> {
     let archive = open(&args.archive)?;
-    let by_run = archive.unit_records(&args.what).map_err(db)?;
-    let records = if by_run.is_empty() {
-        archive.serial_records(&args.what).map_err(db)?
-    } else {
-        by_run
-    };
-    if records.is_empty() {
-        return Err(CliError::Usage(format!(
-            "no run and no serial number \"{}\" in the archive",
-            args.what
-        )));
-    }
+    let records = records_of(&archive, &args.what)?;
     let templates =
         Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
     std::fs::create_dir_all(&args.out)
