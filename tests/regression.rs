@@ -203,6 +203,36 @@ fn the_release_gate_fails_for_a_real_regression_and_passes_for_none() {
     };
     let step_xml = dir.join("step.xml");
     let o = gate("firmware=2.2.0", &step_xml);
+    // The HTML report: both error curves per quantity, the limits drawn, the gate stated.
+    let html_path = dir.join("compare.html");
+    let h = bin()
+        .args([
+            "compare",
+            "--baseline",
+            "firmware=2.1.4",
+            "--candidate",
+            "firmware=2.2.0",
+            "--archive",
+        ])
+        .arg(&path)
+        .arg("--html")
+        .arg(&html_path)
+        .output()
+        .unwrap();
+    assert_eq!(h.status.code(), Some(1));
+    let html = std::fs::read_to_string(&html_path).unwrap();
+    assert!(html.contains("✘ A check moved beyond its allowance"));
+    assert_eq!(
+        html.matches("<svg").count(),
+        4,
+        "current, voltage, active power, energy"
+    );
+    assert!(html.contains(">baseline<") && html.contains(">candidate<"));
+    let mut reader = quick_xml::Reader::from_str(&html);
+    while !matches!(
+        reader.read_event().expect("the report parses as XML"),
+        quick_xml::events::Event::Eof
+    ) {}
     assert_eq!(
         o.status.code(),
         Some(1),

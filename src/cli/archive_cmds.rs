@@ -323,6 +323,11 @@ pub(super) struct CompareArgs {
     /// Write the comparison as JUnit XML for a CI gate.
     #[arg(long, value_name = "FILE")]
     junit: Option<PathBuf>,
+    /// Write the comparison as an HTML report, with both sides' error curves.
+    #[arg(long, value_name = "FILE")]
+    html: Option<PathBuf>,
+    #[arg(long)]
+    templates: Option<PathBuf>,
 }
 
 fn selector(text: &str) -> Result<(&str, &str), CliError> {
@@ -363,6 +368,11 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
         None => plan.regression_allowance,
     };
     let result = crate::regression::compare(&baseline, &candidate, allowance, &plan.golden_units);
+    if result.checks.is_empty() {
+        return Err(CliError::Usage(
+            "no check was evaluated on both sides (were the units refused before testing, a firmware the plan does not accept?): nothing to compare".into(),
+        ));
+    }
     for g in &result.missing_golden {
         eprintln!("warning: golden unit {g} is missing from the baseline or the candidate");
     }
@@ -372,6 +382,16 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
             &format!("{} against {}", args.candidate, args.baseline),
         );
         std::fs::write(path, xml)
+            .map_err(|e| CliError::Run(format!("cannot write {}: {e}", path.display())))?;
+    }
+    if let Some(path) = &args.html {
+        let templates = Templates::load(args.templates.as_deref())
+            .map_err(|e| CliError::Usage(e.to_string()))?;
+        let title = format!("{} against {}", args.candidate, args.baseline);
+        let html = templates
+            .compare_html(&title, &result, allowance)
+            .map_err(|e| CliError::Run(e.to_string()))?;
+        std::fs::write(path, html)
             .map_err(|e| CliError::Run(format!("cannot write {}: {e}", path.display())))?;
     }
     if args.json {

@@ -25,6 +25,7 @@ pub const DEFAULT_TEMPLATES: &[(&str, &str)] = &[
         "lot-summary.html",
         include_str!("../../templates/lot-summary.html"),
     ),
+    ("compare.html", include_str!("../../templates/compare.html")),
 ];
 
 #[derive(Debug, thiserror::Error)]
@@ -116,6 +117,110 @@ impl Templates {
             })
             .map_err(|e| template_error(name, &e))
     }
+}
+
+impl Templates {
+    /// Renders the HTML report of a comparison between two firmware versions.
+    pub fn compare_html(
+        &self,
+        title: &str,
+        result: &crate::regression::Comparison,
+        allowance: f64,
+    ) -> Result<String, ReportError> {
+        let name = "compare.html";
+        let template = self
+            .env
+            .get_template(name)
+            .map_err(|e| template_error(name, &e))?;
+        let plots: Vec<minijinja::Value> = comparison_plots(result)
+            .into_iter()
+            .map(|(quantity, svg)| {
+                minijinja::context! {
+                    quantity => quantity,
+                    svg => minijinja::Value::from_safe_string(svg),
+                }
+            })
+            .collect();
+        let words: Vec<&str> = result.checks.iter().map(|c| c.movement.words()).collect();
+        template
+            .render(minijinja::context! {
+                title => title,
+                result => minijinja::value::Serde(result),
+                gates => result.gates(),
+                allowance_percent => allowance * 100.0,
+                plots => plots,
+                words => words,
+            })
+            .map_err(|e| template_error(name, &e))
+    }
+}
+
+/// One plot per quantity with percentage errors: both sides' mean errors at each step, the
+/// candidate's bars ±2 standard errors of the shift, and the tolerance drawn.
+fn comparison_plots(result: &crate::regression::Comparison) -> Vec<(String, String)> {
+    let mut quantities: Vec<crate::plan::Quantity> = Vec::new();
+    for c in &result.checks {
+        if c.error_unit == "%" && !quantities.contains(&c.quantity) {
+            quantities.push(c.quantity);
+        }
+    }
+    quantities
+        .into_iter()
+        .filter_map(|q| {
+            let checks: Vec<&crate::regression::CheckComparison> = result
+                .checks
+                .iter()
+                .filter(|c| c.quantity == q && c.error_unit == "%")
+                .collect();
+            let mut labels: Vec<String> = checks.iter().map(|c| c.step.clone()).collect();
+            labels.sort();
+            labels.dedup();
+            let at = |c: &crate::regression::CheckComparison| {
+                labels.iter().position(|l| *l == c.step).unwrap_or(0)
+            };
+            let chart = plot::Chart {
+                limits: labels
+                    .iter()
+                    .map(|l| {
+                        checks
+                            .iter()
+                            .find(|c| &c.step == l)
+                            .map(|c| (c.tolerance_limit, None))
+                    })
+                    .collect(),
+                series: vec![
+                    plot::Series {
+                        name: "baseline".into(),
+                        marker: "circle",
+                        points: checks
+                            .iter()
+                            .map(|c| plot::Point {
+                                x: at(c),
+                                error: c.baseline_mean,
+                                u: 0.0,
+                            })
+                            .collect(),
+                    },
+                    plot::Series {
+                        name: "candidate".into(),
+                        marker: "square",
+                        points: checks
+                            .iter()
+                            .map(|c| plot::Point {
+                                x: at(c),
+                                error: c.candidate_mean,
+                                u: c.test.map_or(0.0, |t| 2.0 * t.std_error),
+                            })
+                            .collect(),
+                    },
+                ],
+                labels: labels.clone(),
+                unit: "%".into(),
+                aria: format!("Mean error of {} on both sides", q.name()),
+            };
+            plot::draw(&chart).map(|svg| (q.name().to_string(), svg))
+        })
+        .collect()
 }
 
 /// Preformatted values for the unit report, so templates stay simple.
