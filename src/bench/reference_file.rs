@@ -1,8 +1,12 @@
-//! Reference readings imported from a CSV file: one row per step and quantity, with columns
-//! `step`, `quantity`, `value`, `unit` (and optionally `timestamp`, kept as given).
+//! Reference readings imported from a CSV file, with columns `step`, `quantity`, `value`, `unit`
+//! and optionally `timestamp` (ISO 8601 with offset). A row that names its step is that step's
+//! reading; a row with a timestamp and no step (a reference meter's log) belongs to the step
+//! whose sampling window contains its time, and the rows within a window are averaged.
 //!
 //! The whole file is checked against the plan before any load is applied: unreadable, unknown,
-//! duplicate, missing and extra rows are all reported at once, each with its line number.
+//! duplicate and extra rows are all reported at once, each with its line number, and so is every
+//! reading the plan needs that no row names (unless a timestamped log covers that quantity,
+//! which can only be matched once the windows are known).
 
 use super::{BenchError, ReferenceMeter, ReferenceReading, ReferenceRequest};
 use crate::plan::units::{self, DecimalSeparator};
@@ -48,6 +52,10 @@ struct Row {
 pub struct FileReference {
     file: String,
     rows: BTreeMap<(String, Quantity), Row>,
+    /// Timestamped rows without a step: (time, quantity, row).
+    logged: Vec<(chrono::DateTime<chrono::FixedOffset>, Quantity, Row)>,
+    /// Wall-clock time at bench time zero, to place the sampling windows.
+    origin: Option<chrono::DateTime<chrono::FixedOffset>>,
 }
 
 /// The (step, quantity) pairs a plan needs a reference reading for.
@@ -119,8 +127,10 @@ impl FileReference {
                 )],
             });
         };
+        let c_time = column("timestamp");
         let wanted = needed(plan);
         let mut rows: BTreeMap<(String, Quantity), Row> = BTreeMap::new();
+        let mut logged = Vec::new();
         for record in reader.records() {
             let record = match record {
                 Ok(r) => r,
@@ -134,6 +144,40 @@ impl FileReference {
             let field = |i: usize| record.get(i).unwrap_or("").to_string();
             let (step, quantity, value, unit) =
                 (field(c_step), field(c_q), field(c_value), field(c_unit));
+            let time = c_time.map(field).filter(|t| !t.is_empty());
+            let timestamp = match &time {
+                None => None,
+                Some(t) => match chrono::DateTime::parse_from_rfc3339(t) {
+                    Ok(ts) => Some(ts),
+                    Err(_) => {
+                        errors.push((
+                            line,
+                            format!("\"{t}\" is not a time as 2026-12-01T14:03:20+01:00"),
+                        ));
+                        continue;
+                    }
+                },
+            };
+            if step.is_empty() && timestamp.is_some() {
+                let Some(q) = Quantity::from_name(&quantity) else {
+                    errors.push((line, format!("unknown quantity \"{quantity}\"")));
+                    continue;
+                };
+                let as_given = format!("{value} {unit}").trim().to_string();
+                match units::parse_with(&as_given, q.dimension(), DecimalSeparator::PointOrComma) {
+                    Ok(v) => logged.push((
+                        timestamp.expect("checked above"),
+                        q,
+                        Row {
+                            line,
+                            value: v,
+                            as_given,
+                        },
+                    )),
+                    Err(e) => errors.push((line, format!("{}: {e}", q.name()))),
+                }
+                continue;
+            }
             if !plan.steps.iter().any(|s| s.id == step) {
                 errors.push((line, format!("no step \"{step}\" in plan {}", plan.id)));
                 continue;
@@ -184,7 +228,8 @@ impl FileReference {
             );
         }
         for (step, q) in &wanted {
-            if !rows.contains_key(&(step.clone(), *q)) {
+            let logged_quantity = logged.iter().any(|(_, lq, _)| lq == q);
+            if !rows.contains_key(&(step.clone(), *q)) && !logged_quantity {
                 errors.push((0, format!("no {} reading for step {step}", q.name())));
             }
         }
@@ -192,6 +237,8 @@ impl FileReference {
             Ok(FileReference {
                 file: file.into(),
                 rows,
+                logged,
+                origin: None,
             })
         } else {
             errors.sort_by_key(|(line, _)| if *line == 0 { usize::MAX } else { *line });
@@ -203,8 +250,52 @@ impl FileReference {
     }
 }
 
+impl FileReference {
+    /// Places bench time zero on the wall clock, so timestamped rows can be matched to windows.
+    pub fn anchor(&mut self, wall_at_bench_zero: chrono::DateTime<chrono::FixedOffset>) {
+        self.origin = Some(wall_at_bench_zero);
+    }
+
+    /// The mean of the logged rows of `quantity` within the window, if any fall in it.
+    fn from_log(&self, request: &ReferenceRequest) -> Option<ReferenceReading> {
+        let origin = self.origin?;
+        let at = |s: f64| origin + chrono::Duration::microseconds((s * 1e6) as i64);
+        let (from, to) = (at(request.window.0), at(request.window.1));
+        let rows: Vec<&Row> = self
+            .logged
+            .iter()
+            .filter(|(t, q, _)| *q == request.quantity && *t >= from && *t <= to)
+            .map(|(_, _, r)| r)
+            .collect();
+        if rows.is_empty() {
+            return None;
+        }
+        let value = rows.iter().map(|r| r.value).sum::<f64>() / rows.len() as f64;
+        let lines: Vec<String> = rows.iter().map(|r| r.line.to_string()).collect();
+        Some(ReferenceReading {
+            value,
+            source: "file".into(),
+            taken_at_s: request.window.1,
+            as_given: Some(format!(
+                "mean of {} logged rows (lines {}) of {}",
+                rows.len(),
+                lines.join(", "),
+                self.file
+            )),
+            entries: Vec::new(),
+        })
+    }
+}
+
 impl ReferenceMeter for FileReference {
     fn read(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError> {
+        if !self
+            .rows
+            .contains_key(&(request.step_id.to_string(), request.quantity))
+            && let Some(r) = self.from_log(request)
+        {
+            return Ok(r);
+        }
         let row = self
             .rows
             .get(&(request.step_id.to_string(), request.quantity))
@@ -226,5 +317,86 @@ impl ReferenceMeter for FileReference {
             )),
             entries: Vec::new(),
         })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::plan::Load;
+
+    fn plan() -> Plan {
+        Plan::from_text("demo.yaml", include_str!("../../test-plans/demo.yaml")).unwrap()
+    }
+
+    fn request<'a>(
+        step: &'a str,
+        q: Quantity,
+        load: &'a Load,
+        window: (f64, f64),
+    ) -> ReferenceRequest<'a> {
+        ReferenceRequest {
+            step_id: step,
+            quantity: q,
+            load,
+            window,
+        }
+    }
+
+    /// A reference meter's log (timestamp, no step) is matched to the sampling windows.
+    #[test]
+    fn logged_rows_are_averaged_over_the_window_they_fall_in() {
+        let mut csv = String::from("step,quantity,value,unit,timestamp\n");
+        for (s, q, v, u) in [
+            ("low-0.1Ib", "active_power", "115.0", "W"),
+            ("basic-Ib", "voltage", "230.1", "V"),
+            ("basic-Ib", "active_power", "1150", "W"),
+            ("basic-Ib", "frequency", "50", "Hz"),
+            ("max-Imax", "active_power", "3680", "W"),
+            ("max-Imax", "active_energy", "10.22", "Wh"),
+            ("basic-pf0.5", "active_power", "575", "W"),
+        ] {
+            csv.push_str(&format!("{s},{q},{v},{u},\n"));
+        }
+        // Current, logged once a second from 12:00:00 on.
+        for (i, v) in ["0.5", "0.502", "0.504", "5.01", "5.03", "16.0"]
+            .iter()
+            .enumerate()
+        {
+            csv.push_str(&format!(",current,{v},A,2026-12-01T12:00:0{i}+00:00\n"));
+        }
+        let mut r = FileReference::from_text("log.csv", &csv, &plan()).unwrap();
+        r.anchor(chrono::DateTime::parse_from_rfc3339("2026-12-01T12:00:00+00:00").unwrap());
+        let load = plan().steps[1].load;
+        // A window from 0.5 s to 2.5 s holds the rows at 1 s and 2 s: their mean.
+        let got = r
+            .read(&request("low-0.1Ib", Quantity::Current, &load, (0.5, 2.5)))
+            .unwrap();
+        assert!((got.value - 0.503).abs() < 1e-12, "{}", got.value);
+        assert!(got.as_given.unwrap().contains("mean of 2 logged rows"));
+        // A row naming its step wins over the log.
+        let p = r
+            .read(&request(
+                "low-0.1Ib",
+                Quantity::ActivePower,
+                &load,
+                (0.5, 2.5),
+            ))
+            .unwrap();
+        assert_eq!(p.value, 115.0);
+        // No logged row in the window: no reading.
+        assert!(
+            r.read(&request("basic-Ib", Quantity::Current, &load, (10.0, 12.0)))
+                .is_err()
+        );
+    }
+
+    #[test]
+    fn a_bad_timestamp_is_refused_with_its_line() {
+        let csv = "step,quantity,value,unit,timestamp\n,current,0.5,A,yesterday\n";
+        let e = FileReference::from_text("log.csv", csv, &plan())
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("log.csv:2: \"yesterday\" is not a time"), "{e}");
     }
 }

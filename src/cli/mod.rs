@@ -376,7 +376,9 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
         }
     };
     let (mut bench, notes) = build_bench(&spec, &plan, args)?;
-    if let Some(r) = file_reference {
+    if let Some(mut r) = file_reference {
+        let now = chrono::Local::now().fixed_offset();
+        r.anchor(now - chrono::Duration::microseconds((bench.clock.now_s() * 1e6) as i64));
         bench.reference = Box::new(r);
     }
     let ctx = RunContext {
