@@ -158,7 +158,7 @@ impl FileReference {
                     }
                 },
             };
-            if step.is_empty() && timestamp.is_some() {
+            if let (true, Some(ts)) = (step.is_empty(), timestamp) {
                 let Some(q) = Quantity::from_name(&quantity) else {
                     errors.push((line, format!("unknown quantity \"{quantity}\"")));
                     continue;
@@ -166,7 +166,7 @@ impl FileReference {
                 let as_given = format!("{value} {unit}").trim().to_string();
                 match units::parse_with(&as_given, q.dimension(), DecimalSeparator::PointOrComma) {
                     Ok(v) => logged.push((
-                        timestamp.expect("checked above"),
+                        ts,
                         q,
                         Row {
                             line,
@@ -257,7 +257,7 @@ impl FileReference {
     }
 
     /// The mean of the logged rows of `quantity` within the window, if any fall in it.
-    fn from_log(&self, request: &ReferenceRequest) -> Option<ReferenceReading> {
+    fn logged_reading(&self, request: &ReferenceRequest) -> Option<ReferenceReading> {
         let origin = self.origin?;
         let at = |s: f64| origin + chrono::Duration::microseconds((s * 1e6) as i64);
         let (from, to) = (at(request.window.0), at(request.window.1));
@@ -292,7 +292,7 @@ impl ReferenceMeter for FileReference {
         if !self
             .rows
             .contains_key(&(request.step_id.to_string(), request.quantity))
-            && let Some(r) = self.from_log(request)
+            && let Some(r) = self.logged_reading(request)
         {
             return Ok(r);
         }
