@@ -2,7 +2,7 @@
 
 use super::{
     BenchOptions, BenchSpec, CliError, TerminalReporter, build_bench, exit_status, finish_run,
-    print_summary, write_outputs,
+    print_summary, write_file, write_outputs,
 };
 use crate::archive::{Archive, RunFilter, RunRecorder};
 use crate::exec::{self, RunContext};
@@ -381,8 +381,7 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
             &result,
             &format!("{} against {}", args.candidate, args.baseline),
         );
-        std::fs::write(path, xml)
-            .map_err(|e| CliError::Run(format!("cannot write {}: {e}", path.display())))?;
+        write_file(path, xml)?;
     }
     if let Some(path) = &args.html {
         let templates = Templates::load(args.templates.as_deref())
@@ -391,8 +390,7 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
         let html = templates
             .compare_html(&title, &result, allowance)
             .map_err(|e| CliError::Run(e.to_string()))?;
-        std::fs::write(path, html)
-            .map_err(|e| CliError::Run(format!("cannot write {}: {e}", path.display())))?;
+        write_file(path, html)?;
     }
     if args.json {
         println!(
@@ -494,8 +492,7 @@ pub(super) fn summary(args: &SummaryArgs) -> Result<i32, CliError> {
     record::write_new_file(&args.out, &format!("{stem}.csv"), &csv)
         .map_err(|e| CliError::Run(e.to_string()))?;
     if let Some(path) = &args.junit {
-        std::fs::write(path, crate::report::run_junit(&records))
-            .map_err(|e| CliError::Run(format!("cannot write {}: {e}", path.display())))?;
+        write_file(path, crate::report::run_junit(&records))?;
     }
     if args.json {
         println!(
@@ -543,8 +540,7 @@ pub(super) fn report(args: &ReportArgs) -> Result<i32, CliError> {
         .map_err(|e| CliError::Run(format!("cannot create {}: {e}", args.out.display())))?;
     let written = write_outputs(&args.out, &records, &templates)?;
     if let Some(path) = &args.junit {
-        std::fs::write(path, crate::report::run_junit(&records))
-            .map_err(|e| CliError::Run(format!("cannot write {}: {e}", path.display())))?;
+        write_file(path, crate::report::run_junit(&records))?;
     }
     print_summary(&records, &written);
     Ok(0)

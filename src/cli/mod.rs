@@ -430,8 +430,7 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
     finish_run(&archive, &ctx.run_id, &records)?;
     let written = write_outputs(&run_dir, &records, &templates)?;
     if let Some(path) = &args.junit {
-        std::fs::write(path, report::run_junit(&records))
-            .map_err(|e| CliError::Run(format!("cannot write {}: {e}", path.display())))?;
+        write_file(path, report::run_junit(&records))?;
     }
     if args.json {
         println!(
@@ -689,6 +688,12 @@ fn ask_serials(positions: usize) -> Result<Vec<String>, CliError> {
         serials.push(s);
     }
     Ok(serials)
+}
+
+/// Writes a file the user named (a JUnit or HTML report), saying which one failed.
+fn write_file(path: &Path, bytes: impl AsRef<[u8]>) -> Result<(), CliError> {
+    std::fs::write(path, bytes)
+        .map_err(|e| CliError::Run(format!("cannot write {}: {e}", path.display())))
 }
 
 /// Serial numbers given on the command line: none empty, none twice.
