@@ -215,9 +215,14 @@ fn check(paths: &[PathBuf]) -> Result<i32, CliError> {
     let stdout = std::io::stdout();
     let mut out = stdout.lock();
     for path in paths {
-        match Plan::load(path) {
-            Ok(plan) => {
-                let _ = write!(out, "{}", plan_summary(&plan));
+        let summary = if is_station_file(path) {
+            Station::load(path).map(|s| station_summary(&s))
+        } else {
+            Plan::load(path).map(|p| plan_summary(&p))
+        };
+        match summary {
+            Ok(text) => {
+                let _ = write!(out, "{text}");
             }
             Err(errors) => {
                 invalid += 1;
@@ -227,11 +232,41 @@ fn check(paths: &[PathBuf]) -> Result<i32, CliError> {
     }
     if invalid > 0 {
         return Err(CliError::Usage(format!(
-            "{invalid} of {} plans invalid",
+            "{invalid} of {} files invalid",
             paths.len()
         )));
     }
     Ok(0)
+}
+
+/// Whether a YAML file is a station file (its top level names a `station`) rather than a plan.
+fn is_station_file(path: &Path) -> bool {
+    std::fs::read_to_string(path)
+        .ok()
+        .and_then(|t| serde_yaml::from_str::<serde_yaml::Value>(&t).ok())
+        .is_some_and(|v| v.get("station").is_some() && v.get("steps").is_none())
+}
+
+/// What `check` prints for a valid station file.
+fn station_summary(s: &Station) -> String {
+    let source = match &s.source {
+        station::SourceSpec::Scpi { port, .. } => format!("SCPI source on {}", port.path),
+        station::SourceSpec::Manual => "load set by the operator".into(),
+    };
+    let reading = match &s.reference.read {
+        station::ReferenceRead::Scpi { port, .. } => format!("read over SCPI on {}", port.path),
+        station::ReferenceRead::Operator => "typed by the operator".into(),
+    };
+    format!(
+        "{}: station {}, {} positions, {source}; reference {} ({reading}){}\n",
+        s.file,
+        s.id,
+        s.positions.len(),
+        s.reference.info.id,
+        s.reference
+            .calibration_due
+            .map_or(String::new(), |d| format!(", calibration due {d}"))
+    )
 }
 
 /// What `check` prints for a valid plan: one line for the plan, one per step.
