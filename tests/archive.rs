@@ -6,7 +6,6 @@ use common::{bin, temp_dir};
 
 use meterproof::record::UnitStatus;
 use rusqlite::Connection;
-use std::io::{BufRead, BufReader};
 use std::path::Path;
 use std::process::Stdio;
 use std::time::{Duration, Instant};
@@ -251,40 +250,11 @@ fn a_read_only_archive_is_refused_before_any_step() {
     std::fs::remove_dir_all(&dir).unwrap();
 }
 
-/// `sim-meter`, killed when dropped.
-struct Served(std::process::Child);
-
-impl Drop for Served {
-    fn drop(&mut self) {
-        let _ = self.0.kill();
-        let _ = self.0.wait();
-    }
-}
-
 #[test]
 fn a_run_killed_mid_way_resumes_with_no_reading_lost() {
     let dir = temp_dir("kill");
-    let station = dir.join("station.yaml");
-    let mut child = bin()
-        .args([
-            "sim-meter",
-            "--positions",
-            "4",
-            "--seed",
-            "1",
-            "--time-scale",
-            "10",
-            "--for",
-            "300 s",
-            "--station",
-        ])
-        .arg(&station)
-        .stdout(Stdio::piped())
-        .spawn()
-        .unwrap();
-    let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
-    while !lines.next().unwrap().unwrap().starts_with("serving") {}
-    let _served = Served(child);
+    let served = common::serve_at(&dir, "10", &[]);
+    let station = served.station.clone();
     let archive = dir.join("archive.sqlite");
     let out = dir.join("out");
     let mut run = bin()

@@ -2,61 +2,15 @@
 //! `meterproof sim-meter` on pseudo-terminals: serial links, SCPI source and reference, faults.
 
 mod common;
-use common::{bin, temp_dir};
+use common::{Served, bin, serve_at, temp_dir};
 
 use meterproof::record::{self, StepStatus, UnitRecord, UnitStatus};
-use std::io::{BufRead, BufReader};
-use std::path::{Path, PathBuf};
-use std::process::{Child, Stdio};
+use std::path::Path;
+use std::process::Stdio;
 
-/// A `sim-meter` process, killed when dropped.
-struct Served {
-    child: Child,
-    station: PathBuf,
-}
-
-impl Drop for Served {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
-}
-
-/// Starts `sim-meter` and waits until it says it serves.
+/// Starts `sim-meter` at 25 times real time.
 fn serve(dir: &Path, extra: &[&str]) -> Served {
     serve_at(dir, "25", extra)
-}
-
-/// As [`serve`], at a given time scale.
-fn serve_at(dir: &Path, time_scale: &str, extra: &[&str]) -> Served {
-    let station = dir.join("station.yaml");
-    let mut child = bin()
-        .args([
-            "sim-meter",
-            "--positions",
-            "4",
-            "--seed",
-            "1",
-            "--time-scale",
-            time_scale,
-            "--for",
-            "120 s",
-        ])
-        .arg("--station")
-        .arg(&station)
-        .args(extra)
-        .stdout(Stdio::piped())
-        .spawn()
-        .unwrap();
-    let stdout = child.stdout.take().unwrap();
-    let mut lines = BufReader::new(stdout).lines();
-    loop {
-        let line = lines.next().expect("sim-meter ended early").unwrap();
-        if line.starts_with("serving") {
-            break;
-        }
-    }
-    Served { child, station }
 }
 
 fn run(plan: &str, station: &Path, out: &Path, extra: &[&str]) -> (i32, String, Vec<UnitRecord>) {

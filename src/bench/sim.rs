@@ -215,17 +215,12 @@ struct World {
     clock: Arc<dyn Clock>,
     /// What the source actually delivers now (set load with the source's own error).
     actual: Load,
-    previous: Load,
     changed_at_s: f64,
     from_no_load: bool,
     meters: Vec<MeterState>,
 }
 
 impl World {
-    fn since_change(&self) -> f64 {
-        (self.clock.now_s() - self.changed_at_s).max(0.0)
-    }
-
     /// What the meter's front end sees of the voltage and current at bench time `t`.
     fn seen(&self, meter: &MeterState, t: f64) -> (f64, f64) {
         let dt = (t - self.changed_at_s).max(0.0);
@@ -280,7 +275,6 @@ impl World {
             let seen = self.seen(&self.meters[index], now);
             self.meters[index].seen_at_change = seen;
         }
-        self.previous = self.actual;
         self.from_no_load = self.actual.current < NO_LOAD_THRESHOLD_A && actual.current > 0.0;
         self.actual = actual;
         self.changed_at_s = now;
@@ -413,7 +407,6 @@ impl SimBench {
         let world = World {
             clock: clock.clone(),
             actual: off,
-            previous: off,
             changed_at_s: 0.0,
             from_no_load: false,
             meters,
@@ -456,11 +449,6 @@ impl SimBench {
             .iter()
             .map(|m| m.model.tau_s)
             .collect()
-    }
-
-    /// Seconds since the last load change, on the virtual clock.
-    pub fn since_change(&self) -> f64 {
-        lock(&self.world).since_change()
     }
 
     /// The simulated source and reference meter, acting on this bench's world.

@@ -625,9 +625,8 @@ fn run_step(
     let slots: Vec<sampling::Slot> = bench
         .positions
         .iter_mut()
-        .zip(units.iter())
         .zip(sc.to_run)
-        .map(|((p, _), run)| run.then_some(&mut p.link))
+        .map(|(p, run)| run.then_some(&mut p.link))
         .collect();
     let on_reading = |slot: usize, w: usize, sample: Sample| {
         let want = &wanted[w];

@@ -39,11 +39,6 @@ impl Summary {
             std_dev,
         })
     }
-
-    /// Standard uncertainty of the mean, s / √n (GUM 4.2.3); absent for a single value.
-    pub fn std_error(&self) -> Option<f64> {
-        self.std_dev.map(|s| s / (self.count as f64).sqrt())
-    }
 }
 
 #[cfg(test)]

@@ -3,8 +3,9 @@
 
 use meterproof::exec::RunContext;
 use meterproof::record::UnitRecord;
+use std::io::{BufRead, BufReader};
 use std::path::{Path, PathBuf};
-use std::process::Command;
+use std::process::{Child, Command, Stdio};
 
 /// The real binary.
 pub fn bin() -> Command {
@@ -42,4 +43,50 @@ pub fn records_in(out: &Path) -> Vec<UnitRecord> {
         .collect();
     rs.sort_by_key(|r| (r.run_id.clone(), r.position));
     rs
+}
+
+/// A `meterproof sim-meter` process serving a simulated station; killed when dropped.
+pub struct Served {
+    child: Child,
+    /// The station file it wrote.
+    pub station: PathBuf,
+}
+
+impl Drop for Served {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+/// Starts `sim-meter` with 4 meters (seed 1) at `time_scale`, writing its station file in `dir`,
+/// and waits until it says it serves.
+pub fn serve_at(dir: &Path, time_scale: &str, extra: &[&str]) -> Served {
+    let station = dir.join("station.yaml");
+    let mut child = bin()
+        .args([
+            "sim-meter",
+            "--positions",
+            "4",
+            "--seed",
+            "1",
+            "--for",
+            "300 s",
+        ])
+        .args(["--time-scale", time_scale])
+        .arg("--station")
+        .arg(&station)
+        .args(extra)
+        .stdout(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let stdout = child.stdout.take().unwrap();
+    let mut lines = BufReader::new(stdout).lines();
+    loop {
+        let line = lines.next().expect("sim-meter ended early").unwrap();
+        if line.starts_with("serving") {
+            break;
+        }
+    }
+    Served { child, station }
 }
