@@ -274,3 +274,86 @@ fn the_release_gate_fails_for_a_real_regression_and_passes_for_none() {
     assert_eq!(count(&noise_xml), (13, 0));
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+#[test]
+fn bad_selectors_and_allowances_are_refused() {
+    let dir = temp_dir("compare-args");
+    let path = dir.join("archive.sqlite");
+    let plan = plan_for_any_2x();
+    let archive = Archive::open(&path).unwrap();
+    archive_run(
+        &archive,
+        &plan,
+        &run(&plan, &golden(FirmwareChange::default(), 0), "R-base"),
+        "R-base",
+    );
+    drop(archive);
+    let compare = |args: &[&str]| {
+        let o = bin()
+            .arg("compare")
+            .args(args)
+            .arg("--archive")
+            .arg(&path)
+            .output()
+            .unwrap();
+        (
+            o.status.code(),
+            String::from_utf8_lossy(&o.stderr).into_owned(),
+        )
+    };
+    let (code, err) = compare(&["--baseline", "firmware", "--candidate", "run=R-base"]);
+    assert_eq!(code, Some(2));
+    assert!(
+        err.contains("select as run=ID, lot=L or firmware=VERSION"),
+        "{err}"
+    );
+    let (code, err) = compare(&["--baseline", "colour=red", "--candidate", "run=R-base"]);
+    assert_eq!(code, Some(2));
+    assert!(err.contains("cannot select by \"colour\""), "{err}");
+    let (code, err) = compare(&["--baseline", "firmware=9.9", "--candidate", "run=R-base"]);
+    assert_eq!(code, Some(2));
+    assert!(
+        err.contains("the baseline selects no unit records"),
+        "{err}"
+    );
+    let (code, err) = compare(&[
+        "--baseline",
+        "run=R-base",
+        "--candidate",
+        "run=R-base",
+        "--allowance",
+        "20 V",
+    ]);
+    assert_eq!(code, Some(2));
+    assert!(err.contains("--allowance: expected a percentage"), "{err}");
+    // Other archive and simulator flags.
+    let o = bin()
+        .args(["runs", "--since", "yesterday", "--archive"])
+        .arg(&path)
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("--since yesterday: expected a date"));
+    let o = bin()
+        .args([
+            "sim-meter",
+            "--positions",
+            "2",
+            "--fault",
+            "3:echo",
+            "--for",
+            "1 s",
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("there are only 2 positions"));
+    let o = bin()
+        .args(["history", "X", "--archive"])
+        .arg(dir.join("none.sqlite"))
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("no archive at"));
+    std::fs::remove_dir_all(&dir).unwrap();
+}
