@@ -4,7 +4,7 @@ mod common;
 use common::ctx;
 use meterproof::bench::sim::{SimBench, SimConfig};
 use meterproof::exec::{self, Silent};
-use meterproof::plan::Plan;
+use meterproof::plan::{Plan, Quantity};
 
 fn adaptive() -> Plan {
     Plan::load(std::path::Path::new("test-plans/demo-adaptive.yaml")).unwrap()
@@ -118,21 +118,104 @@ fn clear_decisions_stop_sampling_at_the_minimum_and_doubtful_ones_take_the_maxim
     assert_eq!(records[0].steps[2].checks[0].samples.len(), 8);
 }
 
+/// The active energy and active power errors of one unit's step, and their U.
+fn energy_and_power(step: &meterproof::record::StepRecord) -> ((f64, f64), (f64, f64)) {
+    let of = |q: Quantity| {
+        let c = step.checks.iter().find(|c| c.quantity == q).unwrap();
+        (
+            c.evaluation.as_ref().unwrap().error,
+            c.uncertainty.as_ref().unwrap().expanded,
+        )
+    };
+    (of(Quantity::ActiveEnergy), of(Quantity::ActivePower))
+}
+
+/// Under a steady load a register integrates the power the meter measures, so its error equals
+/// the power reading's (E = P·t; common practice, no published source): whether the register's
+/// window was cut short or ran to its maximum, the two agree within their uncertainties.
+#[test]
+fn an_energy_register_sampled_until_decided_agrees_with_the_power_reading() {
+    let plan = adaptive();
+    let imax = plan.steps.iter().position(|s| s.id == "max-Imax").unwrap();
+    let run = |plan: &Plan| {
+        exec::run(
+            plan,
+            &mut SimBench::new(&config(0.2)).into_bench(),
+            &ctx(),
+            &mut Silent,
+        )
+    };
+    let agree = |step: &meterproof::record::StepRecord| {
+        let ((e_energy, u_energy), (e_power, u_power)) = energy_and_power(step);
+        assert!(
+            (e_energy - e_power).abs() <= u_energy.hypot(u_power),
+            "energy {e_energy} ± {u_energy} %, power {e_power} ± {u_power} %"
+        );
+    };
+    // Good units far from the class limit: the register's window is cut short.
+    let early = run(&plan);
+    for r in &early {
+        let step = &r.steps[imax];
+        let energy = step
+            .checks
+            .iter()
+            .find(|c| c.quantity == Quantity::ActiveEnergy)
+            .unwrap();
+        assert!(energy.samples.len() < 11, "{:?}", step.sampling_note);
+        agree(step);
+    }
+    // A power tolerance right at the measured error keeps the step sampling to its maximum:
+    // the reference, read at the minimum, must then be scaled to the register's whole span.
+    let (_, (e_power, _)) = energy_and_power(&early[0].steps[imax]);
+    let text = std::fs::read_to_string("test-plans/demo-adaptive.yaml")
+        .unwrap()
+        .replace(
+            "      - { quantity: current, tolerance: { percent: 0.5 % } }\n      - { quantity: active_power, tolerance: { class: true } }\n      - { quantity: active_energy",
+            &format!("      - {{ quantity: current, tolerance: {{ percent: 0.5 % }} }}\n      - {{ quantity: active_power, tolerance: {{ percent: {} % }} }}\n      - {{ quantity: active_energy", e_power.abs()),
+        );
+    let tight = Plan::from_text("tight.yaml", &text).unwrap();
+    let full = run(&tight);
+    let step = &full[0].steps[imax];
+    assert_eq!(step.checks[2].samples.len(), 11, "{:?}", step.sampling_note);
+    agree(step);
+}
+
+#[test]
+fn a_special_test_keeps_the_standards_duration() {
+    let text = std::fs::read_to_string("test-plans/type-tests.yaml").unwrap();
+    // Defaults that sample until decided do not shorten the no-load test.
+    let with_defaults = text.replace(
+        "steps:\n",
+        "defaults:\n  samples_until_decided: { min: 3, max: 8 }\nsteps:\n",
+    );
+    let plan = Plan::from_text("d.yaml", &with_defaults).unwrap();
+    let creep = &plan.steps[0];
+    assert_eq!(creep.sequential, None);
+    assert_eq!(creep.samples, 2);
+    assert_eq!(
+        creep.interval_s,
+        Plan::from_text("t.yaml", &text).unwrap().steps[0].interval_s
+    );
+    let explicit = text.replace(
+        "    special: no_load\n",
+        "    special: no_load\n    samples_until_decided: { min: 2, max: 4 }\n",
+    );
+    let e = Plan::from_text("e.yaml", &explicit)
+        .unwrap_err()
+        .to_string();
+    assert!(
+        e.contains("steps[0].samples_until_decided")
+            && e.contains("a special test takes its whole duration from the standard"),
+        "{e}"
+    );
+}
+
 #[test]
 fn adaptive_rules_are_checked_in_the_plan() {
     let text = std::fs::read_to_string("test-plans/demo-adaptive.yaml").unwrap();
-    let energy = text.replace(
-        "    samples: 11\n    interval: 1 s\n",
-        "    samples_until_decided: { min: 3, max: 11 }\n    interval: 1 s\n",
-    );
-    let e = Plan::from_text("e.yaml", &energy).unwrap_err().to_string();
-    assert!(
-        e.contains("an energy register needs its whole window"),
-        "{e}"
-    );
     let both = text.replace(
-        "    settle: 2 s\n",
-        "    settle: 2 s\n    settle_until: { stable_within: 1 %, at_most: 3 s }\n",
+        "    settle_until: { stable_within: 2 mA",
+        "    settle: 2 s\n    settle_until: { stable_within: 2 mA",
     );
     let e = Plan::from_text("b.yaml", &both).unwrap_err().to_string();
     assert!(e.contains("give settle or settle_until, not both"), "{e}");

@@ -269,10 +269,37 @@ fn station_summary(s: &Station) -> String {
     )
 }
 
+/// "settle 4 s", or "settle until current stable within 0.3 % (0.5 s to 4 s)".
+fn settle_text(step: &crate::plan::Step) -> String {
+    let Some(rule) = &step.settle_until else {
+        return format!("settle {}", report::duration_text(step.settle_s));
+    };
+    let band = if rule.relative {
+        format!("{} %", rule.band * 100.0)
+    } else {
+        crate::plan::units::Display(rule.band, rule.quantity.dimension()).to_string()
+    };
+    format!(
+        "settle until {} stable within {band} ({} to {})",
+        rule.quantity.name(),
+        report::duration_text(rule.min_s),
+        report::duration_text(rule.max_s)
+    )
+}
+
+/// "8 × 0.5 s", or "3 to 8 × 0.5 s until decided".
+fn samples_text(step: &crate::plan::Step) -> String {
+    let interval = report::duration_text(step.interval_s);
+    match step.sequential {
+        Some(rule) => format!("{} to {} × {interval} until decided", rule.min, rule.max),
+        None => format!("{} × {interval}", step.samples),
+    }
+}
+
 /// What `check` prints for a valid plan: one line for the plan, one per step.
 pub fn plan_summary(plan: &Plan) -> String {
     let mut s = format!(
-        "{}: plan {} revision {} for {}, class {}: {} steps, {} checks, scheduled bench time {}\n",
+        "{}: plan {} revision {} for {}, class {}: {} steps, {} checks, scheduled bench time {}{}\n",
         plan.source.file,
         plan.id,
         plan.revision,
@@ -280,7 +307,16 @@ pub fn plan_summary(plan: &Plan) -> String {
         plan.ratings.class,
         plan.steps.len(),
         plan.check_count(),
-        report::duration_text(plan.scheduled_s())
+        report::duration_text(plan.scheduled_s()),
+        if plan
+            .steps
+            .iter()
+            .any(|s| s.settle_until.is_some() || s.sequential.is_some())
+        {
+            " at most (adaptive steps end sooner)"
+        } else {
+            ""
+        }
     );
     for step in &plan.steps {
         let checks: Vec<String> = step
@@ -300,12 +336,11 @@ pub fn plan_summary(plan: &Plan) -> String {
             })
             .collect();
         s.push_str(&format!(
-            "  {:<14} {}; settle {}, {} × {}: {}\n",
+            "  {:<14} {}; {}, {}: {}\n",
             step.id,
             step.load.describe(),
-            report::duration_text(step.settle_s),
-            step.samples,
-            report::duration_text(step.interval_s),
+            settle_text(step),
+            samples_text(step),
             if checks.is_empty() {
                 "no checks".to_string()
             } else {

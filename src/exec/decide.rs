@@ -23,7 +23,8 @@ pub(super) struct CheckInputs<'a> {
     pub check: &'a Check,
     pub step: &'a Step,
     pub reference: Option<Result<ReferenceReading, String>>,
-    /// Bench times of the reference's window.
+    /// Bench times of the window the reference was read over (with sampling until decided, the
+    /// window up to the minimum count: a register's advance is set against it scaled by time).
     pub window: (f64, f64),
     /// The unit's resolution for the quantity, where the link knows it.
     pub resolution: Option<f64>,
@@ -121,6 +122,8 @@ pub(super) struct Partial<'a> {
     pub blank: &'a StepRecord,
     pub wanted: &'a [super::sampling::Wanted],
     pub references: &'a [(Quantity, Result<ReferenceReading, String>)],
+    /// Bench times of the window the references were read over.
+    pub reference_window: (f64, f64),
     /// Each position's resolution for each check.
     pub resolutions: &'a [Vec<Option<f64>>],
 }
@@ -159,7 +162,7 @@ impl Partial<'_> {
                     check,
                     step: &step_so_far,
                     reference,
-                    window: (0.0, 0.0),
+                    window: self.reference_window,
                     resolution: self.resolutions.get(u).and_then(|r| r[i]),
                 };
                 evaluate_check(input, &mut record, judge);

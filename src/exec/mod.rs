@@ -648,27 +648,30 @@ fn run_step(
         on_reading: &on_reading,
         interrupt: &interrupt,
     };
-    // Sampling until decided reads the references once the minimum is taken, and stops as soon
-    // as no decision of any unit can change any more.
-    let mut early_references: Option<Vec<(Quantity, ReferenceResult)>> = None;
+    // Sampling until decided reads the references once the minimum is taken (over the window so
+    // far, which a register's reference is then scaled from), and stops as soon as no decision
+    // of any unit can change any more.
+    let mut early_references: Option<(References, (f64, f64))> = None;
     let reference = &mut bench.reference;
-    let clock = bench.clock.clone();
-    let mut stop_rule = |n: u32, all: &[sampling::Series]| -> bool {
+    let mut stop_rule = |n: u32, all: &[sampling::Series], window: (f64, f64)| -> bool {
         let Some(rule) = step.sequential else {
             return false;
         };
         if n < rule.min {
             return false;
         }
-        let t0 = clock.now_s() - f64::from(n - 1) * step.interval_s;
-        let refs = early_references.get_or_insert_with(|| {
-            take_references(step, calibration, reference.as_mut(), (t0, clock.now_s()))
+        let (refs, reference_window) = early_references.get_or_insert_with(|| {
+            (
+                take_references(step, calibration, reference.as_mut(), window),
+                window,
+            )
         });
         let partial = decide::Partial {
             step,
             blank: &blank,
             wanted: &wanted,
             references: refs,
+            reference_window: *reference_window,
             resolutions: &resolutions,
         };
         partial.all_settled(all, n, judge)
@@ -688,9 +691,12 @@ fn run_step(
             .max()
             .unwrap_or(0) as u32;
     }
-    let references = match early_references.take() {
-        Some(r) => r,
-        None => take_references(step, calibration, bench.reference.as_mut(), window),
+    let (references, reference_window) = match early_references.take() {
+        Some(taken) => taken,
+        None => (
+            take_references(step, calibration, bench.reference.as_mut(), window),
+            window,
+        ),
     };
     for (u, unit) in units.iter_mut().enumerate() {
         if !sc.to_run[u] {
@@ -734,7 +740,7 @@ fn run_step(
                 check,
                 step: &evaluated_step,
                 reference,
-                window,
+                window: reference_window,
                 resolution: resolutions[u][i],
             };
             decide::evaluate_check(input, check_record, judge);
@@ -793,6 +799,8 @@ fn run_step(
 }
 
 type ReferenceResult = Result<crate::bench::ReferenceReading, String>;
+/// A step's reference readings, one per quantity.
+type References = Vec<(Quantity, ReferenceResult)>;
 
 /// One reference reading per quantity the step checks against a reference.
 fn take_references(
@@ -800,7 +808,7 @@ fn take_references(
     calibration: Option<&CalibrationSpec>,
     reference: &mut dyn crate::bench::ReferenceMeter,
     window: (f64, f64),
-) -> Vec<(Quantity, ReferenceResult)> {
+) -> References {
     let mut quantities: Vec<Quantity> = step
         .checks
         .iter()

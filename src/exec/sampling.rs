@@ -52,8 +52,9 @@ impl Sampler<'_> {
     }
 }
 
-/// Decides after each round (with the number of samples taken) whether sampling may stop.
-pub(super) type StopRule<'a> = &'a mut dyn FnMut(u32, &[Series]) -> bool;
+/// Decides after each round (with the number of samples taken and the bench times of the
+/// window so far) whether sampling may stop.
+pub(super) type StopRule<'a> = &'a mut dyn FnMut(u32, &[Series], (f64, f64)) -> bool;
 
 /// Samples every slot over the step's window; returns the series and the window's bench times.
 /// With a stop rule the positions are sampled in rounds, so that they stop together.
@@ -213,7 +214,7 @@ fn in_rounds(
             live.for_each(round);
         }
         if let Some(stop) = stop.as_mut()
-            && stop(k + 1, &all)
+            && stop(k + 1, &all, (t0, s.clock.now_s()))
         {
             break;
         }

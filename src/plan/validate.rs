@@ -817,12 +817,19 @@ fn step(
             "give settle or settle_until, not both",
         );
     }
+    // A special test's duration is the standard's: it never stops early, whatever the defaults.
+    let is_special = matches!(special, Some(Some(_)));
     let sequential_raw = raw.samples_until_decided.clone().or_else(|| {
-        raw.samples
-            .is_none()
+        (raw.samples.is_none() && !is_special)
             .then(|| defaults.samples_until_decided.clone())
             .flatten()
     });
+    if raw.samples_until_decided.is_some() && is_special {
+        ctx.error(
+            &format!("{path}.samples_until_decided"),
+            "a special test takes its whole duration from the standard: it cannot stop early",
+        );
+    }
     if raw.samples_until_decided.is_some() && raw.samples.is_some() {
         ctx.error(
             &format!("{path}.samples_until_decided"),
@@ -867,12 +874,6 @@ fn step(
         })
         .collect();
     let mut checks: Vec<Check> = checks.into_iter().collect::<Option<_>>()?;
-    if sequential.is_some() && checks.iter().any(|c| c.quantity.is_register()) {
-        ctx.error(
-            &format!("{path}.samples_until_decided"),
-            "an energy register needs its whole window: a step with an energy check cannot stop early",
-        );
-    }
     let settle_until = match &settle_raw {
         None => None,
         Some(r) => settle_rule(ctx, &format!("{path}.settle_until"), r, &checks),

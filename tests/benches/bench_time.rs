@@ -31,6 +31,37 @@ fn marginal(r: &UnitRecord) -> bool {
     r.steps.iter().flat_map(|s| &s.checks).any(|c| c.marginal())
 }
 
+/// How many checks both records evaluated, and for how many of them the two errors differ by
+/// no more than their combined expanded uncertainty.
+fn errors_within_u(x: &UnitRecord, y: &UnitRecord) -> (usize, usize) {
+    let pairs = x
+        .steps
+        .iter()
+        .zip(&y.steps)
+        .flat_map(|(a, b)| a.checks.iter().zip(&b.checks))
+        .filter_map(|(a, b)| {
+            let ea = a.evaluation.as_ref()?.error;
+            let eb = b.evaluation.as_ref()?.error;
+            let ua = a.uncertainty.as_ref()?.expanded;
+            let ub = b.uncertainty.as_ref()?.expanded;
+            Some((ea - eb).abs() <= ua.hypot(ub))
+        });
+    pairs.fold((0, 0), |(n, k), ok| (n + 1, k + usize::from(ok)))
+}
+
+/// Adds each step's bench time (from its load change to the next step's, or to the run's end).
+fn add_step_times(r: &UnitRecord, into: &mut [f64]) {
+    let starts: Vec<f64> = r
+        .steps
+        .iter()
+        .map(|s| s.started_at_s.unwrap_or(0.0))
+        .collect();
+    for (i, t) in into.iter_mut().enumerate() {
+        let end = starts.get(i + 1).copied().unwrap_or(r.bench_time_s);
+        *t += end - starts[i];
+    }
+}
+
 fn main() {
     let fixed = plan("test-plans/demo.yaml");
     let adaptive = plan("test-plans/demo-adaptive.yaml");
@@ -38,6 +69,9 @@ fn main() {
     let (mut t_fixed, mut t_adaptive) = (0.0, 0.0);
     let (mut agree, mut disagree, mut disagree_marginal, mut units) = (0, 0, 0, 0);
     let (mut checks_fixed_failed, mut checks_adaptive_failed) = (0, 0);
+    let (mut checks_compared, mut checks_within_u) = (0, 0);
+    let steps = fixed.steps.len();
+    let (mut step_fixed, mut step_adaptive) = (vec![0.0; steps], vec![0.0; steps]);
     for seed in 1..=runs {
         let config = SimConfig::new(seed, 4);
         let a = exec::run(
@@ -54,10 +88,15 @@ fn main() {
         );
         t_fixed += a[0].bench_time_s;
         t_adaptive += b[0].bench_time_s;
+        add_step_times(&a[0], &mut step_fixed);
+        add_step_times(&b[0], &mut step_adaptive);
         for (x, y) in a.iter().zip(&b) {
             units += 1;
             checks_fixed_failed += x.failed_checks().count();
             checks_adaptive_failed += y.failed_checks().count();
+            let (compared, within) = errors_within_u(x, y);
+            checks_compared += compared;
+            checks_within_u += within;
             if x.verdict.status == y.verdict.status {
                 agree += 1;
             } else {
@@ -82,6 +121,19 @@ fn main() {
         "  verdicts agree for {agree} of {units} units; {disagree} disagree, {disagree_marginal} of them on a marginal check (within U of its limit)"
     );
     println!("  failed checks: {checks_fixed_failed} fixed, {checks_adaptive_failed} adaptive");
+    println!(
+        "  errors of the same check agree within their combined U (√(U₁² + U₂²)) for {checks_within_u} of {checks_compared} checks ({:.1} %; at least 95 % expected at k = 2)",
+        100.0 * checks_within_u as f64 / checks_compared as f64
+    );
+    println!("  bench time per run of 4, step by step (fixed / adaptive):");
+    for (i, step) in fixed.steps.iter().enumerate() {
+        println!(
+            "    {:<12} {:>6.2} s / {:>6.2} s",
+            step.id,
+            step_fixed[i] / runs as f64,
+            step_adaptive[i] / runs as f64
+        );
+    }
 
     println!("real-time overhead over the scheduled time (simulator on a real clock, archive on):");
     let text = std::fs::read_to_string("test-plans/demo.yaml").unwrap();
