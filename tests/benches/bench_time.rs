@@ -7,8 +7,9 @@ use meterproof::archive::{Archive, RunRecorder};
 use meterproof::bench::RealClock;
 use meterproof::bench::sim::{SimBench, SimConfig};
 use meterproof::exec::{self, RunContext, Silent};
+use meterproof::metrology::decision::settled;
 use meterproof::plan::Plan;
-use meterproof::record::UnitRecord;
+use meterproof::record::{CheckRecord, UnitRecord};
 use std::sync::Arc;
 use std::time::Instant;
 
@@ -26,9 +27,32 @@ fn plan(path: &str) -> Plan {
     Plan::load(std::path::Path::new(path)).unwrap()
 }
 
-/// Whether a unit's verdict rests on a check within its uncertainty of the limit.
-fn marginal(r: &UnitRecord) -> bool {
-    r.steps.iter().flat_map(|s| &s.checks).any(|c| c.marginal())
+/// Whether a check's result lies in its decision rule's uncertainty band: its error ± U reaches
+/// the acceptance limit or the tolerance limit, so that another measurement may decide
+/// otherwise.
+fn in_band(c: &CheckRecord) -> bool {
+    match (&c.evaluation, &c.decision) {
+        (Some(e), Some(d)) => !settled(e, d),
+        _ => false,
+    }
+}
+
+/// The checks whose verdicts differ between two records of one unit, and how many of them lie
+/// in the uncertainty band in the first run, in the second, and in both.
+fn differing_checks(x: &UnitRecord, y: &UnitRecord) -> [usize; 4] {
+    let mut n = [0; 4];
+    let pairs = x
+        .steps
+        .iter()
+        .zip(&y.steps)
+        .flat_map(|(a, b)| a.checks.iter().zip(&b.checks));
+    for (a, b) in pairs.filter(|(a, b)| a.verdict != b.verdict) {
+        n[0] += 1;
+        n[1] += usize::from(in_band(a));
+        n[2] += usize::from(in_band(b));
+        n[3] += usize::from(in_band(a) && in_band(b));
+    }
+    n
 }
 
 /// How many checks both records evaluated, and for how many of them the two errors differ by
@@ -67,7 +91,8 @@ fn main() {
     let adaptive = plan("test-plans/demo-adaptive.yaml");
     let runs = 250u64;
     let (mut t_fixed, mut t_adaptive) = (0.0, 0.0);
-    let (mut agree, mut disagree, mut disagree_marginal, mut units) = (0, 0, 0, 0);
+    let (mut agree, mut disagree, mut units) = (0, 0, 0);
+    let mut differing = [0; 4];
     let (mut checks_fixed_failed, mut checks_adaptive_failed) = (0, 0);
     let (mut checks_compared, mut checks_within_u) = (0, 0);
     let steps = fixed.steps.len();
@@ -101,9 +126,9 @@ fn main() {
                 agree += 1;
             } else {
                 disagree += 1;
-                if marginal(x) || marginal(y) {
-                    disagree_marginal += 1;
-                }
+            }
+            for (total, n) in differing.iter_mut().zip(differing_checks(x, y)) {
+                *total += n;
             }
         }
     }
@@ -117,8 +142,10 @@ fn main() {
         per_adaptive / per_fixed,
         (1.0 - per_adaptive / per_fixed) * 100.0
     );
+    println!("  verdicts agree for {agree} of {units} units; {disagree} disagree");
     println!(
-        "  verdicts agree for {agree} of {units} units; {disagree} disagree, {disagree_marginal} of them on a marginal check (within U of its limit)"
+        "  checks whose verdicts differ: {}; in the decision rule's uncertainty band (error ± U reaches a limit) in the fixed run {}, in the adaptive run {}, in both {}",
+        differing[0], differing[1], differing[2], differing[3]
     );
     println!("  failed checks: {checks_fixed_failed} fixed, {checks_adaptive_failed} adaptive");
     println!(
