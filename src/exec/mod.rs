@@ -305,6 +305,7 @@ pub fn run_with(
                 bench.clock.as_ref(),
                 &mut bench.positions,
                 &to_run,
+                bench.parallel,
                 &bench.interrupt,
             )),
             None => {

@@ -37,30 +37,32 @@ pub(super) fn stable(window: &VecDeque<f64>, rule: &SettleRule) -> bool {
 
 /// Waits until every active position is stable (or the rule's maximum), reading each one every
 /// `every_s`. A position whose link fails stops being waited for: its fault shows when sampled.
+/// On a real clock with `parallel`, the positions are read at once, each on its own thread, so
+/// that sixteen slow links take the time of one; readings are due at t0 + k·every, so the time
+/// a round of readings takes does not stretch the pace.
 pub(super) fn settle_until(
     rule: &SettleRule,
     clock: &dyn Clock,
     positions: &mut [Position],
     active: &[bool],
+    parallel: bool,
     interrupt: &AtomicBool,
 ) -> SettleOutcome {
     let t0 = clock.now_s();
     let mut windows: Vec<VecDeque<f64>> = vec![VecDeque::new(); positions.len()];
     let mut waiting: Vec<bool> = active.to_vec();
-    loop {
-        for (i, p) in positions.iter_mut().enumerate() {
-            if !waiting[i] {
-                continue;
-            }
-            match p.link.read(rule.quantity, &rule.channel) {
-                Ok(v) => {
+    let concurrent = parallel && !clock.is_virtual();
+    for k in 1u64.. {
+        for (i, reading) in read_round(rule, positions, &waiting, concurrent) {
+            match reading {
+                Some(v) => {
                     let w = &mut windows[i];
                     w.push_back(v);
                     if w.len() > rule.readings as usize {
                         w.pop_front();
                     }
                 }
-                Err(_) => waiting[i] = false,
+                None => waiting[i] = false,
             }
         }
         let elapsed = clock.now_s() - t0;
@@ -74,15 +76,44 @@ pub(super) fn settle_until(
                 settled: all_stable,
             };
         }
-        if elapsed + rule.every_s > rule.max_s + 1e-9 {
+        let due = k as f64 * rule.every_s;
+        if due > rule.max_s + 1e-9 {
             clock.sleep_s(rule.max_s - elapsed);
             return SettleOutcome {
                 actual_s: clock.now_s() - t0,
                 settled: false,
             };
         }
-        clock.sleep_s(rule.every_s);
+        clock.sleep_s(t0 + due - clock.now_s());
     }
+    unreachable!("the rounds end at the rule's maximum")
+}
+
+/// One reading of the watched quantity from every position still waited for: (index, value),
+/// with `None` for a link that failed.
+fn read_round(
+    rule: &SettleRule,
+    positions: &mut [Position],
+    waiting: &[bool],
+    concurrent: bool,
+) -> Vec<(usize, Option<f64>)> {
+    let read = |p: &mut Position| p.link.read(rule.quantity, &rule.channel).ok();
+    let due = positions
+        .iter_mut()
+        .enumerate()
+        .filter(|(i, _)| waiting[*i]);
+    if !concurrent {
+        return due.map(|(i, p)| (i, read(p))).collect();
+    }
+    std::thread::scope(|scope| {
+        let handles: Vec<_> = due
+            .map(|(i, p)| (i, scope.spawn(move || read(p))))
+            .collect();
+        handles
+            .into_iter()
+            .map(|(i, h)| (i, h.join().ok().flatten()))
+            .collect()
+    })
 }
 
 #[cfg(test)]
