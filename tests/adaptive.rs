@@ -226,3 +226,64 @@ fn adaptive_rules_are_checked_in_the_plan() {
     let e = Plan::from_text("m.yaml", &bad).unwrap_err().to_string();
     assert!(e.contains("max at least min"), "{e}");
 }
+
+/// A reference that answers only after a pause, as an operator typing a reading does.
+struct Unhurried(Box<dyn meterproof::bench::ReferenceMeter>);
+
+impl meterproof::bench::ReferenceMeter for Unhurried {
+    fn read(
+        &mut self,
+        request: &meterproof::bench::ReferenceRequest,
+    ) -> Result<meterproof::bench::ReferenceReading, meterproof::bench::BenchError> {
+        std::thread::sleep(std::time::Duration::from_millis(400));
+        self.0.read(request)
+    }
+}
+
+/// Sampling until decided reads the reference once the minimum is taken; when that takes a
+/// while (here 4 intervals), the samples after it keep their spacing instead of being taken
+/// back to back to catch up with the schedule. Real clock; the assertion is on spacing, which a
+/// loaded machine can only widen.
+#[test]
+fn samples_after_a_slow_reference_keep_their_spacing() {
+    let text = |tolerance: &str| {
+        let demo = std::fs::read_to_string("test-plans/demo.yaml").unwrap();
+        let cut = demo.find("steps:").unwrap();
+        format!(
+            "{}steps:\n  - id: paced\n    load: {{ current: 5 A }}\n    settle: 500 ms\n    samples_until_decided: {{ min: 3, max: 6 }}\n    interval: 100 ms\n    checks:\n      - {{ quantity: current, tolerance: {tolerance} }}\n",
+            &demo[..cut]
+        )
+    };
+    let run = |plan: &Plan| {
+        let config = SimConfig {
+            tau_range_s: (0.01, 0.01),
+            ..config(0.01)
+        };
+        let sim = SimBench::with_clock(
+            &config,
+            std::sync::Arc::new(meterproof::bench::RealClock::default()),
+        );
+        let (_, reference) = sim.instruments();
+        let mut bench = sim.into_bench();
+        bench.reference = Box::new(Unhurried(reference));
+        exec::run(plan, &mut bench, &ctx(), &mut Silent)
+    };
+    // A tolerance equal to the unit's error leaves the decision in doubt to the last sample.
+    let first = run(&Plan::from_text("p.yaml", &text("{ percent: 0.5 % }")).unwrap());
+    let e = first[0].steps[0].checks[0]
+        .evaluation
+        .as_ref()
+        .unwrap()
+        .error;
+    let doubtful =
+        Plan::from_text("d.yaml", &text(&format!("{{ percent: {} % }}", e.abs()))).unwrap();
+    let records = run(&doubtful);
+    let samples = &records[0].steps[0].checks[0].samples;
+    assert_eq!(samples.len(), 6, "{:?}", records[0].steps[0].sampling_note);
+    for pair in samples.windows(2) {
+        let gap = pair[1].t_s - pair[0].t_s;
+        assert!(gap > 0.05, "samples {gap:.3} s apart: {samples:?}");
+    }
+    // The reference's pause lies between the third and the fourth sample.
+    assert!(samples[3].t_s - samples[2].t_s >= 0.4);
+}

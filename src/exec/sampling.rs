@@ -186,6 +186,7 @@ fn in_rounds(
             }
         })
         .collect();
+    let mut due = t0;
     for k in 0..s.step.samples {
         if s.interrupted() {
             for (slot, series) in slots.iter().zip(all.iter_mut()) {
@@ -222,7 +223,10 @@ fn in_rounds(
             if s.clock.is_virtual() {
                 s.clock.sleep_s(s.step.interval_s);
             } else {
-                let due = t0 + f64::from(k + 1) * s.step.interval_s;
+                // On schedule, so that reading times do not add up; but after a round that ran
+                // a whole interval late (the stop rule waited for an operator's reference) the
+                // schedule starts again from now, so no samples are taken back to back.
+                due = (due + s.step.interval_s).max(s.clock.now_s());
                 s.clock.sleep_s(due - s.clock.now_s());
             }
         }
