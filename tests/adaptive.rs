@@ -287,3 +287,52 @@ fn samples_after_a_slow_reference_keep_their_spacing() {
     // The reference's pause lies between the third and the fourth sample.
     assert!(samples[3].t_s - samples[2].t_s >= 0.4);
 }
+
+/// The unit report and its CSV say how long each step settled, whether it was stable, and how
+/// many samples it took under which rule.
+#[test]
+fn reports_show_the_settle_time_and_the_samples_taken() {
+    let plan = adaptive();
+    let templates = meterproof::report::Templates::load(None).unwrap();
+    let settles_slowly = exec::run(
+        &plan,
+        &mut SimBench::new(&config(20.0)).into_bench(),
+        &ctx(),
+        &mut Silent,
+    );
+    let html = templates.unit_html(&settles_slowly[0]).unwrap();
+    assert!(
+        html.contains("not stable within 4.00 s: sampled at the maximum"),
+        "{html}"
+    );
+    let settles = exec::run(
+        &plan,
+        &mut SimBench::new(&config(0.2)).into_bench(),
+        &ctx(),
+        &mut Silent,
+    );
+    let record = &settles[0];
+    let html = templates.unit_html(record).unwrap();
+    let step = &record.steps[2];
+    let shown = format!(
+        "settled in {:.2} s (until stable); {}",
+        step.settle_actual_s.unwrap(),
+        step.sampling_note.as_deref().unwrap()
+    );
+    assert!(html.contains(&shown), "{shown}\n{html}");
+    let csv = meterproof::report::unit_csv(record).unwrap();
+    let mut reader = csv::Reader::from_reader(csv.as_slice());
+    let headers = reader.headers().unwrap().clone();
+    let column = |name: &str| headers.iter().position(|h| h == name).unwrap();
+    let rows: Vec<csv::StringRecord> = reader.records().map(Result::unwrap).collect();
+    let row = rows.iter().find(|r| &r[1] == "basic-Ib").unwrap();
+    assert_eq!(
+        row[column("settle_s")].parse::<f64>().unwrap(),
+        step.settle_actual_s.unwrap()
+    );
+    assert_eq!(&row[column("settled")], "true");
+    assert_eq!(
+        row[column("samples")].parse::<usize>().unwrap(),
+        step.checks[0].samples.len()
+    );
+}

@@ -252,6 +252,10 @@ struct StepView {
     load: String,
     status: &'static str,
     reason: Option<String>,
+    /// How long it settled and how many samples it took, in words.
+    timing: String,
+    /// Settling until stable ran out of time: the samples may hold the tail of the settling.
+    unsettled: bool,
     checks: Vec<CheckView>,
 }
 
@@ -294,9 +298,29 @@ impl StepView {
             load: step.load.describe(),
             status: step_status_word(step.status),
             reason: step.reason.clone(),
+            timing: timing_text(step),
+            unsettled: step.settled == Some(false),
             checks: step.checks.iter().map(CheckView::of).collect(),
         }
     }
+}
+
+/// "settled in 1.35 s (until stable); sampled until decided: 3 samples (at least 3, at most 8)",
+/// or "settle 4.0 s; 8 samples 0.5 s apart".
+pub fn timing_text(step: &StepRecord) -> String {
+    let settle = match (step.settle_actual_s, step.settled) {
+        (Some(t), Some(false)) => format!("not stable within {t:.2} s: sampled at the maximum"),
+        (Some(t), _) => format!("settled in {t:.2} s (until stable)"),
+        (None, _) => format!("settle {}", duration_text(step.settle_s)),
+    };
+    let sampling = step.sampling_note.clone().unwrap_or_else(|| {
+        format!(
+            "{} samples {} apart",
+            step.samples_planned,
+            duration_text(step.interval_s)
+        )
+    });
+    format!("{settle}; {sampling}")
 }
 
 pub fn step_status_word(status: StepStatus) -> &'static str {
@@ -466,6 +490,8 @@ pub fn unit_csv(record: &UnitRecord) -> Result<Vec<u8>, ReportError> {
         "tur",
         "verdict",
         "marginal",
+        "settle_s",
+        "settled",
     ])?;
     let plain = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x}"));
     for step in &record.steps {
@@ -491,6 +517,8 @@ pub fn unit_csv(record: &UnitRecord) -> Result<Vec<u8>, ReportError> {
                 plain(c.decision.as_ref().and_then(|d| d.tur)),
                 c.verdict.word().to_lowercase().replace(' ', "_"),
                 c.marginal().to_string(),
+                plain(step.settle_actual_s.or(Some(step.settle_s))),
+                step.settled.map_or(String::new(), |b| b.to_string()),
             ])?;
         }
     }
