@@ -269,6 +269,23 @@ fn station_summary(s: &Station) -> String {
     )
 }
 
+/// "40.5 s", or "40.5 s at most (adaptive steps end sooner)" for a plan with adaptive steps.
+fn scheduled_text(plan: &Plan) -> String {
+    let adaptive = plan
+        .steps
+        .iter()
+        .any(|s| s.settle_until.is_some() || s.sequential.is_some());
+    format!(
+        "{}{}",
+        report::duration_text(plan.scheduled_s()),
+        if adaptive {
+            " at most (adaptive steps end sooner)"
+        } else {
+            ""
+        }
+    )
+}
+
 /// "settle 4 s", or "settle until current stable within 0.3 % (0.5 s to 4 s)".
 fn settle_text(step: &crate::plan::Step) -> String {
     let Some(rule) = &step.settle_until else {
@@ -299,7 +316,7 @@ fn samples_text(step: &crate::plan::Step) -> String {
 /// What `check` prints for a valid plan: one line for the plan, one per step.
 pub fn plan_summary(plan: &Plan) -> String {
     let mut s = format!(
-        "{}: plan {} revision {} for {}, class {}: {} steps, {} checks, scheduled bench time {}{}\n",
+        "{}: plan {} revision {} for {}, class {}: {} steps, {} checks, scheduled bench time {}\n",
         plan.source.file,
         plan.id,
         plan.revision,
@@ -307,16 +324,7 @@ pub fn plan_summary(plan: &Plan) -> String {
         plan.ratings.class,
         plan.steps.len(),
         plan.check_count(),
-        report::duration_text(plan.scheduled_s()),
-        if plan
-            .steps
-            .iter()
-            .any(|s| s.settle_until.is_some() || s.sequential.is_some())
-        {
-            " at most (adaptive steps end sooner)"
-        } else {
-            ""
-        }
+        scheduled_text(plan)
     );
     for step in &plan.steps {
         let checks: Vec<String> = step
@@ -941,7 +949,7 @@ impl Reporter for TerminalReporter {
                 plan.id,
                 plan.revision,
                 plan.product.model,
-                report::duration_text(plan.scheduled_s())
+                scheduled_text(plan)
             ),
             Event::UnitIdentified { position, identity } => eprintln!(
                 "  position {position}: {} serial {} firmware {}",
