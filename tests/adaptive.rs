@@ -116,6 +116,24 @@ fn clear_decisions_stop_sampling_at_the_minimum_and_doubtful_ones_take_the_maxim
         &mut Silent,
     );
     assert_eq!(records[0].steps[2].checks[0].samples.len(), 8);
+    // Under simple acceptance the acceptance limit is the tolerance itself: a reading at the
+    // acceptance limit is in doubt the same way.
+    let simple = text.replace(
+        "decision: { rule: guarded, guard_band: 1 U }",
+        "decision: { rule: simple }",
+    );
+    assert_ne!(simple, text);
+    let simple = Plan::from_text("simple.yaml", &simple).unwrap();
+    let records = exec::run(
+        &simple,
+        &mut SimBench::new(&config(0.2)).into_bench(),
+        &ctx(),
+        &mut Silent,
+    );
+    let voltage = &records[0].steps[2].checks[0];
+    let d = voltage.decision.as_ref().unwrap();
+    assert_eq!(d.acceptance_limit, d.tolerance_limit);
+    assert_eq!(voltage.samples.len(), 8);
 }
 
 /// The active energy and active power errors of one unit's step, and their U.
