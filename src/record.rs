@@ -188,9 +188,25 @@ pub struct ReferenceRecord {
 /// One raw reading from the unit.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct Sample {
-    /// Bench time, seconds.
+    /// Bench time, seconds: the middle of the transaction that read it.
     pub t_s: f64,
     pub value: f64,
+    /// How long the transaction took, request to reply (with any retries), when it took bench
+    /// time: the unit took the reading at some moment within it, so `t_s` is known to ± half
+    /// of this. Absent on the virtual clock, where a reading takes no time.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub took_s: Option<f64>,
+}
+
+impl Sample {
+    /// A reading taken at one known instant.
+    pub fn at(t_s: f64, value: f64) -> Sample {
+        Sample {
+            t_s,
+            value,
+            took_s: None,
+        }
+    }
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]

@@ -409,3 +409,44 @@ fn a_run_killed_mid_way_resumes_with_no_reading_lost() {
     assert_eq!(code, 2, "a finished run cannot be resumed");
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// An archive from before readings kept their transaction time opens, gains the column, and its
+/// old records still verify and read back whole.
+#[test]
+fn an_archive_without_reading_durations_is_brought_up_to_date() {
+    let dir = temp_dir("migrate");
+    let archive = dir.join("a.sqlite");
+    let out = dir.join("out");
+    let out = out.to_str().unwrap();
+    assert_eq!(
+        run_demo(Path::new(out), &["--archive", archive.to_str().unwrap()]),
+        1
+    );
+    let serial: String = Connection::open(&archive)
+        .unwrap()
+        .query_row("SELECT serial FROM units LIMIT 1", [], |r| r.get(0))
+        .unwrap();
+    let records = |path: &Path| {
+        meterproof::archive::Archive::open(path)
+            .unwrap()
+            .serial_records(&serial)
+            .unwrap()
+    };
+    let before = records(&archive);
+    assert!(!before.is_empty());
+    Connection::open(&archive)
+        .unwrap()
+        .execute_batch("ALTER TABLE readings DROP COLUMN took_s")
+        .unwrap();
+    let (code, text) = cmd(&["verify"], &archive);
+    assert_eq!(code, 0, "{text}");
+    let conn = Connection::open(&archive).unwrap();
+    let has: bool = conn
+        .prepare("SELECT 1 FROM pragma_table_info('readings') WHERE name = 'took_s'")
+        .unwrap()
+        .exists([])
+        .unwrap();
+    assert!(has);
+    assert_eq!(before, records(&archive));
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -126,3 +126,50 @@ fn no_load_and_starting_tests_follow_the_class_tables() {
         assert_eq!(failed, ["creep"], "{:?}", r.verdict);
     }
 }
+
+/// On a real clock every reading knows how long its transaction took, and an energy register's
+/// budget carries the timing of its two ends: ± half of each transaction, at the window's mean
+/// power, in quadrature (GUM 4.3.7, rectangular).
+#[test]
+fn a_registers_budget_carries_the_timing_of_its_readings() {
+    let text = demo_text();
+    let cut = text.find("steps:").unwrap();
+    let plan = Plan::from_text(
+        "energy.yaml",
+        &format!(
+            "{}steps:\n  - id: energy\n    load: {{ current: 16 A }}\n    settle: 1 s\n    samples: 3\n    interval: 1 s\n    checks:\n      - {{ quantity: active_energy, tolerance: {{ class: true }} }}\n",
+            &text[..cut]
+        ),
+    )
+    .unwrap();
+    let config = SimConfig {
+        plant_defect: false,
+        ..SimConfig::new(3, 1)
+    };
+    let clock = std::sync::Arc::new(meterproof::bench::RealClock::scaled(50.0));
+    let records = exec::run(
+        &plan,
+        &mut SimBench::with_clock(&config, clock).into_bench(),
+        &ctx(),
+        &mut Silent,
+    );
+    let check = &records[0].steps[0].checks[0];
+    let (first, last) = (check.samples[0], check.samples[2]);
+    assert!(first.took_s.is_some_and(|t| t > 0.0), "{first:?}");
+    let budget = check.uncertainty.as_ref().unwrap();
+    let timing = budget
+        .components
+        .iter()
+        .find(|c| c.name == "timing of the register's two readings")
+        .expect("a timing component");
+    let a = (first.took_s.unwrap() / 2.0).hypot(last.took_s.unwrap() / 2.0);
+    let advance = last.value - first.value;
+    let reference = check.reference.unwrap();
+    // In percent of the reference: 100 / reference × advance × a / span, over √3.
+    let expected = 100.0 / reference * advance * a / (last.t_s - first.t_s) / 3f64.sqrt();
+    assert!(
+        (timing.u - expected).abs() <= 1e-9 * expected.max(1e-12),
+        "{} against {expected}",
+        timing.u
+    );
+}

@@ -41,7 +41,8 @@ CREATE TABLE IF NOT EXISTS run_units (
 CREATE TABLE IF NOT EXISTS readings (
     id INTEGER PRIMARY KEY, run_id TEXT NOT NULL, position INTEGER NOT NULL,
     step_index INTEGER NOT NULL, attempt INTEGER NOT NULL, quantity TEXT NOT NULL,
-    channel TEXT NOT NULL, raw INTEGER NOT NULL, t_s REAL NOT NULL, value REAL NOT NULL);
+    channel TEXT NOT NULL, raw INTEGER NOT NULL, t_s REAL NOT NULL, value REAL NOT NULL,
+    took_s REAL);
 CREATE INDEX IF NOT EXISTS readings_unit ON readings(run_id, position, step_index, attempt);
 CREATE TABLE IF NOT EXISTS steps (
     run_id TEXT NOT NULL, position INTEGER NOT NULL, step_index INTEGER NOT NULL,
@@ -60,12 +61,25 @@ fn set_up(conn: &Connection) -> rusqlite::Result<()> {
     conn.pragma_update(None, "synchronous", "FULL")?;
     conn.pragma_update(None, "foreign_keys", "ON")?;
     conn.execute_batch(SCHEMA)?;
+    add_reading_durations(conn)?;
     // Proves the file writable now, not at the end of the run.
     conn.execute(
         "INSERT INTO meta (key, value) VALUES ('last_opened', ?1)
          ON CONFLICT(key) DO UPDATE SET value = excluded.value",
         [chrono::Utc::now().to_rfc3339()],
     )?;
+    Ok(())
+}
+
+/// Archives written before readings kept their transaction's duration get the column, empty
+/// for their old rows (their records' hashes stay valid: an absent duration is not serialised).
+fn add_reading_durations(conn: &Connection) -> rusqlite::Result<()> {
+    let has = conn
+        .prepare("SELECT 1 FROM pragma_table_info('readings') WHERE name = 'took_s'")?
+        .exists([])?;
+    if !has {
+        conn.execute_batch("ALTER TABLE readings ADD COLUMN took_s REAL")?;
+    }
     Ok(())
 }
 
@@ -627,7 +641,8 @@ impl Archive {
                                 ch,
                                 raw,
                                 s.t_s,
-                                s.value
+                                s.value,
+                                s.took_s
                             ])?;
                         }
                     }
@@ -691,8 +706,8 @@ fn set_chain_head(conn: &Connection, seq: i64, hash: &str) -> rusqlite::Result<(
     Ok(())
 }
 
-const INSERT_READING: &str = "INSERT INTO readings (run_id, position, step_index, attempt, quantity, channel, raw, t_s, value)
-     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9)";
+const INSERT_READING: &str = "INSERT INTO readings (run_id, position, step_index, attempt, quantity, channel, raw, t_s, value, took_s)
+     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10)";
 
 /// A stored (stripped) unit record with its samples put back from the readings.
 fn reassemble(conn: &Connection, text: &str) -> Result<UnitRecord, ArchiveError> {
@@ -715,7 +730,7 @@ fn fill_step_samples(
     step: &mut StepRecord,
 ) -> Result<(), ArchiveError> {
     let mut stmt = conn.prepare_cached(
-        "SELECT quantity, channel, raw, t_s, value FROM readings
+        "SELECT quantity, channel, raw, t_s, value, took_s FROM readings
          WHERE run_id = ?1 AND position = ?2 AND step_index = ?3 AND attempt = ?4 ORDER BY id",
     )?;
     let mut by_key: BTreeMap<(String, String, bool), Vec<Sample>> = BTreeMap::new();
@@ -729,6 +744,7 @@ fn fill_step_samples(
                 Sample {
                     t_s: r.get(3)?,
                     value: r.get(4)?,
+                    took_s: r.get(5)?,
                 },
             ))
         },
@@ -753,54 +769,125 @@ fn fill_step_samples(
 }
 
 /// The archive, recording one run.
+///
+/// Readings are committed before `reading` returns, as they are taken; readings that arrive
+/// from several positions at once while a commit is in flight are committed together, in one
+/// transaction, by whichever of their threads gets the connection first (group commit). Sixteen
+/// positions sampled together then cost two fsyncs a round, not sixteen.
 pub struct RunRecorder<'a> {
-    pub archive: &'a Archive,
-    pub run_id: String,
+    archive: &'a Archive,
+    run_id: String,
+    pending: Mutex<PendingReadings>,
+}
+
+/// Readings handed over but not yet committed, and how far the commits have got.
+#[derive(Default)]
+struct PendingReadings {
+    rows: Vec<(ReadingKey, Sample)>,
+    /// Readings handed over so far, and readings committed so far (a reading's ticket is its
+    /// place in that count).
+    handed: u64,
+    committed: u64,
+}
+
+impl<'a> RunRecorder<'a> {
+    pub fn new(archive: &'a Archive, run_id: &str) -> RunRecorder<'a> {
+        RunRecorder {
+            archive,
+            run_id: run_id.to_string(),
+            pending: Mutex::new(PendingReadings::default()),
+        }
+    }
+
+    fn pending(&self) -> std::sync::MutexGuard<'_, PendingReadings> {
+        self.pending.lock().unwrap_or_else(|p| p.into_inner())
+    }
+}
+
+/// Writes one position's record of one step, without its samples (those are the readings).
+fn insert_step(
+    conn: &Connection,
+    run_id: &str,
+    position: usize,
+    step_index: usize,
+    record: &StepRecord,
+) -> rusqlite::Result<usize> {
+    let mut r = record.clone();
+    for c in &mut r.checks {
+        c.samples.clear();
+    }
+    if let Some(p) = &mut r.calibration_point {
+        p.samples.clear();
+    }
+    let text = serde_json::to_string(&r).expect("a step record serialises");
+    conn.execute(
+        "INSERT OR REPLACE INTO steps (run_id, position, step_index, attempt, status, record)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+        params![
+            run_id,
+            position as i64,
+            step_index as i64,
+            record.attempt as i64,
+            status_word(record.status),
+            text
+        ],
+    )
 }
 
 impl Recorder for RunRecorder<'_> {
     fn reading(&self, key: &ReadingKey, sample: Sample) {
+        let ticket = {
+            let mut p = self.pending();
+            p.rows.push((key.clone(), sample));
+            p.handed += 1;
+            p.handed
+        };
         let conn = self.archive.conn();
-        let result = conn.prepare_cached(INSERT_READING).and_then(|mut stmt| {
-            stmt.execute(params![
-                &self.run_id,
-                key.position as i64,
-                key.step_index as i64,
-                key.attempt as i64,
-                key.quantity.name(),
-                key.channel,
-                key.raw,
-                sample.t_s,
-                sample.value
-            ])
+        let (rows, upto) = {
+            let mut p = self.pending();
+            if p.committed >= ticket {
+                // Committed by the thread that held the connection meanwhile.
+                return;
+            }
+            (std::mem::take(&mut p.rows), p.handed)
+        };
+        let result = conn.unchecked_transaction().and_then(|tx| {
+            {
+                let mut stmt = tx.prepare_cached(INSERT_READING)?;
+                for (key, sample) in &rows {
+                    stmt.execute(params![
+                        &self.run_id,
+                        key.position as i64,
+                        key.step_index as i64,
+                        key.attempt as i64,
+                        key.quantity.name(),
+                        key.channel,
+                        key.raw,
+                        sample.t_s,
+                        sample.value,
+                        sample.took_s
+                    ])?;
+                }
+            }
+            tx.commit()
         });
+        self.pending().committed = upto;
         drop(conn);
         if let Err(e) = result {
             self.archive.note_error("writing a reading", e);
         }
     }
 
-    fn step_finished(&self, position: usize, step_index: usize, record: &StepRecord) {
-        let mut r = record.clone();
-        for c in &mut r.checks {
-            c.samples.clear();
-        }
-        if let Some(p) = &mut r.calibration_point {
-            p.samples.clear();
-        }
-        let text = serde_json::to_string(&r).expect("a step record serialises");
-        let result = self.archive.conn().execute(
-            "INSERT OR REPLACE INTO steps (run_id, position, step_index, attempt, status, record)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
-            params![
-                &self.run_id,
-                position as i64,
-                step_index as i64,
-                record.attempt as i64,
-                status_word(record.status),
-                text
-            ],
-        );
+    fn step_finished(&self, step_index: usize, records: &[(usize, &StepRecord)]) {
+        let conn = self.archive.conn();
+        // One transaction for all positions: one commit (one fsync) per step, not one per unit.
+        let result = conn.unchecked_transaction().and_then(|tx| {
+            for (position, record) in records {
+                insert_step(&tx, &self.run_id, *position, step_index, record)?;
+            }
+            tx.commit()
+        });
+        drop(conn);
         if let Err(e) = result {
             self.archive.note_error("writing a step record", e);
         }

@@ -84,10 +84,7 @@ pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
     let run_dir = args.out.join(&run.run_id);
     std::fs::create_dir_all(&run_dir)
         .map_err(|e| CliError::Run(format!("cannot create {}: {e}", run_dir.display())))?;
-    let recorder = RunRecorder {
-        archive: &archive,
-        run_id: run.run_id.clone(),
-    };
+    let recorder = RunRecorder::new(&archive, &run.run_id);
     let mut reporter = TerminalReporter::new(args.quiet);
     let records = exec::run_with(
         &plan,

@@ -500,10 +500,7 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
         )
         .map_err(|e| CliError::Run(e.to_string()))?;
     let mut reporter = TerminalReporter::new(args.quiet);
-    let recorder = RunRecorder {
-        archive: &archive,
-        run_id: ctx.run_id.clone(),
-    };
+    let recorder = RunRecorder::new(&archive, &ctx.run_id);
     let records = exec::run_with(&plan, &mut bench, &ctx, &mut reporter, &recorder, None);
     finish_run(&archive, &ctx.run_id, &records)?;
     let written = write_outputs(&run_dir, &records, &templates)?;

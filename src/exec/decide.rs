@@ -220,6 +220,16 @@ fn budget(
         )),
         None => notes.push("the link does not state the unit's resolution: not included".into()),
     }
+    if check.quantity.is_register()
+        && let Some(a) = register_timing_half_width(&record.samples, measured)
+    {
+        components.push(uncertainty::rectangular(
+            "timing of the register's two readings",
+            a,
+            c_unit,
+            "half of each reading's transaction time, at the window's mean power",
+        ));
+    }
     if let Some(r) = reference {
         match reference_half_width(check, r, judge, span_s) {
             Ok((a, basis)) => components.push(uncertainty::rectangular(
@@ -304,6 +314,18 @@ pub fn failure_text(c: &CheckRecord) -> String {
     )
 }
 
+/// The half-width of a register advance's error from not knowing exactly when its two ends were
+/// read: each reading lies somewhere within its transaction (± half of it), which at the
+/// window's mean power is ± advance · (half the transaction time) / span. The two ends are
+/// independent, so their half-widths add in quadrature. `None` when the readings took no time.
+fn register_timing_half_width(samples: &[crate::record::Sample], advance: f64) -> Option<f64> {
+    let (first, last) = (samples.first()?, samples.last()?);
+    let span = last.t_s - first.t_s;
+    let half = |s: &crate::record::Sample| s.took_s.unwrap_or(0.0) / 2.0;
+    let a = half(first).hypot(half(last));
+    (span > 0.0 && a > 0.0).then(|| advance.abs() * a / span)
+}
+
 /// The share of the reference's window that a unit's register readings span. The reference
 /// energy is for the whole window; a unit whose first or last reading came late (a retry) saw
 /// less of it. The load is steady after settling, so energy scales with time.
@@ -372,9 +394,24 @@ mod tests {
     use super::*;
     use crate::record::Sample;
 
+    /// 10 Wh over 10 s with each end read in a 40 ms transaction: each end is known to ±20 ms,
+    /// ±0.02 Wh at 1 Wh/s, and the two together to ±0.02·√2 Wh.
+    #[test]
+    fn the_timing_of_a_registers_readings_is_an_uncertainty() {
+        let read = |t_s, value| Sample {
+            t_s,
+            value,
+            took_s: Some(0.040),
+        };
+        let a = register_timing_half_width(&[read(0.0, 0.0), read(10.0, 10.0)], 10.0).unwrap();
+        assert!((a - 0.02 * 2f64.sqrt()).abs() < 1e-12, "{a}");
+        let instant = [Sample::at(0.0, 0.0), Sample::at(10.0, 10.0)];
+        assert_eq!(register_timing_half_width(&instant, 10.0), None);
+    }
+
     #[test]
     fn a_register_read_late_covers_less_of_the_window() {
-        let s = |t_s| Sample { t_s, value: 0.0 };
+        let s = |t_s| Sample::at(t_s, 0.0);
         assert_eq!(register_share(&[s(1.0), s(6.0)], (0.0, 10.0)), 0.5);
         assert_eq!(register_share(&[s(0.0), s(10.0)], (0.0, 10.0)), 1.0);
         assert_eq!(register_share(&[], (0.0, 10.0)), 1.0);

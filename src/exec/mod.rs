@@ -89,7 +89,8 @@ impl Reporter for Silent {
 /// own first error; the engine carries on (the records are also returned and exported).
 pub trait Recorder: Sync {
     fn reading(&self, key: &ReadingKey, sample: Sample);
-    fn step_finished(&self, position: usize, step_index: usize, record: &StepRecord);
+    /// Every position's record of one step, (position, record), when the step ends.
+    fn step_finished(&self, step_index: usize, records: &[(usize, &StepRecord)]);
     /// A unit has identified itself (or failed to) and its testing begins.
     fn unit_started(&self, _record: &UnitRecord) {}
     fn unit_finished(&self, record: &UnitRecord);
@@ -111,7 +112,7 @@ pub struct NoRecorder;
 
 impl Recorder for NoRecorder {
     fn reading(&self, _: &ReadingKey, _: Sample) {}
-    fn step_finished(&self, _: usize, _: usize, _: &StepRecord) {}
+    fn step_finished(&self, _: usize, _: &[(usize, &StepRecord)]) {}
     fn unit_finished(&self, _: &UnitRecord) {}
 }
 
@@ -780,10 +781,16 @@ fn run_step(
                 missing_reference.join("; ")
             ));
         }
-        sc.recorder
-            .step_finished(unit.record.position, sc.index, &record);
         unit.record.steps.push(record);
     }
+    // One write for the whole step: a single commit for all positions.
+    let finished: Vec<(usize, &StepRecord)> = units
+        .iter()
+        .zip(sc.to_run)
+        .filter(|(_, run)| **run)
+        .filter_map(|(u, _)| Some((u.record.position, u.record.steps.last()?)))
+        .collect();
+    sc.recorder.step_finished(sc.index, &finished);
     // An operator who aborted at a reference prompt, or Ctrl-C, ends the run here.
     let aborted = references.iter().find_map(|(_, r)| {
         r.as_ref()

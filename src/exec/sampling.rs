@@ -103,8 +103,9 @@ pub(super) fn sample_step(
 }
 
 /// Reads every wanted quantity once from one unit, keeping each reading as it arrives. Each
-/// reading is stamped with the time its reply arrived: after a retry that can be well after the
-/// sample was due, and a register's advance must be set against the time it really covers.
+/// reading is stamped with the middle of its transaction and how long that took: after a retry
+/// that can be well after the sample was due, and a register's advance must be set against the
+/// time it really covers, with the uncertainty of when each end was read.
 /// Returns the fault that stopped the series, if one did.
 fn read_once(
     s: Sampler,
@@ -114,6 +115,7 @@ fn read_once(
     series: &mut Series,
 ) -> Option<String> {
     for (w, want) in s.wanted.iter().enumerate() {
+        let asked = s.clock.now_s();
         let reading = if want.raw {
             link.read_raw(want.quantity, &want.channel)
         } else {
@@ -121,9 +123,12 @@ fn read_once(
         };
         match reading {
             Ok(value) => {
+                let answered = s.clock.now_s();
+                let took = answered - asked;
                 let sample = Sample {
-                    t_s: s.clock.now_s(),
+                    t_s: asked + took / 2.0,
                     value,
+                    took_s: (took > 0.0).then_some(took),
                 };
                 series.samples[w].push(sample);
                 (s.on_reading)(slot, w, sample);

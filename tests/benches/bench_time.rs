@@ -162,7 +162,7 @@ fn main() {
         );
     }
 
-    println!("real-time overhead over the scheduled time (simulator on a real clock, archive on):");
+    println!("real-time overhead over the scheduled time (simulator on a real clock):");
     let text = std::fs::read_to_string("test-plans/demo.yaml").unwrap();
     let cut = text.find("steps:").unwrap();
     let mut quick = format!("{}steps:\n", &text[..cut]);
@@ -173,27 +173,35 @@ fn main() {
     }
     let quick = Plan::from_text("quick.yaml", &quick).unwrap();
     let scheduled = quick.scheduled_s();
+    let steps = quick.steps.len() as f64;
+    let allowed = scheduled * 1.01 + 0.020 * steps;
     let dir = std::env::temp_dir().join(format!("meterproof-bench-time-{}", std::process::id()));
     std::fs::create_dir_all(&dir).unwrap();
     for positions in [1usize, 16] {
-        let mut config = SimConfig::new(7, positions);
-        config.plant_defect = false;
-        let mut bench = SimBench::with_clock(&config, Arc::new(RealClock::default())).into_bench();
-        bench.parallel = true;
-        let archive = Archive::open(&dir.join(format!("a{positions}.sqlite"))).unwrap();
-        let recorder = RunRecorder {
-            archive: &archive,
-            run_id: format!("rt{positions}"),
-        };
-        let start = Instant::now();
-        exec::run_with(&quick, &mut bench, &ctx(), &mut Silent, &recorder, None);
-        let wall = start.elapsed().as_secs_f64();
-        let allowed = scheduled * 1.01 + 0.020 * quick.steps.len() as f64;
-        println!(
-            "  {positions:>2} positions: {wall:.3} s for {scheduled:.3} s scheduled: overhead {:.1} ms per step (allowed {:.1} ms per step)",
-            (wall - scheduled) * 1000.0 / quick.steps.len() as f64,
-            (allowed - scheduled) * 1000.0 / quick.steps.len() as f64
-        );
+        for archived in [false, true] {
+            let mut config = SimConfig::new(7, positions);
+            config.plant_defect = false;
+            let mut bench =
+                SimBench::with_clock(&config, Arc::new(RealClock::default())).into_bench();
+            bench.parallel = true;
+            let archive =
+                Archive::open(&dir.join(format!("a{positions}-{archived}.sqlite"))).unwrap();
+            let recorder = RunRecorder::new(&archive, &format!("rt{positions}"));
+            let recorder: &dyn exec::Recorder = if archived {
+                &recorder
+            } else {
+                &exec::NoRecorder
+            };
+            let start = Instant::now();
+            exec::run_with(&quick, &mut bench, &ctx(), &mut Silent, recorder, None);
+            let wall = start.elapsed().as_secs_f64();
+            println!(
+                "  {positions:>2} positions, archive {}: {wall:.3} s for {scheduled:.3} s scheduled: overhead {:.1} ms per step (allowed {:.1} ms per step)",
+                if archived { "on " } else { "off" },
+                (wall - scheduled) * 1000.0 / steps,
+                (allowed - scheduled) * 1000.0 / steps
+            );
+        }
     }
     std::fs::remove_dir_all(&dir).unwrap();
 }
