@@ -18,16 +18,21 @@ fn config(tau_s: f64) -> SimConfig {
     }
 }
 
+/// Runs a plan on two simulated meters that settle with time constant `tau_s`.
+fn run_at(plan: &Plan, tau_s: f64) -> Vec<meterproof::record::UnitRecord> {
+    exec::run(
+        plan,
+        &mut SimBench::new(&config(tau_s)).into_bench(),
+        &ctx(),
+        &mut Silent,
+    )
+}
+
 #[test]
 fn a_unit_that_never_settles_is_waited_for_until_the_maximum_and_says_so() {
     let plan = adaptive();
     // A time constant of 20 s: nothing is stable within the rule's 4 s.
-    let records = exec::run(
-        &plan,
-        &mut SimBench::new(&config(20.0)).into_bench(),
-        &ctx(),
-        &mut Silent,
-    );
+    let records = run_at(&plan, 20.0);
     let step = &records[0].steps[2]; // basic-Ib, settled by the defaults' rule
     assert_eq!(step.settled, Some(false));
     assert!(
@@ -40,12 +45,7 @@ fn a_unit_that_never_settles_is_waited_for_until_the_maximum_and_says_so() {
 #[test]
 fn a_unit_that_settles_at_once_waits_only_the_minimum_and_a_full_window() {
     let plan = adaptive();
-    let records = exec::run(
-        &plan,
-        &mut SimBench::new(&config(0.001)).into_bench(),
-        &ctx(),
-        &mut Silent,
-    );
+    let records = run_at(&plan, 0.001);
     let step = &records[0].steps[2];
     assert_eq!(step.settled, Some(true));
     // Four readings 150 ms apart fill the window at 0.45 s; the rule's minimum is 0.5 s.
@@ -56,12 +56,7 @@ fn a_unit_that_settles_at_once_waits_only_the_minimum_and_a_full_window() {
 #[test]
 fn clear_decisions_stop_sampling_at_the_minimum_and_doubtful_ones_take_the_maximum() {
     let plan = adaptive();
-    let records = exec::run(
-        &plan,
-        &mut SimBench::new(&config(0.2)).into_bench(),
-        &ctx(),
-        &mut Silent,
-    );
+    let records = run_at(&plan, 0.2);
     for r in &records {
         for s in &r.steps {
             let n = s.checks[0].samples.len() as u32;
@@ -109,12 +104,7 @@ fn clear_decisions_stop_sampling_at_the_minimum_and_doubtful_ones_take_the_maxim
             &format!("      - {{ quantity: voltage, tolerance: {{ percent: {e} % }} }}"),
         );
     let tight = Plan::from_text("tight.yaml", &text).unwrap();
-    let records = exec::run(
-        &tight,
-        &mut SimBench::new(&config(0.2)).into_bench(),
-        &ctx(),
-        &mut Silent,
-    );
+    let records = run_at(&tight, 0.2);
     assert_eq!(records[0].steps[2].checks[0].samples.len(), 8);
     // Under simple acceptance the acceptance limit is the tolerance itself: a reading at the
     // acceptance limit is in doubt the same way.
@@ -124,12 +114,7 @@ fn clear_decisions_stop_sampling_at_the_minimum_and_doubtful_ones_take_the_maxim
     );
     assert_ne!(simple, text);
     let simple = Plan::from_text("simple.yaml", &simple).unwrap();
-    let records = exec::run(
-        &simple,
-        &mut SimBench::new(&config(0.2)).into_bench(),
-        &ctx(),
-        &mut Silent,
-    );
+    let records = run_at(&simple, 0.2);
     let voltage = &records[0].steps[2].checks[0];
     let d = voltage.decision.as_ref().unwrap();
     assert_eq!(d.acceptance_limit, d.tolerance_limit);
@@ -155,14 +140,7 @@ fn energy_and_power(step: &meterproof::record::StepRecord) -> ((f64, f64), (f64,
 fn an_energy_register_sampled_until_decided_agrees_with_the_power_reading() {
     let plan = adaptive();
     let imax = plan.steps.iter().position(|s| s.id == "max-Imax").unwrap();
-    let run = |plan: &Plan| {
-        exec::run(
-            plan,
-            &mut SimBench::new(&config(0.2)).into_bench(),
-            &ctx(),
-            &mut Silent,
-        )
-    };
+    let run = |plan: &Plan| run_at(plan, 0.2);
     let agree = |step: &meterproof::record::StepRecord| {
         let ((e_energy, u_energy), (e_power, u_power)) = energy_and_power(step);
         assert!(
@@ -312,23 +290,13 @@ fn samples_after_a_slow_reference_keep_their_spacing() {
 fn reports_show_the_settle_time_and_the_samples_taken() {
     let plan = adaptive();
     let templates = meterproof::report::Templates::load(None).unwrap();
-    let settles_slowly = exec::run(
-        &plan,
-        &mut SimBench::new(&config(20.0)).into_bench(),
-        &ctx(),
-        &mut Silent,
-    );
+    let settles_slowly = run_at(&plan, 20.0);
     let html = templates.unit_html(&settles_slowly[0]).unwrap();
     assert!(
         html.contains("not stable within 4.00 s: sampled at the maximum"),
         "{html}"
     );
-    let settles = exec::run(
-        &plan,
-        &mut SimBench::new(&config(0.2)).into_bench(),
-        &ctx(),
-        &mut Silent,
-    );
+    let settles = run_at(&plan, 0.2);
     let record = &settles[0];
     let html = templates.unit_html(record).unwrap();
     let step = &record.steps[2];
