@@ -450,3 +450,58 @@ fn an_archive_without_reading_durations_is_brought_up_to_date() {
     assert_eq!(before, records(&archive));
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// An archive that stops taking readings mid-run (here a trigger stands in for a full disk):
+/// the operator is told at once, the run goes on, every record is still written as a file, and
+/// the run ends with exit 3 naming the archive's error.
+#[test]
+fn an_archive_that_fails_mid_run_is_said_at_once_and_loses_no_record() {
+    let dir = temp_dir("full");
+    let archive = dir.join("a.sqlite");
+    drop(meterproof::archive::Archive::open(&archive).unwrap());
+    Connection::open(&archive)
+        .unwrap()
+        .execute_batch(
+            "CREATE TRIGGER full BEFORE INSERT ON readings
+             WHEN (SELECT COUNT(*) FROM readings) >= 40
+             BEGIN SELECT RAISE(ABORT, 'database or disk is full (simulated)'); END;",
+        )
+        .unwrap();
+    let out = dir.join("out");
+    let o = bin()
+        .args(["run", "test-plans/demo.yaml", "--out"])
+        .arg(&out)
+        .arg("--archive")
+        .arg(&archive)
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(3), "{stderr}");
+    // Forty readings are the first step and a half: the warning comes before the last step.
+    let warned = stderr
+        .find("ARCHIVE: writing a reading: database or disk is full (simulated)")
+        .unwrap_or_else(|| panic!("{stderr}"));
+    assert!(warned < stderr.find("[5/5]").unwrap(), "{stderr}");
+    assert!(
+        stderr.contains("the archive did not take every reading"),
+        "{stderr}"
+    );
+    // The verdicts are still summed up for the operator.
+    let stdout = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        stdout.contains("3 accepted, 1 rejected, 0 incomplete"),
+        "{stdout}"
+    );
+    // Every unit's record is there as a file, whole.
+    let records = common::records_in(&out);
+    assert_eq!(records.len(), 4);
+    for r in &records {
+        assert_ne!(r.verdict.status, UnitStatus::Incomplete, "{:?}", r.verdict);
+        assert!(
+            r.steps
+                .iter()
+                .all(|s| s.checks.iter().all(|c| !c.samples.is_empty()))
+        );
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -904,4 +904,8 @@ impl Recorder for RunRecorder<'_> {
             self.archive.note_error("writing a unit record", e);
         }
     }
+
+    fn failure(&self) -> Option<String> {
+        self.archive.failure()
+    }
 }

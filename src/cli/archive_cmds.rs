@@ -94,7 +94,12 @@ pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
         &recorder,
         Some(&state),
     );
-    finish_run(&archive, &run.run_id, &records)?;
+    if let Err(e) = finish_run(&archive, &run.run_id, &records) {
+        // The archive failed: the engine's records, as files, are what is left of the run.
+        let written = write_outputs(&run_dir, &records, &templates)?;
+        print_summary(&records, &written);
+        return Err(e);
+    }
     // Units that had already finished keep the record the archive has.
     let records = archive.unit_records(&run.run_id).map_err(db)?;
     let mut records = records;

@@ -502,8 +502,10 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
     let mut reporter = TerminalReporter::new(args.quiet);
     let recorder = RunRecorder::new(&archive, &ctx.run_id);
     let records = exec::run_with(&plan, &mut bench, &ctx, &mut reporter, &recorder, None);
-    finish_run(&archive, &ctx.run_id, &records)?;
+    // The files and the summary first: when the archive failed, they are what is left of the
+    // run, and its error is the last word.
     let written = write_outputs(&run_dir, &records, &templates)?;
+    let archived = finish_run(&archive, &ctx.run_id, &records);
     if let Some(path) = &args.junit {
         write_file(path, report::run_junit(&records))?;
     }
@@ -512,6 +514,7 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
             "{}",
             serde_json::to_string_pretty(&records).expect("records serialise")
         );
+        archived?;
         return Ok(exit_status(&records));
     }
     print_summary(&records, &written);
@@ -528,6 +531,7 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
         wall.elapsed().as_secs_f64(),
         run_dir.display()
     );
+    archived?;
     Ok(exit_status(&records))
 }
 
@@ -980,6 +984,12 @@ impl Reporter for TerminalReporter {
                     })
                     .collect();
                 eprintln!("      {}", marks.join(" "));
+            }
+            Event::RecordingFailed { what } => {
+                self.stop_bar();
+                eprintln!(
+                    "ARCHIVE: {what}. The run goes on: its records will be written as files at the end; the archive is not complete for this run."
+                );
             }
             Event::RunFinished { .. } => {}
         }

@@ -66,6 +66,12 @@ pub enum Event<'a> {
         /// (position, status, failed checks) for each unit tested at this step.
         results: Vec<(usize, StepStatus, usize)>,
     },
+    /// The recorder could not keep something (the archive's disk is full, say): said once, as
+    /// soon as it is seen after a step, so the operator knows before the run ends. The run goes
+    /// on; the records are still returned whole.
+    RecordingFailed {
+        what: &'a str,
+    },
     RunFinished {
         records: &'a [UnitRecord],
         bench_time_s: f64,
@@ -94,6 +100,10 @@ pub trait Recorder: Sync {
     /// A unit has identified itself (or failed to) and its testing begins.
     fn unit_started(&self, _record: &UnitRecord) {}
     fn unit_finished(&self, record: &UnitRecord);
+    /// The first thing the recorder failed to keep, if anything.
+    fn failure(&self) -> Option<String> {
+        None
+    }
 }
 
 /// Which reading a sample is.
@@ -216,6 +226,7 @@ pub fn run_with(
         calibration: plan.calibration.as_ref(),
     };
     let mut source_failure: Option<String> = None;
+    let mut recording_failure_said = false;
     for (index, step) in plan.steps.iter().enumerate() {
         if let Some(reason) = &source_failure {
             for u in units.iter_mut().filter(|u| u.active) {
@@ -347,6 +358,10 @@ pub fn run_with(
                 })
                 .collect(),
         });
+        if !recording_failure_said && let Some(what) = recorder.failure() {
+            recording_failure_said = true;
+            reporter.event(&Event::RecordingFailed { what: &what });
+        }
     }
     // Leave the bench safe whatever happened; a failure to switch off is worth a line too.
     let off_failure = bench.source.off().err().map(|e| e.to_string());
