@@ -296,6 +296,27 @@ fn reports_show_the_settle_time_and_the_samples_taken() {
         html.contains("not stable within 4.00 s: sampled at the maximum"),
         "{html}"
     );
+    // The lot summary counts the steps that did not settle and shares the bench time.
+    let unsettled = settles_slowly
+        .iter()
+        .flat_map(|r| &r.steps)
+        .filter(|s| s.settled == Some(false))
+        .count();
+    assert!(unsettled > 0);
+    let lot =
+        meterproof::report::summary::LotSummary::of("lot", &settles_slowly, &|_| String::new());
+    assert_eq!(lot.unsettled_steps, unsettled);
+    assert_eq!(
+        lot.bench_time_per_unit_s,
+        Some(settles_slowly[0].bench_time_s / 2.0)
+    );
+    let html = templates.lot_html(&lot).unwrap();
+    assert!(
+        html.contains(&format!(
+            "{unsettled} steps did not settle within the plan's maximum"
+        )),
+        "{html}"
+    );
     let settles = run_at(&plan, 0.2);
     let record = &settles[0];
     let html = templates.unit_html(record).unwrap();

@@ -55,6 +55,24 @@ pub struct LotSummary {
     pub rejections: Vec<(String, usize)>,
     pub checks: Vec<CheckStats>,
     pub unit_lines: Vec<UnitLine>,
+    /// Bench time per unit: each run's bench time shared among its units, averaged.
+    pub bench_time_per_unit_s: Option<f64>,
+    /// Steps that settled until stable ran out of time on (a unit, a fixture or a load that is
+    /// slower than the plan expects), over all units.
+    pub unsettled_steps: usize,
+}
+
+/// The mean bench time per unit: a run's bench time is shared by the units it tested together.
+fn bench_time_per_unit(records: &[UnitRecord]) -> Option<f64> {
+    let mut units_per_run: BTreeMap<&str, usize> = BTreeMap::new();
+    for r in records {
+        *units_per_run.entry(r.run_id.as_str()).or_default() += 1;
+    }
+    let shares: Vec<f64> = records
+        .iter()
+        .map(|r| r.bench_time_s / units_per_run[r.run_id.as_str()] as f64)
+        .collect();
+    (!shares.is_empty()).then(|| shares.iter().sum::<f64>() / shares.len() as f64)
 }
 
 impl LotSummary {
@@ -149,6 +167,12 @@ impl LotSummary {
             rejections,
             checks,
             unit_lines,
+            bench_time_per_unit_s: bench_time_per_unit(records),
+            unsettled_steps: records
+                .iter()
+                .flat_map(|r| &r.steps)
+                .filter(|s| s.settled == Some(false))
+                .count(),
         }
     }
 
