@@ -52,7 +52,9 @@ pub(super) fn settle_until(
     let mut windows: Vec<VecDeque<f64>> = vec![VecDeque::new(); positions.len()];
     let mut waiting: Vec<bool> = active.to_vec();
     let concurrent = parallel && !clock.is_virtual();
-    for k in 1u64.. {
+    let mut rounds = 0u32;
+    loop {
+        rounds += 1;
         for (i, reading) in read_round(rule, positions, &waiting, concurrent) {
             match reading {
                 Some(v) => {
@@ -76,7 +78,7 @@ pub(super) fn settle_until(
                 settled: all_stable,
             };
         }
-        let due = k as f64 * rule.every_s;
+        let due = f64::from(rounds) * rule.every_s;
         if due > rule.max_s + 1e-9 {
             clock.sleep_s(rule.max_s - elapsed);
             return SettleOutcome {
@@ -86,7 +88,6 @@ pub(super) fn settle_until(
         }
         clock.sleep_s(t0 + due - clock.now_s());
     }
-    unreachable!("the rounds end at the rule's maximum")
 }
 
 /// One reading of the watched quantity from every position still waited for: (index, value),
