@@ -135,6 +135,81 @@ mod tests {
         }
     }
 
+    /// A unit whose readings follow `values` (the last one repeated), or whose link fails.
+    struct Scripted {
+        values: Vec<f64>,
+        read: usize,
+        fails: bool,
+    }
+
+    impl crate::link::DutLink for Scripted {
+        fn identify(&mut self) -> Result<crate::link::Identity, crate::link::LinkError> {
+            unreachable!("not identified while settling")
+        }
+        fn read(&mut self, _: Quantity, _: &str) -> Result<f64, crate::link::LinkError> {
+            if self.fails {
+                return Err(crate::link::LinkError::Timeout {
+                    request: "rd I L".into(),
+                    timeout_ms: 100,
+                    attempts: 3,
+                });
+            }
+            let v = self.values[self.read.min(self.values.len() - 1)];
+            self.read += 1;
+            Ok(v)
+        }
+        fn describe(&self) -> String {
+            "scripted".into()
+        }
+    }
+
+    fn position(number: usize, values: &[f64], fails: bool) -> Position {
+        Position {
+            number,
+            link: Box::new(Scripted {
+                values: values.to_vec(),
+                read: 0,
+                fails,
+            }),
+            expected_serial: None,
+        }
+    }
+
+    /// Readings 0.1 s apart, 3 in the band: a unit that reaches its value at its third reading
+    /// has three readings in the band at its fifth, 0.4 s; a dead link beside it is not waited for; one that drifts for ever keeps the step to
+    /// the rule's maximum, which the outcome says.
+    #[test]
+    fn settling_waits_for_the_slowest_live_unit_up_to_the_maximum() {
+        let clock = crate::bench::VirtualClock::default();
+        let quiet = AtomicBool::new(false);
+        let steady = [4.0, 4.9, 5.0, 5.0, 5.0];
+        let mut bench = vec![position(1, &steady, false), position(2, &[], true)];
+        let outcome = settle_until(
+            &rule(false, 0.01),
+            &clock,
+            &mut bench,
+            &[true, true],
+            true,
+            &quiet,
+        );
+        assert!(outcome.settled);
+        assert!((outcome.actual_s - 0.4).abs() < 1e-9, "{outcome:?}");
+        let drifting: Vec<f64> = (0..100).map(|k| f64::from(k) * 0.1).collect();
+        let mut bench = vec![position(1, &steady, false), position(2, &drifting, false)];
+        let t0 = clock.now_s();
+        let outcome = settle_until(
+            &rule(false, 0.01),
+            &clock,
+            &mut bench,
+            &[true, true],
+            true,
+            &quiet,
+        );
+        assert!(!outcome.settled);
+        assert!((outcome.actual_s - 5.0).abs() < 1e-9, "{outcome:?}");
+        assert!((clock.now_s() - t0 - 5.0).abs() < 1e-9);
+    }
+
     #[test]
     fn the_band_is_relative_or_absolute() {
         let w: VecDeque<f64> = [5.000, 5.002, 5.001].into_iter().collect();
