@@ -208,3 +208,39 @@ fn an_unplugged_port_is_a_clear_error() {
         "{err}"
     );
 }
+
+/// After a lost reply and a retry, the link says how long the attempt that was answered took,
+/// not the whole call: the unit took its reading in that attempt, and a register's timing
+/// uncertainty is that attempt's, not the timeout's (real time, 250 ms timeout).
+#[test]
+fn a_retried_reading_is_timed_by_the_attempt_that_was_answered() {
+    let serial_plan = plan("demo-serial.yaml");
+    let LinkSpec::Text(spec) = &serial_plan.link else {
+        panic!("the plan has no text link")
+    };
+    let sim = SimBench::new(&SimConfig::new(1, 1));
+    let device = PtyDevice::spawn(Device::new(
+        sim.meter(0),
+        Faults {
+            drop_every: Some(2),
+            ..Faults::default()
+        },
+    ))
+    .unwrap();
+    let mut link = text::open(&device.path, Arc::new((**spec).clone())).unwrap();
+    // The first request is answered, the second lost and retried.
+    link.read(meterproof::plan::Quantity::ActiveEnergy, "L")
+        .unwrap();
+    let first = link.last_answered_in_s().unwrap();
+    let started = std::time::Instant::now();
+    link.read(meterproof::plan::Quantity::ActiveEnergy, "L")
+        .unwrap();
+    let whole = started.elapsed().as_secs_f64();
+    let answered = link.last_answered_in_s().unwrap();
+    assert!(whole >= 0.25, "the retry waited out the timeout: {whole} s");
+    assert!(
+        answered < 0.25 && answered < whole - 0.2,
+        "answered in {answered} s of {whole} s"
+    );
+    assert!(first < 0.25, "{first}");
+}

@@ -103,9 +103,10 @@ pub(super) fn sample_step(
 }
 
 /// Reads every wanted quantity once from one unit, keeping each reading as it arrives. Each
-/// reading is stamped with the middle of its transaction and how long that took: after a retry
-/// that can be well after the sample was due, and a register's advance must be set against the
-/// time it really covers, with the uncertainty of when each end was read.
+/// reading is stamped with the middle of the attempt that was answered, and how long that
+/// attempt took: after a retry that can be well after the sample was due, and a register's
+/// advance must be set against the time it really covers, with the uncertainty of when each
+/// end was read.
 /// Returns the fault that stopped the series, if one did.
 fn read_once(
     s: Sampler,
@@ -124,9 +125,15 @@ fn read_once(
         match reading {
             Ok(value) => {
                 let answered = s.clock.now_s();
-                let took = answered - asked;
+                // After a retry only the attempt that was answered counts; the link knows it
+                // in real seconds.
+                let took = link
+                    .last_answered_in_s()
+                    .map_or(answered - asked, |real| real * s.clock.scale())
+                    .min(answered - asked)
+                    .max(0.0);
                 let sample = Sample {
-                    t_s: asked + took / 2.0,
+                    t_s: answered - took / 2.0,
                     value,
                     took_s: (took > 0.0).then_some(took),
                 };

@@ -100,6 +100,9 @@ pub struct LineChannel<W: Wire> {
     name: String,
     pending: Vec<u8>,
     last_transaction_end: Option<Instant>,
+    /// From sending the request that was answered to its reply, for the last transaction that
+    /// succeeded: the unit answered that request, so it took its reading within this time.
+    last_answered_in: Option<Duration>,
     pub stats: LinkStats,
 }
 
@@ -111,12 +114,20 @@ impl<W: Wire> LineChannel<W> {
             name: name.to_string(),
             pending: Vec::new(),
             last_transaction_end: None,
+            last_answered_in: None,
             stats: LinkStats::default(),
         }
     }
 
     pub fn name(&self) -> &str {
         &self.name
+    }
+
+    /// How long the attempt that got the last successful reply took, request sent to reply
+    /// read. A reply later than the timeout counts as lost (the timeout is set above the
+    /// unit's reply time), so the reply matched is taken to answer the attempt it came in.
+    pub fn last_answered_in(&self) -> Option<Duration> {
+        self.last_answered_in
     }
 
     /// Sends a line that has no reply.
@@ -138,14 +149,17 @@ impl<W: Wire> LineChannel<W> {
             }
             self.wait_out_pause();
             self.discard_stale()?;
+            let sent = Instant::now();
             self.send(request)?;
-            let deadline = Instant::now() + Duration::from_secs_f64(self.settings.timeout_s);
+            let deadline = sent + Duration::from_secs_f64(self.settings.timeout_s);
             while let Some(line) = self.next_line(deadline)? {
                 if self.is_noise(request, &line) {
                     continue;
                 }
                 if reply.is_match(&line) {
-                    self.last_transaction_end = Some(Instant::now());
+                    let now = Instant::now();
+                    self.last_transaction_end = Some(now);
+                    self.last_answered_in = Some(now - sent);
                     return Ok(line);
                 }
                 // A stale reply to an earlier request may come before the one to this request:
@@ -154,6 +168,7 @@ impl<W: Wire> LineChannel<W> {
             }
         }
         self.last_transaction_end = Some(Instant::now());
+        self.last_answered_in = None;
         Err(match last_garbled {
             Some(line) => LinkError::Garbled {
                 request: request.to_string(),

@@ -81,6 +81,13 @@ pub trait DutLink: Send {
 
     /// A short description for records: "sim position 3", "/dev/ttyUSB0 @ 115200".
     fn describe(&self) -> String;
+
+    /// Real seconds from sending the request that the last successful read's reply answered
+    /// to that reply, where the link knows it: the unit took its reading within this time,
+    /// which after a retry is much shorter than the whole call.
+    fn last_answered_in_s(&self) -> Option<f64> {
+        None
+    }
 }
 
 /// A position whose link could not be opened: every call reports why, so the unit is recorded

@@ -194,4 +194,8 @@ impl<W: Wire> DutLink for TextLink<W> {
             self.spec.port.baud
         )
     }
+
+    fn last_answered_in_s(&self) -> Option<f64> {
+        self.channel.last_answered_in().map(|d| d.as_secs_f64())
+    }
 }
