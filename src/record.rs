@@ -188,12 +188,12 @@ pub struct ReferenceRecord {
 /// One raw reading from the unit.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct Sample {
-    /// Bench time, seconds: the middle of the transaction that read it.
+    /// Bench time, seconds: the middle of the attempt that was answered.
     pub t_s: f64,
     pub value: f64,
-    /// How long the transaction took, request to reply (with any retries), when it took bench
-    /// time: the unit took the reading at some moment within it, so `t_s` is known to ± half
-    /// of this. Absent on the virtual clock, where a reading takes no time.
+    /// How long that attempt took, request sent to reply read, when it took bench time: the
+    /// unit took the reading at some moment within it, so `t_s` is known to ± half of this.
+    /// Absent on the virtual clock, where a reading takes no time.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub took_s: Option<f64>,
 }
