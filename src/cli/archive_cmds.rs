@@ -2,7 +2,7 @@
 
 use super::{
     BenchOptions, BenchSpec, CliError, TerminalReporter, build_bench, exit_status, finish_run,
-    print_summary, write_file, write_outputs,
+    print_json, print_summary, write_file, write_outputs,
 };
 use crate::archive::{Archive, RunFilter, RunRecorder};
 use crate::exec::{self, RunContext};
@@ -123,10 +123,7 @@ pub(super) fn history(args: &HistoryArgs) -> Result<i32, CliError> {
     let archive = open(&args.archive)?;
     let rows = archive.history(&args.serial).map_err(db)?;
     if args.json {
-        println!(
-            "{}",
-            serde_json::to_string_pretty(&rows).expect("rows serialise")
-        );
+        print_json(&rows);
         return Ok(0);
     }
     if rows.is_empty() {
@@ -195,10 +192,7 @@ pub(super) fn runs(args: &RunsArgs) -> Result<i32, CliError> {
     };
     let rows = archive.runs(&filter).map_err(db)?;
     if args.json {
-        println!(
-            "{}",
-            serde_json::to_string_pretty(&rows).expect("rows serialise")
-        );
+        print_json(&rows);
         return Ok(0);
     }
     println!(
@@ -395,10 +389,7 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
         write_file(path, html)?;
     }
     if args.json {
-        println!(
-            "{}",
-            serde_json::to_string_pretty(&result).expect("serialises")
-        );
+        print_json(&result);
     } else {
         println!(
             "{} against {}: {} checks, {} units paired by serial number, allowance {} % of each limit",
@@ -497,10 +488,7 @@ pub(super) fn summary(args: &SummaryArgs) -> Result<i32, CliError> {
         write_file(path, crate::report::run_junit(&records))?;
     }
     if args.json {
-        println!(
-            "{}",
-            serde_json::to_string_pretty(&summary).expect("serialises")
-        );
+        print_json(&summary);
     } else {
         println!(
             "{}: yield {:.1} % ({} of {} accepted, {} rejected, {} incomplete); {}",

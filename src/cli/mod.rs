@@ -269,6 +269,14 @@ fn station_summary(s: &Station) -> String {
     )
 }
 
+/// Prints a value as pretty JSON on standard output, for machines (`--json`).
+pub(super) fn print_json<T: serde::Serialize>(value: &T) {
+    println!(
+        "{}",
+        serde_json::to_string_pretty(value).expect("records, rows and summaries serialise")
+    );
+}
+
 /// "40.5 s", or "40.5 s at most (adaptive steps end sooner)" for a plan with adaptive steps.
 fn scheduled_text(plan: &Plan) -> String {
     let adaptive = plan
@@ -510,10 +518,7 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
         write_file(path, report::run_junit(&records))?;
     }
     if args.json {
-        println!(
-            "{}",
-            serde_json::to_string_pretty(&records).expect("records serialise")
-        );
+        print_json(&records);
         archived?;
         return Ok(exit_status(&records));
     }
