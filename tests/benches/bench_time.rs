@@ -203,5 +203,53 @@ fn main() {
             );
         }
     }
+    adaptive_overhead(&quick_adaptive(&text[..cut]), &dir);
     std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// Three steps that settle until stable and sample until decided, 100 ms apart.
+fn quick_adaptive(head: &str) -> Plan {
+    let mut text = format!("{head}steps:\n");
+    for (i, current) in ["1 A", "5 A", "10 A"].iter().enumerate() {
+        text.push_str(&format!(
+            "  - id: s{i}\n    load: {{ current: {current} }}\n    settle_until: {{ stable_within: 0.3 %, readings: 4, every: 100 ms, at_least: 300 ms, at_most: 3 s }}\n    samples_until_decided: {{ min: 3, max: 8 }}\n    interval: 100 ms\n    checks:\n      - {{ quantity: current, tolerance: {{ percent: 0.5 % }} }}\n      - {{ quantity: active_power, tolerance: {{ class: true }} }}\n"
+        ));
+    }
+    Plan::from_text("quick-adaptive.yaml", &text).unwrap()
+}
+
+/// The time an adaptive run spends beyond what its rules chose: each step's settle time as
+/// recorded plus (samples taken − 1) intervals, against the run's wall time.
+fn adaptive_overhead(plan: &Plan, dir: &std::path::Path) {
+    println!(
+        "real-time overhead of adaptive steps over the settle and sampling times they chose (archive on):"
+    );
+    for positions in [1usize, 16] {
+        let mut config = SimConfig::new(7, positions);
+        config.plant_defect = false;
+        let mut bench = SimBench::with_clock(&config, Arc::new(RealClock::default())).into_bench();
+        bench.parallel = true;
+        let archive = Archive::open(&dir.join(format!("adaptive{positions}.sqlite"))).unwrap();
+        let recorder = RunRecorder::new(&archive, &format!("ad{positions}"));
+        let start = Instant::now();
+        let records = exec::run_with(plan, &mut bench, &ctx(), &mut Silent, &recorder, None);
+        let wall = start.elapsed().as_secs_f64();
+        let chosen: f64 = (0..plan.steps.len())
+            .map(|i| {
+                let settle = records[0].steps[i].settle_actual_s.unwrap_or(0.0);
+                let taken = records
+                    .iter()
+                    .map(|r| r.steps[i].checks[0].samples.len())
+                    .max()
+                    .unwrap_or(0);
+                settle + taken.saturating_sub(1) as f64 * plan.steps[i].interval_s
+            })
+            .sum();
+        let steps = plan.steps.len() as f64;
+        println!(
+            "  {positions:>2} positions: {wall:.3} s for {chosen:.3} s chosen by the rules: overhead {:.1} ms per step (allowed {:.1} ms per step)",
+            (wall - chosen) * 1000.0 / steps,
+            (chosen * 0.01 / steps + 0.020) * 1000.0
+        );
+    }
 }
