@@ -523,8 +523,9 @@ fn meter_model(config: &SimConfig, index: usize, serial: &str) -> MeterModel {
         gain_voltage: normal(0.0008).sample(&mut rng),
         offset_current_a: normal(0.0015).sample(&mut rng),
         phase_error_deg: normal(0.05).sample(&mut rng),
-        noise_relative: 0.0005 + config.firmware.extra_noise,
         tau_s: uniform(&mut rng, config.tau_range_s.0, config.tau_range_s.1),
+        // Drawn after the others, so that the same seed keeps its gains, offsets and phases.
+        noise_relative: uniform(&mut rng, 0.0003, 0.0008) + config.firmware.extra_noise,
         no_load_threshold_a: NO_LOAD_THRESHOLD_A,
         gain_step_above: config.firmware.gain_step_above,
     }
