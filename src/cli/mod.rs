@@ -121,7 +121,6 @@ struct RunArgs {
     /// Lot (batch) id recorded with every unit.
     #[arg(long)]
     lot: Option<String>,
-    /// Operator id recorded with every unit.
     /// Operator id recorded with every unit (asked for with --ask; else "unattended").
     #[arg(long)]
     operator: Option<String>,
