@@ -570,19 +570,13 @@ impl Archive {
         Ok((checked, failures))
     }
 
-    /// Appends a unit record to the chain, in one transaction with the chain head.
-    pub fn append_unit(&self, record: &UnitRecord) -> Result<(), ArchiveError> {
+    /// Appends unit records to the chain, in one transaction with the chain head (one commit
+    /// for a whole run). A record already in the archive (a resumed run's finished unit) is
+    /// left as it is.
+    pub fn append_units(&self, records: &[UnitRecord]) -> Result<(), ArchiveError> {
         let mut conn = self.conn();
         let tx = conn.transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
-        let exists: bool = tx.query_row(
-            "SELECT COUNT(*) > 0 FROM units WHERE run_id = ?1 AND position = ?2",
-            params![record.run_id, record.position as i64],
-            |r| r.get(0),
-        )?;
-        if exists {
-            return Ok(());
-        }
-        let prev: String = tx
+        let mut prev: String = tx
             .query_row(
                 "SELECT record_sha256 FROM units ORDER BY seq DESC LIMIT 1",
                 [],
@@ -590,8 +584,23 @@ impl Archive {
             )
             .optional()?
             .unwrap_or_else(|| GENESIS.to_string());
-        let (seq, hash) = insert_unit_row(&tx, record, &prev)?;
-        set_chain_head(&tx, seq, &hash)?;
+        let mut head = None;
+        for record in records {
+            let exists: bool = tx.query_row(
+                "SELECT COUNT(*) > 0 FROM units WHERE run_id = ?1 AND position = ?2",
+                params![record.run_id, record.position as i64],
+                |r| r.get(0),
+            )?;
+            if exists {
+                continue;
+            }
+            let (seq, hash) = insert_unit_row(&tx, record, &prev)?;
+            head = Some((seq, hash.clone()));
+            prev = hash;
+        }
+        if let Some((seq, hash)) = head {
+            set_chain_head(&tx, seq, &hash)?;
+        }
         tx.commit()?;
         Ok(())
     }
@@ -899,9 +908,9 @@ impl Recorder for RunRecorder<'_> {
         }
     }
 
-    fn unit_finished(&self, record: &UnitRecord) {
-        if let Err(e) = self.archive.append_unit(record) {
-            self.archive.note_error("writing a unit record", e);
+    fn units_finished(&self, records: &[UnitRecord]) {
+        if let Err(e) = self.archive.append_units(records) {
+            self.archive.note_error("writing the unit records", e);
         }
     }
 

@@ -99,7 +99,8 @@ pub trait Recorder: Sync {
     fn step_finished(&self, step_index: usize, records: &[(usize, &StepRecord)]);
     /// A unit has identified itself (or failed to) and its testing begins.
     fn unit_started(&self, _record: &UnitRecord) {}
-    fn unit_finished(&self, record: &UnitRecord);
+    /// Every unit's finished record, once the run ends.
+    fn units_finished(&self, records: &[UnitRecord]);
     /// The first thing the recorder failed to keep, if anything.
     fn failure(&self) -> Option<String> {
         None
@@ -123,7 +124,7 @@ pub struct NoRecorder;
 impl Recorder for NoRecorder {
     fn reading(&self, _: &ReadingKey, _: Sample) {}
     fn step_finished(&self, _: usize, _: &[(usize, &StepRecord)]) {}
-    fn unit_finished(&self, _: &UnitRecord) {}
+    fn units_finished(&self, _: &[UnitRecord]) {}
 }
 
 /// What an interrupted run had finished, to continue from it.
@@ -399,10 +400,10 @@ pub fn run_with(
                     }
                 ));
             }
-            recorder.unit_finished(&u.record);
             u.record
         })
         .collect();
+    recorder.units_finished(&records);
     reporter.event(&Event::RunFinished {
         records: &records,
         bench_time_s,
