@@ -576,14 +576,7 @@ impl Archive {
     pub fn append_units(&self, records: &[UnitRecord]) -> Result<(), ArchiveError> {
         let mut conn = self.conn();
         let tx = conn.transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
-        let mut prev: String = tx
-            .query_row(
-                "SELECT record_sha256 FROM units ORDER BY seq DESC LIMIT 1",
-                [],
-                |r| r.get(0),
-            )
-            .optional()?
-            .unwrap_or_else(|| GENESIS.to_string());
+        let mut prev = newest_hash(&tx)?;
         let mut head = None;
         for record in records {
             let exists: bool = tx.query_row(
@@ -611,14 +604,7 @@ impl Archive {
     pub fn import_units(&self, records: &[UnitRecord]) -> Result<(), ArchiveError> {
         let mut conn = self.conn();
         let tx = conn.transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
-        let mut prev: String = tx
-            .query_row(
-                "SELECT record_sha256 FROM units ORDER BY seq DESC LIMIT 1",
-                [],
-                |r| r.get(0),
-            )
-            .optional()?
-            .unwrap_or_else(|| GENESIS.to_string());
+        let mut prev = newest_hash(&tx)?;
         let mut head = None;
         {
             let mut reading = tx.prepare_cached(INSERT_READING)?;
@@ -676,6 +662,19 @@ impl Archive {
         )?;
         Ok(())
     }
+}
+
+/// The hash of the newest unit record, which the next one chains to (the genesis value in an
+/// empty archive).
+fn newest_hash(conn: &Connection) -> rusqlite::Result<String> {
+    Ok(conn
+        .query_row(
+            "SELECT record_sha256 FROM units ORDER BY seq DESC LIMIT 1",
+            [],
+            |r| r.get(0),
+        )
+        .optional()?
+        .unwrap_or_else(|| GENESIS.to_string()))
 }
 
 /// Inserts a unit record (without samples) after `prev` in the chain; returns its sequence

@@ -181,30 +181,24 @@ mod tests {
     #[test]
     fn settling_waits_for_the_slowest_live_unit_up_to_the_maximum() {
         let clock = crate::bench::VirtualClock::default();
-        let quiet = AtomicBool::new(false);
+        let settle = |bench: &mut [Position]| {
+            let quiet = AtomicBool::new(false);
+            settle_until(
+                &rule(false, 0.01),
+                &clock,
+                bench,
+                &[true, true],
+                true,
+                &quiet,
+            )
+        };
         let steady = [4.0, 4.9, 5.0, 5.0, 5.0];
-        let mut bench = vec![position(1, &steady, false), position(2, &[], true)];
-        let outcome = settle_until(
-            &rule(false, 0.01),
-            &clock,
-            &mut bench,
-            &[true, true],
-            true,
-            &quiet,
-        );
+        let outcome = settle(&mut [position(1, &steady, false), position(2, &[], true)]);
         assert!(outcome.settled);
         assert!((outcome.actual_s - 0.4).abs() < 1e-9, "{outcome:?}");
         let drifting: Vec<f64> = (0..100).map(|k| f64::from(k) * 0.1).collect();
-        let mut bench = vec![position(1, &steady, false), position(2, &drifting, false)];
         let t0 = clock.now_s();
-        let outcome = settle_until(
-            &rule(false, 0.01),
-            &clock,
-            &mut bench,
-            &[true, true],
-            true,
-            &quiet,
-        );
+        let outcome = settle(&mut [position(1, &steady, false), position(2, &drifting, false)]);
         assert!(!outcome.settled);
         assert!((outcome.actual_s - 5.0).abs() < 1e-9, "{outcome:?}");
         assert!((clock.now_s() - t0 - 5.0).abs() < 1e-9);
