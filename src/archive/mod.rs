@@ -576,24 +576,18 @@ impl Archive {
     pub fn append_units(&self, records: &[UnitRecord]) -> Result<(), ArchiveError> {
         let mut conn = self.conn();
         let tx = conn.transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
-        let mut prev = newest_hash(&tx)?;
-        let mut head = None;
+        let mut new = Vec::new();
         for record in records {
             let exists: bool = tx.query_row(
                 "SELECT COUNT(*) > 0 FROM units WHERE run_id = ?1 AND position = ?2",
                 params![record.run_id, record.position as i64],
                 |r| r.get(0),
             )?;
-            if exists {
-                continue;
+            if !exists {
+                new.push(record);
             }
-            let (seq, hash) = insert_unit_row(&tx, record, &prev)?;
-            head = Some((seq, hash.clone()));
-            prev = hash;
         }
-        if let Some((seq, hash)) = head {
-            set_chain_head(&tx, seq, &hash)?;
-        }
+        chain_units(&tx, new)?;
         tx.commit()?;
         Ok(())
     }
@@ -604,52 +598,10 @@ impl Archive {
     pub fn import_units(&self, records: &[UnitRecord]) -> Result<(), ArchiveError> {
         let mut conn = self.conn();
         let tx = conn.transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
-        let mut prev = newest_hash(&tx)?;
-        let mut head = None;
-        {
-            let mut reading = tx.prepare_cached(INSERT_READING)?;
-            for r in records {
-                for (index, step) in r.steps.iter().enumerate() {
-                    let series = step
-                        .checks
-                        .iter()
-                        .map(|c| (c.quantity, &c.channel, false, &c.samples))
-                        .chain(
-                            step.calibration_point
-                                .iter()
-                                .map(|p| (p.quantity, &p.channel, true, &p.samples)),
-                        );
-                    let mut seen = Vec::new();
-                    for (q, ch, raw, samples) in series {
-                        // Checks sharing a reading share its rows.
-                        if seen.contains(&(q, ch, raw)) {
-                            continue;
-                        }
-                        seen.push((q, ch, raw));
-                        for s in samples {
-                            reading.execute(params![
-                                r.run_id,
-                                r.position as i64,
-                                index as i64,
-                                step.attempt as i64,
-                                q.name(),
-                                ch,
-                                raw,
-                                s.t_s,
-                                s.value,
-                                s.took_s
-                            ])?;
-                        }
-                    }
-                }
-                let (seq, hash) = insert_unit_row(&tx, r, &prev)?;
-                head = Some((seq, hash.clone()));
-                prev = hash;
-            }
+        for r in records {
+            insert_readings_of(&tx, r)?;
         }
-        if let Some((seq, hash)) = head {
-            set_chain_head(&tx, seq, &hash)?;
-        }
+        chain_units(&tx, records)?;
         tx.commit()?;
         Ok(())
     }
@@ -662,6 +614,63 @@ impl Archive {
         )?;
         Ok(())
     }
+}
+
+/// Appends unit records (without samples) to the chain, in order, and moves the chain head.
+fn chain_units<'r>(
+    conn: &Connection,
+    records: impl IntoIterator<Item = &'r UnitRecord>,
+) -> rusqlite::Result<()> {
+    let mut prev = newest_hash(conn)?;
+    let mut head = None;
+    for r in records {
+        let (seq, hash) = insert_unit_row(conn, r, &prev)?;
+        head = Some((seq, hash.clone()));
+        prev = hash;
+    }
+    if let Some((seq, hash)) = head {
+        set_chain_head(conn, seq, &hash)?;
+    }
+    Ok(())
+}
+
+/// Writes every sample of a finished record as reading rows (checks sharing a reading share
+/// its rows).
+fn insert_readings_of(conn: &Connection, r: &UnitRecord) -> rusqlite::Result<()> {
+    let mut reading = conn.prepare_cached(INSERT_READING)?;
+    for (index, step) in r.steps.iter().enumerate() {
+        let series = step
+            .checks
+            .iter()
+            .map(|c| (c.quantity, &c.channel, false, &c.samples))
+            .chain(
+                step.calibration_point
+                    .iter()
+                    .map(|p| (p.quantity, &p.channel, true, &p.samples)),
+            );
+        let mut seen = Vec::new();
+        for (q, ch, raw, samples) in series {
+            if seen.contains(&(q, ch, raw)) {
+                continue;
+            }
+            seen.push((q, ch, raw));
+            for s in samples {
+                reading.execute(params![
+                    r.run_id,
+                    r.position as i64,
+                    index as i64,
+                    step.attempt as i64,
+                    q.name(),
+                    ch,
+                    raw,
+                    s.t_s,
+                    s.value,
+                    s.took_s
+                ])?;
+            }
+        }
+    }
+    Ok(())
 }
 
 /// The hash of the newest unit record, which the next one chains to (the genesis value in an
