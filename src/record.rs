@@ -259,6 +259,45 @@ pub struct CheckRecord {
     pub note: Option<String>,
 }
 
+/// The canonical form of anything the archive seals: its JSON with object keys sorted, and
+/// every zero written as `0.0` (a device that answers `-0.00` gives −0.0, which a database's
+/// REAL column gives back as 0.0: the two must hash alike). Numbers keep every digit
+/// (serde_json's `float_roundtrip`); strings keep every character, escaped by JSON. Built on
+/// `serde_json::Value`, so a field added to a record type later never changes the hash of a
+/// record stored before it.
+pub fn canonical_bytes(value: &serde_json::Value) -> Vec<u8> {
+    serde_json::to_vec(&canonical_value(value.clone())).expect("a JSON value serialises")
+}
+
+fn canonical_value(value: serde_json::Value) -> serde_json::Value {
+    use serde_json::Value;
+    match value {
+        Value::Number(n) if n.as_f64() == Some(0.0) && !n.is_i64() && !n.is_u64() => {
+            Value::from(0.0)
+        }
+        Value::Array(items) => Value::Array(items.into_iter().map(canonical_value).collect()),
+        // serde_json's map is ordered by key (no `preserve_order`), so objects come out sorted.
+        Value::Object(map) => Value::Object(
+            map.into_iter()
+                .map(|(k, v)| (k, canonical_value(v)))
+                .collect(),
+        ),
+        other => other,
+    }
+}
+
+/// SHA-256 of a value's canonical form, in hex.
+pub fn canonical_sha256<T: Serialize + ?Sized>(value: &T) -> String {
+    let value = serde_json::to_value(value).expect("records serialise");
+    crate::plan::sha256_hex(&canonical_bytes(&value))
+}
+
+/// The hash that seals a unit record (with its samples): printed on its reports and kept in
+/// the archive's chain.
+pub fn record_hash(record: &UnitRecord) -> String {
+    canonical_sha256(record)
+}
+
 /// Why a record could not be written.
 #[derive(Debug, thiserror::Error)]
 pub enum WriteError {
@@ -306,14 +345,18 @@ pub fn write_new_file(dir: &Path, name: &str, bytes: &[u8]) -> Result<PathBuf, W
     };
     let target = dir.join(name);
     let temp = dir.join(format!(".{name}.{}.tmp", std::process::id()));
-    {
-        let mut f = OpenOptions::new()
-            .write(true)
-            .create_new(true)
-            .open(&temp)
-            .map_err(io_err(&temp))?;
-        f.write_all(bytes).map_err(io_err(&temp))?;
-        f.sync_all().map_err(io_err(&temp))?;
+    let written = OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(&temp)
+        .and_then(|mut f| {
+            f.write_all(bytes)?;
+            f.sync_all()
+        });
+    if let Err(e) = written {
+        // A full disk leaves no half-written temporary file behind.
+        let _ = fs::remove_file(&temp);
+        return Err(io_err(&temp)(e));
     }
     let linked = fs::hard_link(&temp, &target);
     let _ = fs::remove_file(&temp);

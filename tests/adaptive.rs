@@ -291,7 +291,7 @@ fn reports_show_the_settle_time_and_the_samples_taken() {
     let plan = adaptive();
     let templates = meterproof::report::Templates::load(None).unwrap();
     let settles_slowly = run_at(&plan, 20.0);
-    let html = templates.unit_html(&settles_slowly[0]).unwrap();
+    let html = templates.unit_html(&settles_slowly[0], None).unwrap();
     assert!(
         html.contains("not stable within 4.00 s: sampled at the maximum"),
         "{html}"
@@ -319,7 +319,7 @@ fn reports_show_the_settle_time_and_the_samples_taken() {
     );
     let settles = run_at(&plan, 0.2);
     let record = &settles[0];
-    let html = templates.unit_html(record).unwrap();
+    let html = templates.unit_html(record, None).unwrap();
     let step = &record.steps[2];
     let shown = format!(
         "settled in {:.2} s (until stable); {}",

@@ -148,7 +148,11 @@ fn archive_run(archive: &Archive, plan: &Plan, records: &[UnitRecord], run_id: &
         .unwrap();
     archive.import_units(records).unwrap();
     archive
-        .finish_run(run_id, "2026-12-01T00:01:00+00:00")
+        .finish_run(
+            run_id,
+            "2026-12-01T00:01:00+00:00",
+            meterproof::archive::RunState::Finished,
+        )
         .unwrap();
 }
 

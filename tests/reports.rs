@@ -139,7 +139,7 @@ fn the_same_record_and_templates_render_the_same_bytes() {
         .unwrap();
     let r = &records_in(&dir)[0];
     let t = Templates::load(None).unwrap();
-    assert_eq!(t.unit_html(r).unwrap(), t.unit_html(r).unwrap());
+    assert_eq!(t.unit_html(r, None).unwrap(), t.unit_html(r, None).unwrap());
     assert_eq!(
         meterproof::report::unit_csv(r).unwrap(),
         meterproof::report::unit_csv(r).unwrap()

@@ -157,7 +157,9 @@ fn device_text_is_escaped_in_html_and_defused_in_csv() {
             .all(|n| !n.contains('/') && !n.starts_with('.')),
         "{names:?}"
     );
-    assert_eq!(names.len(), 12);
+    // Four units' record, HTML and CSV, and the run's chain anchor.
+    assert_eq!(names.len(), 13);
+    assert!(names.contains(&"chain-anchor.txt".to_string()), "{names:?}");
     let stem = format!("{}-p1", record::safe_file_stem(&records[0].serial));
     let html = std::fs::read_to_string(run_dir.join(format!("{stem}.html"))).unwrap();
     assert!(!html.contains("<script>"));

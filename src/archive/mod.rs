@@ -23,6 +23,14 @@ use std::collections::BTreeMap;
 use std::path::Path;
 use std::sync::Mutex;
 
+mod chain;
+pub use chain::{Failure, GENESIS, Verification};
+
+/// The archive's layout version. 1: no chain table, one record per run and position. 2: the
+/// chain seals every row; a position may have several records (an interrupted run and its
+/// resumption), the newest counts.
+pub const SCHEMA_VERSION: i64 = 2;
+
 const SCHEMA: &str = "
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
 CREATE TABLE IF NOT EXISTS plans (
@@ -37,7 +45,7 @@ CREATE INDEX IF NOT EXISTS runs_lot ON runs(lot);
 CREATE INDEX IF NOT EXISTS runs_started ON runs(started_at);
 CREATE TABLE IF NOT EXISTS run_units (
     run_id TEXT NOT NULL, position INTEGER NOT NULL, serial TEXT NOT NULL,
-    PRIMARY KEY (run_id, position));
+    PRIMARY KEY (run_id, position, serial));
 CREATE TABLE IF NOT EXISTS readings (
     id INTEGER PRIMARY KEY, run_id TEXT NOT NULL, position INTEGER NOT NULL,
     step_index INTEGER NOT NULL, attempt INTEGER NOT NULL, quantity TEXT NOT NULL,
@@ -51,23 +59,120 @@ CREATE TABLE IF NOT EXISTS steps (
 CREATE TABLE IF NOT EXISTS units (
     seq INTEGER PRIMARY KEY AUTOINCREMENT, run_id TEXT NOT NULL, position INTEGER NOT NULL,
     serial TEXT NOT NULL, firmware TEXT, status TEXT NOT NULL, finished_at TEXT NOT NULL,
-    record TEXT NOT NULL, record_sha256 TEXT NOT NULL, prev_sha256 TEXT NOT NULL,
-    UNIQUE (run_id, position));
+    record TEXT NOT NULL, record_sha256 TEXT NOT NULL, prev_sha256 TEXT NOT NULL);
 CREATE INDEX IF NOT EXISTS units_serial ON units(serial, finished_at);
+CREATE INDEX IF NOT EXISTS units_run ON units(run_id, position);
 ";
 
-fn set_up(conn: &Connection) -> rusqlite::Result<()> {
+/// The archive's schema version as stored, `None` for an empty file or a version-1 archive.
+fn stored_version(conn: &Connection) -> rusqlite::Result<Option<i64>> {
+    let has_meta = conn
+        .prepare("SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = 'meta'")?
+        .exists([])?;
+    if !has_meta {
+        return Ok(None);
+    }
+    Ok(conn
+        .query_row(
+            "SELECT value FROM meta WHERE key = 'schema_version'",
+            [],
+            |r| r.get::<_, String>(0),
+        )
+        .optional()?
+        .and_then(|v| v.parse().ok()))
+}
+
+fn has_table(conn: &Connection, name: &str) -> rusqlite::Result<bool> {
+    conn.prepare("SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = ?1")?
+        .exists([name])
+}
+
+/// Brings a version-1 archive to version 2 in one transaction: the unit and position tables
+/// lose their one-record-per-position constraint (rows, sequence numbers and hashes are copied
+/// as they are), and what was there is marked as written before the chain, with its own record
+/// chain's head, so `verify` checks it the old way and sees anything added since.
+fn migrate_from_1(conn: &Connection) -> rusqlite::Result<()> {
+    conn.execute_batch(
+        "
+        ALTER TABLE units RENAME TO units_v1;
+        ALTER TABLE run_units RENAME TO run_units_v1;
+        DROP INDEX IF EXISTS units_serial;
+        ",
+    )?;
+    conn.execute_batch(SCHEMA)?;
+    conn.execute_batch(chain::SCHEMA)?;
+    add_reading_durations(conn)?;
+    conn.execute_batch(
+        "
+        INSERT INTO units (seq, run_id, position, serial, firmware, status, finished_at, record, record_sha256, prev_sha256)
+            SELECT seq, run_id, position, serial, firmware, status, finished_at, record, record_sha256, prev_sha256 FROM units_v1;
+        INSERT INTO run_units (run_id, position, serial) SELECT run_id, position, serial FROM run_units_v1;
+        DROP TABLE units_v1;
+        DROP TABLE run_units_v1;
+        ",
+    )?;
+    let units_upto: i64 =
+        conn.query_row("SELECT COALESCE(MAX(seq), 0) FROM units", [], |r| r.get(0))?;
+    let runs_upto: i64 =
+        conn.query_row("SELECT COALESCE(MAX(rowid), 0) FROM runs", [], |r| r.get(0))?;
+    if units_upto > 0 || runs_upto > 0 {
+        let head: Option<String> = conn
+            .query_row("SELECT value FROM meta WHERE key = 'chain_head'", [], |r| {
+                r.get(0)
+            })
+            .optional()?;
+        let put = |k: &str, v: String| {
+            conn.execute(
+                "INSERT INTO meta (key, value) VALUES (?1, ?2)
+                 ON CONFLICT(key) DO UPDATE SET value = excluded.value",
+                params![k, v],
+            )
+        };
+        put("legacy_units_upto", units_upto.to_string())?;
+        put("legacy_runs_upto", runs_upto.to_string())?;
+        put(
+            "legacy_chain_head",
+            head.unwrap_or_else(|| format!("0:{GENESIS}")),
+        )?;
+        conn.execute("DELETE FROM meta WHERE key = 'chain_head'", [])?;
+        let content = chain::legacy_content(conn)?.expect("the markers were just written");
+        chain::append(conn, &chain::Entry::Legacy, &content)?;
+    }
+    Ok(())
+}
+
+fn set_up(conn: &Connection) -> Result<(), ArchiveError> {
     conn.pragma_update(None, "journal_mode", "WAL")?;
     conn.pragma_update(None, "synchronous", "FULL")?;
     conn.pragma_update(None, "foreign_keys", "ON")?;
-    conn.execute_batch(SCHEMA)?;
-    add_reading_durations(conn)?;
+    let tx = rusqlite::Transaction::new_unchecked(conn, rusqlite::TransactionBehavior::Immediate)?;
+    match stored_version(&tx)? {
+        Some(v) if v > SCHEMA_VERSION => {
+            return Err(ArchiveError::Newer(v));
+        }
+        Some(_) => {
+            tx.execute_batch(SCHEMA)?;
+            tx.execute_batch(chain::SCHEMA)?;
+            add_reading_durations(&tx)?;
+        }
+        None if has_table(&tx, "units")? => migrate_from_1(&tx)?,
+        None => {
+            tx.execute_batch(SCHEMA)?;
+            tx.execute_batch(chain::SCHEMA)?;
+        }
+    }
+    tx.execute(
+        "INSERT INTO meta (key, value) VALUES ('schema_version', ?1)
+         ON CONFLICT(key) DO UPDATE SET value = excluded.value",
+        [SCHEMA_VERSION.to_string()],
+    )?;
     // Proves the file writable now, not at the end of the run.
-    conn.execute(
+    tx.execute(
         "INSERT INTO meta (key, value) VALUES ('last_opened', ?1)
          ON CONFLICT(key) DO UPDATE SET value = excluded.value",
         [chrono::Utc::now().to_rfc3339()],
     )?;
+    tx.commit()?;
     Ok(())
 }
 
@@ -83,15 +188,15 @@ fn add_reading_durations(conn: &Connection) -> rusqlite::Result<()> {
     Ok(())
 }
 
-fn is_busy(e: &rusqlite::Error) -> bool {
+fn is_busy(e: &ArchiveError) -> bool {
+    let ArchiveError::Sql(e) = e else {
+        return false;
+    };
     matches!(
         e.sqlite_error_code(),
         Some(rusqlite::ErrorCode::DatabaseBusy | rusqlite::ErrorCode::DatabaseLocked)
     )
 }
-
-/// The hash the first record of a chain points back to.
-pub const GENESIS: &str = "0000000000000000000000000000000000000000000000000000000000000000";
 
 #[derive(Debug, thiserror::Error)]
 pub enum ArchiveError {
@@ -103,6 +208,12 @@ pub enum ArchiveError {
     Corrupt(String),
     #[error("archive: {0}")]
     NotFound(String),
+    #[error(
+        "archive: written by a newer meterproof (schema version {0}; this one knows up to {SCHEMA_VERSION}): use that version"
+    )]
+    Newer(i64),
+    #[error("{path} is not a meterproof archive: {why}")]
+    NotAnArchive { path: String, why: String },
 }
 
 /// A run as the archive keeps it.
@@ -163,14 +274,9 @@ pub struct RunFilter {
     pub verdict: Option<String>,
 }
 
-/// A record that failed verification, and why.
-#[derive(Debug, Clone, PartialEq)]
-pub struct Failure {
-    pub seq: i64,
-    pub run_id: String,
-    pub serial: String,
-    pub why: String,
-}
+/// Selects, of the records of one run and position, the newest: an interrupted run's record
+/// stays in the archive (and in the unit's history), its resumption's record counts.
+const NEWEST: &str = "u.seq = (SELECT MAX(n.seq) FROM units n WHERE n.run_id = u.run_id AND n.position = u.position)";
 
 /// The archive database.
 pub struct Archive {
@@ -186,10 +292,34 @@ fn status_word(s: StepStatus) -> &'static str {
     }
 }
 
-/// The unit record's canonical serialisation: its JSON, fields in declaration order, maps sorted.
-pub fn canonical_hash(record: &UnitRecord) -> String {
-    let bytes = serde_json::to_vec(record).expect("a record serialises");
-    crate::plan::sha256_hex(&bytes)
+/// Refuses a file that exists but is no SQLite database (an empty file is one only when it is
+/// to be created).
+fn refuse_other_files(path: &Path, reading: bool) -> Result<(), ArchiveError> {
+    let not_archive = |why: &str| ArchiveError::NotAnArchive {
+        path: path.display().to_string(),
+        why: why.to_string(),
+    };
+    if path.is_dir() {
+        return Err(not_archive("it is a folder"));
+    }
+    let mut header = [0u8; 16];
+    let read = std::fs::File::open(path)
+        .and_then(|mut f| std::io::Read::read(&mut f, &mut header))
+        .map_err(|e| ArchiveError::Open {
+            path: path.display().to_string(),
+            why: e.to_string(),
+        })?;
+    if read == 0 {
+        return if reading {
+            Err(not_archive("the file is empty"))
+        } else {
+            Ok(())
+        };
+    }
+    if read < 16 || &header != b"SQLite format 3\0" {
+        return Err(not_archive("it is not an SQLite database"));
+    }
+    Ok(())
 }
 
 /// The record without its samples, which the archive keeps as readings.
@@ -214,6 +344,9 @@ impl Archive {
             path: path.display().to_string(),
             why,
         };
+        if path.exists() {
+            refuse_other_files(path, false)?;
+        }
         if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty()) {
             std::fs::create_dir_all(dir).map_err(|e| open_err(e.to_string()))?;
         }
@@ -230,6 +363,7 @@ impl Archive {
                     attempt += 1;
                     std::thread::sleep(std::time::Duration::from_millis(50));
                 }
+                Err(e @ ArchiveError::Newer(_)) => return Err(e),
                 Err(e) => {
                     return Err(open_err(format!(
                         "cannot set up the archive (not writable?): {e}"
@@ -241,6 +375,95 @@ impl Archive {
             conn: Mutex::new(conn),
             first_error: Mutex::new(None),
         })
+    }
+
+    /// Opens an existing archive for reading only: never creates, migrates or changes
+    /// anything, and works on a file or folder that is read-only. A file that is not an
+    /// archive is named as such.
+    pub fn open_read_only(path: &Path) -> Result<Archive, ArchiveError> {
+        let open_err = |why: String| ArchiveError::Open {
+            path: path.display().to_string(),
+            why,
+        };
+        if !path.exists() {
+            return Err(ArchiveError::NotFound(format!(
+                "no archive at {}",
+                path.display()
+            )));
+        }
+        refuse_other_files(path, true)?;
+        let flags = rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY
+            | rusqlite::OpenFlags::SQLITE_OPEN_URI
+            | rusqlite::OpenFlags::SQLITE_OPEN_NO_MUTEX;
+        let plain = Connection::open_with_flags(path, flags).and_then(|c| {
+            // Reading a WAL database needs its shared-memory file; where the folder is
+            // read-only and none exists, SQLite cannot make one.
+            c.query_row("SELECT COUNT(*) FROM sqlite_master", [], |r| {
+                r.get::<_, i64>(0)
+            })?;
+            Ok(c)
+        });
+        let conn = match plain {
+            Ok(c) => c,
+            Err(_) => {
+                // Nobody can be writing to a file in a read-only folder: read it as it is.
+                let uri = format!(
+                    "file:{}?immutable=1",
+                    path.display()
+                        .to_string()
+                        .replace('?', "%3f")
+                        .replace('#', "%23")
+                );
+                Connection::open_with_flags(uri, flags).map_err(|e| open_err(e.to_string()))?
+            }
+        };
+        conn.busy_timeout(std::time::Duration::from_secs(30))
+            .map_err(|e| open_err(e.to_string()))?;
+        let not_archive = |why: &str| ArchiveError::NotAnArchive {
+            path: path.display().to_string(),
+            why: why.to_string(),
+        };
+        match stored_version(&conn) {
+            Err(e) => return Err(not_archive(&e.to_string())),
+            Ok(Some(v)) if v > SCHEMA_VERSION => return Err(ArchiveError::Newer(v)),
+            Ok(_) => {}
+        }
+        for table in ["meta", "runs", "units", "readings", "plans"] {
+            if !has_table(&conn, table).map_err(|e| not_archive(&e.to_string()))? {
+                return Err(not_archive(&format!("it has no {table} table")));
+            }
+        }
+        // An archive from before readings kept their duration is read as it is: a temporary
+        // view (in the connection's own memory, never the file) shows the column empty.
+        let has_durations = conn
+            .prepare("SELECT 1 FROM pragma_table_info('readings') WHERE name = 'took_s'")?
+            .exists([])?;
+        if !has_durations {
+            conn.execute_batch(
+                "CREATE TEMP VIEW readings AS SELECT *, NULL AS took_s FROM main.readings",
+            )?;
+        }
+        Ok(Archive {
+            conn: Mutex::new(conn),
+            first_error: Mutex::new(None),
+        })
+    }
+
+    /// The anchor of a run: its newest sealed end, `SEQ:SHA256`.
+    pub fn run_anchor(&self, run_id: &str) -> Result<Option<String>, ArchiveError> {
+        Ok(self
+            .conn()
+            .query_row(
+                "SELECT seq, sha256 FROM chain WHERE run_id = ?1 AND kind = 'end' ORDER BY seq DESC LIMIT 1",
+                [run_id],
+                |r| Ok(format!("{}:{}", r.get::<_, i64>(0)?, r.get::<_, String>(1)?)),
+            )
+            .optional()?)
+    }
+
+    /// The chain head now, `SEQ:SHA256`: what a run's folder and reports keep as its anchor.
+    pub fn chain_head(&self) -> Result<Option<String>, ArchiveError> {
+        Ok(chain::head(&self.conn())?)
     }
 
     fn conn(&self) -> std::sync::MutexGuard<'_, Connection> {
@@ -262,14 +485,16 @@ impl Archive {
         }
     }
 
-    /// Stores the plan text (once per SHA-256) and the run, in state "running".
+    /// Stores the plan text (once per SHA-256) and the run, in state "running", and seals the
+    /// run's opening in the chain.
     pub fn begin_run(&self, plan: &Plan, run: &RunRow) -> Result<(), ArchiveError> {
         let conn = self.conn();
-        conn.execute(
+        let tx = immediate(&conn)?;
+        tx.execute(
             "INSERT OR IGNORE INTO plans (sha256, plan_id, revision, file, text) VALUES (?1, ?2, ?3, ?4, ?5)",
             params![plan.source.sha256, plan.id, plan.revision, plan.source.file, plan.source.text],
         )?;
-        conn.execute(
+        tx.execute(
             "INSERT INTO runs (run_id, plan_sha256, lot, station, operator, bench, tool_version, started_at, state)
              VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, 'running')",
             params![
@@ -283,16 +508,40 @@ impl Archive {
                 run.started_at
             ],
         )?;
+        let content = chain::run_content(&tx, &run.run_id)?.expect("the run was just written");
+        chain::append(
+            &tx,
+            &chain::Entry::Run {
+                run_id: &run.run_id,
+            },
+            &content,
+        )?;
+        tx.commit()?;
         Ok(())
     }
 
-    /// Marks a run finished.
-    pub fn finish_run(&self, run_id: &str, finished_at: &str) -> Result<(), ArchiveError> {
-        self.conn().execute(
-            "UPDATE runs SET state = 'finished', finished_at = ?2 WHERE run_id = ?1",
-            params![run_id, finished_at],
+    /// Ends a run: `finished`, or `interrupted` (stopped by a signal or the operator, to be
+    /// resumed); the end is sealed in the chain. Returns the chain head after it: the anchor.
+    pub fn finish_run(
+        &self,
+        run_id: &str,
+        finished_at: &str,
+        state: RunState,
+    ) -> Result<String, ArchiveError> {
+        let conn = self.conn();
+        let tx = immediate(&conn)?;
+        tx.execute(
+            "UPDATE runs SET state = ?3, finished_at = ?2 WHERE run_id = ?1",
+            params![run_id, finished_at, state.word()],
         )?;
-        Ok(())
+        chain::append(
+            &tx,
+            &chain::Entry::End { run_id },
+            &chain::end_content(run_id, state.word(), Some(finished_at)),
+        )?;
+        let head = chain::head(&tx)?.expect("an entry was just appended");
+        tx.commit()?;
+        Ok(head)
     }
 
     /// A run's row.
@@ -344,10 +593,16 @@ impl Archive {
             first_started_at: run.started_at,
             ..Default::default()
         };
-        let mut stmt = conn.prepare("SELECT position, serial FROM run_units WHERE run_id = ?1")?;
+        // The newest unit seen in each position (a unit swapped in at an earlier resume).
+        let mut stmt = conn
+            .prepare("SELECT position, serial FROM run_units WHERE run_id = ?1 ORDER BY rowid")?;
         for row in stmt.query_map([run_id], |r| Ok((r.get::<_, i64>(0)?, r.get(1)?)))? {
             let (p, serial) = row?;
             resume.serials.insert(p as usize, serial);
+        }
+        let mut stmt = conn.prepare("SELECT DISTINCT position FROM units WHERE run_id = ?1")?;
+        for row in stmt.query_map([run_id], |r| r.get::<_, i64>(0))? {
+            resume.sealed.insert(row? as usize);
         }
         // An attempt that was cut short left readings but no step record: the next attempt of
         // that step must have a number of its own, or their readings would mix.
@@ -397,9 +652,10 @@ impl Archive {
         Ok(resume)
     }
 
-    /// Unit records of a run, whole (with samples), by position.
+    /// Unit records of a run, whole (with samples), by position: the newest of each position
+    /// (a resumed run's, not the interrupted one's).
     pub fn unit_records(&self, run_id: &str) -> Result<Vec<UnitRecord>, ArchiveError> {
-        self.records_where("u.run_id = ?1", run_id)
+        self.records_where(&format!("u.run_id = ?1 AND {NEWEST}"), run_id)
     }
 
     /// Every unit record of a serial number, newest first.
@@ -428,7 +684,7 @@ impl Archive {
         let mut stmt = conn.prepare(&format!(
             "SELECT u.record FROM units u JOIN runs r ON r.run_id = u.run_id
              JOIN plans p ON p.sha256 = r.plan_sha256
-             WHERE {column} = ?1 AND (?2 IS NULL OR p.plan_id = ?2) ORDER BY u.seq"
+             WHERE {column} = ?1 AND (?2 IS NULL OR p.plan_id = ?2) AND {NEWEST} ORDER BY u.seq"
         ))?;
         let texts: Vec<String> = stmt
             .query_map(params![value, plan_id], |r| r.get(0))?
@@ -473,18 +729,18 @@ impl Archive {
     /// Runs with their counts of accepted, rejected and incomplete units, newest first.
     pub fn runs(&self, filter: &RunFilter) -> Result<Vec<RunSummary>, ArchiveError> {
         let conn = self.conn();
-        let mut stmt = conn.prepare(
+        let mut stmt = conn.prepare(&format!(
             "SELECT r.run_id, r.started_at, p.plan_id, p.revision, r.lot, r.station, r.state,
                     COALESCE(SUM(u.status = 'accepted'), 0), COALESCE(SUM(u.status = 'rejected'), 0),
                     COALESCE(SUM(u.status = 'incomplete'), 0)
              FROM runs r JOIN plans p ON p.sha256 = r.plan_sha256
-             LEFT JOIN units u ON u.run_id = r.run_id
+             LEFT JOIN units u ON u.run_id = r.run_id AND {NEWEST}
              WHERE (?1 IS NULL OR r.lot = ?1) AND (?2 IS NULL OR p.plan_id = ?2)
                AND (?3 IS NULL OR r.started_at >= ?3)
              GROUP BY r.run_id
              HAVING ?4 IS NULL OR SUM(u.status = ?4) > 0
-             ORDER BY r.started_at DESC",
-        )?;
+             ORDER BY r.started_at DESC"
+        ))?;
         let rows = stmt.query_map(
             params![filter.lot, filter.plan, filter.since, filter.verdict],
             |r| {
@@ -505,89 +761,56 @@ impl Archive {
         Ok(rows.collect::<Result<_, _>>()?)
     }
 
-    /// Checks every unit record's hash and the chain between them. Returns the records checked
-    /// and those that fail.
-    pub fn verify(&self) -> Result<(u64, Vec<Failure>), ArchiveError> {
+    /// Checks the whole archive against its chain (see the `chain` module for what that
+    /// covers), and the chain against `anchor` (`SEQ:SHA256`, as a run's folder keeps it)
+    /// where one is given.
+    pub fn verify(&self, anchor: Option<&str>) -> Result<Verification, ArchiveError> {
         let conn = self.conn();
-        let mut stmt = conn.prepare(
-            "SELECT seq, run_id, serial, record, record_sha256, prev_sha256 FROM units ORDER BY seq",
-        )?;
-        let mut rows = stmt.query([])?;
-        let mut failures = Vec::new();
-        let mut checked = 0;
-        let mut previous_hash = GENESIS.to_string();
-        let mut previous_seq = 0i64;
-        while let Some(row) = rows.next()? {
-            let seq: i64 = row.get(0)?;
-            let run_id: String = row.get(1)?;
-            let serial: String = row.get(2)?;
-            let text: String = row.get(3)?;
-            let stored: String = row.get(4)?;
-            let prev: String = row.get(5)?;
-            checked += 1;
-            let fail = |why: String| Failure {
-                seq,
-                run_id: run_id.clone(),
-                serial: serial.clone(),
-                why,
-            };
-            match reassemble(&conn, &text) {
-                Ok(record) => {
-                    if canonical_hash(&record) != stored {
-                        failures.push(fail(
-                            "its content (record or readings) no longer matches its hash".into(),
-                        ));
-                    }
-                    if record.serial != serial || record.run_id != run_id {
-                        failures.push(fail("its serial or run differs from the record's".into()));
-                    }
-                }
-                Err(e) => failures.push(fail(format!("it cannot be read: {e}"))),
-            }
-            if prev != previous_hash {
-                failures.push(fail(format!(
-                    "the record before it (sequence {previous_seq}) is missing, reordered or changed"
-                )));
-            }
-            previous_hash = stored;
-            previous_seq = seq;
-        }
-        let head: Option<String> = conn
-            .query_row("SELECT value FROM meta WHERE key = 'chain_head'", [], |r| {
-                r.get(0)
-            })
-            .optional()?;
-        let expected_head = format!("{previous_seq}:{previous_hash}");
-        if checked > 0 && head.as_deref() != Some(expected_head.as_str()) {
-            failures.push(Failure {
-                seq: previous_seq,
-                run_id: String::new(),
-                serial: String::new(),
-                why: "the newest records were removed: the chain ends before its recorded head"
+        let legacy_upto: i64 = conn
+            .query_row(
+                "SELECT value FROM meta WHERE key = 'legacy_units_upto'",
+                [],
+                |r| r.get::<_, String>(0),
+            )
+            .optional()?
+            .and_then(|v| v.parse().ok())
+            .unwrap_or(0);
+        let legacy_runs = chain::legacy_runs(&conn)?;
+        if !has_table(&conn, "chain")? {
+            // A version-1 archive opened read-only: it has only its records' own chain.
+            return Err(ArchiveError::Open {
+                path: String::new(),
+                why: "this archive was written by an earlier meterproof (schema 1): open it \
+                      once for writing (any run or resume with --archive) to bring it up to date"
                     .into(),
             });
         }
-        Ok((checked, failures))
+        chain::verify(&conn, legacy_upto, &legacy_runs, anchor)
     }
 
-    /// Appends unit records to the chain, in one transaction with the chain head (one commit
-    /// for a whole run). A record already in the archive (a resumed run's finished unit) is
-    /// left as it is.
+    /// Appends unit records, sealing each in the chain, in one transaction (one commit for a
+    /// whole run). A record that says nothing new about its position (a resumed run's unit
+    /// that had finished before the interruption) is not stored twice.
     pub fn append_units(&self, records: &[UnitRecord]) -> Result<(), ArchiveError> {
-        let mut conn = self.conn();
-        let tx = conn.transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
-        let mut new = Vec::new();
+        let conn = self.conn();
+        let tx = immediate(&conn)?;
         for record in records {
-            let exists: bool = tx.query_row(
-                "SELECT COUNT(*) > 0 FROM units WHERE run_id = ?1 AND position = ?2",
-                params![record.run_id, record.position as i64],
-                |r| r.get(0),
-            )?;
-            if !exists {
-                new.push(record);
+            let newest: Option<String> = tx
+                .query_row(
+                    "SELECT record FROM units WHERE run_id = ?1 AND position = ?2 ORDER BY seq DESC LIMIT 1",
+                    params![record.run_id, record.position as i64],
+                    |r| r.get(0),
+                )
+                .optional()?;
+            let same = newest
+                .and_then(|t| serde_json::from_str::<UnitRecord>(&t).ok())
+                .is_some_and(|old| {
+                    old.serial == record.serial && old.steps == stripped(record).steps
+                });
+            if !same {
+                insert_unit_row(&tx, record)?;
             }
         }
-        chain_units(&tx, new)?;
         tx.commit()?;
         Ok(())
     }
@@ -596,42 +819,62 @@ impl Archive {
     /// for imports and for generating large archives, where a transaction per reading would only
     /// measure the disk's fsync.
     pub fn import_units(&self, records: &[UnitRecord]) -> Result<(), ArchiveError> {
-        let mut conn = self.conn();
-        let tx = conn.transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
+        let conn = self.conn();
+        let tx = immediate(&conn)?;
         for r in records {
             insert_readings_of(&tx, r)?;
+            insert_unit_row(&tx, r)?;
         }
-        chain_units(&tx, records)?;
         tx.commit()?;
         Ok(())
     }
 
-    /// Records which unit is in which position, once it has identified itself.
+    /// Records which unit is in which position, once it has identified itself, sealed in the
+    /// chain (a resume checks the unit against it).
     pub fn note_unit(&self, record: &UnitRecord) -> Result<(), ArchiveError> {
-        self.conn().execute(
+        let conn = self.conn();
+        let tx = immediate(&conn)?;
+        let added = tx.execute(
             "INSERT OR IGNORE INTO run_units (run_id, position, serial) VALUES (?1, ?2, ?3)",
             params![record.run_id, record.position as i64, record.serial],
         )?;
+        if added == 1 {
+            chain::append(
+                &tx,
+                &chain::Entry::Seen {
+                    run_id: &record.run_id,
+                    position: record.position,
+                    serial: &record.serial,
+                },
+                &chain::seen_content(&record.run_id, record.position, &record.serial),
+            )?;
+        }
+        tx.commit()?;
         Ok(())
     }
 }
 
-/// Appends unit records (without samples) to the chain, in order, and moves the chain head.
-fn chain_units<'r>(
-    conn: &Connection,
-    records: impl IntoIterator<Item = &'r UnitRecord>,
-) -> rusqlite::Result<()> {
-    let mut prev = newest_hash(conn)?;
-    let mut head = None;
-    for r in records {
-        let (seq, hash) = insert_unit_row(conn, r, &prev)?;
-        head = Some((seq, hash.clone()));
-        prev = hash;
+/// A write transaction that takes the write lock at once: every write appends to the chain,
+/// which reads the newest entry first, so a deferred transaction could find it moved.
+fn immediate(conn: &Connection) -> rusqlite::Result<rusqlite::Transaction<'_>> {
+    rusqlite::Transaction::new_unchecked(conn, rusqlite::TransactionBehavior::Immediate)
+}
+
+/// How a run ended.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum RunState {
+    Finished,
+    /// Stopped by a signal or the operator; `resume` continues it.
+    Interrupted,
+}
+
+impl RunState {
+    pub fn word(self) -> &'static str {
+        match self {
+            RunState::Finished => "finished",
+            RunState::Interrupted => "interrupted",
+        }
     }
-    if let Some((seq, hash)) = head {
-        set_chain_head(conn, seq, &hash)?;
-    }
-    Ok(())
 }
 
 /// Writes every sample of a finished record as reading rows (checks sharing a reading share
@@ -673,28 +916,11 @@ fn insert_readings_of(conn: &Connection, r: &UnitRecord) -> rusqlite::Result<()>
     Ok(())
 }
 
-/// The hash of the newest unit record, which the next one chains to (the genesis value in an
-/// empty archive).
-fn newest_hash(conn: &Connection) -> rusqlite::Result<String> {
-    Ok(conn
-        .query_row(
-            "SELECT record_sha256 FROM units ORDER BY seq DESC LIMIT 1",
-            [],
-            |r| r.get(0),
-        )
-        .optional()?
-        .unwrap_or_else(|| GENESIS.to_string()))
-}
-
-/// Inserts a unit record (without samples) after `prev` in the chain; returns its sequence
-/// number and hash.
-fn insert_unit_row(
-    conn: &Connection,
-    r: &UnitRecord,
-    prev: &str,
-) -> rusqlite::Result<(i64, String)> {
-    let hash = canonical_hash(r);
+/// Inserts a unit record (without samples) and seals it in the chain.
+fn insert_unit_row(conn: &Connection, r: &UnitRecord) -> rusqlite::Result<()> {
+    let hash = crate::record::record_hash(r);
     let text = serde_json::to_string(&stripped(r)).expect("a record serialises");
+    let prev = chain::head(conn)?.unwrap_or_default();
     conn.prepare_cached(
         "INSERT INTO units (run_id, position, serial, firmware, status, finished_at, record, record_sha256, prev_sha256)
          VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9)",
@@ -710,17 +936,16 @@ fn insert_unit_row(
         hash,
         prev
     ])?;
-    Ok((conn.last_insert_rowid(), hash))
-}
-
-/// Records the newest record of the chain, so that removing it is noticed.
-fn set_chain_head(conn: &Connection, seq: i64, hash: &str) -> rusqlite::Result<()> {
-    conn.execute(
-        "INSERT INTO meta (key, value) VALUES ('chain_head', ?1)
-         ON CONFLICT(key) DO UPDATE SET value = excluded.value",
-        [format!("{seq}:{hash}")],
-    )?;
-    Ok(())
+    let unit_seq = conn.last_insert_rowid();
+    chain::append(
+        conn,
+        &chain::Entry::Unit {
+            run_id: &r.run_id,
+            position: r.position,
+            unit_seq,
+        },
+        &hash,
+    )
 }
 
 const INSERT_READING: &str = "INSERT INTO readings (run_id, position, step_index, attempt, quantity, channel, raw, t_s, value, took_s)
@@ -746,6 +971,10 @@ fn fill_step_samples(
     index: usize,
     step: &mut StepRecord,
 ) -> Result<(), ArchiveError> {
+    // A step that never ran took no readings (see `chain::fill_step_json`).
+    if step.status == StepStatus::NotRun {
+        return Ok(());
+    }
     let mut stmt = conn.prepare_cached(
         "SELECT quantity, channel, raw, t_s, value, took_s FROM readings
          WHERE run_id = ?1 AND position = ?2 AND step_index = ?3 AND attempt = ?4 ORDER BY id",
@@ -821,14 +1050,16 @@ impl<'a> RunRecorder<'a> {
     }
 }
 
-/// Writes one position's record of one step, without its samples (those are the readings).
+/// Writes one position's record of one step, without its samples (those are the readings),
+/// and seals it, samples and all, in the chain. A step row is never replaced: a step run again
+/// has an attempt number of its own.
 fn insert_step(
     conn: &Connection,
     run_id: &str,
     position: usize,
     step_index: usize,
     record: &StepRecord,
-) -> rusqlite::Result<usize> {
+) -> rusqlite::Result<()> {
     let mut r = record.clone();
     for c in &mut r.checks {
         c.samples.clear();
@@ -837,17 +1068,29 @@ fn insert_step(
         p.samples.clear();
     }
     let text = serde_json::to_string(&r).expect("a step record serialises");
+    let status = status_word(record.status);
     conn.execute(
-        "INSERT OR REPLACE INTO steps (run_id, position, step_index, attempt, status, record)
+        "INSERT INTO steps (run_id, position, step_index, attempt, status, record)
          VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
         params![
             run_id,
             position as i64,
             step_index as i64,
             record.attempt as i64,
-            status_word(record.status),
+            status,
             text
         ],
+    )?;
+    let full = serde_json::to_value(record).expect("a step record serialises");
+    chain::append(
+        conn,
+        &chain::Entry::Step {
+            run_id,
+            position,
+            step_index,
+            attempt: record.attempt,
+        },
+        &chain::step_content(status, &full),
     )
 }
 
@@ -898,7 +1141,7 @@ impl Recorder for RunRecorder<'_> {
     fn step_finished(&self, step_index: usize, records: &[(usize, &StepRecord)]) {
         let conn = self.archive.conn();
         // One transaction for all positions: one commit (one fsync) per step, not one per unit.
-        let result = conn.unchecked_transaction().and_then(|tx| {
+        let result = immediate(&conn).and_then(|tx| {
             for (position, record) in records {
                 insert_step(&tx, &self.run_id, *position, step_index, record)?;
             }

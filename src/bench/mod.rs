@@ -112,6 +112,78 @@ pub trait LoadSource: Send {
     fn off(&mut self) -> Result<(), BenchError>;
 }
 
+/// The load source, shared: the engine drives it, and a second stop signal may switch its
+/// output off from the signal handler's thread while the engine still holds the bench. Every
+/// operation takes the lock for its own length only (an SCPI transaction, an operator's
+/// answer), so `off_within` gets its turn quickly.
+#[derive(Clone)]
+pub struct SourceHandle(Arc<Mutex<Box<dyn LoadSource>>>);
+
+impl SourceHandle {
+    pub fn new(source: Box<dyn LoadSource>) -> SourceHandle {
+        SourceHandle(Arc::new(Mutex::new(source)))
+    }
+
+    fn lock(&self) -> std::sync::MutexGuard<'_, Box<dyn LoadSource>> {
+        self.0.lock().unwrap_or_else(|p| p.into_inner())
+    }
+
+    pub fn describe(&self) -> String {
+        self.lock().describe()
+    }
+
+    pub fn apply(&self, load: &Load) -> Result<(), BenchError> {
+        self.lock().apply(load)
+    }
+
+    pub fn off(&self) -> Result<(), BenchError> {
+        self.lock().off()
+    }
+
+    /// Switches the output off from another thread, waiting at most `wait` for an operation
+    /// in progress to finish; says so when it could not get its turn.
+    pub fn off_within(&self, wait: Duration) -> Result<(), BenchError> {
+        let start = Instant::now();
+        loop {
+            match self.0.try_lock() {
+                Ok(mut s) => return s.off(),
+                Err(std::sync::TryLockError::Poisoned(p)) => return p.into_inner().off(),
+                Err(std::sync::TryLockError::WouldBlock) if start.elapsed() < wait => {
+                    std::thread::sleep(Duration::from_millis(10));
+                }
+                Err(std::sync::TryLockError::WouldBlock) => {
+                    return Err(BenchError::Source(format!(
+                        "the source was busy for {} ms and could not be switched off",
+                        wait.as_millis()
+                    )));
+                }
+            }
+        }
+    }
+
+    /// Replaces the source (to wrap it, as the operator's hand-set load wraps the simulator's).
+    pub fn wrap(&self, f: impl FnOnce(Box<dyn LoadSource>) -> Box<dyn LoadSource>) {
+        let mut slot = self.lock();
+        let inner = std::mem::replace(&mut *slot, Box::new(NoSource));
+        *slot = f(inner);
+    }
+}
+
+/// A source that does nothing: a placeholder while a source is being wrapped.
+pub struct NoSource;
+
+impl LoadSource for NoSource {
+    fn describe(&self) -> String {
+        "none".into()
+    }
+    fn apply(&mut self, _: &Load) -> Result<(), BenchError> {
+        Ok(())
+    }
+    fn off(&mut self) -> Result<(), BenchError> {
+        Ok(())
+    }
+}
+
 /// A request for the reference value of one quantity over a step's sampling window.
 #[derive(Debug, Clone)]
 pub struct ReferenceRequest<'a> {
@@ -184,7 +256,7 @@ pub struct Position {
 pub struct Bench {
     pub station: StationInfo,
     pub clock: Arc<dyn Clock>,
-    pub source: Box<dyn LoadSource>,
+    pub source: SourceHandle,
     pub reference: Box<dyn ReferenceMeter>,
     pub positions: Vec<Position>,
     /// Whether positions are read concurrently (links that wait on real ports).

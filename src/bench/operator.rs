@@ -20,7 +20,7 @@ pub const PROMPT_CAUTION: &str = "CAUTION: mains voltage. Qualified people only;
 /// Why a prompt got no answer.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 pub enum Interrupted {
-    #[error("interrupted (Ctrl-C)")]
+    #[error("interrupted (stop signal)")]
     Signal,
     #[error("the input ended")]
     EndOfInput,

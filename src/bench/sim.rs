@@ -16,7 +16,7 @@
 
 use super::{
     Bench, BenchError, Clock, InstrumentInfo, LoadSource, Position, ReferenceMeter,
-    ReferenceReading, ReferenceRequest, StationInfo, VirtualClock,
+    ReferenceReading, ReferenceRequest, SourceHandle, StationInfo, VirtualClock,
 };
 pub use front_end::{FrontEnd, front_end};
 
@@ -494,7 +494,7 @@ impl SimBench {
                 source: "simulated lamp-bank load with switch-on surge".into(),
             },
             clock: self.clock.clone(),
-            source,
+            source: SourceHandle::new(source),
             reference,
             positions,
             parallel: false,

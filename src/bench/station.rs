@@ -492,7 +492,7 @@ pub fn build_bench(
             source: source_description,
         },
         clock: Arc::new(RealClock::scaled(station.time_scale)),
-        source,
+        source: super::SourceHandle::new(source),
         reference,
         positions,
         parallel: true,

@@ -40,11 +40,37 @@ impl BenchOptions for ResumeArgs {
     }
 }
 
+/// Opens an archive to write to (resume).
 fn open(path: &Path) -> Result<Archive, CliError> {
     if !path.exists() {
         return Err(CliError::Usage(format!("no archive at {}", path.display())));
     }
     Archive::open(path).map_err(|e| CliError::Run(e.to_string()))
+}
+
+/// Opens an archive to read from: never changes it, works where it is read-only.
+fn open_to_read(path: &Path) -> Result<Archive, CliError> {
+    Archive::open_read_only(path).map_err(|e| match e {
+        crate::archive::ArchiveError::NotFound(what) => CliError::Usage(what),
+        crate::archive::ArchiveError::NotAnArchive { .. } => CliError::NotArchive(e.to_string()),
+        other => CliError::Run(other.to_string()),
+    })
+}
+
+/// The anchors of the runs `records` come from, for their reports.
+fn anchors_of(
+    archive: &Archive,
+    records: &[crate::record::UnitRecord],
+) -> Result<super::Anchors, CliError> {
+    let mut anchors = super::Anchors::new();
+    for r in records {
+        if !anchors.contains_key(&r.run_id)
+            && let Some(a) = archive.run_anchor(&r.run_id).map_err(db)?
+        {
+            anchors.insert(r.run_id.clone(), a);
+        }
+    }
+    Ok(anchors)
 }
 
 fn db(e: crate::archive::ArchiveError) -> CliError {
@@ -58,7 +84,7 @@ fn db(e: crate::archive::ArchiveError) -> CliError {
 pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
     let archive = open(&args.archive)?;
     let run = archive.run(&args.run).map_err(db)?;
-    if run.state == "finished" {
+    if run.state != "running" && run.state != "interrupted" {
         return Err(CliError::Usage(format!(
             "run {} finished at {}: there is nothing to resume",
             run.run_id,
@@ -94,18 +120,30 @@ pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
         &recorder,
         Some(&state),
     );
-    if let Err(e) = finish_run(&archive, &run.run_id, &records) {
-        // The archive failed: the engine's records, as files, are what is left of the run.
-        let written = write_outputs(&run_dir, &records, &templates)?;
-        print_summary(&records, &written);
-        return Err(e);
-    }
-    // Units that had already finished keep the record the archive has.
-    let records = archive.unit_records(&run.run_id).map_err(db)?;
-    let mut records = records;
+    let archived = finish_run(&archive, &run.run_id, &records);
+    // What the folder held from before the interruption is kept, set aside, so the final
+    // reports carry their plain names.
+    super::set_aside_earlier_files(&run_dir)?;
+    let hint = super::resume_hint(&run.run_id, &args.archive, &args.out, &records);
+    let anchor = match archived {
+        Err(e) => {
+            // The archive failed: the engine's records, as files, are what is left of the run.
+            let written = write_outputs(&run_dir, &records, &templates, &super::Anchors::new())?;
+            print_summary(&records, &written);
+            return Err(e);
+        }
+        Ok(a) => a,
+    };
+    super::write_anchor(&run_dir, &anchor)?;
+    // Units that had finished before the interruption keep the record the archive has.
+    let mut records = archive.unit_records(&run.run_id).map_err(db)?;
     records.sort_by_key(|r| r.position);
-    let written = write_outputs(&run_dir, &records, &templates)?;
+    let anchors = super::Anchors::from([(run.run_id.clone(), anchor)]);
+    let written = write_outputs(&run_dir, &records, &templates, &anchors)?;
     print_summary(&records, &written);
+    if let Some(h) = hint {
+        println!("{h}");
+    }
     Ok(exit_status(&records))
 }
 
@@ -120,7 +158,7 @@ pub(super) struct HistoryArgs {
 }
 
 pub(super) fn history(args: &HistoryArgs) -> Result<i32, CliError> {
-    let archive = open(&args.archive)?;
+    let archive = open_to_read(&args.archive)?;
     let rows = archive.history(&args.serial).map_err(db)?;
     if args.json {
         print_json(&rows);
@@ -183,7 +221,7 @@ pub(super) fn runs(args: &RunsArgs) -> Result<i32, CliError> {
             "--since {s}: expected a date as YYYY-MM-DD"
         )));
     }
-    let archive = open(&args.archive)?;
+    let archive = open_to_read(&args.archive)?;
     let filter = RunFilter {
         lot: args.lot.clone(),
         plan: args.plan.clone(),
@@ -243,7 +281,7 @@ fn records_of(archive: &Archive, what: &str) -> Result<Vec<crate::record::UnitRe
 }
 
 pub(super) fn export(args: &ExportArgs) -> Result<i32, CliError> {
-    let archive = open(&args.archive)?;
+    let archive = open_to_read(&args.archive)?;
     let records = records_of(&archive, &args.what)?;
     std::fs::create_dir_all(&args.to)
         .map_err(|e| CliError::Run(format!("cannot create {}: {e}", args.to.display())))?;
@@ -281,20 +319,56 @@ pub(super) fn export(args: &ExportArgs) -> Result<i32, CliError> {
 pub(super) struct VerifyArgs {
     #[arg(long)]
     archive: PathBuf,
+    /// An anchor the chain must still hold: `SEQ:SHA256` as printed on a report, or the
+    /// `chain-anchor.txt` file of a run's folder. Finds records removed from the end of the
+    /// chain with the chain rewritten to match, which the archive alone cannot show.
+    #[arg(long, value_name = "ANCHOR|FILE")]
+    anchor: Option<String>,
 }
 
-/// Checks every record's hash and the chain; exit 1 if any record fails.
+/// Checks every sealed row against the chain, and the chain against an anchor; exit 1 if
+/// anything fails. Opens the archive read-only.
 pub(super) fn verify(args: &VerifyArgs) -> Result<i32, CliError> {
-    let archive = open(&args.archive)?;
-    let (checked, failures) = archive.verify().map_err(db)?;
-    for f in &failures {
+    let anchor = match &args.anchor {
+        None => None,
+        Some(a) if Path::new(a).is_file() => Some(
+            std::fs::read_to_string(a)
+                .map_err(|e| CliError::Usage(format!("--anchor {a}: {e}")))?
+                .trim()
+                .to_string(),
+        ),
+        Some(a) => Some(a.trim().to_string()),
+    };
+    let archive = open_to_read(&args.archive)?;
+    let v = archive.verify(anchor.as_deref()).map_err(db)?;
+    for f in &v.failures {
         println!(
-            "record {} (run {}, serial {}): {}",
-            f.seq, f.run_id, f.serial, f.why
+            "{}: {}",
+            super::terminal_safe(&f.what),
+            super::terminal_safe(&f.why)
         );
     }
-    println!("{checked} records checked, {} failed", failures.len());
-    Ok(if failures.is_empty() { 0 } else { 1 })
+    if v.legacy_records > 0 {
+        println!(
+            "{} unit records from before the chain (schema 1) were checked by their own record chain; their run rows are not covered",
+            v.legacy_records
+        );
+    }
+    if let Some(h) = &v.head {
+        println!("chain head {h}");
+    }
+    if let Some(a) = &anchor
+        && v.failures.iter().all(|f| !f.what.starts_with("the anchor"))
+    {
+        println!("anchor {a} is in the chain");
+    }
+    println!(
+        "{} chain entries and {} unit records checked, {} failed",
+        v.entries,
+        v.unit_records,
+        v.failures.len()
+    );
+    Ok(if v.failures.is_empty() { 0 } else { 1 })
 }
 
 #[derive(clap::Args)]
@@ -340,7 +414,7 @@ fn selector(text: &str) -> Result<(&str, &str), CliError> {
 /// a unit newly fails.
 pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
     use crate::plan::units::{Dimension, parse};
-    let archive = open(&args.archive)?;
+    let archive = open_to_read(&args.archive)?;
     let (bk, bv) = selector(&args.baseline)?;
     let (ck, cv) = selector(&args.candidate)?;
     let baseline = archive.select(bk, bv, args.plan.as_deref()).map_err(db)?;
@@ -445,7 +519,7 @@ pub(super) struct SummaryArgs {
 /// The lot summary, as HTML and CSV beside the runs' folders.
 pub(super) fn summary(args: &SummaryArgs) -> Result<i32, CliError> {
     use crate::report::summary::LotSummary;
-    let archive = open(&args.archive)?;
+    let archive = open_to_read(&args.archive)?;
     let (key, value) = match (&args.lot, &args.run) {
         (Some(l), None) => ("lot", l.as_str()),
         (None, Some(r)) => ("run", r.as_str()),
@@ -522,13 +596,14 @@ pub(super) struct ReportArgs {
 
 /// Renders the reports of a run or a serial number again, from the archive.
 pub(super) fn report(args: &ReportArgs) -> Result<i32, CliError> {
-    let archive = open(&args.archive)?;
+    let archive = open_to_read(&args.archive)?;
     let records = records_of(&archive, &args.what)?;
     let templates =
         Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
     std::fs::create_dir_all(&args.out)
         .map_err(|e| CliError::Run(format!("cannot create {}: {e}", args.out.display())))?;
-    let written = write_outputs(&args.out, &records, &templates)?;
+    let anchors = anchors_of(&archive, &records)?;
+    let written = write_outputs(&args.out, &records, &templates, &anchors)?;
     if let Some(path) = &args.junit {
         write_file(path, crate::report::run_junit(&records))?;
     }

@@ -6,7 +6,7 @@
 
 mod archive_cmds;
 
-use crate::archive::{Archive, RunRecorder, RunRow};
+use crate::archive::{Archive, RunRecorder, RunRow, RunState};
 use crate::bench::Bench;
 use crate::bench::operator::{Console, ManualSource, SharedConsole, TypedReference};
 use crate::bench::reference_file::FileReference;
@@ -162,6 +162,9 @@ enum CliError {
     Plan(PlanErrors),
     #[error("{0}")]
     Run(String),
+    /// The file given as an archive is something else.
+    #[error("{0}")]
+    NotArchive(String),
 }
 
 impl CliError {
@@ -169,6 +172,7 @@ impl CliError {
         match self {
             CliError::Usage(_) | CliError::Plan(_) => 2,
             CliError::Run(_) => 3,
+            CliError::NotArchive(_) => 1,
         }
     }
 }
@@ -176,13 +180,18 @@ impl CliError {
 /// Runs the command line and returns the exit status.
 pub fn main() -> i32 {
     let cli = Cli::parse();
-    // The first Ctrl-C asks the run to stop cleanly; a second one stops the process at once.
+    // The first stop signal (Ctrl-C, SIGTERM, SIGHUP) switches the output off at once and asks
+    // the run to stop cleanly; a second one switches it off again and quits at once.
     let _ = ctrlc::set_handler(|| {
-        if INTERRUPT.swap(true, Ordering::SeqCst) {
+        let again = INTERRUPT.swap(true, Ordering::SeqCst);
+        let off = switch_output_off();
+        if again {
+            eprintln!("\nquitting at once{}", off_text(&off));
             std::process::exit(130);
         }
         eprintln!(
-            "\nstopping: finishing the records of what was taken (Ctrl-C again to quit at once)"
+            "\nstop requested{}; recording what was taken (send the signal again to quit at once)",
+            off_text(&off)
         );
     });
     let result = match cli.command {
@@ -509,15 +518,24 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
     let mut reporter = TerminalReporter::new(args.quiet);
     let recorder = RunRecorder::new(&archive, &ctx.run_id);
     let records = exec::run_with(&plan, &mut bench, &ctx, &mut reporter, &recorder, None);
-    // The files and the summary first: when the archive failed, they are what is left of the
-    // run, and its error is the last word.
-    let written = write_outputs(&run_dir, &records, &templates)?;
+    // The archive first, so the records and reports carry its anchor; when it failed, the
+    // files are what is left of the run, and its error is the last word.
     let archived = finish_run(&archive, &ctx.run_id, &records);
+    let mut anchors = Anchors::new();
+    if let Ok(anchor) = &archived {
+        write_anchor(&run_dir, anchor)?;
+        anchors.insert(ctx.run_id.clone(), anchor.clone());
+    }
+    let written = write_outputs(&run_dir, &records, &templates, &anchors)?;
     if let Some(path) = &args.junit {
         write_file(path, report::run_junit(&records))?;
     }
+    let resume_hint = resume_hint(&ctx.run_id, &archive_path, &args.out, &records);
     if args.json {
         print_json(&records);
+        if let Some(h) = &resume_hint {
+            eprintln!("{h}");
+        }
         archived?;
         return Ok(exit_status(&records));
     }
@@ -535,8 +553,34 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
         wall.elapsed().as_secs_f64(),
         run_dir.display()
     );
+    if let Some(h) = &resume_hint {
+        println!("{h}");
+    }
     archived?;
     Ok(exit_status(&records))
+}
+
+/// For a run stopped early: that the output is off, and the command that continues it.
+fn resume_hint(run_id: &str, archive: &Path, out: &Path, records: &[UnitRecord]) -> Option<String> {
+    let why = exec::stopped_early(records)?;
+    Some(format!(
+        "The run stopped early ({why}); the source output is off. Continue it with:\n  meterproof resume {run_id} --archive {} --out {}",
+        shell_word(&archive.display().to_string()),
+        shell_word(&out.display().to_string())
+    ))
+}
+
+/// A word as a shell reads it back: quoted where it has anything but plain characters.
+fn shell_word(text: &str) -> String {
+    if !text.is_empty()
+        && text
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || "-_./:=@+,".contains(c))
+    {
+        text.to_string()
+    } else {
+        format!("'{}'", text.replace('\'', "'\\''"))
+    }
 }
 
 /// How a run's bench was made, kept in the archive so that a resume can make it again.
@@ -596,12 +640,14 @@ fn build_bench(
             let mut bench = SimBench::new(&config).into_bench();
             if *ask {
                 // The operator confirms each load; the simulator then really applies it.
-                let sim_source = std::mem::replace(&mut bench.source, Box::new(NoSource));
-                bench.source = Box::new(ManualSource::new(console(), Some(sim_source)));
+                bench
+                    .source
+                    .wrap(|sim| Box::new(ManualSource::new(console(), Some(sim))));
                 bench.reference =
                     Box::new(TypedReference::new(console(), plan.reference_plausibility));
             }
             bench.interrupt = INTERRUPT.clone();
+            guard_source(&bench);
             Ok((bench, Vec::new()))
         }
         BenchSpec::Station { path, serials } => {
@@ -610,21 +656,27 @@ fn build_bench(
     }
 }
 
-/// Marks the run finished in the archive, or says why the archive is not complete.
-fn finish_run(archive: &Archive, run_id: &str, records: &[UnitRecord]) -> Result<(), CliError> {
+/// Ends the run in the archive (`interrupted` when it stopped early, so it can be resumed) and
+/// writes nothing else; returns the chain anchor, or says why the archive is not complete.
+fn finish_run(archive: &Archive, run_id: &str, records: &[UnitRecord]) -> Result<String, CliError> {
     let finished_at = records
         .first()
         .map(|r| r.finished_at.clone())
         .unwrap_or_default();
-    archive
-        .finish_run(run_id, &finished_at)
+    let state = if exec::stopped_early(records).is_some() {
+        RunState::Interrupted
+    } else {
+        RunState::Finished
+    };
+    let anchor = archive
+        .finish_run(run_id, &finished_at, state)
         .map_err(|e| CliError::Run(e.to_string()))?;
     if let Some(e) = archive.failure() {
         return Err(CliError::Run(format!(
             "the archive did not take every reading ({e}); the records are still written as files"
         )));
     }
-    Ok(())
+    Ok(anchor)
 }
 
 /// The number of simulated positions, from --positions or --serials.
@@ -700,6 +752,7 @@ fn station_bench(
         }
     }
     bench.interrupt = INTERRUPT.clone();
+    guard_source(&bench);
     if !options.quiet() {
         eprintln!("{MAINS_CAUTION}");
     }
@@ -712,18 +765,31 @@ Only qualified people may operate it; keep terminals enclosed, keep the PC isola
 mains side, and de-energise the load before any wiring change. Local electrical codes and \
 licensed practice take precedence.";
 
-/// A placeholder while a source is being wrapped.
-struct NoSource;
+/// The source of the run in progress, for the signal handler to switch off.
+static ACTIVE_SOURCE: Mutex<Option<crate::bench::SourceHandle>> = Mutex::new(None);
 
-impl crate::bench::LoadSource for NoSource {
-    fn describe(&self) -> String {
-        "none".into()
-    }
-    fn apply(&mut self, _: &crate::plan::Load) -> Result<(), crate::bench::BenchError> {
-        Ok(())
-    }
-    fn off(&mut self) -> Result<(), crate::bench::BenchError> {
-        Ok(())
+/// Registers the bench's source so that a stop signal switches it off straight away.
+fn guard_source(bench: &Bench) {
+    *ACTIVE_SOURCE.lock().unwrap_or_else(|p| p.into_inner()) = Some(bench.source.clone());
+}
+
+/// Switches the registered source off (waiting at most 3 s for a command in progress); `None`
+/// when no run holds a source.
+fn switch_output_off() -> Option<Result<(), crate::bench::BenchError>> {
+    let source = ACTIVE_SOURCE
+        .lock()
+        .unwrap_or_else(|p| p.into_inner())
+        .clone()?;
+    Some(source.off_within(std::time::Duration::from_secs(3)))
+}
+
+fn off_text(off: &Option<Result<(), crate::bench::BenchError>>) -> String {
+    match off {
+        None => String::new(),
+        Some(Ok(())) => ": the source output is OFF".into(),
+        Some(Err(e)) => format!(
+            ": THE SOURCE OUTPUT COULD NOT BE SWITCHED OFF ({e}): switch it off at the bench"
+        ),
     }
 }
 
@@ -825,6 +891,73 @@ fn unused_stem(dir: &Path, stem: &str, ext: &str) -> String {
         .expect("some suffix is free")
 }
 
+/// The archive's anchor of each run (`SEQ:SHA256`), printed on its reports.
+type Anchors = std::collections::BTreeMap<String, String>;
+
+/// Writes a run's anchor into its folder, outside the database: what `verify --anchor` checks
+/// the chain against. An earlier anchor of the run (before a resume) is kept beside it.
+fn write_anchor(dir: &Path, anchor: &str) -> Result<(), CliError> {
+    let name = unused_stem(dir, "chain-anchor", "txt");
+    record::write_new_file(
+        dir,
+        &format!("{name}.txt"),
+        format!("{anchor}\n").as_bytes(),
+    )
+    .map_err(|e| CliError::Run(e.to_string()))?;
+    Ok(())
+}
+
+/// Moves every file a run's folder holds into `earlier-N/` (N the first free number), so that a
+/// resumed run's final reports take the plain names and nothing is overwritten or lost; stale
+/// temporary files of a killed write are removed.
+fn set_aside_earlier_files(dir: &Path) -> Result<(), CliError> {
+    let err = |e: std::io::Error| CliError::Run(format!("cannot tidy {}: {e}", dir.display()));
+    let files: Vec<PathBuf> = std::fs::read_dir(dir)
+        .map_err(err)?
+        .filter_map(Result::ok)
+        .map(|e| e.path())
+        .filter(|p| p.is_file())
+        .collect();
+    let (temps, files): (Vec<PathBuf>, Vec<PathBuf>) = files.into_iter().partition(|p| {
+        p.file_name()
+            .and_then(|n| n.to_str())
+            .is_some_and(|n| n.starts_with('.') && n.ends_with(".tmp"))
+    });
+    for t in temps {
+        let _ = std::fs::remove_file(t);
+    }
+    if files.is_empty() {
+        return Ok(());
+    }
+    let aside = (1..)
+        .map(|n| dir.join(format!("earlier-{n}")))
+        .find(|d| !d.exists())
+        .expect("some number is free");
+    std::fs::create_dir(&aside).map_err(err)?;
+    for f in files {
+        let name = f.file_name().expect("a file has a name").to_owned();
+        std::fs::rename(&f, aside.join(name)).map_err(err)?;
+    }
+    Ok(())
+}
+
+/// Text from a device, a file or the archive made safe for a terminal: control characters
+/// (escape sequences, NUL, newlines) are shown escaped, never sent to the screen.
+fn terminal_safe(text: &str) -> String {
+    if !text.chars().any(char::is_control) {
+        return text.to_string();
+    }
+    text.chars()
+        .map(|c| {
+            if c.is_control() {
+                c.escape_default().to_string()
+            } else {
+                c.to_string()
+            }
+        })
+        .collect()
+}
+
 /// Files written for one unit.
 struct Written {
     html: PathBuf,
@@ -834,6 +967,7 @@ fn write_outputs(
     dir: &Path,
     records: &[UnitRecord],
     templates: &Templates,
+    anchors: &Anchors,
 ) -> Result<Vec<Written>, CliError> {
     let mut written = Vec::new();
     let run_err = |e: &dyn std::fmt::Display| CliError::Run(e.to_string());
@@ -846,7 +980,8 @@ fn write_outputs(
         // The record first: it is what the reports are made from and what must not be lost.
         let json = record::to_json(r).map_err(|e| run_err(&e))?;
         record::write_new_file(dir, &format!("{stem}.json"), &json).map_err(|e| run_err(&e))?;
-        let html = templates.unit_html(r).map_err(|e| run_err(&e))?;
+        let anchor = anchors.get(&r.run_id).map(String::as_str);
+        let html = templates.unit_html(r, anchor).map_err(|e| run_err(&e))?;
         let html_path = record::write_new_file(dir, &format!("{stem}.html"), html.as_bytes())
             .map_err(|e| run_err(&e))?;
         let csv = report::unit_csv(r).map_err(|e| run_err(&e))?;

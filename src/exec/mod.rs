@@ -138,6 +138,8 @@ pub struct Resume {
     pub attempts: BTreeMap<(usize, usize), u32>,
     /// When the run was started first.
     pub first_started_at: String,
+    /// Positions whose unit already has a sealed record of the interrupted run.
+    pub sealed: std::collections::BTreeSet<usize>,
 }
 
 /// One position's state during the run.
@@ -147,6 +149,8 @@ struct Unit {
     active: bool,
     /// Steps run again after a resume.
     repeated: Vec<String>,
+    /// On a resume, a different unit from the one the interrupted run had: nothing is kept.
+    fresh: bool,
 }
 
 /// What `run_step` needs to know about the step beyond the plan.
@@ -184,13 +188,9 @@ pub fn run_with(
 ) -> Vec<UnitRecord> {
     let resumed_at = resume.map(|_| now_iso());
     let started_at = resume.map_or_else(now_iso, |r| r.first_started_at.clone());
-    if let Some(r) = resume {
-        for p in bench.positions.iter_mut() {
-            if p.expected_serial.is_none() {
-                p.expected_serial = r.serials.get(&p.number).cloned();
-            }
-        }
-    }
+    // From here on the output is owned by a guard: whatever ends the run (its end, an error, a
+    // panic in any sampling thread) switches the output off before the bench is left.
+    let output = OutputGuard::new(bench.source.clone());
     let t_start = bench.clock.now_s();
     reporter.event(&Event::RunStarted {
         plan,
@@ -201,6 +201,27 @@ pub fn run_with(
         .iter_mut()
         .map(|p| identify(plan, p, ctx, &bench.station, &started_at))
         .collect();
+    refuse_shared_serials(&mut units);
+    // A unit found in a position where the interrupted run had another is a new unit: it is
+    // tested from the first step, and the unit it replaced keeps its own record.
+    let mut replaced: Vec<UnitRecord> = Vec::new();
+    if let Some(r) = resume {
+        for u in units.iter_mut().filter(|u| u.active) {
+            let position = u.record.position;
+            match r.serials.get(&position) {
+                Some(old) if *old != u.record.serial => {
+                    u.fresh = true;
+                    u.record.notes.push(format!(
+                        "this unit replaced {old} in position {position} while the run was interrupted; {old} keeps its own record"
+                    ));
+                    if !r.sealed.contains(&position) {
+                        replaced.push(replaced_record(&u.record, old, r, plan));
+                    }
+                }
+                _ => {}
+            }
+        }
+    }
     for u in &units {
         recorder.unit_started(&u.record);
         match (&u.record.identity, u.active) {
@@ -242,6 +263,7 @@ pub fn run_with(
             .iter()
             .map(|u| {
                 resume
+                    .filter(|_| !u.fresh)
                     .and_then(|r| r.done.get(&u.record.position))
                     .and_then(|d| d.get(&index))
                     .cloned()
@@ -276,7 +298,7 @@ pub fn run_with(
             step,
         });
         if bench.interrupt.load(std::sync::atomic::Ordering::SeqCst) {
-            let reason = "interrupted (Ctrl-C)".to_string();
+            let reason = STOPPED.to_string();
             for (u, run) in units.iter_mut().zip(&to_run) {
                 if *run {
                     u.record
@@ -365,7 +387,7 @@ pub fn run_with(
         }
     }
     // Leave the bench safe whatever happened; a failure to switch off is worth a line too.
-    let off_failure = bench.source.off().err().map(|e| e.to_string());
+    let off_failure = output.finish().err().map(|e| e.to_string());
     let bench_time_s = bench.clock.now_s() - t_start;
     let finished_at = now_iso();
     let records: Vec<UnitRecord> = units
@@ -403,6 +425,12 @@ pub fn run_with(
             u.record
         })
         .collect();
+    let mut records = records;
+    for mut r in replaced {
+        r.finished_at = finished_at.clone();
+        r.bench_time_s = bench_time_s;
+        records.push(r);
+    }
     recorder.units_finished(&records);
     reporter.event(&Event::RunFinished {
         records: &records,
@@ -410,6 +438,51 @@ pub fn run_with(
     });
     records
 }
+
+/// Owns the source's output for the length of a run: switches it off when dropped, so that an
+/// early return or a panic (unwinding through the engine) never leaves the load on.
+struct OutputGuard {
+    source: crate::bench::SourceHandle,
+    armed: bool,
+}
+
+impl OutputGuard {
+    fn new(source: crate::bench::SourceHandle) -> OutputGuard {
+        OutputGuard {
+            source,
+            armed: true,
+        }
+    }
+
+    /// The run's ordinary end: switches off and says whether that worked.
+    fn finish(mut self) -> Result<(), crate::bench::BenchError> {
+        self.armed = false;
+        self.source.off()
+    }
+}
+
+impl Drop for OutputGuard {
+    fn drop(&mut self) {
+        if self.armed {
+            let _ = self.source.off();
+        }
+    }
+}
+
+/// Why the run stopped before its end (a stop signal, or the operator's abort), if it did: such
+/// a run can be resumed. Read from the records, where the engine wrote it.
+pub fn stopped_early(records: &[UnitRecord]) -> Option<String> {
+    records
+        .iter()
+        .flat_map(|r| &r.steps)
+        .filter_map(|s| s.reason.as_deref())
+        .map(|r| r.strip_prefix("not run: ").unwrap_or(r))
+        .find(|r| r.starts_with(STOPPED) || r.starts_with("aborted"))
+        .map(str::to_string)
+}
+
+/// The reason given to steps a stop signal cut short or kept from running.
+pub const STOPPED: &str = "interrupted (stop signal)";
 
 fn now_iso() -> String {
     chrono::Local::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, false)
@@ -450,10 +523,13 @@ fn identify(
 ) -> Unit {
     let identity = position.link.identify();
     let (identity, refusal) = match identity {
-        Ok(id) => {
-            let refusal = refusal_reason(plan, position, &id);
-            (Some(id), refusal)
-        }
+        Ok(id) => match hostile_identity(&id) {
+            Some((safe, reason)) => (Some(safe), Some((UnitStatus::Incomplete, reason))),
+            None => {
+                let refusal = refusal_reason(plan, position, &id);
+                (Some(id), refusal)
+            }
+        },
         Err(e) => (
             None,
             Some((
@@ -473,6 +549,7 @@ fn identify(
     };
     Unit {
         repeated: Vec::new(),
+        fresh: false,
         record: UnitRecord {
             format: RECORD_FORMAT.into(),
             tool_version: ctx.tool_version.clone(),
@@ -504,6 +581,105 @@ fn identify(
         },
         active,
     }
+}
+
+/// An identity with control characters (escape sequences, NUL, line breaks) in it: such text
+/// would reach terminals, reports and file names. Returns the identity with those characters
+/// escaped (what the record keeps) and the reason the unit is refused.
+fn hostile_identity(id: &Identity) -> Option<(Identity, String)> {
+    let bad = |t: &str| t.chars().any(char::is_control);
+    if !(bad(&id.model) || bad(&id.serial) || bad(&id.firmware)) {
+        return None;
+    }
+    let escape = |t: &str| -> String {
+        t.chars()
+            .map(|c| {
+                if c.is_control() {
+                    c.escape_default().to_string()
+                } else {
+                    c.to_string()
+                }
+            })
+            .collect()
+    };
+    let safe = Identity {
+        model: escape(&id.model),
+        serial: escape(&id.serial),
+        firmware: escape(&id.firmware),
+    };
+    let reason = format!(
+        "the unit's identity contains control characters (model \"{}\", serial \"{}\", firmware \"{}\"): refused; check its programming",
+        safe.model, safe.serial, safe.firmware
+    );
+    Some((safe, reason))
+}
+
+/// Two positions that report one serial are both stopped before any load: one of them is
+/// wrongly programmed (or both), and their records would be mistaken for each other's.
+fn refuse_shared_serials(units: &mut [Unit]) {
+    let serials: Vec<Option<String>> = units
+        .iter()
+        .map(|u| {
+            u.active
+                .then(|| u.record.identity.as_ref().map(|i| i.serial.clone()))
+                .flatten()
+        })
+        .collect();
+    for (i, u) in units.iter_mut().enumerate() {
+        let Some(serial) = &serials[i] else { continue };
+        let others: Vec<String> = serials
+            .iter()
+            .enumerate()
+            .filter(|(j, s)| *j != i && s.as_ref() == Some(serial))
+            .map(|(j, _)| (j + 1).to_string())
+            .collect();
+        if !others.is_empty() {
+            u.active = false;
+            u.record.verdict = UnitVerdict {
+                status: UnitStatus::Incomplete,
+                reasons: vec![format!(
+                    "serial {serial} is reported by position{} {} too: two units cannot share a serial, so neither was tested; check their programming",
+                    if others.len() > 1 { "s" } else { "" },
+                    others.join(", ")
+                )],
+            };
+        }
+    }
+}
+
+/// The record of a unit that was taken out of its position while the run was interrupted,
+/// made from the steps it had finished (it has no sealed record of its own).
+fn replaced_record(new: &UnitRecord, old_serial: &str, resume: &Resume, plan: &Plan) -> UnitRecord {
+    let mut r = new.clone();
+    r.serial = old_serial.to_string();
+    r.identity = None;
+    r.notes = vec![format!(
+        "this unit was taken out of position {} while the run was interrupted, before it finished; unit {} took its place",
+        new.position, new.serial
+    )];
+    let done = resume.done.get(&new.position);
+    r.steps = plan
+        .steps
+        .iter()
+        .enumerate()
+        .map(|(i, step)| {
+            done.and_then(|d| d.get(&i)).cloned().unwrap_or_else(|| {
+                not_run(
+                    step,
+                    "not run: the unit was replaced during the interruption",
+                )
+            })
+        })
+        .collect();
+    let mut verdict = decide::unit_verdict(&r.steps);
+    if verdict.status == UnitStatus::Accepted && plan.calibration.is_some() {
+        verdict.status = UnitStatus::Incomplete;
+        verdict
+            .reasons
+            .push("its calibration was not recorded before it was replaced".into());
+    }
+    r.verdict = verdict;
+    r
 }
 
 /// Why a unit that answered must not be tested, if it must not.
@@ -709,8 +885,19 @@ fn run_step(
             .max()
             .unwrap_or(0) as u32;
     }
+    // A stop signal after the last sample: the output is already off, so no reference may be
+    // read for this step and none of its samples decide anything.
+    let stopped = bench.interrupt.load(std::sync::atomic::Ordering::SeqCst);
+    if stopped {
+        for (s, run) in series.iter_mut().zip(sc.to_run) {
+            if *run && s.fault.is_none() {
+                s.fault = Some(format!("{STOPPED} before the reference was read"));
+            }
+        }
+    }
     let (references, reference_window) = match early_references.take() {
         Some(taken) => taken,
+        None if stopped => (Vec::new(), window),
         None => (
             take_references(step, calibration, bench.reference.as_mut(), window),
             window,
@@ -818,7 +1005,7 @@ fn run_step(
         bench
             .interrupt
             .load(std::sync::atomic::Ordering::SeqCst)
-            .then(|| "interrupted (Ctrl-C)".to_string())
+            .then(|| STOPPED.to_string())
     })
 }
 

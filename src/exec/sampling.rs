@@ -44,7 +44,7 @@ pub(super) struct Sampler<'a> {
     pub interrupt: &'a std::sync::atomic::AtomicBool,
 }
 
-const INTERRUPTED: &str = "interrupted (Ctrl-C) before this sample";
+const INTERRUPTED: &str = "interrupted (stop signal) before this sample";
 
 impl Sampler<'_> {
     fn interrupted(&self) -> bool {

@@ -76,8 +76,14 @@ impl Templates {
         Ok(Templates { env })
     }
 
-    /// Renders the HTML acceptance report of one unit.
-    pub fn unit_html(&self, record: &UnitRecord) -> Result<String, ReportError> {
+    /// Renders the HTML acceptance report of one unit. `anchor` is the archive's chain head
+    /// after the run (`SEQ:SHA256`), printed with the record's own hash so that paper ties to
+    /// `meterproof verify --anchor`.
+    pub fn unit_html(
+        &self,
+        record: &UnitRecord,
+        anchor: Option<&str>,
+    ) -> Result<String, ReportError> {
         let name = "unit-report.html";
         let template = self
             .env
@@ -87,6 +93,10 @@ impl Templates {
             .render(minijinja::context! {
                 record => minijinja::value::Serde(record),
                 view => minijinja::value::Serde(UnitView::of(record)),
+                seal => minijinja::context! {
+                    record_sha256 => crate::record::record_hash(record),
+                    anchor => anchor,
+                },
             })
             .map_err(|e| template_error(name, &e))
     }

@@ -101,7 +101,11 @@ fn main() {
             .collect();
         archive.import_units(&records).unwrap();
         archive
-            .finish_run(&run_id, "2026-12-01T00:00:00+00:00")
+            .finish_run(
+                &run_id,
+                "2026-12-01T00:00:00+00:00",
+                meterproof::archive::RunState::Finished,
+            )
             .unwrap();
         if (lot + 1) % 100 == 0 {
             eprintln!(
@@ -156,12 +160,14 @@ fn main() {
         median(times)
     );
     let t = Instant::now();
-    let (checked, failures) = archive.verify().unwrap();
+    let verification = archive.verify(None).unwrap();
     let v = t.elapsed().as_secs_f64();
+    let checked = verification.unit_records;
     println!(
-        "verify: {checked} records in {v:.1} s ({:.0} records/s), {} failed",
+        "verify: {checked} unit records ({} chain entries) in {v:.1} s ({:.0} records/s), {} failed",
+        verification.entries,
         checked as f64 / v,
-        failures.len()
+        verification.failures.len()
     );
     drop(archive);
     std::fs::remove_dir_all(&dir).unwrap();

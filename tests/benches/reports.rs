@@ -35,7 +35,7 @@ fn main() {
     let start = Instant::now();
     let mut bytes = 0usize;
     for r in &records {
-        bytes += templates.unit_html(r).unwrap().len();
+        bytes += templates.unit_html(r, None).unwrap().len();
         bytes += unit_csv(r).unwrap().len();
     }
     let t = start.elapsed().as_secs_f64();

@@ -1,0 +1,449 @@
+//! The archive's integrity claim, attacked: every column of every table edited, rows of each
+//! table deleted, and `verify` must find every change that alters what a command shows.
+//!
+//! The fixture holds a finished run and a run interrupted after two steps and resumed, so that
+//! every kind of row (plans, runs, positions, readings, steps, unit records, the chain, meta) is
+//! there more than once. What a command shows is taken as a fingerprint of the archive's reading
+//! API (runs, each run's row, plan text and unit records, each serial's history and records,
+//! records by lot and firmware, and each run's resume state); a change that moves the
+//! fingerprint must fail `verify`, and the counts are printed.
+
+mod common;
+use common::{bin, temp_dir};
+
+use meterproof::archive::{Archive, RunFilter, RunRecorder, RunRow, RunState};
+use meterproof::bench::sim::{SimBench, SimConfig};
+use meterproof::exec::{self, Event, Reporter, RunContext};
+use meterproof::plan::Plan;
+use rusqlite::Connection;
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
+
+/// Stops the run (as a stop signal would) once `after` steps have finished.
+struct StopAfter {
+    after: usize,
+    seen: usize,
+    flag: Arc<AtomicBool>,
+}
+
+impl Reporter for StopAfter {
+    fn event(&mut self, event: &Event) {
+        if let Event::StepFinished { .. } = event {
+            self.seen += 1;
+            if self.seen == self.after {
+                self.flag.store(true, Ordering::SeqCst);
+            }
+        }
+    }
+}
+
+fn run_row(plan: &Plan, run_id: &str, lot: &str) -> RunRow {
+    RunRow {
+        run_id: run_id.into(),
+        plan_sha256: plan.source.sha256.clone(),
+        plan_id: plan.id.clone(),
+        revision: plan.revision.clone(),
+        lot: Some(lot.into()),
+        station: "sim".into(),
+        operator: "tester".into(),
+        bench: "{\"kind\":\"sim\"}".into(),
+        tool_version: "test".into(),
+        started_at: "2026-12-01T10:00:00.000+00:00".into(),
+        finished_at: None,
+        state: "running".into(),
+    }
+}
+
+fn context(run_id: &str, lot: &str) -> RunContext {
+    RunContext {
+        run_id: run_id.into(),
+        operator: "tester".into(),
+        lot: Some(lot.into()),
+        tool_version: "test".into(),
+        notes: Vec::new(),
+    }
+}
+
+/// A finished run and an interrupted-then-resumed one, in one archive.
+fn fixture(path: &Path) {
+    let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
+    let archive = Archive::open(path).unwrap();
+    // Run 1: straight through.
+    archive
+        .begin_run(&plan, &run_row(&plan, "R1", "LOT-A"))
+        .unwrap();
+    let mut bench = SimBench::new(&SimConfig::new(1, 3)).into_bench();
+    let rec = RunRecorder::new(&archive, "R1");
+    let records = exec::run_with(
+        &plan,
+        &mut bench,
+        &context("R1", "LOT-A"),
+        &mut exec::Silent,
+        &rec,
+        None,
+    );
+    archive
+        .finish_run("R1", &records[0].finished_at, RunState::Finished)
+        .unwrap();
+    // Run 2: stopped after two steps, then resumed on a fresh bench.
+    archive
+        .begin_run(&plan, &run_row(&plan, "R2", "LOT-B"))
+        .unwrap();
+    let mut bench = SimBench::new(&SimConfig::new(2, 3)).into_bench();
+    let flag = bench.interrupt.clone();
+    let rec = RunRecorder::new(&archive, "R2");
+    let mut stop = StopAfter {
+        after: 2,
+        seen: 0,
+        flag,
+    };
+    let records = exec::run_with(
+        &plan,
+        &mut bench,
+        &context("R2", "LOT-B"),
+        &mut stop,
+        &rec,
+        None,
+    );
+    assert!(exec::stopped_early(&records).is_some());
+    archive
+        .finish_run("R2", &records[0].finished_at, RunState::Interrupted)
+        .unwrap();
+    let state = archive.resume_state("R2").unwrap();
+    let mut bench = SimBench::new(&SimConfig::new(2, 3)).into_bench();
+    let rec = RunRecorder::new(&archive, "R2");
+    let records = exec::run_with(
+        &plan,
+        &mut bench,
+        &context("R2", "LOT-B"),
+        &mut exec::Silent,
+        &rec,
+        Some(&state),
+    );
+    assert!(exec::stopped_early(&records).is_none());
+    archive
+        .finish_run("R2", &records[0].finished_at, RunState::Finished)
+        .unwrap();
+}
+
+/// What the archive's commands would show, as text.
+fn shown(path: &Path, runs: &[String], serials: &[String], firmwares: &[String]) -> String {
+    let a = match Archive::open_read_only(path) {
+        Ok(a) => a,
+        Err(e) => return format!("cannot open: {e}"),
+    };
+    let mut out = format!("{:?}\n", a.runs(&RunFilter::default()));
+    for r in runs {
+        out += &format!("{:?}\n", a.run(r));
+        if let Ok(row) = a.run(r) {
+            out += &format!("{:?}\n", a.plan_text(&row.plan_sha256));
+        }
+        out += &format!("{:?}\n", a.unit_records(r));
+        out += &format!(
+            "{:?}\n",
+            a.resume_state(r)
+                .map(|s| { (s.serials, s.done, s.attempts, s.first_started_at, s.sealed) })
+        );
+    }
+    for s in serials {
+        out += &format!("{:?}\n{:?}\n", a.history(s), a.serial_records(s));
+    }
+    for f in firmwares {
+        out += &format!("{:?}\n", a.select("firmware", f, None));
+    }
+    for lot in ["LOT-A", "LOT-B"] {
+        out += &format!("{:?}\n", a.select("lot", lot, None));
+    }
+    out
+}
+
+fn verify_fails(path: &Path) -> bool {
+    match Archive::open_read_only(path) {
+        Err(_) => true,
+        Ok(a) => match a.verify(None) {
+            Err(_) => true,
+            Ok(v) => !v.failures.is_empty(),
+        },
+    }
+}
+
+/// One edit of a copy of the archive.
+struct Case {
+    name: String,
+    sql: String,
+}
+
+fn cases(conn: &Connection) -> Vec<Case> {
+    let mut out = Vec::new();
+    let tables = [
+        "meta",
+        "plans",
+        "runs",
+        "run_units",
+        "readings",
+        "steps",
+        "units",
+        "chain",
+    ];
+    for table in tables {
+        let n: i64 = conn
+            .query_row(&format!("SELECT COUNT(*) FROM {table}"), [], |r| r.get(0))
+            .unwrap();
+        assert!(n > 0, "the fixture has rows in {table}");
+        let rowids: Vec<i64> = [0, n / 2, n - 1]
+            .iter()
+            .map(|off| {
+                conn.query_row(
+                    &format!("SELECT rowid FROM {table} ORDER BY rowid LIMIT 1 OFFSET {off}"),
+                    [],
+                    |r| r.get(0),
+                )
+                .unwrap()
+            })
+            .collect();
+        let columns: Vec<(String, String)> = conn
+            .prepare(&format!(
+                "SELECT name, type FROM pragma_table_info('{table}')"
+            ))
+            .unwrap()
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+            .unwrap()
+            .map(Result::unwrap)
+            .collect();
+        for (column, ty) in &columns {
+            let rowid = rowids[1];
+            let edits: Vec<(&str, String)> = match ty.as_str() {
+                "INTEGER" => vec![("+1", format!("{column} = {column} + 1"))],
+                "REAL" => vec![(
+                    "×1.001",
+                    format!("{column} = COALESCE({column} * 1.001 + 0.000001, 1.5)"),
+                )],
+                _ => vec![
+                    (
+                        "appended",
+                        format!("{column} = COALESCE({column}, '') || 'x'"),
+                    ),
+                    ("digit", format!("{column} = replace({column}, '1', '2')")),
+                    (
+                        "verdict",
+                        format!(
+                            "{column} = replace(replace({column}, 'rejected', 'accepted'), 'incomplete', 'accepted')"
+                        ),
+                    ),
+                    ("emptied", format!("{column} = ''")),
+                ],
+            };
+            for (what, set) in edits {
+                out.push(Case {
+                    name: format!("{table}.{column} {what} (row {rowid})"),
+                    sql: format!("UPDATE {table} SET {set} WHERE rowid = {rowid}"),
+                });
+            }
+        }
+        for (i, rowid) in rowids.iter().enumerate() {
+            let place = ["first", "middle", "last"][i];
+            out.push(Case {
+                name: format!("{table}: {place} row deleted"),
+                sql: format!("DELETE FROM {table} WHERE rowid = {rowid}"),
+            });
+        }
+        out.push(Case {
+            name: format!("{table}: every row deleted"),
+            sql: format!("DELETE FROM {table}"),
+        });
+    }
+    // Edits an attacker would make on purpose.
+    out.push(Case {
+        name: "a rejected unit made accepted in the columns queries read".into(),
+        sql: "UPDATE units SET status = 'accepted' WHERE status = 'rejected'".into(),
+    });
+    out.push(Case {
+        name: "a rejected unit made accepted in its record and columns".into(),
+        sql: "UPDATE units SET status = 'accepted', record = replace(record, '\"status\":\"rejected\"', '\"status\":\"accepted\"') WHERE status = 'rejected'".into(),
+    });
+    out.push(Case {
+        name: "every record and the chain head deleted".into(),
+        sql: "DELETE FROM units; DELETE FROM meta WHERE key = 'chain_head'".into(),
+    });
+    out.push(Case {
+        name: "two records swapped".into(),
+        sql: "UPDATE units SET seq = -seq WHERE seq IN (1, 2); UPDATE units SET seq = 2 WHERE seq = -1; UPDATE units SET seq = 1 WHERE seq = -2".into(),
+    });
+    out.push(Case {
+        name: "a lot renamed everywhere it is stored".into(),
+        sql: "UPDATE runs SET lot = 'LOT-Z' WHERE lot = 'LOT-A'; UPDATE units SET record = replace(record, 'LOT-A', 'LOT-Z')".into(),
+    });
+    out.push(Case {
+        name: "a finished run made resumable".into(),
+        sql: "UPDATE runs SET state = 'interrupted' WHERE run_id = 'R1'".into(),
+    });
+    out
+}
+
+fn copy_of(archive: &Path, dir: &Path, i: usize) -> PathBuf {
+    let p = dir.join(format!("case-{i}.sqlite"));
+    std::fs::copy(archive, &p).unwrap();
+    p
+}
+
+#[test]
+fn verify_finds_every_change_that_alters_what_a_command_shows() {
+    let dir = temp_dir("tamper-suite");
+    let archive = dir.join("archive.sqlite");
+    fixture(&archive);
+    let a = Archive::open_read_only(&archive).unwrap();
+    let v = a.verify(None).unwrap();
+    assert!(v.failures.is_empty(), "untouched: {:?}", v.failures);
+    assert_eq!(
+        v.unit_records, 9,
+        "3 units of R1; 3 of R2 when it was interrupted and 3 after its resume"
+    );
+    let runs = vec!["R1".to_string(), "R2".to_string()];
+    let records = [a.unit_records("R1").unwrap(), a.unit_records("R2").unwrap()].concat();
+    let serials: Vec<String> = records.iter().map(|r| r.serial.clone()).collect();
+    let firmwares: Vec<String> = records
+        .iter()
+        .filter_map(|r| r.identity.as_ref().map(|i| i.firmware.clone()))
+        .collect();
+    drop(a);
+    let before = shown(&archive, &runs, &serials, &firmwares);
+    let conn = Connection::open(&archive).unwrap();
+    let cases = cases(&conn);
+    drop(conn);
+    let (mut altering, mut caught, mut harmless, mut flagged_anyway) = (0, 0, 0, 0);
+    let mut impossible = 0;
+    let mut missed = Vec::new();
+    for (i, case) in cases.iter().enumerate() {
+        let copy = copy_of(&archive, &dir, i);
+        // An attacker is not held back by the schema's foreign keys; an edit that a unique
+        // key refuses (a sequence number moved onto another) is not possible and not counted.
+        let edited = Connection::open(&copy)
+            .unwrap()
+            .execute_batch(&format!("PRAGMA foreign_keys = OFF; {}", case.sql));
+        if let Err(e) = edited {
+            assert!(e.to_string().contains("UNIQUE"), "{}: {e}", case.name);
+            impossible += 1;
+            std::fs::remove_file(&copy).unwrap();
+            continue;
+        }
+        let alters = shown(&copy, &runs, &serials, &firmwares) != before;
+        let fails = verify_fails(&copy);
+        match (alters, fails) {
+            (true, true) => {
+                altering += 1;
+                caught += 1
+            }
+            (true, false) => {
+                altering += 1;
+                missed.push(case.name.clone())
+            }
+            (false, true) => {
+                harmless += 1;
+                flagged_anyway += 1
+            }
+            (false, false) => {
+                harmless += 1;
+                eprintln!("harmless and passed: {}", case.name)
+            }
+        }
+        std::fs::remove_file(&copy).unwrap();
+    }
+    println!(
+        "tamper cases: {} tried, {impossible} refused by the schema's unique keys; {altering} alter what a \
+         command shows, {caught} of them found by verify; {harmless} alter nothing shown ({flagged_anyway} \
+         of those flagged too)",
+        cases.len()
+    );
+    assert!(missed.is_empty(), "verify missed: {missed:#?}");
+    assert!(altering > 100, "the suite edits enough to mean something");
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// Records removed from the end with the chain rewritten to match cannot be seen from inside
+/// the database; the anchor kept in the run's folder and on its reports finds it.
+#[test]
+fn truncation_is_found_against_the_anchor() {
+    let dir = temp_dir("tamper-anchor");
+    let archive = dir.join("archive.sqlite");
+    fixture(&archive);
+    let anchor = Archive::open_read_only(&archive)
+        .unwrap()
+        .run_anchor("R2")
+        .unwrap()
+        .unwrap();
+    // Remove run R2 whole, chain entries included, and write the head of what is left.
+    let conn = Connection::open(&archive).unwrap();
+    conn.execute_batch(
+        "DELETE FROM units WHERE run_id = 'R2'; DELETE FROM steps WHERE run_id = 'R2';
+         DELETE FROM readings WHERE run_id = 'R2'; DELETE FROM run_units WHERE run_id = 'R2';
+         DELETE FROM runs WHERE run_id = 'R2'; DELETE FROM chain WHERE run_id = 'R2';",
+    )
+    .unwrap();
+    let (seq, hash): (i64, String) = conn
+        .query_row(
+            "SELECT seq, sha256 FROM chain ORDER BY seq DESC LIMIT 1",
+            [],
+            |r| Ok((r.get(0)?, r.get(1)?)),
+        )
+        .unwrap();
+    conn.execute(
+        "UPDATE meta SET value = ?1 WHERE key = 'chain_head'",
+        [format!("{seq}:{hash}")],
+    )
+    .unwrap();
+    drop(conn);
+    let run = |extra: &[&str]| {
+        let o = bin()
+            .arg("verify")
+            .arg("--archive")
+            .arg(&archive)
+            .args(extra)
+            .output()
+            .unwrap();
+        (
+            o.status.code().unwrap(),
+            String::from_utf8_lossy(&o.stdout).to_string(),
+        )
+    };
+    // Alone, the archive is consistent: the README says this is what verify cannot prove.
+    assert_eq!(run(&[]).0, 0);
+    let (code, text) = run(&["--anchor", &anchor]);
+    assert_eq!(code, 1, "{text}");
+    assert!(text.contains("the chain has no entry"), "{text}");
+    // The anchor file of a run's folder works as well.
+    let file = dir.join("chain-anchor.txt");
+    std::fs::write(&file, format!("{anchor}\n")).unwrap();
+    assert_eq!(run(&["--anchor", file.to_str().unwrap()]).0, 1);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn a_file_that_is_not_an_archive_is_named_as_such() {
+    let dir = temp_dir("not-archive");
+    let empty = dir.join("empty.sqlite");
+    std::fs::write(&empty, b"").unwrap();
+    let text_file = dir.join("notes.sqlite");
+    std::fs::write(&text_file, b"lot 7: retest tomorrow\n").unwrap();
+    for (path, why) in [
+        (&empty, "the file is empty"),
+        (&text_file, "not an SQLite database"),
+    ] {
+        let o = bin()
+            .arg("verify")
+            .arg("--archive")
+            .arg(path)
+            .output()
+            .unwrap();
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert_eq!(o.status.code(), Some(1), "{err}");
+        assert!(
+            err.contains("is not a meterproof archive") && err.contains(why),
+            "{err}"
+        );
+    }
+    // Nothing was created or changed.
+    assert_eq!(std::fs::read(&empty).unwrap(), b"");
+    assert!(!dir.join("empty.sqlite-wal").exists());
+    std::fs::remove_dir_all(&dir).unwrap();
+}
