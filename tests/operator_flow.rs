@@ -151,13 +151,26 @@ fn an_implausible_value_confirmed_is_taken() {
         &dir,
         &input,
     );
-    assert_eq!(o.status.code(), Some(1));
     let rs = records_in(&dir);
     let c = &rs[0].steps[2].checks[1];
     assert_eq!(c.quantity, Quantity::Current);
     assert_eq!(c.reference, Some(5.8));
-    // 5 A measured against a confirmed 5.8 A is a 14 % error: the check fails, as it should.
-    assert_eq!(rs[0].verdict.status, UnitStatus::Rejected);
+    // A confirmed 5.8 A says the load was not the 5 A the plan asked for: the step is judged
+    // for no unit, and none is accepted or rejected on it.
+    assert_eq!(o.status.code(), Some(3));
+    for r in &rs {
+        assert_eq!(r.steps[2].status, StepStatus::Incomplete);
+        assert!(
+            r.steps[2].reason.as_deref().unwrap().starts_with(
+                "load not as planned: the reference reads current 5.8 A, the plan 5 A"
+            ),
+            "{:?}",
+            r.steps[2].reason
+        );
+        assert_ne!(r.verdict.status, UnitStatus::Accepted);
+    }
+    // (The planted defect still rejects its unit at another step.)
+    assert_eq!(rs[0].verdict.status, UnitStatus::Incomplete);
     std::fs::remove_dir_all(&dir).unwrap();
 }
 

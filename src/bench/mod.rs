@@ -213,7 +213,29 @@ pub struct ReferenceReading {
 /// The instrument (or person, or file) that says what really flowed.
 pub trait ReferenceMeter: Send {
     fn read(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError>;
+
+    /// The quantities of the load itself (current, voltage, power factor, frequency) that this
+    /// reference reads without troubling anybody: an instrument's, not an operator's. The
+    /// engine reads them at every step to prove the load is the one the plan asked for.
+    fn load_quantities(&self) -> Vec<Quantity> {
+        Vec::new()
+    }
+
+    /// Reads one of [`load_quantities`](Self::load_quantities) to confirm the load (by default
+    /// as any other reading; the simulator draws its noise from a stream of its own, so that
+    /// the checks' readings stay those of a bench that does not confirm).
+    fn read_load(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError> {
+        self.read(request)
+    }
 }
+
+/// The quantities that describe a load, as a reference can confirm it.
+pub const LOAD_QUANTITIES: [Quantity; 4] = [
+    Quantity::Current,
+    Quantity::Voltage,
+    Quantity::PowerFactor,
+    Quantity::Frequency,
+];
 
 /// Identity and traceability of a reference instrument.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]

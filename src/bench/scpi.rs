@@ -13,6 +13,9 @@ use std::sync::LazyLock;
 static NUMBER: LazyLock<Regex> = LazyLock::new(|| {
     Regex::new(r"^\s*[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?\s*$").expect("a valid pattern")
 });
+/// The reply to an error query: `-113,"Undefined header"`, `0,"No error"`.
+static ERROR_REPLY: LazyLock<Regex> =
+    LazyLock::new(|| Regex::new(r"^\s*([-+]?\d+)\s*(,.*)?$").expect("a valid pattern"));
 /// The reply to `*OPC?` and similar: 1.
 static ONE: LazyLock<Regex> =
     LazyLock::new(|| Regex::new(r"^\s*\+?1\s*$").expect("a valid pattern"));
@@ -29,6 +32,8 @@ pub struct SourceCommands {
     pub output_off: String,
     /// A query answered with 1 once the previous commands are done (`*OPC?`).
     pub sync: Option<String>,
+    /// A query that reads the error queue (`SYST:ERR?`), answered `CODE,"text"`, 0 for none.
+    pub error_query: Option<String>,
 }
 
 /// A programmable source on a line channel.
@@ -63,6 +68,30 @@ impl<W: Wire> ScpiSource<W> {
         }
         Ok(())
     }
+
+    /// Reads the error queue, where the station gave a query for it: a command the source did
+    /// not take (a typo in the station file, a value out of its range) stops the step here.
+    fn check_errors(&mut self, after: &str) -> Result<(), BenchError> {
+        let Some(q) = self.commands.error_query.clone() else {
+            return Ok(());
+        };
+        let line = self
+            .channel
+            .transact(&q, &ERROR_REPLY)
+            .map_err(source_error)?;
+        let code = ERROR_REPLY
+            .captures(&line)
+            .and_then(|c| c.get(1))
+            .and_then(|m| m.as_str().parse::<i64>().ok())
+            .unwrap_or(0);
+        if code == 0 {
+            return Ok(());
+        }
+        Err(BenchError::Source(format!(
+            "the source reports an error after {after}: {}",
+            line.trim()
+        )))
+    }
 }
 
 impl<W: Wire> LoadSource for ScpiSource<W> {
@@ -75,6 +104,8 @@ impl<W: Wire> LoadSource for ScpiSource<W> {
             for c in self.commands.setup.clone() {
                 self.send(&c)?;
             }
+            self.sync()?;
+            self.check_errors("its set-up commands")?;
             self.set_up = true;
         }
         let c = self.commands.clone();
@@ -89,7 +120,8 @@ impl<W: Wire> LoadSource for ScpiSource<W> {
             self.send(&c.output_on)?;
             self.output_on = true;
         }
-        self.sync()
+        self.sync()?;
+        self.check_errors(&format!("the load {}", load.describe()))
     }
 
     fn off(&mut self) -> Result<(), BenchError> {
@@ -140,6 +172,13 @@ impl<W: Wire> ScpiReference<W> {
 }
 
 impl<W: Wire> ReferenceMeter for ScpiReference<W> {
+    fn load_quantities(&self) -> Vec<Quantity> {
+        super::LOAD_QUANTITIES
+            .into_iter()
+            .filter(|q| self.queries.iter().any(|(k, _)| k == q))
+            .collect()
+    }
+
     fn read(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError> {
         let has_own_query = self.queries.iter().any(|(k, _)| *k == request.quantity);
         let value = if request.quantity == Quantity::ActiveEnergy && !has_own_query {

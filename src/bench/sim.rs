@@ -348,6 +348,7 @@ fn stream(seed: u64, stream: u64) -> ChaCha8Rng {
 const STREAM_SOURCE: u64 = 1;
 const STREAM_REFERENCE: u64 = 2;
 const STREAM_SERIALS: u64 = 3;
+const STREAM_LOAD_CHECK: u64 = 4;
 const STREAM_MODEL_BASE: u64 = 1_000;
 const STREAM_NOISE_BASE: u64 = 2_000;
 
@@ -461,6 +462,7 @@ impl SimBench {
             Box::new(SimReference {
                 world: self.world.clone(),
                 rng: stream(self.seed, STREAM_REFERENCE),
+                load_rng: stream(self.seed, STREAM_LOAD_CHECK),
                 gain: 0.0001,
             }),
         )
@@ -679,19 +681,18 @@ impl LoadSource for SimSource {
 struct SimReference {
     world: Arc<Mutex<World>>,
     rng: ChaCha8Rng,
+    /// The noise of readings that confirm the load.
+    load_rng: ChaCha8Rng,
     /// Fixed relative error of the instrument.
     gain: f64,
 }
 
-impl ReferenceMeter for SimReference {
-    fn read(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError> {
+impl SimReference {
+    fn reading(&self, request: &ReferenceRequest, noise: f64) -> ReferenceReading {
         let world = lock(&self.world);
         let actual = world.actual;
         let now = world.clock.now_s();
         drop(world);
-        let noise = Normal::new(0.0, 0.00005)
-            .expect("finite")
-            .sample(&mut self.rng);
         let factor = 1.0 + self.gain + noise;
         let (t0, t1) = request.window;
         let value = match request.quantity {
@@ -699,13 +700,33 @@ impl ReferenceMeter for SimReference {
             Quantity::Frequency => actual.frequency,
             q => actual.nominal(q, t1 - t0) * factor,
         };
-        Ok(ReferenceReading {
+        ReferenceReading {
             value: round_significant(value, 6),
             source: "instrument".into(),
             taken_at_s: now,
             as_given: None,
             entries: Vec::new(),
-        })
+        }
+    }
+}
+
+fn reference_noise(rng: &mut ChaCha8Rng) -> f64 {
+    Normal::new(0.0, 0.00005).expect("finite").sample(rng)
+}
+
+impl ReferenceMeter for SimReference {
+    fn read(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError> {
+        let noise = reference_noise(&mut self.rng);
+        Ok(self.reading(request, noise))
+    }
+
+    fn load_quantities(&self) -> Vec<Quantity> {
+        super::LOAD_QUANTITIES.to_vec()
+    }
+
+    fn read_load(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError> {
+        let noise = reference_noise(&mut self.load_rng);
+        Ok(self.reading(request, noise))
     }
 }
 

@@ -73,6 +73,10 @@ impl LineDevice for ScpiSourceDevice {
         let argument = words.next();
         let number = argument.and_then(|a| a.parse::<f64>().ok());
         match (header.as_str(), number, argument) {
+            ("OUTP?", _, _) => return vec![if self.output_on { "1" } else { "0" }.into()],
+            ("SOUR:CURR?", _, _) => {
+                return vec![format!("{:E}", self.setpoint.current)];
+            }
             ("*RST", _, _) => {
                 self.output_on = false;
                 let _ = self.source.off();

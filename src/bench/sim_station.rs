@@ -65,7 +65,7 @@ impl SimStation {
             ));
         }
         s.push_str(&format!(
-            "source:\n  kind: scpi\n  port: {}\n  timeout: 2 s\n  commands:\n    setup: ['*RST', '*CLS']\n    voltage: 'SOUR:VOLT {{value}}'\n    current: 'SOUR:CURR {{value}}'\n    phase: 'SOUR:PHAS {{value}}'\n    frequency: 'SOUR:FREQ {{value}}'\n    output_on: 'OUTP ON'\n    output_off: 'OUTP OFF'\n    sync: '*OPC?'\n",
+            "source:\n  kind: scpi\n  port: {}\n  timeout: 2 s\n  commands:\n    setup: ['*RST', '*CLS']\n    voltage: 'SOUR:VOLT {{value}}'\n    current: 'SOUR:CURR {{value}}'\n    phase: 'SOUR:PHAS {{value}}'\n    frequency: 'SOUR:FREQ {{value}}'\n    output_on: 'OUTP ON'\n    output_off: 'OUTP OFF'\n    sync: '*OPC?'\n    error_query: 'SYST:ERR?'\n",
             self.source.path
         ));
         s.push_str(&format!(

@@ -127,6 +127,10 @@ struct RawSourceCommands {
     output_off: Text,
     #[serde(default)]
     sync: Option<Text>,
+    /// A query that reads the source's error queue (`SYST:ERR?`): asked after set-up and after
+    /// each load; a non-zero error stops the step.
+    #[serde(default)]
+    error_query: Option<Text>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -198,11 +202,11 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
     let time_scale = match &raw.simulation {
         None => Some(1.0),
         Some(s) => match s.time_scale.0.trim().parse::<f64>() {
-            Ok(v) if v > 0.0 && v.is_finite() => Some(v),
+            Ok(v) if v > 0.0 && v <= 1000.0 => Some(v),
             _ => {
                 doc.error(
                     "simulation.time_scale",
-                    "expected a number greater than zero",
+                    "expected a number greater than zero and at most 1000",
                 );
                 None
             }
@@ -254,6 +258,23 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
             };
             let port = instrument_port(doc, "source", &fields);
             let c = &raw.commands;
+            for (name, text, needs_value) in [
+                ("voltage", Some(&c.voltage), true),
+                ("current", Some(&c.current), true),
+                ("phase", Some(&c.phase), true),
+                ("frequency", Some(&c.frequency), true),
+                ("output_on", Some(&c.output_on), false),
+                ("output_off", Some(&c.output_off), false),
+                ("sync", c.sync.as_ref(), false),
+                ("error_query", c.error_query.as_ref(), false),
+            ] {
+                if let Some(t) = text {
+                    command_template(doc, &format!("source.commands.{name}"), t, needs_value);
+                }
+            }
+            for (i, t) in c.setup.iter().enumerate() {
+                command_template(doc, &format!("source.commands.setup[{i}]"), t, false);
+            }
             port.map(|port| SourceSpec::Scpi {
                 port: Box::new(port),
                 commands: Box::new(SourceCommands {
@@ -265,12 +286,32 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
                     output_on: c.output_on.0.clone(),
                     output_off: c.output_off.0.clone(),
                     sync: c.sync.as_ref().map(|t| t.0.clone()),
+                    error_query: c.error_query.as_ref().map(|t| t.0.clone()),
                 }),
             })
         }
         RawSource::Manual {} => Some(SourceSpec::Manual),
     };
     let reference = reference(doc, &raw.reference);
+    // One port, one device: a port named twice would have two parts of the bench talk over
+    // each other.
+    let mut ports: Vec<(String, String)> = positions
+        .iter()
+        .map(|p| (p.port.clone(), format!("positions[{}].port", p.number - 1)))
+        .collect();
+    if let RawSource::Scpi(s) = &raw.source {
+        ports.push((s.port.0.trim().to_string(), "source.port".into()));
+    }
+    if let RawReferenceRead::Scpi(r) = &raw.reference.read {
+        ports.push((r.port.0.trim().to_string(), "reference.read.port".into()));
+    }
+    // (Positions among themselves are checked above.)
+    for i in positions.len()..ports.len() {
+        let (port, path) = &ports[i];
+        if let Some((_, first)) = ports[..i].iter().find(|(p, _)| p == port) {
+            doc.error(path, format!("port {port} is already used by {first}"));
+        }
+    }
     Some(Station {
         id: id?,
         description: raw.description.map(|t| t.0).unwrap_or_default(),
@@ -280,6 +321,44 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
         source: source?,
         reference: reference?,
     })
+}
+
+/// A command sent to an instrument: its only placeholder is `{value}` (the number to set),
+/// which a set-point command must have and any other command must not.
+fn command_template(doc: &mut Document, path: &str, text: &Text, needs_value: bool) {
+    let command = text.0.trim();
+    if command.is_empty() {
+        doc.error(path, "the command is empty");
+        return;
+    }
+    let mut rest = command;
+    let mut has_value = false;
+    while let Some(start) = rest.find('{') {
+        let after = &rest[start + 1..];
+        let Some(end) = after.find('}') else {
+            doc.error(path, format!("\"{command}\" has a {{ that is never closed"));
+            return;
+        };
+        let name = &after[..end];
+        if name != "value" {
+            doc.error(
+                path,
+                format!(
+                    "\"{{{name}}}\" is not a placeholder meterproof fills in: the only one is {{value}}"
+                ),
+            );
+        } else if !needs_value {
+            doc.error(path, "this command takes no {value}");
+        }
+        has_value |= name == "value";
+        rest = &after[end + 1..];
+    }
+    if needs_value && !has_value {
+        doc.error(
+            path,
+            format!("\"{command}\" has no {{value}}: the source would never get the set-point"),
+        );
+    }
 }
 
 fn instrument_port(doc: &mut Document, prefix: &str, raw: &PortFields) -> Option<InstrumentPort> {
@@ -301,7 +380,18 @@ fn instrument_port(doc: &mut Document, prefix: &str, raw: &PortFields) -> Option
     };
     let timeout_s = doc
         .optional_value(&format!("{prefix}.timeout"), raw.timeout, Dimension::Time)
-        .map(|t| t.unwrap_or(2.0));
+        .map(|t| t.unwrap_or(2.0))
+        .and_then(|t| {
+            if t > 0.0 && t <= 60.0 {
+                Some(t)
+            } else {
+                doc.error(
+                    &format!("{prefix}.timeout"),
+                    "the timeout must be greater than zero and at most 60 s",
+                );
+                None
+            }
+        });
     let (ending, timeout_s) = (ending?, timeout_s?);
     Some(InstrumentPort {
         path: path?,

@@ -1130,6 +1130,14 @@ impl Reporter for TerminalReporter {
                     "ARCHIVE: {what}. The run goes on: its records will be written as files at the end; the archive is not complete for this run."
                 );
             }
+            Event::StepSetAside { step, reason } => {
+                self.stop_bar();
+                eprintln!(
+                    "!!! step {} NOT JUDGED for any unit: {}",
+                    terminal_safe(&step.id),
+                    terminal_safe(reason)
+                );
+            }
             Event::RunFinished { .. } => {}
         }
     }
@@ -1141,9 +1149,9 @@ fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
     if args.positions == 0 {
         return Err(CliError::Usage("--positions must be at least 1".into()));
     }
-    if !(args.time_scale > 0.0 && args.time_scale.is_finite()) {
+    if !(args.time_scale > 0.0 && args.time_scale <= 1000.0) {
         return Err(CliError::Usage(
-            "--time-scale must be greater than zero".into(),
+            "--time-scale must be greater than zero and at most 1000".into(),
         ));
     }
     let mut faults = vec![Faults::default(); args.positions];

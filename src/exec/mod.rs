@@ -12,6 +12,7 @@ mod decide;
 pub use decide::failure_text;
 mod sampling;
 mod settle;
+pub mod trust;
 
 use crate::bench::{Bench, Position, ReferenceRequest};
 use crate::link::Identity;
@@ -71,6 +72,12 @@ pub enum Event<'a> {
     /// on; the records are still returned whole.
     RecordingFailed {
         what: &'a str,
+    },
+    /// A step's results were set aside for every unit: the load was not the plan's, or the
+    /// reference looks wrong. Said loudly; the units are INCOMPLETE for the step.
+    StepSetAside {
+        step: &'a Step,
+        reason: &'a str,
     },
     RunFinished {
         records: &'a [UnitRecord],
@@ -163,6 +170,17 @@ struct StepContext<'a> {
     to_run: &'a [bool],
     attempts: Option<&'a BTreeMap<(usize, usize), u32>>,
     recorder: &'a dyn Recorder,
+    /// The meter's base current (Ib or In): "no current" is judged against a share of it.
+    base_current: f64,
+}
+
+/// How a step ended, beyond its records.
+#[derive(Default)]
+struct StepOutcome {
+    /// Why the run must stop (the operator aborted, a stop signal).
+    stop: Option<String>,
+    /// Why the step was set aside for every unit.
+    set_aside: Option<String>,
 }
 
 /// Runs `plan` on `bench` and returns one record per position.
@@ -355,8 +373,13 @@ pub fn run_with(
             to_run: &to_run,
             attempts: resume.map(|r| &r.attempts),
             recorder,
+            base_current: plan.ratings.base_current,
         };
-        if let Some(reason) = run_step(step, &ctx_step, bench, &mut units, &judge) {
+        let outcome = run_step(step, &ctx_step, bench, &mut units, &judge);
+        if let Some(reason) = &outcome.set_aside {
+            reporter.event(&Event::StepSetAside { step, reason });
+        }
+        if let Some(reason) = outcome.stop {
             source_failure = Some(reason);
         }
         if let Some(cal) = &plan.calibration
@@ -793,7 +816,7 @@ fn run_step(
     bench: &mut Bench,
     units: &mut [Unit],
     judge: &decide::Judge,
-) -> Option<String> {
+) -> StepOutcome {
     let started_at_s = sc.started_at_s;
     let attempt_of = |position: usize| {
         sc.attempts
@@ -903,6 +926,18 @@ fn run_step(
             window,
         ),
     };
+    // The load as the reference saw it, before anybody is judged on it.
+    let (load_references, load_problem) = if stopped {
+        (Vec::new(), None)
+    } else {
+        trust::confirm_load(
+            step,
+            bench.reference.as_mut(),
+            &references,
+            reference_window,
+            sc.base_current,
+        )
+    };
     for (u, unit) in units.iter_mut().enumerate() {
         if !sc.to_run[u] {
             continue;
@@ -974,6 +1009,7 @@ fn run_step(
             .iter()
             .filter_map(|(q, r)| r.as_ref().err().map(|e| format!("{}: {e}", q.name())))
             .collect();
+        record.references.extend(load_references.iter().cloned());
         if let Some(fault) = series[u].fault.take() {
             record.status = StepStatus::Incomplete;
             record.reason = Some(fault);
@@ -984,7 +1020,31 @@ fn run_step(
                 missing_reference.join("; ")
             ));
         }
+        if let Some(problem) = &load_problem {
+            trust::set_aside(&mut record, problem);
+        }
         unit.record.steps.push(record);
+    }
+    // Every unit failing by the same error points at the reference, not the units.
+    let mut set_aside = load_problem.clone();
+    if set_aside.is_none() {
+        let done: Vec<&StepRecord> = units
+            .iter()
+            .zip(sc.to_run)
+            .filter(|(_, run)| **run)
+            .filter_map(|(u, _)| u.record.steps.last())
+            .filter(|r| r.status == StepStatus::Done)
+            .collect();
+        if let Some(reason) = trust::suspect_reference(&done) {
+            for (u, _) in units.iter_mut().zip(sc.to_run).filter(|(_, run)| **run) {
+                if let Some(r) = u.record.steps.last_mut()
+                    && r.status == StepStatus::Done
+                {
+                    trust::set_aside(r, &reason);
+                }
+            }
+            set_aside = Some(reason);
+        }
     }
     // One write for the whole step: a single commit for all positions.
     let finished: Vec<(usize, &StepRecord)> = units
@@ -1001,12 +1061,13 @@ fn run_step(
             .filter(|e| e.starts_with("aborted"))
             .cloned()
     });
-    aborted.or_else(|| {
+    let stop = aborted.or_else(|| {
         bench
             .interrupt
             .load(std::sync::atomic::Ordering::SeqCst)
             .then(|| STOPPED.to_string())
-    })
+    });
+    StepOutcome { stop, set_aside }
 }
 
 type ReferenceResult = Result<crate::bench::ReferenceReading, String>;

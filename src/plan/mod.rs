@@ -166,6 +166,9 @@ pub struct Step {
     pub id: String,
     pub description: Option<String>,
     pub load: Load,
+    /// How far (a fraction) the reference may read from the nominal load: beyond it the step
+    /// is not evaluated, whatever the units read ("load not as planned").
+    pub load_within: f64,
     /// Seconds to wait after applying the load before the first sample.
     pub settle_s: f64,
     pub samples: u32,

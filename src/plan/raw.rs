@@ -132,6 +132,9 @@ pub struct RawRatings {
 #[derive(Debug, Default, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct RawDefaults {
+    /// How far the reference may read from the step's nominal load: "5 %".
+    #[serde(default)]
+    pub load_within: Option<Text>,
     #[serde(default)]
     pub settle: Option<Text>,
     #[serde(default)]
@@ -276,6 +279,8 @@ pub struct RawStep {
     #[serde(default)]
     pub special: Option<Text>,
     pub load: RawLoad,
+    #[serde(default)]
+    pub load_within: Option<Text>,
     #[serde(default)]
     pub settle: Option<Text>,
     #[serde(default)]

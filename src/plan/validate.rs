@@ -11,6 +11,11 @@ use crate::metrology::classes;
 use std::collections::HashSet;
 use std::fmt;
 
+/// The longest duration a plan or station may give: 12 hours.
+pub const MAX_DURATION_S: f64 = 12.0 * 3600.0;
+/// The most samples one step may take.
+pub const MAX_SAMPLES: u32 = 10_000;
+
 /// One mistake in a plan: where it is and what is wrong.
 #[derive(Debug, Clone, PartialEq)]
 pub struct PlanError {
@@ -161,6 +166,26 @@ impl<'a> Document<'a> {
 
     pub fn value(&mut self, path: &str, text: &Text, dim: Dimension) -> Option<f64> {
         match units::parse(&text.0, dim) {
+            // Every duration on a bench lies between nothing and a working day: a negative one
+            // would panic a sleep, a huge one would hold the bench (and its load) for ever.
+            Ok(v) if dim == Dimension::Time && !(0.0..=MAX_DURATION_S).contains(&v) => {
+                self.error(
+                    path,
+                    if v < 0.0 {
+                        format!(
+                            "\"{}\" is negative: a time must be zero or more",
+                            text.0.trim()
+                        )
+                    } else {
+                        format!(
+                            "\"{}\" is longer than {} h: check the unit",
+                            text.0.trim(),
+                            MAX_DURATION_S / 3600.0
+                        )
+                    },
+                );
+                None
+            }
             Ok(v) => Some(v),
             Err(e) => {
                 self.error(path, e.to_string());
@@ -183,12 +208,12 @@ impl<'a> Document<'a> {
 
     pub fn count(&mut self, path: &str, text: &Text) -> Option<u32> {
         match text.0.trim().parse::<u32>() {
-            Ok(n) if n >= 1 => Some(n),
+            Ok(n) if (1..=MAX_SAMPLES).contains(&n) => Some(n),
             _ => {
                 self.error(
                     path,
                     format!(
-                        "expected a whole number of samples, 1 or more, got \"{}\"",
+                        "expected a whole number of samples from 1 to {MAX_SAMPLES}, got \"{}\"",
                         text.0
                     ),
                 );
@@ -265,6 +290,7 @@ fn sorted(mut errors: Vec<PlanError>) -> PlanErrors {
 
 /// The defaults a step falls back on.
 struct StepDefaults {
+    load_within: f64,
     settle_s: f64,
     samples: u32,
     interval_s: f64,
@@ -284,6 +310,12 @@ fn meaning(
     let ratings = ratings(ctx, &raw);
     let link = link(ctx, raw_link);
     let defaults = StepDefaults {
+        load_within: load_within(
+            ctx,
+            "defaults.load_within",
+            raw.defaults.load_within.as_ref(),
+        )
+        .unwrap_or(DEFAULT_LOAD_WITHIN),
         settle_s: ctx
             .optional_value(
                 "defaults.settle",
@@ -743,6 +775,21 @@ pub(super) fn channel_names(ctx: &mut Ctx, channels: Option<Vec<Text>>) -> Vec<S
     channels
 }
 
+/// How far the reference may read from the step's nominal load before the step is refused as
+/// "load not as planned" (a source that never got its set-point, a lamp that blew).
+pub const DEFAULT_LOAD_WITHIN: f64 = 0.05;
+
+/// A `load_within` band: a percentage above 0 and at most 50 %.
+fn load_within(ctx: &mut Ctx, path: &str, text: Option<&Text>) -> Option<f64> {
+    let p = ctx.optional_value(path, text, Dimension::Percent)??;
+    if p > 0.0 && p <= 50.0 {
+        Some(p / 100.0)
+    } else {
+        ctx.error(path, "expected a percentage above 0 % and at most 50 %");
+        None
+    }
+}
+
 fn step(
     ctx: &mut Ctx,
     path: &str,
@@ -758,6 +805,10 @@ fn step(
     {
         l.current = *current;
     }
+    let load_within = match &raw.load_within {
+        None => Some(defaults.load_within),
+        t => load_within(ctx, &format!("{path}.load_within"), t.as_ref()),
+    };
     let settle_s = ctx
         .optional_value(
             &format!("{path}.settle"),
@@ -914,6 +965,7 @@ fn step(
         id: id?,
         description: raw.description.as_ref().map(|t| t.0.clone()),
         load: load?,
+        load_within: load_within?,
         settle_s: settle_s?,
         samples: samples?,
         interval_s: interval_s?,

@@ -211,9 +211,12 @@ pub(super) fn text_link(ctx: &mut Ctx, raw: RawTextLink) -> Option<TextLinkSpec>
         .optional_value("link.timeout", raw.timeout.as_ref(), Dimension::Time)
         .map(|v| v.unwrap_or(0.5));
     if let Some(t) = timeout_s
-        && t <= 0.0
+        && !(t > 0.0 && t <= 60.0)
     {
-        ctx.error("link.timeout", "the timeout must be greater than zero");
+        ctx.error(
+            "link.timeout",
+            "the timeout must be greater than zero and at most 60 s",
+        );
     }
     let retries = match &raw.retries {
         None => Some(2),

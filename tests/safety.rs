@@ -1,0 +1,571 @@
+//! A bench that fails safe: whatever ends a run, the source output is off afterwards; no unit is
+//! judged at a load the plan did not ask for or against a reference that is the odd one out;
+//! units that cannot be told apart are not tested.
+//!
+//! The figures of the load and tolerance bands here are the plan's own arithmetic (common
+//! practice, no published source).
+
+mod common;
+use common::{Served, bin, ctx, serve_at, temp_dir};
+
+use meterproof::bench::sim::{SimBench, SimConfig};
+use meterproof::bench::{BenchError, LoadSource};
+use meterproof::exec::{self, Silent};
+use meterproof::link::{DutLink, Identity, LinkError};
+use meterproof::plan::{Load, Plan, Quantity};
+use meterproof::record::{StepStatus, UnitRecord, UnitStatus};
+use std::io::{BufRead, BufReader, Read, Write};
+use std::path::Path;
+use std::process::Stdio;
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+/// Asks a SCPI instrument on a pseudo-terminal one question.
+fn ask(port: &str, query: &str) -> String {
+    let mut p = serialport::new(port, 115_200)
+        .timeout(Duration::from_millis(200))
+        .open()
+        .unwrap();
+    let _ = p.clear(serialport::ClearBuffer::All);
+    p.write_all(format!("{query}\n").as_bytes()).unwrap();
+    let deadline = Instant::now() + Duration::from_secs(3);
+    let mut got = Vec::new();
+    let mut buf = [0u8; 64];
+    while Instant::now() < deadline && !got.contains(&b'\n') {
+        if let Ok(n) = p.read(&mut buf) {
+            got.extend_from_slice(&buf[..n]);
+        }
+    }
+    String::from_utf8_lossy(&got).trim().to_string()
+}
+
+/// The source's port in a station file that `sim-meter` wrote.
+fn source_port(station: &Path) -> String {
+    let text = std::fs::read_to_string(station).unwrap();
+    let v: serde_yaml::Value = serde_yaml::from_str(&text).unwrap();
+    v["source"]["port"].as_str().unwrap().to_string()
+}
+
+fn records_of(dir: &Path) -> Vec<UnitRecord> {
+    let mut rs: Vec<UnitRecord> = std::fs::read_dir(dir)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|x| x == "json"))
+        .map(|p| meterproof::record::read(&p).unwrap())
+        .collect();
+    rs.sort_by_key(|r| r.position);
+    rs
+}
+
+/// A run on a served station, stopped by `signal` while its second step is under load.
+fn stop_mid_run(signal: &str) {
+    let dir = temp_dir(&format!("signal-{signal}"));
+    let served: Served = serve_at(&dir, "4", &[]);
+    let out = dir.join("out");
+    let mut child = bin()
+        .args(["run", "test-plans/demo-serial.yaml", "--bench"])
+        .arg(&served.station)
+        .arg("--out")
+        .arg(&out)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    // Wait for the observable moment: the second step has started and its load is on.
+    let stderr = child.stderr.take().unwrap();
+    let (tx, rx) = std::sync::mpsc::channel();
+    std::thread::spawn(move || {
+        for line in BufReader::new(stderr).lines() {
+            let Ok(line) = line else { break };
+            let _ = tx.send(line);
+        }
+    });
+    let mut seen = Vec::new();
+    loop {
+        let line = rx
+            .recv_timeout(Duration::from_secs(60))
+            .unwrap_or_else(|_| panic!("no second step: {seen:#?}"));
+        let second = line.starts_with("[2/");
+        seen.push(line);
+        if second {
+            break;
+        }
+    }
+    // (The instrument's port is meterproof's alone while it runs: its state is read after.)
+    let port = source_port(&served.station);
+    let status = std::process::Command::new("kill")
+        .args([&format!("-{signal}"), &child.id().to_string()])
+        .status()
+        .unwrap();
+    assert!(status.success());
+    let mut stdout = String::new();
+    child
+        .stdout
+        .take()
+        .unwrap()
+        .read_to_string(&mut stdout)
+        .unwrap();
+    let code = child.wait().unwrap().code();
+    let errors: Vec<String> = rx.try_iter().collect();
+    let errors = errors.join("\n");
+    assert_eq!(code, Some(3), "{stdout}\n{errors}");
+    assert!(errors.contains("the source output is OFF"), "{errors}");
+    // The output is off at the instrument itself.
+    assert_eq!(ask(&port, "OUTP?"), "0");
+    // What was taken is written, and no unit is accepted.
+    let run_dir = std::fs::read_dir(&out)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .find(|p| p.is_dir())
+        .unwrap();
+    let run_id = run_dir.file_name().unwrap().to_string_lossy().to_string();
+    let records = records_of(&run_dir);
+    assert_eq!(records.len(), 4);
+    for r in &records {
+        assert_eq!(r.verdict.status, UnitStatus::Incomplete, "{:?}", r.verdict);
+        assert_eq!(
+            r.steps[0].status,
+            StepStatus::Done,
+            "the first step was kept"
+        );
+        // The signal came during the second step.
+        assert_ne!(r.steps[1].status, StepStatus::Done);
+        assert!(
+            r.steps[1]
+                .reason
+                .as_deref()
+                .unwrap()
+                .contains("interrupted"),
+            "{:?}",
+            r.steps[1].reason
+        );
+    }
+    // The run is resumable, and says how.
+    assert!(
+        stdout.contains(&format!("meterproof resume {run_id}")),
+        "{stdout}"
+    );
+    let archive = out.join("archive.sqlite");
+    let row = meterproof::archive::Archive::open_read_only(&archive)
+        .unwrap()
+        .run(&run_id)
+        .unwrap();
+    assert_eq!(row.state, "interrupted");
+    let o = bin()
+        .args(["resume", &run_id, "--quiet", "--archive"])
+        .arg(&archive)
+        .arg("--out")
+        .arg(&out)
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&o.stdout);
+    // The built-in simulator's defect at position 2 (seed 1) rejects that unit.
+    assert_eq!(
+        o.status.code(),
+        Some(1),
+        "{text}{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let finals = records_of(&run_dir);
+    let statuses: Vec<UnitStatus> = finals.iter().map(|r| r.verdict.status).collect();
+    assert_eq!(
+        statuses,
+        [
+            UnitStatus::Accepted,
+            UnitStatus::Rejected,
+            UnitStatus::Accepted,
+            UnitStatus::Accepted
+        ]
+    );
+    // The interrupted run's files are kept aside, the final ones have the plain names.
+    assert_eq!(records_of(&run_dir.join("earlier-1")).len(), 4);
+    assert!(
+        std::fs::read_dir(&run_dir).unwrap().all(|e| !e
+            .unwrap()
+            .file_name()
+            .to_string_lossy()
+            .contains(".2."))
+    );
+    assert_eq!(ask(&port, "OUTP?"), "0", "off after the resumed run too");
+    let v = bin()
+        .args(["verify", "--archive"])
+        .arg(&archive)
+        .arg("--anchor")
+        .arg(run_dir.join("chain-anchor.txt"))
+        .output()
+        .unwrap();
+    assert_eq!(
+        v.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&v.stdout)
+    );
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn sigterm_switches_the_output_off_and_leaves_a_resumable_run() {
+    stop_mid_run("TERM");
+}
+
+#[test]
+fn sighup_switches_the_output_off_and_leaves_a_resumable_run() {
+    stop_mid_run("HUP");
+}
+
+/// A source that remembers whether its output is on.
+#[derive(Clone, Default)]
+struct Watched(Arc<Mutex<bool>>);
+
+impl LoadSource for Watched {
+    fn describe(&self) -> String {
+        "watched".into()
+    }
+    fn apply(&mut self, _: &Load) -> Result<(), BenchError> {
+        *self.0.lock().unwrap() = true;
+        Ok(())
+    }
+    fn off(&mut self) -> Result<(), BenchError> {
+        *self.0.lock().unwrap() = false;
+        Ok(())
+    }
+}
+
+/// A link whose reads panic after a while, as a bug in a link would.
+struct Panicky {
+    inner: Box<dyn DutLink>,
+    reads: usize,
+}
+
+impl DutLink for Panicky {
+    fn identify(&mut self) -> Result<Identity, LinkError> {
+        self.inner.identify()
+    }
+    fn read(&mut self, q: Quantity, ch: &str) -> Result<f64, LinkError> {
+        self.reads += 1;
+        assert!(self.reads < 15, "a bug in the link");
+        self.inner.read(q, ch)
+    }
+    fn describe(&self) -> String {
+        "panicky".into()
+    }
+}
+
+#[test]
+fn a_panic_under_load_switches_the_output_off() {
+    let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
+    let mut bench = SimBench::new(&SimConfig::new(1, 2)).into_bench();
+    let watched = Watched::default();
+    bench.source = meterproof::bench::SourceHandle::new(Box::new(watched.clone()));
+    let inner = std::mem::replace(
+        &mut bench.positions[0].link,
+        Box::new(meterproof::link::Unreachable::new(
+            "x",
+            LinkError::Disconnected("x".into()),
+        )),
+    );
+    bench.positions[0].link = Box::new(Panicky { inner, reads: 0 });
+    let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+        exec::run(&plan, &mut bench, &ctx(), &mut Silent)
+    }));
+    assert!(result.is_err(), "the link's panic went through");
+    assert!(!*watched.0.lock().unwrap(), "the output was left on");
+}
+
+fn check(file: &Path) -> (i32, String) {
+    let o = bin().arg("check").arg(file).output().unwrap();
+    (
+        o.status.code().unwrap(),
+        String::from_utf8_lossy(&o.stderr).to_string(),
+    )
+}
+
+/// A station file that `sim-meter` would write, for editing.
+const STATION: &str = "station: S
+positions:
+  - { position: 1, port: /dev/ttyUSB0 }
+  - { position: 2, port: /dev/ttyUSB1 }
+source:
+  kind: scpi
+  port: /dev/ttyUSB8
+  timeout: 2 s
+  commands:
+    setup: ['*RST']
+    voltage: 'SOUR:VOLT {value}'
+    current: 'SOUR:CURR {value}'
+    phase: 'SOUR:PHAS {value}'
+    frequency: 'SOUR:FREQ {value}'
+    output_on: 'OUTP ON'
+    output_off: 'OUTP OFF'
+    error_query: 'SYST:ERR?'
+reference:
+  id: R
+  accuracy: 0.05 % of reading
+  read:
+    kind: scpi
+    port: /dev/ttyUSB9
+    timeout: 1 s
+    queries: { current: 'MEAS:CURR?' }
+";
+
+#[test]
+fn check_refuses_stations_that_cannot_work() {
+    let dir = temp_dir("bad-stations");
+    let cases: &[(&str, &str, &str)] = &[
+        (
+            "current: 'SOUR:CURR {value}'",
+            "current: 'SOUR:CURR {valeu}'",
+            "source.commands.current: \"{valeu}\" is not a placeholder",
+        ),
+        (
+            "current: 'SOUR:CURR {value}'",
+            "current: 'SOUR:CURR 5'",
+            "source.commands.current: \"SOUR:CURR 5\" has no {value}",
+        ),
+        (
+            "output_on: 'OUTP ON'",
+            "output_on: 'OUTP {value}'",
+            "source.commands.output_on: this command takes no {value}",
+        ),
+        (
+            "  timeout: 1 s",
+            "  timeout: -1 s",
+            "reference.read.timeout: \"-1 s\" is negative",
+        ),
+        (
+            "  timeout: 2 s",
+            "  timeout: 1000000000 s",
+            "source.timeout: \"1000000000 s\" is longer than 12 h",
+        ),
+        (
+            "  port: /dev/ttyUSB8",
+            "  port: /dev/ttyUSB1",
+            "source.port: port /dev/ttyUSB1 is already used by positions[1].port",
+        ),
+        (
+            "    port: /dev/ttyUSB9",
+            "    port: /dev/ttyUSB8",
+            "reference.read.port: port /dev/ttyUSB8 is already used by source.port",
+        ),
+    ];
+    let good = dir.join("good.yaml");
+    std::fs::write(&good, STATION).unwrap();
+    assert_eq!(check(&good).0, 0, "{}", check(&good).1);
+    let mut refused = 0;
+    for (i, (from, to, expected)) in cases.iter().enumerate() {
+        assert!(STATION.contains(from), "{from}");
+        let f = dir.join(format!("bad-{i}.yaml"));
+        std::fs::write(&f, STATION.replacen(from, to, 1)).unwrap();
+        let (code, text) = check(&f);
+        assert_eq!(code, 2, "{to}: {text}");
+        assert!(text.contains(expected), "{to}: {text}");
+        refused += 1;
+    }
+    println!("bad stations refused: {refused} of {}", cases.len());
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn check_refuses_plans_with_durations_out_of_bounds() {
+    let dir = temp_dir("bad-plan-bounds");
+    let plan = std::fs::read_to_string("test-plans/demo-serial.yaml").unwrap();
+    let cases: &[(&str, &str, &str)] = &[
+        (
+            "timeout: ",
+            "timeout: -5 ms #",
+            "link.timeout: \"-5 ms\" is negative",
+        ),
+        (
+            "timeout: ",
+            "timeout: 1000000000 s #",
+            "link.timeout: \"1000000000 s\" is longer than 12 h",
+        ),
+        (
+            "timeout: ",
+            "timeout: 90 s #",
+            "link.timeout: the timeout must be",
+        ),
+    ];
+    let mut refused = 0;
+    for (i, (from, to, expected)) in cases.iter().enumerate() {
+        assert!(plan.contains(from), "the demo plan has a link {from}");
+        let f = dir.join(format!("bad-{i}.yaml"));
+        std::fs::write(&f, plan.replacen(from, to, 1)).unwrap();
+        let (code, text) = check(&f);
+        assert_eq!(code, 2, "{to}: {text}");
+        assert!(text.contains(expected), "{to}: {text}");
+        refused += 1;
+    }
+    println!(
+        "plans with bad bounds refused: {refused} of {}",
+        cases.len()
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// A station whose current command sets the voltage instead (it passes `check`: the command is
+/// well formed): the source never gets its current set-point, and the reference says so.
+#[test]
+fn a_unit_is_never_judged_at_a_load_never_applied() {
+    let dir = temp_dir("load-not-applied");
+    let served = serve_at(&dir, "25", &[]);
+    let text = std::fs::read_to_string(&served.station).unwrap().replace(
+        "current: 'SOUR:CURR {value}'",
+        "current: 'SOUR:VOLT {value}'",
+    );
+    let station = dir.join("wrong.yaml");
+    std::fs::write(&station, text).unwrap();
+    let o = bin()
+        .args(["run", "test-plans/demo-serial.yaml", "--quiet", "--bench"])
+        .arg(&station)
+        .arg("--out")
+        .arg(dir.join("out"))
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&o.stdout);
+    assert_eq!(o.status.code(), Some(3), "{stdout}");
+    let records = common::records_in(&dir.join("out"));
+    assert_eq!(records.len(), 4);
+    for r in &records {
+        assert_ne!(r.verdict.status, UnitStatus::Accepted);
+        // Every step with current planned was set aside, with both figures.
+        for s in r.steps.iter().filter(|s| s.load.current > 0.0) {
+            assert_eq!(s.status, StepStatus::Incomplete, "{}", s.id);
+            let reason = s.reason.as_deref().unwrap();
+            assert!(
+                reason.starts_with("load not as planned: the reference reads "),
+                "{reason}"
+            );
+        }
+    }
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// A set-up command the source does not know: its error queue says so, and no load is applied.
+#[test]
+fn a_source_error_stops_before_any_load() {
+    let dir = temp_dir("source-error");
+    let served = serve_at(&dir, "25", &[]);
+    let text = std::fs::read_to_string(&served.station).unwrap().replace(
+        "setup: ['*RST', '*CLS']",
+        "setup: ['*RST', '*CLS', 'SYST:BEEP']",
+    );
+    let station = dir.join("beep.yaml");
+    std::fs::write(&station, text).unwrap();
+    let o = bin()
+        .args(["run", "test-plans/demo-serial.yaml", "--quiet", "--bench"])
+        .arg(&station)
+        .arg("--out")
+        .arg(dir.join("out"))
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&o.stdout);
+    assert_eq!(o.status.code(), Some(3), "{stdout}");
+    assert!(
+        stdout.contains("the source reports an error after its set-up commands: -113"),
+        "{stdout}"
+    );
+    for r in common::records_in(&dir.join("out")) {
+        assert_eq!(r.verdict.status, UnitStatus::Incomplete);
+        assert!(r.steps.iter().all(|s| s.status == StepStatus::NotRun));
+    }
+    assert_eq!(ask(&source_port(&served.station), "OUTP?"), "0");
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn two_positions_with_one_serial_are_both_stopped_before_any_load() {
+    let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
+    let mut config = SimConfig::new(1, 3);
+    config.serials = Some(vec!["TM16-5".into(), "TM16-5".into(), "TM16-9".into()]);
+    let mut bench = SimBench::new(&config).into_bench();
+    let records = exec::run(&plan, &mut bench, &ctx(), &mut Silent);
+    for r in &records[..2] {
+        assert_eq!(r.verdict.status, UnitStatus::Incomplete);
+        assert!(r.steps.is_empty(), "no step was run for it");
+        assert!(
+            r.verdict.reasons[0].starts_with("serial TM16-5 is reported by position"),
+            "{:?}",
+            r.verdict.reasons
+        );
+    }
+    assert_eq!(records[2].steps.len(), plan.steps.len());
+}
+
+#[test]
+fn an_identity_with_control_characters_is_refused_and_kept_escaped() {
+    let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
+    let mut config = SimConfig::new(1, 2);
+    config.serials = Some(vec!["\u{1b}[2K\u{1b}[1AOK-1".into(), "TM16-9\0".into()]);
+    let mut bench = SimBench::new(&config).into_bench();
+    let records = exec::run(&plan, &mut bench, &ctx(), &mut Silent);
+    for r in &records {
+        assert_eq!(r.verdict.status, UnitStatus::Incomplete);
+        assert!(!r.serial.chars().any(char::is_control), "{:?}", r.serial);
+        assert!(
+            r.verdict.reasons[0].contains("control characters"),
+            "{:?}",
+            r.verdict.reasons
+        );
+    }
+    assert_eq!(records[0].serial, "\\u{1b}[2K\\u{1b}[1AOK-1");
+}
+
+/// A reference file whose current at one step is ten times too large: every position "fails"
+/// by the same −90 %; the step is set aside as a suspected reference fault, not a batch reject.
+#[test]
+fn every_position_failing_alike_is_taken_for_the_reference() {
+    let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
+    let dir = temp_dir("reference-fault");
+    let mut csv = String::from("step,quantity,value,unit\n");
+    let mut wrong_step = None;
+    for s in &plan.steps {
+        let mut asked: Vec<Quantity> = Vec::new();
+        for c in s.checks.iter().filter(|c| c.tolerance.needs_reference()) {
+            if !asked.contains(&c.quantity) {
+                asked.push(c.quantity);
+            }
+        }
+        for q in asked {
+            let mut v = s.load.nominal(q, s.sampling_window_s());
+            // Active power at the first step that checks it, typed ten times too large.
+            if q == Quantity::ActivePower && wrong_step.is_none() && v > 0.0 {
+                v *= 10.0;
+                wrong_step = Some(s.id.clone());
+            }
+            csv.push_str(&format!("{},{},{v},{}\n", s.id, q.name(), q.unit()));
+        }
+    }
+    let wrong_step = wrong_step.unwrap();
+    let file = dir.join("refs.csv");
+    std::fs::write(&file, csv).unwrap();
+    let o = bin()
+        .args(["run", "test-plans/demo.yaml", "--reference"])
+        .arg(&file)
+        .arg("--out")
+        .arg(dir.join("out"))
+        .stdin(Stdio::null())
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        stderr.contains(&format!(
+            "!!! step {wrong_step} NOT JUDGED for any unit: suspected reference fault"
+        )),
+        "{stderr}"
+    );
+    for r in common::records_in(&dir.join("out")) {
+        let s = r.steps.iter().find(|s| s.id == wrong_step).unwrap();
+        assert_eq!(s.status, StepStatus::Incomplete);
+        assert!(
+            s.checks
+                .iter()
+                .all(|c| c.verdict != meterproof::record::CheckVerdict::Fail)
+        );
+        assert_ne!(r.verdict.status, UnitStatus::Accepted);
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}
