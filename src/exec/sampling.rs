@@ -122,6 +122,19 @@ fn read_once(
         } else {
             link.read(want.quantity, &want.channel)
         };
+        // A value that is not a number (a link that let "NaN" or "inf" through) is never
+        // kept: the archive could not store it, and no arithmetic can use it.
+        let reading = reading.and_then(|v| {
+            if v.is_finite() {
+                Ok(v)
+            } else {
+                Err(crate::link::LinkError::Garbled {
+                    request: format!("read {}", want.quantity.name()),
+                    reply: v.to_string(),
+                    why: "not a finite number".into(),
+                })
+            }
+        });
         match reading {
             Ok(value) => {
                 let answered = s.clock.now_s();
