@@ -569,3 +569,111 @@ fn every_position_failing_alike_is_taken_for_the_reference() {
     }
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// The quantities a step asks the operator for, in the order it asks, typed as nominal.
+fn typed_references(plan: &Plan, step: usize) -> String {
+    let s = &plan.steps[step];
+    let mut asked: Vec<Quantity> = Vec::new();
+    let mut out = String::new();
+    for c in s.checks.iter().filter(|c| c.tolerance.needs_reference()) {
+        if !asked.contains(&c.quantity) {
+            asked.push(c.quantity);
+            let v = s.load.nominal(c.quantity, s.sampling_window_s());
+            out.push_str(&format!("{v} {}\n\n", c.quantity.unit()));
+        }
+    }
+    out
+}
+
+#[test]
+fn two_resumes_of_one_run_cannot_both_proceed() {
+    let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
+    let dir = temp_dir("two-resumes");
+    let out = dir.join("out");
+    // A run at a hand-switched bench, aborted by the operator at its second step.
+    let mut child = bin()
+        .args(["run", "test-plans/demo.yaml", "--ask", "--quiet", "--out"])
+        .arg(&out)
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let input = format!(
+        "op\nL\n1\n2\n3\n4\n\n{}abort end of shift\n",
+        typed_references(&plan, 0)
+    );
+    child
+        .stdin
+        .take()
+        .unwrap()
+        .write_all(input.as_bytes())
+        .unwrap();
+    let o = child.wait_with_output().unwrap();
+    assert_eq!(
+        o.status.code(),
+        Some(3),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let stdout = String::from_utf8_lossy(&o.stdout).to_string();
+    let run_id = stdout
+        .split("meterproof resume ")
+        .nth(1)
+        .and_then(|t| t.split_whitespace().next())
+        .unwrap_or_else(|| panic!("no resume hint: {stdout}"))
+        .to_string();
+    let archive = out.join("archive.sqlite");
+    // The first resume waits for the operator at its first prompt, holding the run.
+    let mut first = bin()
+        .args(["resume", &run_id, "--archive"])
+        .arg(&archive)
+        .arg("--out")
+        .arg(&out)
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let mut prompt = Vec::new();
+    let mut err = first.stderr.take().unwrap();
+    let mut byte = [0u8; 1];
+    while !String::from_utf8_lossy(&prompt).contains("Set the load") {
+        assert_eq!(
+            err.read(&mut byte).unwrap(),
+            1,
+            "{}",
+            String::from_utf8_lossy(&prompt)
+        );
+        prompt.push(byte[0]);
+    }
+    let second = bin()
+        .args(["resume", &run_id, "--quiet", "--archive"])
+        .arg(&archive)
+        .arg("--out")
+        .arg(&out)
+        .stdin(Stdio::null())
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&second.stderr);
+    assert_eq!(second.status.code(), Some(2), "{text}");
+    assert!(
+        text.contains("is being worked on by another meterproof"),
+        "{text}"
+    );
+    // The first one ends when its operator leaves (end of input), and the archive verifies.
+    drop(first.stdin.take());
+    assert_eq!(first.wait().unwrap().code(), Some(3));
+    let v = bin()
+        .args(["verify", "--archive"])
+        .arg(&archive)
+        .output()
+        .unwrap();
+    assert_eq!(
+        v.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&v.stdout)
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -83,6 +83,7 @@ fn db(e: crate::archive::ArchiveError) -> CliError {
 /// Continues an interrupted run: each unit from the first step it did not finish.
 pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
     let archive = open(&args.archive)?;
+    let lock = super::lock_run(&args.archive, &args.run)?;
     let run = archive.run(&args.run).map_err(db)?;
     if run.state != "running" && run.state != "interrupted" {
         return Err(CliError::Usage(format!(
@@ -125,6 +126,9 @@ pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
     // reports carry their plain names.
     super::set_aside_earlier_files(&run_dir)?;
     let hint = super::resume_hint(&run.run_id, &args.archive, &args.out, &records);
+    if hint.is_none() && archived.is_ok() {
+        lock.finished();
+    }
     let anchor = match archived {
         Err(e) => {
             // The archive failed: the engine's records, as files, are what is left of the run.

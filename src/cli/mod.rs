@@ -495,6 +495,7 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
         .clone()
         .unwrap_or_else(|| args.out.join("archive.sqlite"));
     let archive = Archive::open(&archive_path).map_err(|e| CliError::Run(e.to_string()))?;
+    let lock = lock_run(&archive_path, &ctx.run_id)?;
     archive
         .begin_run(
             &plan,
@@ -531,6 +532,9 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
         write_file(path, report::run_junit(&records))?;
     }
     let resume_hint = resume_hint(&ctx.run_id, &archive_path, &args.out, &records);
+    if resume_hint.is_none() && archived.is_ok() {
+        lock.finished();
+    }
     if args.json {
         print_json(&records);
         if let Some(h) = &resume_hint {
@@ -837,6 +841,62 @@ fn ask_serials(positions: usize) -> Result<Vec<String>, CliError> {
         serials.push(s);
     }
     Ok(serials)
+}
+
+/// A run's lock: held by the one process working on the run (a run, or a resume), so that a
+/// second resume of it cannot write the same readings again. An operating-system file lock, so
+/// a killed process releases it. The files live beside the archive, one per run.
+struct RunLock {
+    _file: std::fs::File,
+    path: PathBuf,
+}
+
+fn lock_run(archive: &Path, run_id: &str) -> Result<RunLock, CliError> {
+    let name = archive
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "archive".into());
+    let dir = archive
+        .parent()
+        .filter(|d| !d.as_os_str().is_empty())
+        .unwrap_or(Path::new("."))
+        .join(format!("{name}.locks"));
+    std::fs::create_dir_all(&dir)
+        .map_err(|e| CliError::Run(format!("cannot create {}: {e}", dir.display())))?;
+    let path = dir.join(format!("{}.lock", record::safe_file_stem(run_id)));
+    let file = std::fs::OpenOptions::new()
+        .create(true)
+        .truncate(false)
+        .write(true)
+        .read(true)
+        .open(&path)
+        .map_err(|e| CliError::Run(format!("cannot open {}: {e}", path.display())))?;
+    match file.try_lock() {
+        Ok(()) => {
+            let _ = file.set_len(0);
+            let _ = (&file).write_all(format!("{}\n", std::process::id()).as_bytes());
+            Ok(RunLock { _file: file, path })
+        }
+        Err(std::fs::TryLockError::WouldBlock) => {
+            let holder = std::fs::read_to_string(&path).unwrap_or_default();
+            Err(CliError::Usage(format!(
+                "run {run_id} is being worked on by another meterproof (process {}): wait for it to end; two processes must never run one run",
+                holder.trim()
+            )))
+        }
+        Err(std::fs::TryLockError::Error(e)) => Err(CliError::Run(format!(
+            "cannot lock {}: {e}",
+            path.display()
+        ))),
+    }
+}
+
+impl RunLock {
+    /// A finished run is never resumed again: its lock file can go (a process that opened it
+    /// meanwhile finds the run finished).
+    fn finished(self) {
+        let _ = std::fs::remove_file(&self.path);
+    }
 }
 
 /// Writes a file the user named (a JUnit or HTML report), saying which one failed.
