@@ -35,6 +35,9 @@ pub struct UnitRecord {
     pub operator: String,
     pub station: StationInfo,
     pub link: String,
+    /// Requests, retries, lines not understood and restarts of the unit on its link.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub link_health: Option<crate::link::LinkHealth>,
     /// Wall-clock times, ISO 8601 with offset.
     pub started_at: String,
     pub finished_at: String,

@@ -100,7 +100,8 @@ fn recoverable_faults_are_retried_and_fatal_ones_leave_the_unit_incomplete() {
             die_after: Some(60),
             ..Faults::default()
         },
-        // Reboots once mid-run: a banner instead of a reply, then answers again.
+        // Reboots once mid-run: a banner instead of a reply, then answers again; the step it
+        // restarted in does not count.
         Faults {
             reboot_after: Some(30),
             echo: true,
@@ -120,7 +121,36 @@ fn recoverable_faults_are_retried_and_fatal_ones_leave_the_unit_incomplete() {
     let (mut bench, _devices) = serial_bench(&serial_plan, &config, &faults);
     let records = run(&serial_plan, &mut bench);
 
-    for i in [0, 1, 3, 4] {
+    // Retries and lines not understood are counted in the records.
+    let lost = records[0].link_health.unwrap();
+    assert!(lost.retries > 0 && lost.restarts == 0, "{lost:?}");
+    let garbled = records[1].link_health.unwrap();
+    assert!(garbled.not_understood > 0, "{garbled:?}");
+    let rebooted = &records[3];
+    assert_eq!(rebooted.link_health.unwrap().restarts, 1);
+    assert_eq!(rebooted.verdict.status, UnitStatus::Incomplete);
+    let restarted: Vec<&str> = rebooted
+        .steps
+        .iter()
+        .filter(|s| s.status == StepStatus::Incomplete)
+        .map(|s| s.reason.as_deref().unwrap())
+        .collect();
+    assert_eq!(
+        restarted.len(),
+        1,
+        "only the step it restarted in: {restarted:?}"
+    );
+    assert!(restarted[0].starts_with("the unit restarted during the step"));
+    assert!(
+        rebooted
+            .steps
+            .iter()
+            .flat_map(|s| &s.checks)
+            .filter(|c| c.verdict == CheckVerdict::Fail)
+            .count()
+            == 0
+    );
+    for i in [0, 1, 4] {
         let r = &records[i];
         assert_eq!(
             r.verdict.status,

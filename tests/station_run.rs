@@ -123,12 +123,16 @@ fn a_dead_unit_and_an_unplugged_port_leave_those_units_incomplete() {
         "{:?}",
         records[0].verdict
     );
-    assert_eq!(
-        records[3].verdict.status,
-        UnitStatus::Accepted,
+    // Position 4 restarted once: the step it restarted in does not count, so it is not
+    // accepted, and its record says why and how often.
+    let rebooted = &records[3];
+    assert_eq!(rebooted.verdict.status, UnitStatus::Incomplete);
+    assert!(
+        rebooted.verdict.reasons[0].contains("the unit restarted during the step"),
         "{:?}",
-        records[3].verdict
+        rebooted.verdict
     );
+    assert_eq!(rebooted.link_health.unwrap().restarts, 1);
     let unplugged = &records[1];
     assert_eq!(unplugged.verdict.status, UnitStatus::Incomplete);
     assert!(

@@ -404,6 +404,7 @@ fn instrument_port(doc: &mut Document, prefix: &str, raw: &PortFields) -> Option
             pause_s: 0.0,
             echo: false,
             skip: None,
+            restart: None,
         },
     })
 }

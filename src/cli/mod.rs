@@ -845,25 +845,24 @@ fn ask_serials(positions: usize) -> Result<Vec<String>, CliError> {
 
 /// A run's lock: held by the one process working on the run (a run, or a resume), so that a
 /// second resume of it cannot write the same readings again. An operating-system file lock, so
-/// a killed process releases it. The files live beside the archive, one per run.
+/// a killed process releases it. The lock files live in the system's temporary folder, named by
+/// the archive's full path and the run, so that no user folder fills with them.
 struct RunLock {
     _file: std::fs::File,
     path: PathBuf,
 }
 
 fn lock_run(archive: &Path, run_id: &str) -> Result<RunLock, CliError> {
-    let name = archive
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_else(|| "archive".into());
-    let dir = archive
-        .parent()
-        .filter(|d| !d.as_os_str().is_empty())
-        .unwrap_or(Path::new("."))
-        .join(format!("{name}.locks"));
+    let full = std::fs::canonicalize(archive).unwrap_or_else(|_| archive.to_path_buf());
+    let key = crate::plan::sha256_hex(full.display().to_string().as_bytes());
+    let dir = std::env::temp_dir().join("meterproof-run-locks");
     std::fs::create_dir_all(&dir)
         .map_err(|e| CliError::Run(format!("cannot create {}: {e}", dir.display())))?;
-    let path = dir.join(format!("{}.lock", record::safe_file_stem(run_id)));
+    let path = dir.join(format!(
+        "{}-{}.lock",
+        &key[..16],
+        record::safe_file_stem(run_id)
+    ));
     let file = std::fs::OpenOptions::new()
         .create(true)
         .truncate(false)

@@ -172,6 +172,17 @@ struct StepContext<'a> {
     recorder: &'a dyn Recorder,
     /// The meter's base current (Ib or In): "no current" is judged against a share of it.
     base_current: f64,
+    /// Each position's restarts seen before the load was applied.
+    restarts_before: &'a [u64],
+}
+
+/// Each position's restarts seen so far (0 where the link does not count them).
+fn restarts(bench: &Bench) -> Vec<u64> {
+    bench
+        .positions
+        .iter()
+        .map(|p| p.link.health().map_or(0, |h| h.restarts))
+        .collect()
 }
 
 /// How a step ended, beyond its records.
@@ -327,6 +338,7 @@ pub fn run_with(
             source_failure = Some(reason);
             continue;
         }
+        let restarts_before = restarts(bench);
         if let Err(e) = bench.source.apply(&step.load) {
             let reason = e.to_string();
             if let crate::bench::BenchError::Skipped(_) = e {
@@ -374,6 +386,7 @@ pub fn run_with(
             attempts: resume.map(|r| &r.attempts),
             recorder,
             base_current: plan.ratings.base_current,
+            restarts_before: &restarts_before,
         };
         let outcome = run_step(step, &ctx_step, bench, &mut units, &judge);
         if let Some(reason) = &outcome.set_aside {
@@ -413,9 +426,13 @@ pub fn run_with(
     let off_failure = output.finish().err().map(|e| e.to_string());
     let bench_time_s = bench.clock.now_s() - t_start;
     let finished_at = now_iso();
+    let health: Vec<Option<crate::link::LinkHealth>> =
+        bench.positions.iter().map(|p| p.link.health()).collect();
     let records: Vec<UnitRecord> = units
         .into_iter()
-        .map(|mut u| {
+        .zip(health)
+        .map(|(mut u, health)| {
+            u.record.link_health = health;
             u.record.finished_at = finished_at.clone();
             u.record.bench_time_s = bench_time_s;
             if u.active {
@@ -594,6 +611,7 @@ fn identify(
             operator: ctx.operator.clone(),
             station: station.clone(),
             link: position.link.describe(),
+            link_health: None,
             started_at: started_at.to_string(),
             finished_at: String::new(),
             bench_time_s: 0.0,
@@ -908,6 +926,22 @@ fn run_step(
             .max()
             .unwrap_or(0) as u32;
     }
+    // A unit that restarted while under this load: what it read before may be from another
+    // life (registers reset, constants reloaded), so none of this step's readings count.
+    let restarted: Vec<Option<String>> = restarts(bench)
+        .into_iter()
+        .enumerate()
+        .map(|(u, now)| {
+            let before = sc.restarts_before.get(u).copied().unwrap_or(0);
+            (sc.to_run[u] && now > before).then(|| {
+                format!(
+                    "the unit restarted during the step ({} restart line{} seen): its readings of this step are not used",
+                    now - before,
+                    if now - before > 1 { "s" } else { "" }
+                )
+            })
+        })
+        .collect();
     // A stop signal after the last sample: the output is already off, so no reference may be
     // read for this step and none of its samples decide anything.
     let stopped = bench.interrupt.load(std::sync::atomic::Ordering::SeqCst);
@@ -1022,6 +1056,8 @@ fn run_step(
         }
         if let Some(problem) = &load_problem {
             trust::set_aside(&mut record, problem);
+        } else if let Some(why) = &restarted[u] {
+            trust::set_aside(&mut record, why);
         }
         unit.record.steps.push(record);
     }

@@ -83,6 +83,8 @@ pub struct LineSettings {
     pub echo: bool,
     /// Lines to ignore wherever they appear.
     pub skip: Option<regex::Regex>,
+    /// A line that shows the device restarted: counted (and ignored).
+    pub restart: Option<regex::Regex>,
 }
 
 /// What happened on a channel so far.
@@ -91,6 +93,10 @@ pub struct LinkStats {
     pub transactions: u64,
     pub retries: u64,
     pub skipped_lines: u64,
+    /// Lines that matched no reply pattern (garbled, or late replies to earlier requests).
+    pub not_understood: u64,
+    /// Restart lines seen: the device restarted this many times.
+    pub restarts: u64,
 }
 
 /// A request/reply line channel over a [`Wire`].
@@ -103,6 +109,8 @@ pub struct LineChannel<W: Wire> {
     /// From sending the request that was answered to its reply, for the last transaction that
     /// succeeded: the unit answered that request, so it took its reading within this time.
     last_answered_in: Option<Duration>,
+    /// Whether the device has answered anything yet.
+    answered_once: bool,
     pub stats: LinkStats,
 }
 
@@ -115,6 +123,7 @@ impl<W: Wire> LineChannel<W> {
             pending: Vec::new(),
             last_transaction_end: None,
             last_answered_in: None,
+            answered_once: false,
             stats: LinkStats::default(),
         }
     }
@@ -160,10 +169,12 @@ impl<W: Wire> LineChannel<W> {
                     let now = Instant::now();
                     self.last_transaction_end = Some(now);
                     self.last_answered_in = Some(now - sent);
+                    self.answered_once = true;
                     return Ok(line);
                 }
                 // A stale reply to an earlier request may come before the one to this request:
                 // keep listening until the deadline.
+                self.stats.not_understood += 1;
                 last_garbled = Some(line);
             }
         }
@@ -184,6 +195,10 @@ impl<W: Wire> LineChannel<W> {
     }
 
     fn is_noise(&mut self, request: &str, line: &str) -> bool {
+        if self.is_restart(line) {
+            self.stats.skipped_lines += 1;
+            return true;
+        }
         let noise = line.trim().is_empty()
             || (self.settings.echo && line.trim() == request.trim())
             || self
@@ -207,7 +222,37 @@ impl<W: Wire> LineChannel<W> {
         }
     }
 
+    /// Counts a restart line.
+    fn is_restart(&mut self, line: &str) -> bool {
+        let restart = self
+            .settings
+            .restart
+            .as_ref()
+            .is_some_and(|r| r.is_match(line));
+        // The banner of the power-up before the first answer is no restart.
+        if restart && self.answered_once {
+            self.stats.restarts += 1;
+        }
+        restart
+    }
+
     fn discard_stale(&mut self) -> Result<(), LinkError> {
+        // A device that restarted between two requests printed its banner into input about to
+        // be thrown away: where restarts are watched for, that input is read first.
+        if self.settings.restart.is_some() {
+            let mut buf = [0u8; 512];
+            let _ = self.wire.set_read_timeout(Duration::from_millis(0));
+            for _ in 0..64 {
+                match self.wire.read(&mut buf) {
+                    Ok(n) if n > 0 => self.pending.extend_from_slice(&buf[..n]),
+                    _ => break,
+                }
+            }
+            self.pending.push(b'\n');
+            while let Some(line) = take_line(&mut self.pending, LineEnding::Lf) {
+                self.is_restart(&line);
+            }
+        }
         self.pending.clear();
         self.wire
             .discard_input()

@@ -18,6 +18,21 @@ pub struct Identity {
     pub firmware: String,
 }
 
+/// How the link to a unit fared over a run, for its record: a unit that needed many retries
+/// or restarted is worth a look even when it passed.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+pub struct LinkHealth {
+    pub requests: u64,
+    /// Requests sent again after no reply or a reply not understood.
+    pub retries: u64,
+    /// Lines ignored: echo, log lines, boot banners.
+    pub lines_skipped: u64,
+    /// Lines that matched no reply pattern.
+    pub not_understood: u64,
+    /// Times the unit's restart line was seen.
+    pub restarts: u64,
+}
+
 /// A failure on the link to one unit.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 pub enum LinkError {
@@ -86,6 +101,11 @@ pub trait DutLink: Send {
     /// to that reply, where the link knows it: the unit took its reading within this time,
     /// which after a retry is much shorter than the whole call.
     fn last_answered_in_s(&self) -> Option<f64> {
+        None
+    }
+
+    /// How the link has fared so far, where the link counts it.
+    fn health(&self) -> Option<LinkHealth> {
         None
     }
 }

@@ -23,6 +23,7 @@ pub fn line_settings(spec: &TextLinkSpec) -> LineSettings {
         pause_s: spec.pause_s,
         echo: spec.echo,
         skip: spec.skip.as_ref().map(|p| p.regex.clone()),
+        restart: spec.restart.as_ref().map(|p| p.regex.clone()),
     }
 }
 
@@ -197,5 +198,16 @@ impl<W: Wire> DutLink for TextLink<W> {
 
     fn last_answered_in_s(&self) -> Option<f64> {
         self.channel.last_answered_in().map(|d| d.as_secs_f64())
+    }
+
+    fn health(&self) -> Option<super::LinkHealth> {
+        let s = self.channel.stats;
+        Some(super::LinkHealth {
+            requests: s.transactions,
+            retries: s.retries,
+            lines_skipped: s.skipped_lines,
+            not_understood: s.not_understood,
+            restarts: s.restarts,
+        })
     }
 }

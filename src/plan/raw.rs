@@ -202,6 +202,10 @@ pub struct RawTextLink {
     pub echo: Option<Text>,
     #[serde(default)]
     pub skip: Option<Text>,
+    /// A line the unit prints only when it starts (its boot banner): seeing it means the unit
+    /// restarted.
+    #[serde(default)]
+    pub restart: Option<Text>,
     #[serde(default)]
     pub channels: Option<Vec<Text>>,
     pub identity: RawIdentity,

@@ -149,6 +149,9 @@ pub struct TextLinkSpec {
     pub echo: bool,
     /// Lines to ignore wherever they appear (boot banners, log lines).
     pub skip: Option<Pattern>,
+    /// A line that shows the unit restarted (its boot banner): counted, and readings taken
+    /// across it are not used.
+    pub restart: Option<Pattern>,
     pub channels: Vec<String>,
     pub identity: IdentityRequest,
     pub quantities: Vec<QuantityRequest>,

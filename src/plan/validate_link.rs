@@ -245,6 +245,10 @@ pub(super) fn text_link(ctx: &mut Ctx, raw: RawTextLink) -> Option<TextLinkSpec>
         None => Some(None),
         Some(t) => pattern(ctx, "link.skip", t, &[]).map(Some),
     };
+    let restart = match &raw.restart {
+        None => Some(None),
+        Some(t) => pattern(ctx, "link.restart", t, &[]).map(Some),
+    };
     let channels = channel_names(ctx, raw.channels);
     let identity = {
         let request = template(ctx, "link.identity.request", &raw.identity.request, &[]);
@@ -361,6 +365,7 @@ pub(super) fn text_link(ctx: &mut Ctx, raw: RawTextLink) -> Option<TextLinkSpec>
         pause_s: pause_s?,
         echo: echo?,
         skip: skip?,
+        restart: restart?,
         channels,
         identity: identity?,
         quantities,
