@@ -677,3 +677,27 @@ fn two_resumes_of_one_run_cannot_both_proceed() {
     );
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+#[test]
+fn typed_identities_with_control_characters_are_refused() {
+    let dir = temp_dir("hostile-args");
+    for args in [
+        vec!["--serials", "\u{1b}[2KA-1,B-2,C-3,D-4"],
+        vec!["--lot", "L\u{7}7"],
+        vec!["--operator", "op\u{1b}]0;x\u{7}"],
+    ] {
+        let o = bin()
+            .args(["run", "test-plans/demo.yaml", "--quiet", "--out"])
+            .arg(dir.join("out"))
+            .args(&args)
+            .output()
+            .unwrap();
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert_eq!(o.status.code(), Some(2), "{err}");
+        assert!(err.contains("contains control characters"), "{err}");
+        // What is said about it is escaped: no raw control character reaches the terminal.
+        assert!(!err.contains('\u{1b}') && !err.contains('\u{7}'), "{err:?}");
+    }
+    assert!(!dir.join("out").exists(), "nothing was run");
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -179,12 +179,12 @@ pub(super) fn history(args: &HistoryArgs) -> Result<i32, CliError> {
     for r in rows {
         println!(
             "{:<30} {:<28} {:<16} {:<10} {:<12} {:<12} {}",
-            r.finished_at,
-            r.run_id,
-            format!("{} rev {}", r.plan_id, r.revision),
-            r.firmware.unwrap_or_default(),
-            r.station,
-            r.operator,
+            super::terminal_safe(&r.finished_at),
+            super::terminal_safe(&r.run_id),
+            super::terminal_safe(&format!("{} rev {}", r.plan_id, r.revision)),
+            super::terminal_safe(&r.firmware.unwrap_or_default()),
+            super::terminal_safe(&r.station),
+            super::terminal_safe(&r.operator),
             r.status.to_uppercase()
         );
     }
@@ -244,11 +244,11 @@ pub(super) fn runs(args: &RunsArgs) -> Result<i32, CliError> {
     for r in rows {
         println!(
             "{:<28} {:<30} {:<16} {:<10} {:<10} {:>8} {:>8} {:>10}",
-            r.run_id,
-            r.started_at,
-            format!("{} rev {}", r.plan_id, r.revision),
-            r.lot.unwrap_or_default(),
-            r.state,
+            super::terminal_safe(&r.run_id),
+            super::terminal_safe(&r.started_at),
+            super::terminal_safe(&format!("{} rev {}", r.plan_id, r.revision)),
+            super::terminal_safe(&r.lot.unwrap_or_default()),
+            super::terminal_safe(&r.state),
             r.accepted,
             r.rejected,
             r.incomplete

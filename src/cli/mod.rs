@@ -439,6 +439,16 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
         }
         None => None,
     };
+    for (what, text) in [("--operator", &args.operator), ("--lot", &args.lot)] {
+        if let Some(t) = text
+            && t.chars().any(char::is_control)
+        {
+            return Err(CliError::Usage(format!(
+                "{what}: \"{}\" contains control characters",
+                terminal_safe(t)
+            )));
+        }
+    }
     let operator = match (&args.operator, args.ask) {
         (Some(o), _) => o.clone(),
         (None, true) => ask_non_empty("Operator id: ")?,
@@ -819,6 +829,13 @@ fn ask(prompt: &str) -> Result<String, CliError> {
 fn ask_non_empty(prompt: &str) -> Result<String, CliError> {
     loop {
         let answer = ask(prompt)?;
+        if answer.chars().any(char::is_control) {
+            eprintln!(
+                "  \"{}\" contains control characters: type it again",
+                terminal_safe(&answer)
+            );
+            continue;
+        }
         if !answer.is_empty() {
             return Ok(answer);
         }
@@ -911,6 +928,12 @@ fn checked_serials(serials: Option<&[String]>) -> Result<Option<Vec<String>>, Cl
     };
     let mut seen = std::collections::HashSet::new();
     for s in serials {
+        if s.chars().any(char::is_control) {
+            return Err(CliError::Usage(format!(
+                "--serials: \"{}\" contains control characters",
+                terminal_safe(s)
+            )));
+        }
         if s.trim().is_empty() {
             return Err(CliError::Usage(
                 "--serials contains an empty serial number".into(),
@@ -1057,13 +1080,13 @@ fn print_summary(records: &[UnitRecord], written: &[Written]) {
         println!(
             "{:<4} {:<20} {} {:<12} {}",
             r.position,
-            r.serial,
+            terminal_safe(&r.serial),
             r.verdict.status.symbol(),
             r.verdict.status.word(),
-            w.html.display()
+            terminal_safe(&w.html.display().to_string())
         );
         for reason in &r.verdict.reasons {
-            println!("       {reason}");
+            println!("       {}", terminal_safe(reason));
         }
     }
     let count = |s: UnitStatus| records.iter().filter(|r| r.verdict.status == s).count();
@@ -1152,10 +1175,15 @@ impl Reporter for TerminalReporter {
             ),
             Event::UnitIdentified { position, identity } => eprintln!(
                 "  position {position}: {} serial {} firmware {}",
-                identity.model, identity.serial, identity.firmware
+                terminal_safe(&identity.model),
+                terminal_safe(&identity.serial),
+                terminal_safe(&identity.firmware)
             ),
             Event::UnitRefused { position, reason } => {
-                eprintln!("  position {position}: not tested: {reason}")
+                eprintln!(
+                    "  position {position}: not tested: {}",
+                    terminal_safe(reason)
+                )
             }
             Event::StepStarted { index, total, step } => eprintln!(
                 "[{}/{total}] {}: {}",
