@@ -367,40 +367,110 @@ fn check_refuses_stations_that_cannot_work() {
 }
 
 #[test]
-fn check_refuses_plans_with_durations_out_of_bounds() {
+fn check_refuses_plans_that_cannot_work() {
     let dir = temp_dir("bad-plan-bounds");
-    let plan = std::fs::read_to_string("test-plans/demo-serial.yaml").unwrap();
-    let cases: &[(&str, &str, &str)] = &[
+    // (plan, text in it, replacement, what check must say)
+    let cases: &[(&str, &str, &str, &str)] = &[
         (
-            "timeout: ",
-            "timeout: -5 ms #",
+            "demo-serial.yaml",
+            "timeout: 250 ms",
+            "timeout: -5 ms",
             "link.timeout: \"-5 ms\" is negative",
         ),
         (
-            "timeout: ",
-            "timeout: 1000000000 s #",
+            "demo-serial.yaml",
+            "timeout: 250 ms",
+            "timeout: 1000000000 s",
             "link.timeout: \"1000000000 s\" is longer than 12 h",
         ),
         (
-            "timeout: ",
-            "timeout: 90 s #",
+            "demo-serial.yaml",
+            "timeout: 250 ms",
+            "timeout: 90 s",
             "link.timeout: the timeout must be",
+        ),
+        (
+            "demo-serial.yaml",
+            "pause: 0 ms",
+            "pause: -1 s",
+            "link.pause: \"-1 s\" is negative",
+        ),
+        (
+            "demo-serial.yaml",
+            "skip: '^#'",
+            "skip: ''",
+            "link.skip: an empty pattern matches every line",
+        ),
+        (
+            "demo.yaml",
+            "interval: 500 ms",
+            "interval: 1e30 s",
+            "defaults.interval: \"1e30 s\" is longer than 12 h",
+        ),
+        (
+            "demo.yaml",
+            "samples: 8",
+            "samples: 0",
+            "defaults.samples: expected a whole number of samples from 1 to 10000",
+        ),
+        (
+            "demo.yaml",
+            "tolerance: { percent: 1 %, plus: 5 mA }",
+            "tolerance: { percent: 0 %, plus: 0 mA }",
+            "a tolerance of zero can never be met",
+        ),
+        (
+            "demo.yaml",
+            "tolerance: { percent: 0.5 % }",
+            "tolerance: { percent: 0 % }",
+            "a tolerance of zero",
+        ),
+        (
+            "demo.yaml",
+            "guard_band: 1 U",
+            "guard_band: 40 U",
+            "decision.guard_band: expected a multiple of the expanded uncertainty from 0 to 3",
+        ),
+        (
+            "demo-adaptive.yaml",
+            "readings: 4, every: 150 ms, at_least: 500 ms, at_most: 4 s",
+            "readings: 40, every: 150 ms, at_least: 500 ms, at_most: 4 s",
+            "the step could never settle",
+        ),
+        (
+            "demo.yaml",
+            "    settle: 2 s\n",
+            "    settle: 2 s\n    load_within: 0 %\n",
+            "steps[0].load_within: expected a percentage above 0 % and at most 50 %",
         ),
     ];
     let mut refused = 0;
-    for (i, (from, to, expected)) in cases.iter().enumerate() {
-        assert!(plan.contains(from), "the demo plan has a link {from}");
+    for (i, (plan, from, to, expected)) in cases.iter().enumerate() {
+        let text = std::fs::read_to_string(format!("test-plans/{plan}")).unwrap();
+        assert!(text.contains(from), "{plan} has {from}");
         let f = dir.join(format!("bad-{i}.yaml"));
-        std::fs::write(&f, plan.replacen(from, to, 1)).unwrap();
-        let (code, text) = check(&f);
-        assert_eq!(code, 2, "{to}: {text}");
-        assert!(text.contains(expected), "{to}: {text}");
+        std::fs::write(&f, text.replacen(from, to, 1)).unwrap();
+        let (code, out) = check(&f);
+        assert_eq!(code, 2, "{to}: {out}");
+        assert!(out.contains(expected), "{to}: {out}");
         refused += 1;
     }
-    println!(
-        "plans with bad bounds refused: {refused} of {}",
-        cases.len()
+    // Calibration points all at one load: no line can be fitted through them.
+    let text = std::fs::read_to_string("test-plans/calibrate.yaml")
+        .unwrap()
+        .replace("current: 1.2 A", "current: 0 A")
+        .replace("current: 2.4 A", "current: 0 A")
+        .replace("current: 3.6 A", "current: 0 A");
+    let f = dir.join("one-load.yaml");
+    std::fs::write(&f, text).unwrap();
+    let (code, out) = check(&f);
+    assert_eq!(code, 2, "{out}");
+    assert!(
+        out.contains("every calibration point is at the same load"),
+        "{out}"
     );
+    refused += 1;
+    println!("bad plans refused: {refused} of {}", cases.len() + 1);
     std::fs::remove_dir_all(&dir).unwrap();
 }
 

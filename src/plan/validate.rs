@@ -458,6 +458,22 @@ fn calibration(
             points.push(id);
         }
     }
+    // A line through points at one load has no slope: the gain cannot be found.
+    let loads: Vec<f64> = points
+        .iter()
+        .filter_map(|id| steps.iter().find(|s| &s.id == id))
+        .map(|s| s.load.nominal(quantity.unwrap_or(Quantity::Current), 1.0))
+        .collect();
+    if loads.len() >= 2
+        && loads
+            .iter()
+            .all(|l| (l - loads[0]).abs() <= 1e-12 * l.abs().max(1.0))
+    {
+        ctx.error(
+            "calibration.points",
+            "every calibration point is at the same load: a fit needs points at different loads",
+        );
+    }
     let needed = match model {
         Some(Model::Quadratic) => 4,
         _ => 3,
@@ -527,11 +543,11 @@ fn decision(ctx: &mut Ctx, raw: Option<&super::raw::RawDecision>) -> Option<Deci
                 }
             });
             match multiple.flatten() {
-                Some(m) if m > 0.0 && m.is_finite() => Some(DecisionRule::Guarded { multiple: m }),
+                Some(m) if m > 0.0 && m <= 3.0 => Some(DecisionRule::Guarded { multiple: m }),
                 _ => {
                     ctx.error(
                         "decision.guard_band",
-                        format!("expected a multiple of the expanded uncertainty, such as \"1 U\" or \"0.5 U\", got \"{text}\""),
+                        format!("expected a multiple of the expanded uncertainty from 0 to 3, such as \"1 U\" or \"0.5 U\", got \"{text}\""),
                     );
                     None
                 }
@@ -1056,6 +1072,19 @@ fn settle_rule(
         );
         return None;
     }
+    // The readings that show it stable must fit in the longest wait, or it never can be.
+    let needed_s = f64::from(readings - 1) * every_s;
+    if needed_s > max_s {
+        ctx.error(
+            &format!("{path}.at_most"),
+            format!(
+                "{readings} readings {} apart take {}, longer than at_most: the step could never settle",
+                crate::report::duration_text(every_s),
+                crate::report::duration_text(needed_s)
+            ),
+        );
+        return None;
+    }
     Some(super::SettleRule {
         quantity,
         channel,
@@ -1426,6 +1455,26 @@ fn tolerance(
     };
     if negative {
         ctx.error(path, "tolerance terms cannot be negative");
+        return None;
+    }
+    let zero = match tol.clone() {
+        Tolerance::PercentOfReading { percent } | Tolerance::Class { percent, .. } => {
+            percent == 0.0
+        }
+        Tolerance::PercentPlusAbsolute { percent, absolute } => percent == 0.0 && absolute == 0.0,
+        Tolerance::PercentPlusRange {
+            percent,
+            range_percent,
+            ..
+        } => percent == 0.0 && range_percent == 0.0,
+        Tolerance::Band { half_width } => half_width == 0.0,
+        Tolerance::AtMost { .. } | Tolerance::AtLeast { .. } => false,
+    };
+    if zero {
+        ctx.error(
+            path,
+            "a tolerance of zero can never be met by a measurement, which always has an uncertainty",
+        );
         return None;
     }
     Some(tol)

@@ -11,6 +11,10 @@ use super::validate::{Ctx, channel_names};
 
 /// Compiles a pattern, and checks that it has the named groups the link needs from it.
 fn pattern(ctx: &mut Ctx, path: &str, text: &Text, groups: &[&str]) -> Option<Pattern> {
+    if text.0.is_empty() {
+        ctx.error(path, "an empty pattern matches every line");
+        return None;
+    }
     let regex = match regex::RegexBuilder::new(&text.0)
         .size_limit(1 << 20)
         .build()
