@@ -200,7 +200,7 @@ fn a_special_test_keeps_the_standards_duration() {
         .unwrap_err()
         .to_string();
     assert!(
-        e.contains("steps[0].samples_until_decided")
+        e.contains("steps[1].samples_until_decided")
             && e.contains("a special test takes its whole duration from the standard"),
         "{e}"
     );

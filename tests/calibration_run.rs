@@ -183,7 +183,7 @@ fn calibration_mistakes_in_a_plan_are_refused() {
     );
     let e = Plan::from_text("c.yaml", &missing).unwrap_err().to_string();
     assert!(
-        e.contains("calibration.points[1]: no step has the id \"cal-9A\""),
+        e.contains("calibration.points[2]: no step has the id \"cal-9A\""),
         "{e}"
     );
     assert!(e.contains("needs at least 3 points"), "{e}");

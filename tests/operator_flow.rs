@@ -357,3 +357,37 @@ fn a_bad_reference_file_is_refused_before_any_step_with_every_bad_line() {
     assert!(!dir.join("out").exists() || records_in(&dir.join("out")).is_empty());
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+#[test]
+fn a_reference_file_of_a_million_bad_rows_prints_the_first_and_counts_the_rest() {
+    let dir = temp_dir("csv-million");
+    let file = dir.join("refs.csv");
+    let mut csv = String::from("step,quantity,value,unit\n");
+    for i in 0..1_000_000 {
+        csv.push_str(&format!("nowhere-{i},current,1,A\n"));
+    }
+    std::fs::write(&file, csv).unwrap();
+    let o = bin()
+        .args(["run", "test-plans/demo.yaml", "--quiet", "--reference"])
+        .arg(&file)
+        .arg("--out")
+        .arg(dir.join("out"))
+        .stdin(Stdio::null())
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&o.stderr);
+    let lines: Vec<&str> = err.lines().collect();
+    assert!(lines.len() <= 52, "{} lines", lines.len());
+    assert!(
+        err.contains("more mistakes (the first 50 are shown)"),
+        "{}",
+        lines.last().unwrap()
+    );
+    assert!(
+        lines[0].contains("refs.csv:2: no step \"nowhere-0\""),
+        "{}",
+        lines[0]
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -41,7 +41,7 @@ fn a_misspelt_key_is_refused_with_its_line_and_column() {
     assert_eq!((pos.line, pos.column), (line, column));
     assert!(
         e.to_string()
-            .starts_with(&format!("p.yaml:{line}:{column}: steps[1].load.curent: "))
+            .starts_with(&format!("p.yaml:{line}:{column}: steps[2].load.curent: "))
     );
 }
 
@@ -253,4 +253,70 @@ fn decision_rules_and_special_tests_are_checked() {
     );
     let bad_constant = GOOD.replace("1000 imp/kWh", "1000 pulses");
     assert_eq!(errors(&bad_constant).0[0].path, "ratings.meter_constant");
+}
+
+#[test]
+fn mistakes_are_said_in_the_plans_words_not_the_programs() {
+    for (text, expected) in [
+        ("- a\n- b\n", "expected a mapping of keys and values"),
+        (
+            &*GOOD.replace("    load: { current: 500 mA }", "    load: 5"),
+            "steps[2].load: invalid type: integer `5`, expected a mapping of keys and values",
+        ),
+    ] {
+        let e = errors(text).to_string();
+        assert!(e.contains(expected), "{e}");
+        for internal in ["Raw", "struct", "u128", "u32", "usize", "f64", "enum"] {
+            assert!(!e.contains(internal), "{internal} in: {e}");
+        }
+    }
+}
+
+#[test]
+fn a_mistake_in_the_defaults_is_said_once_at_the_defaults() {
+    let text = GOOD.replace(
+        "  settle: 4 s\n",
+        "  settle: 4 s\n  settle_until: { stable_within: 0.3 %, readings: 40, every: 1 s, at_most: 4 s }\n",
+    );
+    let e = errors(&text);
+    let said: Vec<String> = e.0.iter().map(|x| x.to_string()).collect();
+    assert_eq!(
+        said.len(),
+        1,
+        "inherited by every step, said once: {said:#?}"
+    );
+    let line = line_of(&text, "settle_until");
+    assert!(
+        said[0].starts_with(&format!("p.yaml:{line}:"))
+            && said[0].contains("defaults.settle_until"),
+        "{}",
+        said[0]
+    );
+}
+
+#[test]
+fn a_plan_with_thousands_of_mistakes_prints_the_first_and_counts_the_rest() {
+    let (head, _) = GOOD.split_once("steps:").unwrap();
+    let mut text = format!("{head}steps:\n");
+    for i in 0..300 {
+        text.push_str(&format!(
+            "  - id: s{i}\n    load: {{ current: 5 A }}\n    checks:\n      - {{ quantity: current, tolerance: {{ precent: 1 % }} }}\n"
+        ));
+    }
+    let e = errors(&text);
+    assert_eq!(e.0.len(), 300, "every mistake is kept");
+    let shown = e.to_string();
+    let lines: Vec<&str> = shown.lines().collect();
+    assert_eq!(lines.len(), 51, "{shown}");
+    assert_eq!(
+        *lines.last().unwrap(),
+        "... and 250 more mistakes (the first 50 are shown)"
+    );
+    // In file order, each at its own line, the first step counted as step 1.
+    assert!(
+        lines[0].contains("steps[1].checks[1].tolerance.precent"),
+        "{}",
+        lines[0]
+    );
+    assert!(lines[49].contains("steps[50].checks[1]"), "{}", lines[49]);
 }

@@ -341,7 +341,7 @@ fn check_refuses_stations_that_cannot_work() {
         (
             "  port: /dev/ttyUSB8",
             "  port: /dev/ttyUSB1",
-            "source.port: port /dev/ttyUSB1 is already used by positions[1].port",
+            "source.port: port /dev/ttyUSB1 is already used by the port of position 2",
         ),
         (
             "    port: /dev/ttyUSB9",
@@ -441,7 +441,7 @@ fn check_refuses_plans_that_cannot_work() {
             "demo.yaml",
             "    settle: 2 s\n",
             "    settle: 2 s\n    load_within: 0 %\n",
-            "steps[0].load_within: expected a percentage above 0 % and at most 50 %",
+            "steps[1].load_within: expected a percentage above 0 % and at most 50 %",
         ),
     ];
     let mut refused = 0;

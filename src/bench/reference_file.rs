@@ -25,7 +25,8 @@ pub struct ReferenceFileErrors {
 
 impl fmt::Display for ReferenceFileErrors {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        for (i, (line, message)) in self.errors.iter().enumerate() {
+        let shown = crate::plan::MAX_SHOWN_ERRORS;
+        for (i, (line, message)) in self.errors.iter().take(shown).enumerate() {
             if i > 0 {
                 writeln!(f)?;
             }
@@ -34,6 +35,13 @@ impl fmt::Display for ReferenceFileErrors {
             } else {
                 write!(f, "{}:{line}: {message}", self.file)?;
             }
+        }
+        if self.errors.len() > shown {
+            write!(
+                f,
+                "\n... and {} more mistakes (the first {shown} are shown)",
+                self.errors.len() - shown
+            )?;
         }
         Ok(())
     }

@@ -297,7 +297,7 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
     // each other.
     let mut ports: Vec<(String, String)> = positions
         .iter()
-        .map(|p| (p.port.clone(), format!("positions[{}].port", p.number - 1)))
+        .map(|p| (p.port.clone(), format!("the port of position {}", p.number)))
         .collect();
     if let RawSource::Scpi(s) = &raw.source {
         ports.push((s.port.0.trim().to_string(), "source.port".into()));
@@ -638,7 +638,8 @@ reference:
             .replace("port: /dev/ttyUSB1", "port: /dev/ttyUSB0")
             .replace("calibration_due: 2027-03-31", "calibration_due: March");
         let e = Station::from_text("s.yaml", &bad).unwrap_err().to_string();
-        assert!(e.contains("s.yaml:4:26: positions[1].port"), "{e}");
+        // Shown counted from 1, as the positions are numbered on the bench.
+        assert!(e.contains("s.yaml:4:26: positions[2].port"), "{e}");
         assert!(
             e.contains("port /dev/ttyUSB0 is given to two positions"),
             "{e}"

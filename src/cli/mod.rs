@@ -249,10 +249,16 @@ fn check(paths: &[PathBuf]) -> Result<i32, CliError> {
 
 /// Whether a YAML file is a station file (its top level names a `station`) rather than a plan.
 fn is_station_file(path: &Path) -> bool {
+    /// The top-level keys that tell the two apart, read without building the document.
+    #[derive(serde::Deserialize)]
+    struct Probe {
+        station: Option<serde::de::IgnoredAny>,
+        steps: Option<serde::de::IgnoredAny>,
+    }
     std::fs::read_to_string(path)
         .ok()
-        .and_then(|t| serde_yaml::from_str::<serde_yaml::Value>(&t).ok())
-        .is_some_and(|v| v.get("station").is_some() && v.get("steps").is_none())
+        .and_then(|t| serde_yaml::from_str::<Probe>(&t).ok())
+        .is_some_and(|p| p.station.is_some() && p.steps.is_none())
 }
 
 /// What `check` prints for a valid station file.

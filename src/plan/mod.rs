@@ -13,7 +13,7 @@ mod validate_link;
 
 pub use locate::Position;
 pub use raw::{RawPort, Text};
-pub use validate::{Document, PlanError, PlanErrors};
+pub use validate::{Document, MAX_SHOWN_ERRORS, PlanError, PlanErrors, counted_from_one};
 pub use validate_link::port_settings;
 
 use serde::Serialize;

@@ -40,8 +40,8 @@ impl<'de> Deserialize<'de> for Text {
     }
 }
 
-/// The top level of a plan. Steps stay as YAML values here so that each one is deserialised on
-/// its own and a mistake in one does not hide the mistakes in the others.
+/// The top level of a plan. Each step is deserialised on its own ([`StepSlot`]) so that a
+/// mistake in one does not hide the mistakes in the others.
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct RawPlan {
@@ -64,7 +64,31 @@ pub struct RawPlan {
     pub golden_units: Vec<Text>,
     #[serde(default)]
     pub regression_allowance: Option<Text>,
-    pub steps: Vec<serde_yaml::Value>,
+    pub steps: Vec<StepSlot>,
+}
+
+/// One step as read: from a YAML value of its own, dropped as soon as it is read, so that a
+/// plan of many steps is never held as a whole tree, and a mistake in one step is kept (with
+/// its path inside the step) instead of ending the reading of the others.
+#[derive(Debug)]
+pub enum StepSlot {
+    Read(Box<RawStep>),
+    Mistake { path: String, message: String },
+}
+
+impl<'de> Deserialize<'de> for StepSlot {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        let value = serde_yaml::Value::deserialize(d)?;
+        Ok(
+            match serde_path_to_error::deserialize::<_, RawStep>(value) {
+                Ok(step) => StepSlot::Read(Box::new(step)),
+                Err(e) => StepSlot::Mistake {
+                    path: e.path().to_string(),
+                    message: e.into_inner().to_string(),
+                },
+            },
+        )
+    }
 }
 
 #[derive(Debug, Deserialize)]

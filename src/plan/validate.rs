@@ -1,7 +1,7 @@
 //! From text to a validated [`Plan`], collecting every mistake with its position.
 
 use super::locate::{Locations, Position};
-use super::raw::{RawCheck, RawLink, RawLoad, RawPlan, RawStep, RawTolerance, Text};
+use super::raw::{RawCheck, RawLink, RawLoad, RawPlan, RawStep, RawTolerance, StepSlot, Text};
 use super::units::{self, Dimension};
 use super::{
     BaseCurrent, Check, DecisionRule, LinkSpec, Load, Plan, PlanSource, Product, Quantity, Ratings,
@@ -44,10 +44,61 @@ impl fmt::Display for PlanError {
             write!(f, ":{}:{}", p.line, p.column)?;
         }
         if !self.path.is_empty() {
-            write!(f, ": {}", self.path)?;
+            write!(f, ": {}", counted_from_one(&self.path))?;
         }
         write!(f, ": {}", self.message)
     }
+}
+
+/// A path as people count: `steps[0].checks[1]` is shown `steps[1].checks[2]`, the first step
+/// being step 1 as the run's progress and the reports number it.
+pub fn counted_from_one(path: &str) -> String {
+    let mut out = String::with_capacity(path.len());
+    let mut rest = path;
+    while let Some(open) = rest.find('[') {
+        out.push_str(&rest[..=open]);
+        rest = &rest[open + 1..];
+        let close = rest.find(']').unwrap_or(rest.len());
+        match rest[..close].parse::<usize>() {
+            Ok(n) => out.push_str(&(n + 1).to_string()),
+            Err(_) => out.push_str(&rest[..close]),
+        }
+        rest = &rest[close..];
+    }
+    out.push_str(rest);
+    out
+}
+
+/// At most this many mistakes are printed; the rest are counted.
+pub const MAX_SHOWN_ERRORS: usize = 50;
+/// At most this many mistakes are located in the file (a second pass over the text).
+const MAX_LOCATED_ERRORS: usize = 1000;
+
+/// serde's words for what it expected, in the plan's terms: "expected struct RawPlan" tells a
+/// test engineer nothing.
+fn plain_words(message: &str) -> String {
+    static TYPES: std::sync::LazyLock<regex::Regex> = std::sync::LazyLock::new(|| {
+        regex::Regex::new(
+            r"(?:internally tagged )?(struct|enum) Raw\w+|\b(?:u8|u16|u32|u64|u128|usize|i8|i16|i32|i64|i128|isize)\b|\b(?:f32|f64)\b|struct Text|a string or number",
+        )
+        .expect("a valid pattern")
+    });
+    TYPES
+        .replace_all(message, |c: &regex::Captures| {
+            let m = c.get(0).map_or("", |m| m.as_str());
+            if m.starts_with("struct Text") || m == "a string or number" {
+                "a value (text or a number)".to_string()
+            } else if m.contains("enum") {
+                "a mapping with a kind".to_string()
+            } else if m.contains("struct") {
+                "a mapping of keys and values".to_string()
+            } else if m.starts_with('f') {
+                "a number".to_string()
+            } else {
+                "a whole number".to_string()
+            }
+        })
+        .into_owned()
 }
 
 /// Every mistake found in one plan, in file order.
@@ -69,11 +120,18 @@ impl PlanErrors {
 
 impl fmt::Display for PlanErrors {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        for (i, e) in self.0.iter().enumerate() {
+        for (i, e) in self.0.iter().take(MAX_SHOWN_ERRORS).enumerate() {
             if i > 0 {
                 writeln!(f)?;
             }
             write!(f, "{e}")?;
+        }
+        if self.0.len() > MAX_SHOWN_ERRORS {
+            write!(
+                f,
+                "\n... and {} more mistakes (the first {MAX_SHOWN_ERRORS} are shown)",
+                self.0.len() - MAX_SHOWN_ERRORS
+            )?;
         }
         Ok(())
     }
@@ -83,8 +141,10 @@ impl fmt::Display for PlanErrors {
 /// are both read through it, so both report mistakes the same way.
 pub struct Document<'a> {
     file: &'a str,
-    loc: Locations,
-    errors: Vec<PlanError>,
+    text: &'a str,
+    /// Mistakes found so far, with whether each points at a key (not its value); positions
+    /// are looked up once, at the end, for the paths that need them.
+    errors: Vec<(PlanError, bool)>,
 }
 
 pub(super) type Ctx<'a> = Document<'a>;
@@ -93,7 +153,7 @@ impl<'a> Document<'a> {
     /// Parses `text` as YAML; a syntax error is returned at once, with its position.
     pub fn parse(
         file: &'a str,
-        text: &str,
+        text: &'a str,
     ) -> Result<(serde_yaml::Value, Document<'a>), PlanErrors> {
         let value: serde_yaml::Value = serde_yaml::from_str(text).map_err(|e| {
             PlanErrors::single(PlanError {
@@ -110,7 +170,7 @@ impl<'a> Document<'a> {
             value,
             Document {
                 file,
-                loc: Locations::of(text),
+                text,
                 errors: Vec::new(),
             },
         ))
@@ -122,18 +182,59 @@ impl<'a> Document<'a> {
     }
 
     /// All the mistakes found, in file order.
+    /// The mistakes, each with its line and column, in file order; a mistake made once for
+    /// many steps (in an inherited default) is said once.
     pub fn into_errors(self) -> PlanErrors {
-        sorted(self.errors)
+        let mut seen = HashSet::new();
+        let mut errors: Vec<(PlanError, bool)> = self
+            .errors
+            .into_iter()
+            .filter(|(e, _)| seen.insert((e.path.clone(), e.message.clone())))
+            .collect();
+        let rest = errors.split_off(errors.len().min(MAX_LOCATED_ERRORS));
+        let loc = Locations::of_paths(self.text, errors.iter().map(|(e, _)| e.path.as_str()));
+        let mut located: Vec<PlanError> = errors
+            .into_iter()
+            .map(|(mut e, key)| {
+                e.position = if key {
+                    loc.key(&e.path)
+                } else {
+                    loc.value(&e.path)
+                };
+                e
+            })
+            .collect();
+        located.sort_by_key(|e| e.position.map(|p| (p.line, p.column)).unwrap_or((0, 0)));
+        located.extend(rest.into_iter().map(|(e, _)| e));
+        PlanErrors(located)
     }
 
     pub fn error(&mut self, path: &str, message: impl Into<String>) {
-        let position = self.loc.value(path);
-        self.errors.push(PlanError {
-            file: self.file.to_string(),
-            position,
-            path: path.to_string(),
-            message: message.into(),
-        });
+        self.errors.push((
+            PlanError {
+                file: self.file.to_string(),
+                position: None,
+                path: path.to_string(),
+                message: message.into(),
+            },
+            false,
+        ));
+    }
+
+    /// Records a structural mistake found at `inner` (serde's path) under `prefix`.
+    pub fn structure_error(&mut self, prefix: &str, inner: &str, message: &str) {
+        let path = join_path(prefix, if inner == "." { "" } else { inner });
+        let message = plain_words(message);
+        let key = message.starts_with("unknown field");
+        self.errors.push((
+            PlanError {
+                file: self.file.to_string(),
+                position: None,
+                path,
+                message,
+            },
+            key,
+        ));
     }
 
     /// Deserialises one part of the file, recording a structural mistake under `prefix`.
@@ -147,18 +248,17 @@ impl<'a> Document<'a> {
             Err(e) => {
                 let inner = e.path().to_string();
                 let path = join_path(prefix, if inner == "." { "" } else { &inner });
-                let message = e.into_inner().to_string();
-                let position = if message.starts_with("unknown field") {
-                    self.loc.key(&path)
-                } else {
-                    self.loc.value(&path)
-                };
-                self.errors.push(PlanError {
-                    file: self.file.to_string(),
-                    position,
-                    path,
-                    message,
-                });
+                let message = plain_words(&e.into_inner().to_string());
+                let key = message.starts_with("unknown field");
+                self.errors.push((
+                    PlanError {
+                        file: self.file.to_string(),
+                        position: None,
+                        path,
+                        message,
+                    },
+                    key,
+                ));
                 None
             }
         }
@@ -244,35 +344,68 @@ fn join_path(prefix: &str, inner: &str) -> String {
 
 /// Validates a whole plan text.
 pub fn validate(file: &str, text: &str) -> Result<Plan, PlanErrors> {
-    let (document, mut ctx) = Document::parse(file, text)?;
-    let raw: Option<RawPlan> = ctx.structure("", document.clone());
-    // Steps are read one by one even when the top level failed, so that all their mistakes show.
-    let step_values = match &raw {
-        Some(r) => r.steps.clone(),
-        None => match document.get("steps") {
-            Some(serde_yaml::Value::Sequence(s)) => s.clone(),
-            _ => Vec::new(),
-        },
+    // Straight from the text when the top level reads: no tree of the whole document is built,
+    // so memory stays a small multiple of the text however many steps there are.
+    let direct =
+        serde_path_to_error::deserialize::<_, RawPlan>(serde_yaml::Deserializer::from_str(text));
+    if let Ok(mut raw) = direct {
+        let mut ctx = Document {
+            file,
+            text,
+            errors: Vec::new(),
+        };
+        let raw_steps: Vec<Option<RawStep>> = std::mem::take(&mut raw.steps)
+            .into_iter()
+            .enumerate()
+            .map(|(i, slot)| match slot {
+                StepSlot::Read(step) => Some(*step),
+                StepSlot::Mistake { path, message } => {
+                    ctx.structure_error(&format!("steps[{i}]"), &path, &message);
+                    None
+                }
+            })
+            .collect();
+        return validated(ctx, raw, raw_steps);
+    }
+    // The top level has a mistake: read it as a tree, to report every mistake with its place.
+    let (mut document, mut ctx) = Document::parse(file, text)?;
+    // Steps are taken out and read one by one (each dropped once read), so that a plan of many
+    // steps is held once, not copied; and read even when the top level failed, so that all
+    // their mistakes show.
+    let step_values = match document.get_mut("steps") {
+        Some(serde_yaml::Value::Sequence(s)) => std::mem::take(s),
+        _ => Vec::new(),
     };
+    let raw: Option<RawPlan> = ctx.structure("", document);
     let raw_steps: Vec<Option<RawStep>> = step_values
         .into_iter()
         .enumerate()
         .map(|(i, v)| ctx.structure(&format!("steps[{i}]"), v))
         .collect();
-    let raw_link: Option<RawLink> = raw
-        .as_ref()
-        .and_then(|r| ctx.structure("link", r.link.clone()));
-    if !ctx.errors.is_empty() {
-        return Err(sorted(ctx.errors));
+    match raw {
+        Some(raw) => validated(ctx, raw, raw_steps),
+        None => Err(ctx.into_errors()),
     }
-    let (Some(raw), Some(raw_link)) = (raw, raw_link) else {
-        return Err(sorted(ctx.errors));
+}
+
+/// The plan's meaning, once its top level and steps are read.
+fn validated(
+    mut ctx: Document,
+    raw: RawPlan,
+    raw_steps: Vec<Option<RawStep>>,
+) -> Result<Plan, PlanErrors> {
+    let raw_link: Option<RawLink> = ctx.structure("link", raw.link.clone());
+    if !ctx.errors.is_empty() {
+        return Err(ctx.into_errors());
+    }
+    let Some(raw_link) = raw_link else {
+        return Err(ctx.into_errors());
     };
     let raw_steps: Vec<RawStep> = raw_steps.into_iter().flatten().collect();
     let plan = meaning(&mut ctx, raw, raw_link, raw_steps);
     match plan {
         Some(p) if ctx.errors.is_empty() => Ok(p),
-        _ => Err(sorted(ctx.errors)),
+        _ => Err(ctx.into_errors()),
     }
 }
 
@@ -281,11 +414,6 @@ fn strip_location(message: &str) -> String {
         Some(i) => message[..i].to_string(),
         None => message.to_string(),
     }
-}
-
-fn sorted(mut errors: Vec<PlanError>) -> PlanErrors {
-    errors.sort_by_key(|e| e.position.map(|p| (p.line, p.column)).unwrap_or((0, 0)));
-    PlanErrors(errors)
 }
 
 /// The defaults a step falls back on.
@@ -904,7 +1032,11 @@ fn step(
         );
     }
     let sequential = sequential_raw.as_ref().and_then(|r| {
-        let p = format!("{path}.samples_until_decided");
+        let p = if raw.samples_until_decided.is_some() {
+            format!("{path}.samples_until_decided")
+        } else {
+            "defaults.samples_until_decided".to_string()
+        };
         let min = ctx.count(&format!("{p}.min"), &r.min);
         let max = ctx.count(&format!("{p}.max"), &r.max);
         match (min, max) {
@@ -941,9 +1073,15 @@ fn step(
         })
         .collect();
     let mut checks: Vec<Check> = checks.into_iter().collect::<Option<_>>()?;
+    // A rule inherited from the defaults is checked where it is written.
+    let settle_path = if raw.settle_until.is_some() {
+        format!("{path}.settle_until")
+    } else {
+        "defaults.settle_until".to_string()
+    };
     let settle_until = match &settle_raw {
         None => None,
-        Some(r) => settle_rule(ctx, &format!("{path}.settle_until"), r, &checks),
+        Some(r) => settle_rule(ctx, &settle_path, r, &checks),
     };
     let settle_s = match (&settle_until, settle_s) {
         (Some(rule), _) => Some(rule.max_s),
