@@ -386,10 +386,10 @@ fn an_archive_without_reading_durations_is_brought_up_to_date() {
 }
 
 /// An archive that stops taking readings mid-run (here a trigger stands in for a full disk):
-/// the operator is told at once, the run goes on, every record is still written as a file, and
-/// the run ends with exit 3 naming the archive's error.
+/// the operator is told at once, no further load is applied, every record is still written as
+/// a file, none accepted, and the run ends with exit 3 naming the archive's error.
 #[test]
-fn an_archive_that_fails_mid_run_is_said_at_once_and_loses_no_record() {
+fn an_archive_that_fails_mid_run_stops_the_loads_and_loses_no_record() {
     let dir = temp_dir("full");
     let archive = dir.join("a.sqlite");
     drop(meterproof::archive::Archive::open(&archive).unwrap());
@@ -411,31 +411,38 @@ fn an_archive_that_fails_mid_run_is_said_at_once_and_loses_no_record() {
         .unwrap();
     let stderr = String::from_utf8_lossy(&o.stderr);
     assert_eq!(o.status.code(), Some(3), "{stderr}");
-    // Forty readings are the first step and a half: the warning comes before the last step.
-    let warned = stderr
-        .find("ARCHIVE: writing a reading: database or disk is full (simulated)")
-        .unwrap_or_else(|| panic!("{stderr}"));
-    assert!(warned < stderr.find("[5/5]").unwrap(), "{stderr}");
+    // Forty readings are the first step and a half: said at once, and no further load is
+    // applied.
+    assert!(
+        stderr.contains("ARCHIVE: writing a reading: database or disk is full (simulated)"),
+        "{stderr}"
+    );
+    assert!(
+        !stderr.contains("[3/5]"),
+        "no load after the failure: {stderr}"
+    );
     assert!(
         stderr.contains("the archive did not take every reading"),
         "{stderr}"
     );
-    // The verdicts are still summed up for the operator.
+    // The verdicts are still summed up for the operator, and none is an acceptance.
     let stdout = String::from_utf8_lossy(&o.stdout);
     assert!(
-        stdout.contains("3 accepted, 1 rejected, 0 incomplete"),
+        stdout.contains("0 accepted, 0 rejected, 4 incomplete"),
         "{stdout}"
     );
-    // Every unit's record is there as a file, whole.
+    // Every unit's record is there as a file, with every reading taken.
     let records = common::records_in(&out);
     assert_eq!(records.len(), 4);
     for r in &records {
-        assert_ne!(r.verdict.status, UnitStatus::Incomplete, "{:?}", r.verdict);
-        assert!(
-            r.steps
-                .iter()
-                .all(|s| s.checks.iter().all(|c| !c.samples.is_empty()))
-        );
+        assert_eq!(r.verdict.status, UnitStatus::Incomplete, "{:?}", r.verdict);
+        assert!(r.steps[0].checks.iter().all(|c| !c.samples.is_empty()));
+        assert!(r.steps[2..].iter().all(|s| {
+            s.reason
+                .as_deref()
+                .unwrap()
+                .contains("the archive could not keep")
+        }));
     }
     std::fs::remove_dir_all(&dir).unwrap();
 }

@@ -29,6 +29,9 @@ pub(super) struct ResumeArgs {
     /// As for `run`.
     #[arg(long, value_name = "REASON")]
     allow_overdue_reference: Option<String>,
+    /// As for `run`.
+    #[arg(long, value_name = "DIR")]
+    fallback: Option<PathBuf>,
 }
 
 impl BenchOptions for ResumeArgs {
@@ -111,6 +114,7 @@ pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
     let run_dir = args.out.join(&run.run_id);
     std::fs::create_dir_all(&run_dir)
         .map_err(|e| CliError::Run(format!("cannot create {}: {e}", run_dir.display())))?;
+    let fallback = super::fallback_dir(args.fallback.as_deref())?;
     let recorder = RunRecorder::new(&archive, &run.run_id);
     let mut reporter = TerminalReporter::new(args.quiet);
     let records = exec::run_with(
@@ -132,21 +136,37 @@ pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
     let anchor = match archived {
         Err(e) => {
             // The archive failed: the engine's records, as files, are what is left of the run.
-            let written = write_outputs(&run_dir, &records, &templates, &super::Anchors::new())?;
+            let (written, _) = super::write_or_keep(
+                &run_dir,
+                &records,
+                &templates,
+                &super::Anchors::new(),
+                &fallback,
+                &run.run_id,
+            );
             print_summary(&records, &written);
             return Err(e);
         }
         Ok(a) => a,
     };
-    super::write_anchor(&run_dir, &anchor)?;
     // Units that had finished before the interruption keep the record the archive has.
     let mut records = archive.unit_records(&run.run_id).map_err(db)?;
     records.sort_by_key(|r| r.position);
     let anchors = super::Anchors::from([(run.run_id.clone(), anchor)]);
-    let written = write_outputs(&run_dir, &records, &templates, &anchors)?;
+    let (written, not_written) = super::write_or_keep(
+        &run_dir,
+        &records,
+        &templates,
+        &anchors,
+        &fallback,
+        &run.run_id,
+    );
     print_summary(&records, &written);
     if let Some(h) = hint {
         println!("{h}");
+    }
+    if let Some(e) = not_written {
+        return Err(e);
     }
     Ok(exit_status(&records))
 }
@@ -607,7 +627,7 @@ pub(super) fn report(args: &ReportArgs) -> Result<i32, CliError> {
     std::fs::create_dir_all(&args.out)
         .map_err(|e| CliError::Run(format!("cannot create {}: {e}", args.out.display())))?;
     let anchors = anchors_of(&archive, &records)?;
-    let written = write_outputs(&args.out, &records, &templates, &anchors)?;
+    let written = Some(write_outputs(&args.out, &records, &templates, &anchors)?);
     if let Some(path) = &args.junit {
         write_file(path, crate::report::run_junit(&records))?;
     }

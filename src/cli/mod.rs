@@ -151,6 +151,11 @@ struct RunArgs {
     /// Print the unit records as JSON on standard output instead of the summary table.
     #[arg(long)]
     json: bool,
+    /// Where the records go when the output folder cannot take them (a full disk); checked
+    /// writable before the first load. Default: meterproof-fallback in the system's temporary
+    /// folder.
+    #[arg(long, value_name = "DIR")]
+    fallback: Option<PathBuf>,
 }
 
 /// A failure of a command, rendered once here.
@@ -506,6 +511,7 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
             run_dir.display()
         ))
     })?;
+    let fallback = fallback_dir(args.fallback.as_deref())?;
     let archive_path = args
         .archive
         .clone()
@@ -540,10 +546,16 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
     let archived = finish_run(&archive, &ctx.run_id, &records);
     let mut anchors = Anchors::new();
     if let Ok(anchor) = &archived {
-        write_anchor(&run_dir, anchor)?;
         anchors.insert(ctx.run_id.clone(), anchor.clone());
     }
-    let written = write_outputs(&run_dir, &records, &templates, &anchors)?;
+    let (written, not_written) = write_or_keep(
+        &run_dir,
+        &records,
+        &templates,
+        &anchors,
+        &fallback,
+        &ctx.run_id,
+    );
     if let Some(path) = &args.junit {
         write_file(path, report::run_junit(&records))?;
     }
@@ -556,12 +568,14 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
         if let Some(h) = &resume_hint {
             eprintln!("{h}");
         }
-        archived?;
-        return Ok(exit_status(&records));
+        return match (archived, not_written) {
+            (_, Some(e)) | (Err(e), None) => Err(e),
+            (Ok(_), None) => Ok(exit_status(&records)),
+        };
     }
     print_summary(&records, &written);
     println!(
-        "bench time {} ({}), wall time {:.2} s; records and reports in {}",
+        "bench time {} ({}), wall time {:.2} s; records and reports {}",
         report::duration_text(records.first().map_or(0.0, |r| r.bench_time_s)),
         if bench.clock.is_virtual() {
             "simulated".to_string()
@@ -571,13 +585,101 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
             "real clock".to_string()
         },
         wall.elapsed().as_secs_f64(),
-        run_dir.display()
+        if written.is_some() {
+            format!("in {}", run_dir.display())
+        } else {
+            "NOT written (see above for where the records are)".to_string()
+        }
     );
     if let Some(h) = &resume_hint {
         println!("{h}");
     }
-    archived?;
-    Ok(exit_status(&records))
+    // Where the records are is the last word when they are not where they should be.
+    match (archived, not_written) {
+        (Err(a), Some(e)) => {
+            eprintln!("meterproof: {a}");
+            Err(e)
+        }
+        (Err(a), None) => Err(a),
+        (Ok(_), Some(e)) => Err(e),
+        (Ok(_), None) => Ok(exit_status(&records)),
+    }
+}
+
+/// The fallback folder, made and proven writable now (before any load is applied).
+fn fallback_dir(given: Option<&Path>) -> Result<PathBuf, CliError> {
+    let dir = given
+        .map(Path::to_path_buf)
+        .unwrap_or_else(|| std::env::temp_dir().join("meterproof-fallback"));
+    let probe = dir.join(format!(".probe-{}", std::process::id()));
+    std::fs::create_dir_all(&dir)
+        .and_then(|_| std::fs::write(&probe, b"probe"))
+        .and_then(|_| std::fs::remove_file(&probe))
+        .map_err(|e| {
+            CliError::Run(format!(
+                "the fallback folder {} is not writable ({e}): give --fallback a folder that is",
+                dir.display()
+            ))
+        })?;
+    Ok(dir)
+}
+
+/// Writes the run's anchor, records and reports; when the output folder cannot take them (a
+/// full disk), keeps the records in the fallback folder, or, failing that too, prints them as
+/// JSON on standard output: what was measured is never lost. Returns what was written, and
+/// the error to end the run with when the outputs could not be written.
+fn write_or_keep(
+    run_dir: &Path,
+    records: &[UnitRecord],
+    templates: &Templates,
+    anchors: &Anchors,
+    fallback: &Path,
+    run_id: &str,
+) -> (Option<Vec<Written>>, Option<CliError>) {
+    let written = anchors
+        .get(run_id)
+        .map_or(Ok(()), |a| write_anchor(run_dir, a))
+        .and_then(|_| write_outputs(run_dir, records, templates, anchors));
+    let e = match written {
+        Ok(w) => return (Some(w), None),
+        Err(e) => e,
+    };
+    eprintln!("OUTPUT: {e}");
+    let dir = fallback.join(run_id);
+    let kept = std::fs::create_dir_all(&dir)
+        .map_err(|e| e.to_string())
+        .and_then(|_| {
+            for r in records {
+                let json = record::to_json(r).map_err(|e| e.to_string())?;
+                let name = format!("{}-p{}.json", record::safe_file_stem(&r.serial), r.position);
+                if !dir.join(&name).exists() {
+                    record::write_new_file(&dir, &name, &json).map_err(|e| e.to_string())?;
+                }
+            }
+            Ok(())
+        });
+    let whereto = match kept {
+        Ok(()) => format!("the unit records are kept in {}", dir.display()),
+        Err(why) => {
+            eprintln!(
+                "FALLBACK: {} cannot take them either ({why})",
+                dir.display()
+            );
+            println!(
+                "{}",
+                serde_json::to_string(records).expect("records serialise")
+            );
+            "the unit records are printed above as JSON: save them".to_string()
+        }
+    };
+    eprintln!("OUTPUT: {whereto}");
+    (
+        None,
+        Some(CliError::Run(format!(
+            "the records and reports could not be written to {} ({e}); {whereto}",
+            run_dir.display()
+        ))),
+    )
 }
 
 /// For a run stopped early: that the output is off, and the command that continues it.
@@ -1079,17 +1181,21 @@ fn write_outputs(
     Ok(written)
 }
 
-fn print_summary(records: &[UnitRecord], written: &[Written]) {
+fn print_summary(records: &[UnitRecord], written: &Option<Vec<Written>>) {
     println!();
     println!("{:<4} {:<20} {:<14} report", "pos", "serial", "verdict");
-    for (r, w) in records.iter().zip(written) {
+    for (i, r) in records.iter().enumerate() {
+        let report = match written.as_ref().and_then(|w| w.get(i)) {
+            Some(w) => terminal_safe(&w.html.display().to_string()),
+            None => "(not written)".to_string(),
+        };
         println!(
             "{:<4} {:<20} {} {:<12} {}",
             r.position,
             terminal_safe(&r.serial),
             r.verdict.status.symbol(),
             r.verdict.status.word(),
-            terminal_safe(&w.html.display().to_string())
+            report
         );
         for reason in &r.verdict.reasons {
             println!("       {}", terminal_safe(reason));
@@ -1220,7 +1326,7 @@ impl Reporter for TerminalReporter {
             Event::RecordingFailed { what } => {
                 self.stop_bar();
                 eprintln!(
-                    "ARCHIVE: {what}. The run goes on: its records will be written as files at the end; the archive is not complete for this run."
+                    "ARCHIVE: {what}. Nothing more can be kept: no further load is applied, the output is switched off, and what was taken is written as files (or to the fallback folder)."
                 );
             }
             Event::StepSetAside { step, reason } => {

@@ -68,8 +68,8 @@ pub enum Event<'a> {
         results: Vec<(usize, StepStatus, usize)>,
     },
     /// The recorder could not keep something (the archive's disk is full, say): said once, as
-    /// soon as it is seen after a step, so the operator knows before the run ends. The run goes
-    /// on; the records are still returned whole.
+    /// soon as it is seen after a step. No further load is applied (what would be measured
+    /// could not be kept); the records taken so far are returned whole, for the files.
     RecordingFailed {
         what: &'a str,
     },
@@ -420,6 +420,7 @@ pub fn run_with(
         if !recording_failure_said && let Some(what) = recorder.failure() {
             recording_failure_said = true;
             reporter.event(&Event::RecordingFailed { what: &what });
+            source_failure = Some(format!("{NOT_KEPT}: {what}"));
         }
     }
     // Leave the bench safe whatever happened; a failure to switch off is worth a line too.
@@ -471,7 +472,24 @@ pub fn run_with(
         r.bench_time_s = bench_time_s;
         records.push(r);
     }
+    // A unit whose record the archive could not keep is never shown accepted.
+    let keep_failed = |records: &mut Vec<UnitRecord>, what: &str| {
+        for r in records.iter_mut() {
+            if r.verdict.status == UnitStatus::Accepted {
+                r.verdict.status = UnitStatus::Incomplete;
+                r.verdict
+                    .reasons
+                    .push(format!("{NOT_KEPT}: {what}; test the unit again"));
+            }
+        }
+    };
+    if let Some(what) = recorder.failure() {
+        keep_failed(&mut records, &what);
+    }
     recorder.units_finished(&records);
+    if let Some(what) = recorder.failure() {
+        keep_failed(&mut records, &what);
+    }
     reporter.event(&Event::RunFinished {
         records: &records,
         bench_time_s,
@@ -520,6 +538,9 @@ pub fn stopped_early(records: &[UnitRecord]) -> Option<String> {
         .find(|r| r.starts_with(STOPPED) || r.starts_with("aborted"))
         .map(str::to_string)
 }
+
+/// The reason given when the archive cannot keep what is measured.
+pub const NOT_KEPT: &str = "the archive could not keep the records";
 
 /// The reason given to steps a stop signal cut short or kept from running.
 pub const STOPPED: &str = "interrupted (stop signal)";
