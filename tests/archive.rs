@@ -150,7 +150,7 @@ fn two_runs_writing_one_archive_at_once_lose_nothing() {
 }
 
 #[test]
-fn a_read_only_archive_is_refused_before_any_step() {
+fn a_file_that_is_not_an_archive_is_refused_before_any_step() {
     let dir = temp_dir("readonly");
     let archive = dir.join("ro.sqlite");
     std::fs::write(&archive, b"this is not a database").unwrap();

@@ -447,3 +447,117 @@ fn a_file_that_is_not_an_archive_is_named_as_such() {
     assert!(!dir.join("empty.sqlite-wal").exists());
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// Forwards everything to the archive but the unit records at the end: a process killed
+/// before its run's end.
+struct KilledBeforeTheEnd<'a>(RunRecorder<'a>);
+
+impl exec::Recorder for KilledBeforeTheEnd<'_> {
+    fn reading(&self, key: &exec::ReadingKey, sample: meterproof::record::Sample) {
+        self.0.reading(key, sample)
+    }
+    fn step_finished(&self, i: usize, records: &[(usize, &meterproof::record::StepRecord)]) {
+        self.0.step_finished(i, records)
+    }
+    fn unit_started(&self, record: &meterproof::record::UnitRecord) {
+        self.0.unit_started(record)
+    }
+    fn units_finished(&self, _: &[meterproof::record::UnitRecord]) {}
+}
+
+/// A unit swapped for another while its run was interrupted: the unit that left keeps its own
+/// record of the steps it did, the unit that came is tested from the first step.
+#[test]
+fn a_unit_swapped_during_an_interruption_keeps_its_own_record() {
+    use meterproof::record::{StepStatus, UnitStatus};
+    let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
+    for killed in [false, true] {
+        let dir = temp_dir(&format!("swap-{killed}"));
+        let path = dir.join("archive.sqlite");
+        let archive = Archive::open(&path).unwrap();
+        archive
+            .begin_run(&plan, &run_row(&plan, "S", "LOT-S"))
+            .unwrap();
+        let mut config = SimConfig::new(5, 3);
+        config.serials = Some(vec!["OLD-1".into(), "OLD-2".into(), "OLD-3".into()]);
+        let mut bench = SimBench::new(&config).into_bench();
+        let flag = bench.interrupt.clone();
+        let mut stop = StopAfter {
+            after: 2,
+            seen: 0,
+            flag,
+        };
+        let rec = RunRecorder::new(&archive, "S");
+        if killed {
+            let rec = KilledBeforeTheEnd(rec);
+            exec::run_with(
+                &plan,
+                &mut bench,
+                &context("S", "LOT-S"),
+                &mut stop,
+                &rec,
+                None,
+            );
+        } else {
+            let records = exec::run_with(
+                &plan,
+                &mut bench,
+                &context("S", "LOT-S"),
+                &mut stop,
+                &rec,
+                None,
+            );
+            archive
+                .finish_run("S", &records[0].finished_at, RunState::Interrupted)
+                .unwrap();
+        }
+        // Position 2 now holds another unit.
+        config.serials = Some(vec!["OLD-1".into(), "NEW-2".into(), "OLD-3".into()]);
+        let state = archive.resume_state("S").unwrap();
+        let mut bench = SimBench::new(&config).into_bench();
+        let rec = RunRecorder::new(&archive, "S");
+        let records = exec::run_with(
+            &plan,
+            &mut bench,
+            &context("S", "LOT-S"),
+            &mut exec::Silent,
+            &rec,
+            Some(&state),
+        );
+        archive
+            .finish_run("S", &records[0].finished_at, RunState::Finished)
+            .unwrap();
+        // The unit that came: every step run for it, none kept from the one before.
+        let newest = archive.unit_records("S").unwrap();
+        let new = newest.iter().find(|r| r.position == 2).unwrap();
+        assert_eq!(new.serial, "NEW-2");
+        assert_eq!(new.steps.len(), plan.steps.len());
+        assert!(
+            new.steps.iter().all(|s| s.status == StepStatus::Done),
+            "killed: {killed}"
+        );
+        assert!(
+            new.notes.iter().any(|n| n.contains("replaced OLD-2")),
+            "{:?}",
+            new.notes
+        );
+        // The unit that left: its own record, with the two steps it did, never accepted.
+        let old = archive.serial_records("OLD-2").unwrap();
+        assert_eq!(old.len(), 1, "killed: {killed}");
+        assert_eq!(old[0].verdict.status, UnitStatus::Incomplete);
+        let done = old[0]
+            .steps
+            .iter()
+            .filter(|s| s.status == StepStatus::Done)
+            .count();
+        assert_eq!(done, 2, "killed: {killed}");
+        assert!(
+            old[0].steps[0].checks.iter().all(|c| !c.samples.is_empty()),
+            "its readings are in its record"
+        );
+        let v = archive.verify(None).unwrap();
+        assert!(v.failures.is_empty(), "{:?}", v.failures);
+        drop(archive);
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
+}

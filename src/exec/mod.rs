@@ -467,10 +467,18 @@ pub fn run_with(
         })
         .collect();
     let mut records = records;
-    for mut r in replaced {
-        r.finished_at = finished_at.clone();
-        r.bench_time_s = bench_time_s;
-        records.push(r);
+    let replaced: Vec<UnitRecord> = replaced
+        .into_iter()
+        .map(|mut r| {
+            r.finished_at = finished_at.clone();
+            r.bench_time_s = bench_time_s;
+            r
+        })
+        .collect();
+    // The units that left come before those that took their places, in the archive too (the
+    // newest record of a position is the one that counts); in what is returned, after them.
+    if !replaced.is_empty() {
+        recorder.units_finished(&replaced);
     }
     // A unit whose record the archive could not keep is never shown accepted.
     let keep_failed = |records: &mut Vec<UnitRecord>, what: &str| {
@@ -490,6 +498,7 @@ pub fn run_with(
     if let Some(what) = recorder.failure() {
         keep_failed(&mut records, &what);
     }
+    records.extend(replaced);
     reporter.event(&Event::RunFinished {
         records: &records,
         bench_time_s,
