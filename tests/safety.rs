@@ -348,6 +348,16 @@ fn check_refuses_stations_that_cannot_work() {
             "    port: /dev/ttyUSB8",
             "reference.read.port: port /dev/ttyUSB8 is already used by source.port",
         ),
+        (
+            "  accuracy: 0.05 % of reading\n",
+            "  accuracy: 0.05 % of reading\n  ranges: { current: -20 A }\n",
+            "reference.ranges.current: a range must be greater than zero",
+        ),
+        (
+            "station: S\n",
+            "station: S\nsimulation: { time_scale: 1e12 }\n",
+            "simulation.time_scale: expected a number greater than zero and at most 1000",
+        ),
     ];
     let good = dir.join("good.yaml");
     std::fs::write(&good, STATION).unwrap();

@@ -461,7 +461,11 @@ fn reference(doc: &mut Document, raw: &RawReference) -> Option<ReferenceSpec> {
         match Quantity::from_name(name) {
             Some(q) => {
                 if let Some(v) = doc.value(&path, text, q.dimension()) {
-                    ranges.insert(name.clone(), v);
+                    if v > 0.0 && v.is_finite() {
+                        ranges.insert(name.clone(), v);
+                    } else {
+                        doc.error(&path, "a range must be greater than zero");
+                    }
                 }
             }
             None => doc.error(&path, format!("unknown quantity \"{name}\"")),
