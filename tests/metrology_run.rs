@@ -173,3 +173,72 @@ fn a_registers_budget_carries_the_timing_of_its_readings() {
         timing.u
     );
 }
+
+/// Reads ±0.6 W in turn at no load (a meter whose power swings around zero), else passes
+/// through.
+struct Swinging {
+    inner: Box<dyn meterproof::link::DutLink>,
+    reads: usize,
+}
+
+impl meterproof::link::DutLink for Swinging {
+    fn identify(&mut self) -> Result<meterproof::link::Identity, meterproof::link::LinkError> {
+        self.inner.identify()
+    }
+    fn read(
+        &mut self,
+        q: meterproof::plan::Quantity,
+        ch: &str,
+    ) -> Result<f64, meterproof::link::LinkError> {
+        let v = self.inner.read(q, ch)?;
+        if q == meterproof::plan::Quantity::ActivePower && v.abs() < 1.0 {
+            self.reads += 1;
+            return Ok(if self.reads.is_multiple_of(2) { 0.6 } else { -0.6 });
+        }
+        Ok(v)
+    }
+    fn describe(&self) -> String {
+        "swinging".into()
+    }
+}
+
+/// An upper bound holds for every reading: readings of ±0.6 W have a mean near zero and still
+/// break a 0.5 W no-load bound (the bound as the plan states it; common practice, no published
+/// source for applying it reading by reading).
+#[test]
+fn a_no_load_bound_holds_for_every_reading_not_the_mean() {
+    let plan = Plan::from_text("demo.yaml", &demo_text()).unwrap();
+    let mut config = SimConfig::new(1, 1);
+    config.plant_defect = false;
+    let mut bench = SimBench::new(&config).into_bench();
+    let inner = std::mem::replace(
+        &mut bench.positions[0].link,
+        Box::new(meterproof::link::Unreachable::new(
+            "x",
+            meterproof::link::LinkError::Disconnected("x".into()),
+        )),
+    );
+    bench.positions[0].link = Box::new(Swinging { inner, reads: 0 });
+    let r = exec::run(&plan, &mut bench, &ctx(), &mut Silent).remove(0);
+    let no_load = &r.steps[0];
+    let power = no_load
+        .checks
+        .iter()
+        .find(|c| c.quantity == meterproof::plan::Quantity::ActivePower)
+        .unwrap();
+    assert!(
+        power.measured.unwrap().abs() < 0.5,
+        "the mean alone would pass"
+    );
+    assert_eq!(power.verdict, CheckVerdict::Fail);
+    assert!(
+        power
+            .note
+            .as_deref()
+            .unwrap()
+            .contains("the largest in magnitude is 600 mW"),
+        "{:?}",
+        power.note
+    );
+    assert_eq!(r.verdict.status, UnitStatus::Rejected);
+}

@@ -75,9 +75,22 @@ pub(super) fn evaluate_check(input: CheckInputs, record: &mut CheckRecord, judge
         }
     };
     record.reference = reference_value;
+    // An upper bound on a reading (a no-load step) holds for every reading, not for the mean:
+    // readings swinging ±0.6 W around zero have a mean near zero and still break a 0.5 W bound.
+    let compared = match (&check.tolerance, check.quantity.is_register()) {
+        (crate::plan::Tolerance::AtMost { .. }, false) => {
+            let worst = values.iter().fold(0.0f64, |w, v| w.max(v.abs()));
+            record.note = Some(format!(
+                "the bound holds for every reading: the largest in magnitude is {}",
+                crate::plan::units::Display(worst, check.quantity.dimension())
+            ));
+            worst
+        }
+        _ => measured,
+    };
     let evaluation = match evaluate(
         &check.tolerance,
-        measured,
+        compared,
         reference_value,
         check.quantity.unit(),
     ) {
@@ -104,8 +117,12 @@ pub(super) fn evaluate_check(input: CheckInputs, record: &mut CheckRecord, judge
         CheckVerdict::Fail
     };
     if decision.low_tur() {
+        let earlier = record
+            .note
+            .take()
+            .map_or(String::new(), |n| format!("{n}; "));
         record.note = Some(format!(
-            "test uncertainty ratio {:.1}:1 is below {}:1",
+            "{earlier}test uncertainty ratio {:.1}:1 is below {}:1",
             decision.tur.unwrap_or(0.0),
             TUR_WARNING_BELOW
         ));
@@ -307,6 +324,14 @@ pub fn failure_text(c: &CheckRecord) -> String {
         DecisionRule::Simple => String::new(),
         DecisionRule::Guarded { multiple } => format!(", guard band {multiple} U"),
     };
+    if d.no_acceptance_zone {
+        return format!(
+            "no acceptance zone: the guard band{} exceeds the tolerance {bound}{}, so no result can be accepted; {what} {value}",
+            d.expanded_uncertainty
+                .map_or(String::new(), |u| format!(" (U = {})", with_unit(u))),
+            with_unit(d.tolerance_limit)
+        );
+    }
     format!(
         "{what} {value}{u} is outside the acceptance limit {bound}{} (tolerance {bound}{}{guard})",
         with_unit(d.acceptance_limit),

@@ -28,6 +28,10 @@ pub struct Decision {
     pub accepted: bool,
     /// The measured value lies within U of the tolerance limit.
     pub marginal: bool,
+    /// The guard band exceeds the tolerance limit: the acceptance limit is below zero and no
+    /// result can be accepted (ILAC-G8: the measurement is not fit for the decision).
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub no_acceptance_zone: bool,
 }
 
 impl Decision {
@@ -49,9 +53,11 @@ pub fn decide(e: &Evaluation, u: Option<f64>, rule: DecisionRule) -> Decision {
         Sense::AtMost | Sense::AtLeast => e.error,
     };
     let (acceptance_limit, accepted) = match e.sense {
+        // Not clamped at zero: with U beyond the tolerance the limit is negative, and not even
+        // an error of exactly zero is accepted.
         Sense::PlusMinus | Sense::AtMost => {
-            let al = (tl - guard_band).max(0.0);
-            (al, magnitude <= al)
+            let al = tl - guard_band;
+            (al, al >= 0.0 && magnitude <= al)
         }
         Sense::AtLeast => {
             let al = tl + guard_band;
@@ -68,6 +74,8 @@ pub fn decide(e: &Evaluation, u: Option<f64>, rule: DecisionRule) -> Decision {
         tur: u.filter(|u| *u > 0.0).map(|u| tl / u),
         accepted,
         marginal,
+        no_acceptance_zone: matches!(e.sense, Sense::PlusMinus | Sense::AtMost)
+            && tl - guard_band < 0.0,
     }
 }
 
@@ -102,6 +110,22 @@ mod tests {
             sense: Sense::PlusMinus,
             within: e.abs() <= limit,
         }
+    }
+
+    /// ILAC-G8:09/2019: with the guard band w = U larger than the tolerance, the acceptance
+    /// limit TL − w is negative and no result is accepted, not even an error of exactly zero.
+    #[test]
+    fn no_result_is_accepted_when_u_exceeds_the_tolerance() {
+        let d = decide(
+            &error(0.0, 1.0),
+            Some(1.2),
+            DecisionRule::Guarded { multiple: 1.0 },
+        );
+        assert!(!d.accepted && d.no_acceptance_zone);
+        assert!((d.acceptance_limit + 0.2).abs() < 1e-12);
+        // Simple acceptance still accepts within the tolerance.
+        let s = decide(&error(0.0, 1.0), Some(1.2), DecisionRule::Simple);
+        assert!(s.accepted && !s.no_acceptance_zone);
     }
 
     /// ILAC-G8:09/2019 guarded acceptance with w = U: tolerance ±1.0 %, U = 0.3 % gives the

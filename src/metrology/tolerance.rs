@@ -100,12 +100,13 @@ pub fn evaluate(
             sense: Sense::AtMost,
             within: measured.abs() <= bound,
         }),
+        // Signed: a register that must advance fails when it runs backwards, however far.
         Tolerance::AtLeast { bound } => Ok(Evaluation {
-            error: measured.abs(),
+            error: measured,
             error_unit: unit.into(),
             limit: bound,
             sense: Sense::AtLeast,
-            within: measured.abs() >= bound,
+            within: measured >= bound,
         }),
         Tolerance::Class { percent, .. } => relative(&|_| percent),
     }
@@ -186,5 +187,16 @@ mod tests {
         let creep = evaluate(&Tolerance::AtMost { bound: 0.5 }, -0.6, None, "W").unwrap();
         assert!(!creep.within);
         assert!((creep.error - 0.6).abs() < 1e-12);
+    }
+
+    /// A register that must advance by at least a bound (a starting test) fails when it runs
+    /// backwards by more than the bound: the comparison is signed (common practice, no
+    /// published source: a starting test asks the register to start registering).
+    #[test]
+    fn a_lower_bound_is_signed() {
+        let back = evaluate(&Tolerance::AtLeast { bound: 0.02 }, -0.05, None, "Wh").unwrap();
+        assert!(!back.within && back.error < 0.0);
+        let forward = evaluate(&Tolerance::AtLeast { bound: 0.02 }, 0.05, None, "Wh").unwrap();
+        assert!(forward.within);
     }
 }
