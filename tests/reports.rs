@@ -4,6 +4,7 @@
 mod common;
 use common::{bin, records_in, temp_dir};
 use meterproof::report::Templates;
+use std::path::Path;
 
 fn count_xml(xml: &str, names: &[&str]) -> Vec<usize> {
     let mut reader = quick_xml::Reader::from_str(xml);
@@ -43,6 +44,13 @@ fn the_unit_report_has_a_well_formed_plot_and_the_run_a_junit_file() {
         .unwrap();
     let html =
         std::fs::read_to_string(run_dir.join(format!("{}-p2.html", records[1].serial))).unwrap();
+    // Each check shows its own coverage factor and its specific risk.
+    assert!(html.contains("<th>U (coverage factor k)</th>"), "{html}");
+    assert!(html.contains("(k = 2."), "a k for every U");
+    assert!(html.contains("<th>Risk beyond the tolerance</th>"));
+    // The record's hash and the run's anchor tie the paper to `verify`.
+    assert!(html.contains(&meterproof::record::record_hash(&records[1])));
+    assert!(html.contains("meterproof verify --anchor"));
     let start = html.find("<svg").expect("an inline plot");
     let end = html.find("</svg>").unwrap() + "</svg>".len();
     // The plot parses as XML, with one error bar per percentage check and the limit envelopes.
@@ -299,4 +307,93 @@ fn reports_are_well_formed_and_can_be_rendered_again_from_the_archive() {
         std::fs::read(again.join(&name)).unwrap()
     );
     std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// Capability by the side a limit bounds: a lower bound (the starting test's register advance)
+/// gives CPL = (mean − bound) / 3s, positive when the lot lies above it; a limit with an
+/// absolute term varies by unit and is handled as a share of each unit's own limit. Checked
+/// against the handbook formulas on the lot's own figures (NIST/SEMATECH e-Handbook 6.1.6, from
+/// memory).
+#[test]
+fn lot_capability_follows_the_side_of_each_limit() {
+    use meterproof::report::summary::LotSummary;
+    let plan = meterproof::plan::Plan::load(Path::new("test-plans/type-tests.yaml")).unwrap();
+    let mut records = Vec::new();
+    for seed in 1..=3 {
+        let mut config = meterproof::bench::sim::SimConfig::new(seed, 4);
+        config.plant_defect = false;
+        let mut bench = meterproof::bench::sim::SimBench::new(&config).into_bench();
+        records.extend(meterproof::exec::run(
+            &plan,
+            &mut bench,
+            &common::ctx(),
+            &mut meterproof::exec::Silent,
+        ));
+    }
+    let s = LotSummary::of("lot", &records, &|_| String::new());
+    let lower = s
+        .checks
+        .iter()
+        .find(|c| c.sides == "lower")
+        .expect("the starting test's lower bound");
+    let advances: Vec<f64> = records
+        .iter()
+        .flat_map(|r| &r.steps)
+        .filter(|st| st.id == lower.step)
+        .flat_map(|st| &st.checks)
+        .filter_map(|c| c.evaluation.as_ref().map(|e| e.error))
+        .collect();
+    let n = advances.len() as f64;
+    let mean = advances.iter().sum::<f64>() / n;
+    let sd = (advances.iter().map(|a| (a - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
+    assert!(
+        mean > lower.tolerance_limit,
+        "the lot registers above the bound"
+    );
+    let expected = (mean - lower.tolerance_limit) / (3.0 * sd);
+    assert!(lower.cpk.unwrap() > 0.0);
+    assert!((lower.cpk.unwrap() - expected).abs() < 1e-9 * expected.abs());
+    assert_eq!(lower.cp, None, "no Cp for a one-sided limit");
+}
+
+#[test]
+fn a_limit_that_varies_by_unit_is_said_and_handled() {
+    use meterproof::report::summary::LotSummary;
+    let plan = meterproof::plan::Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
+    // Three runs: each has its own reference readings, so the limits differ between them.
+    let mut records = Vec::new();
+    for seed in 4..=6 {
+        let mut config = meterproof::bench::sim::SimConfig::new(seed, 4);
+        config.plant_defect = false;
+        let mut bench = meterproof::bench::sim::SimBench::new(&config).into_bench();
+        records.extend(meterproof::exec::run(
+            &plan,
+            &mut bench,
+            &common::ctx(),
+            &mut meterproof::exec::Silent,
+        ));
+    }
+    let s = LotSummary::of("lot", &records, &|_| String::new());
+    // low-0.1Ib current: ±(1 % + 5 mA), the absolute term a different share at each reading.
+    let varying = s
+        .checks
+        .iter()
+        .find(|c| c.step == "low-0.1Ib" && c.quantity == "current")
+        .unwrap();
+    assert!(varying.limit_varies);
+    let shares: Vec<f64> = records
+        .iter()
+        .flat_map(|r| &r.steps)
+        .filter(|st| st.id == "low-0.1Ib")
+        .flat_map(|st| &st.checks)
+        .filter(|c| c.quantity.name() == "current")
+        .filter_map(|c| c.evaluation.as_ref().map(|e| e.error / e.limit))
+        .collect();
+    let n = shares.len() as f64;
+    let mean = shares.iter().sum::<f64>() / n;
+    let sd = (shares.iter().map(|a| (a - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
+    // Cp = (USL − LSL) / 6σ and Cpk = min(USL − μ, μ − LSL) / 3σ against ±1 (NIST/SEMATECH
+    // e-Handbook 6.1.6, from memory).
+    assert!((varying.cp.unwrap() - 2.0 / (6.0 * sd)).abs() < 1e-9);
+    assert!((varying.cpk.unwrap() - (1.0 - mean.abs()) / (3.0 * sd)).abs() < 1e-9);
 }

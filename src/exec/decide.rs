@@ -110,7 +110,8 @@ pub(super) fn evaluate_check(input: CheckInputs, record: &mut CheckRecord, judge
         judge,
         span_s,
     );
-    let decision = decide(&evaluation, Some(budget.expanded), judge.rule);
+    let mut decision = decide(&evaluation, Some(budget.expanded), judge.rule);
+    decision.risk = crate::metrology::decision::specific_risk(&evaluation, budget.combined);
     record.verdict = if decision.accepted {
         CheckVerdict::Pass
     } else {

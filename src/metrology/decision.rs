@@ -32,6 +32,10 @@ pub struct Decision {
     /// result can be accepted (ILAC-G8: the measurement is not fit for the decision).
     #[serde(default, skip_serializing_if = "std::ops::Not::not")]
     pub no_acceptance_zone: bool,
+    /// The specific risk: the probability that the true error lies beyond the tolerance
+    /// limit, given the result and its standard uncertainty ([`specific_risk`]).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub risk: Option<f64>,
 }
 
 impl Decision {
@@ -76,7 +80,25 @@ pub fn decide(e: &Evaluation, u: Option<f64>, rule: DecisionRule) -> Decision {
         marginal,
         no_acceptance_zone: matches!(e.sense, Sense::PlusMinus | Sense::AtMost)
             && tl - guard_band < 0.0,
+        risk: None,
     }
+}
+
+/// The probability that the true error lies beyond the tolerance limit, for a true error
+/// distributed normally around the measured one with standard uncertainty `u` (JCGM 106:2012,
+/// the conformance probability's complement; ILAC-G8:09/2019): both tails for ± limits, one
+/// for a bound. `None` without an uncertainty.
+pub fn specific_risk(e: &Evaluation, u: f64) -> Option<f64> {
+    use statrs::distribution::{ContinuousCDF, Normal};
+    if !(u > 0.0 && u.is_finite()) {
+        return None;
+    }
+    let n = Normal::new(e.error, u).ok()?;
+    Some(match e.sense {
+        Sense::PlusMinus => n.sf(e.limit) + n.cdf(-e.limit),
+        Sense::AtMost => n.sf(e.limit),
+        Sense::AtLeast => n.cdf(e.limit),
+    })
 }
 
 /// Whether more samples could not change the decision: the error with its expanded uncertainty
@@ -110,6 +132,20 @@ mod tests {
             sense: Sense::PlusMinus,
             within: e.abs() <= limit,
         }
+    }
+
+    /// JCGM 106:2012's specific risk of a normal result: tolerance ±1.0 %, measured +0.8 %,
+    /// U = 0.3 % at k = 2 (u = 0.15 %) gives 1 − Φ(1.333) = 0.0912 from a normal table; at the
+    /// acceptance limit of guarded acceptance with w = U (ILAC-G8) it is 1 − Φ(2) = 0.02275.
+    #[test]
+    fn specific_risk_matches_the_published_formula() {
+        let r = specific_risk(&error(0.8, 1.0), 0.15).unwrap();
+        assert!((r - 0.0912).abs() < 5e-5, "{r}");
+        let at_al = specific_risk(&error(0.7, 1.0), 0.15).unwrap();
+        assert!((at_al - 0.02275).abs() < 5e-5, "{at_al}");
+        // Symmetric: −0.8 % is as risky as +0.8 %.
+        let neg = specific_risk(&error(-0.8, 1.0), 0.15).unwrap();
+        assert!((neg - r).abs() < 1e-12);
     }
 
     /// ILAC-G8:09/2019: with the guard band w = U larger than the tolerance, the acceptance

@@ -280,6 +280,8 @@ struct CheckView {
     error: String,
     limit: String,
     uncertainty: String,
+    /// The probability that the true error lies beyond the tolerance.
+    risk: String,
     acceptance_limit: String,
     tur: String,
     verdict_word: String,
@@ -355,11 +357,22 @@ impl CheckView {
             error: c.evaluation.as_ref().map_or("—".into(), error_text),
             limit: c.evaluation.as_ref().map_or("—".into(), limit_text),
             uncertainty: match (&c.evaluation, &c.decision) {
-                (Some(e), Some(d)) => d
-                    .expanded_uncertainty
-                    .map_or("—".into(), |u| magnitude_text(u, &e.error_unit)),
+                (Some(e), Some(d)) => {
+                    d.expanded_uncertainty
+                        .map_or("—".into(), |u| match &c.uncertainty {
+                            Some(b) => {
+                                format!("{} (k = {:.2})", magnitude_text(u, &e.error_unit), b.k)
+                            }
+                            None => magnitude_text(u, &e.error_unit),
+                        })
+                }
                 _ => "—".into(),
             },
+            risk: c
+                .decision
+                .as_ref()
+                .and_then(|d| d.risk)
+                .map_or("—".into(), risk_text),
             acceptance_limit: match (&c.evaluation, &c.decision) {
                 (Some(e), Some(d)) => limit_text(&crate::metrology::Evaluation {
                     limit: d.acceptance_limit,
@@ -417,6 +430,18 @@ fn limit_text(e: &crate::metrology::Evaluation) -> String {
 }
 
 /// "1 min 12 s", "45.0 s".
+/// A probability as people read risks: "9.1 %", "0.02 %", "< 0.001 %".
+pub fn risk_text(p: f64) -> String {
+    let percent = p * 100.0;
+    if percent < 0.001 {
+        "< 0.001 %".into()
+    } else if percent < 1.0 {
+        format!("{percent:.3} %")
+    } else {
+        format!("{percent:.1} %")
+    }
+}
+
 pub fn duration_text(seconds: f64) -> String {
     if seconds < 60.0 {
         format!("{seconds:.1} s")
@@ -496,6 +521,8 @@ pub fn unit_csv(record: &UnitRecord) -> Result<Vec<u8>, ReportError> {
         "error_unit",
         "limit",
         "expanded_uncertainty",
+        "coverage_factor",
+        "specific_risk",
         "acceptance_limit",
         "tur",
         "verdict",
@@ -523,6 +550,8 @@ pub fn unit_csv(record: &UnitRecord) -> Result<Vec<u8>, ReportError> {
                     .map_or(String::new(), |e| e.error_unit.clone()),
                 plain(c.evaluation.as_ref().map(|e| e.limit)),
                 plain(c.decision.as_ref().and_then(|d| d.expanded_uncertainty)),
+                plain(c.uncertainty.as_ref().map(|b| b.k)),
+                plain(c.decision.as_ref().and_then(|d| d.risk)),
                 plain(c.decision.as_ref().map(|d| d.acceptance_limit)),
                 plain(c.decision.as_ref().and_then(|d| d.tur)),
                 c.verdict.word().to_lowercase().replace(' ', "_"),

@@ -3,6 +3,7 @@
 
 use crate::metrology::Summary;
 use crate::metrology::capability;
+use crate::metrology::tolerance::Sense;
 use crate::record::{CheckVerdict, UnitRecord, UnitStatus};
 use serde::Serialize;
 use std::collections::BTreeMap;
@@ -20,13 +21,27 @@ pub struct CheckStats {
     pub failed: usize,
     pub mean: f64,
     pub std_dev: Option<f64>,
-    /// Against ±tolerance limit (two-sided checks only).
+    /// Which side(s) the limit bounds: "two-sided", "upper" or "lower".
+    pub sides: &'static str,
+    /// Cp, for two-sided checks.
+    pub cp: Option<f64>,
+    /// Cpk two-sided, or CPU / CPL for an upper / lower bound.
     pub cpk: Option<f64>,
+    /// Whether Cpk is below the usual 1.33.
+    pub cpk_low: bool,
+    /// The limit differs from unit to unit (a limit with an absolute term, at readings that
+    /// differ): capability is then computed on each error as a share of its own limit.
+    pub limit_varies: bool,
     /// Inline SVG histogram, marked safe when rendered.
     #[serde(skip)]
     pub histogram: String,
     #[serde(skip)]
     errors: Vec<f64>,
+    /// Each unit's tolerance limit, beside its error.
+    #[serde(skip)]
+    limits: Vec<f64>,
+    #[serde(skip)]
+    sense: crate::metrology::tolerance::Sense,
 }
 
 /// One unit's line in the summary.
@@ -103,12 +118,23 @@ impl LotSummary {
                         failed: 0,
                         mean: 0.0,
                         std_dev: None,
+                        sides: match e.sense {
+                            Sense::PlusMinus => "two-sided",
+                            Sense::AtMost => "upper",
+                            Sense::AtLeast => "lower",
+                        },
+                        cp: None,
                         cpk: None,
+                        cpk_low: false,
+                        limit_varies: false,
                         histogram: String::new(),
                         errors: Vec::new(),
+                        limits: Vec::new(),
+                        sense: e.sense,
                     });
                     entry.units += 1;
                     entry.errors.push(e.error);
+                    entry.limits.push(e.limit);
                     entry.tolerance_limit = entry.tolerance_limit.min(e.limit);
                     if c.verdict == CheckVerdict::Fail {
                         entry.failed += 1;
@@ -122,10 +148,43 @@ impl LotSummary {
                 if let Some(s) = Summary::of(&c.errors) {
                     c.mean = s.mean;
                     c.std_dev = s.std_dev;
-                    c.cpk = s.std_dev.and_then(|sd| {
-                        capability::cpk(-c.tolerance_limit, c.tolerance_limit, s.mean, sd)
-                    });
                 }
+                let (lo, hi) = c
+                    .limits
+                    .iter()
+                    .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), l| {
+                        (lo.min(*l), hi.max(*l))
+                    });
+                c.limit_varies = hi - lo > 1e-9 * hi.abs().max(1e-12);
+                // With a limit that varies by unit, each error counts as a share of its own
+                // limit (the limits become ±1); otherwise the errors as they are.
+                let (values, limit): (Vec<f64>, f64) = if c.limit_varies {
+                    let shares = c
+                        .errors
+                        .iter()
+                        .zip(&c.limits)
+                        .map(|(e, l)| if *l != 0.0 { e / l } else { 0.0 })
+                        .collect();
+                    (shares, 1.0)
+                } else {
+                    (c.errors.clone(), c.tolerance_limit)
+                };
+                if let Some(Summary {
+                    mean,
+                    std_dev: Some(sd),
+                    ..
+                }) = Summary::of(&values)
+                {
+                    match c.sense {
+                        Sense::PlusMinus => {
+                            c.cp = capability::cp(-limit, limit, sd);
+                            c.cpk = capability::cpk(-limit, limit, mean, sd);
+                        }
+                        Sense::AtMost => c.cpk = capability::cpu(limit, mean, sd),
+                        Sense::AtLeast => c.cpk = capability::cpl(limit, mean, sd),
+                    }
+                }
+                c.cpk_low = c.cpk.is_some_and(|k| k < capability::CPK_WARNING_BELOW);
                 c.histogram = histogram(&c.errors, c.tolerance_limit, &c.error_unit);
                 c
             })
@@ -189,6 +248,9 @@ impl LotSummary {
             "std_dev",
             "error_unit",
             "tolerance_limit",
+            "limit_varies",
+            "sides",
+            "cp",
             "cpk",
         ])?;
         let opt = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x}"));
@@ -203,6 +265,9 @@ impl LotSummary {
                 opt(c.std_dev),
                 c.error_unit.clone(),
                 format!("{}", c.tolerance_limit),
+                c.limit_varies.to_string(),
+                c.sides.to_string(),
+                opt(c.cp),
                 opt(c.cpk),
             ])?;
         }
