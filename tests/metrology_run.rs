@@ -254,3 +254,36 @@ fn a_no_load_bound_holds_for_every_reading_not_the_mean() {
     );
     assert_eq!(r.verdict.status, UnitStatus::Rejected);
 }
+
+/// A step of one sample with a repeatability declared from earlier data: the declared spread
+/// enters the budget as a Type B term (GUM 4.3.1) with its source, so U is not understated.
+#[test]
+fn a_declared_repeatability_enters_the_budget_of_a_single_sample() {
+    let text = demo_text().replace(
+        "    load: { current: 5 A }\n    checks:",
+        "    load: { current: 5 A }\n    samples: 1\n    repeatability: { relative: 0.1 %, from: golden-unit study GU-12 }\n    checks:",
+    );
+    let plan = Plan::from_text("one.yaml", &text).unwrap();
+    let records = run(&plan, &SimConfig::new(1, 1));
+    let step = records[0]
+        .steps
+        .iter()
+        .find(|s| s.id == "basic-Ib")
+        .unwrap();
+    let c = step
+        .checks
+        .iter()
+        .find(|c| c.quantity.name() == "current")
+        .unwrap();
+    assert_eq!(c.samples.len(), 1);
+    let b = c.uncertainty.as_ref().unwrap();
+    let declared = b
+        .components
+        .iter()
+        .find(|x| x.name == "repeatability of one reading, declared")
+        .expect("the declared term");
+    assert!(declared.basis.contains("GU-12"), "{}", declared.basis);
+    // 0.1 % of the reading, as a percentage error: 0.1 (in %, times 100/r · r).
+    assert!((declared.u - 0.1 * c.measured.unwrap() / c.reference.unwrap()).abs() < 1e-9);
+    assert!(b.expanded >= 2.0 * declared.u);
+}

@@ -320,3 +320,32 @@ fn a_plan_with_thousands_of_mistakes_prints_the_first_and_counts_the_rest() {
     );
     assert!(lines[49].contains("steps[50].checks[1]"), "{}", lines[49]);
 }
+
+#[test]
+fn one_sample_needs_a_declared_repeatability() {
+    let one = GOOD.replace("  samples: 8\n", "  samples: 1\n");
+    let e = errors(&one).to_string();
+    assert!(
+        e.contains("defaults.samples: one sample has no spread of its own"),
+        "{e}"
+    );
+    // Said once, at the defaults, though every step inherits it.
+    assert_eq!(e.matches("one sample has no spread").count(), 1, "{e}");
+    // One step of one sample: refused at that step, accepted once its repeatability is declared.
+    let single = GOOD.replace(
+        "    load: { current: 500 mA }\n",
+        "    load: { current: 500 mA }\n    samples: 1\n",
+    );
+    let e = errors(&single).to_string();
+    assert!(
+        e.contains("steps[2].samples: one sample has no spread"),
+        "{e}"
+    );
+    let declared = single.replace(
+        "    samples: 1\n",
+        "    samples: 1\n    repeatability: { relative: 0.05 %, from: golden-unit study GU-12 }\n",
+    );
+    let plan = Plan::from_text("p.yaml", &declared).unwrap();
+    let r = plan.steps[1].repeatability.as_ref().unwrap();
+    assert!((r.relative - 0.0005).abs() < 1e-15 && r.from == "golden-unit study GU-12");
+}

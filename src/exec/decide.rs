@@ -101,12 +101,16 @@ pub(super) fn evaluate_check(input: CheckInputs, record: &mut CheckRecord, judge
         }
     };
     let span_s = (window.1 - window.0) * share;
+    let known = Known {
+        resolution,
+        repeatability: step.repeatability.as_ref(),
+    };
     let budget = budget(
         check,
         record,
         measured,
         reference_value,
-        resolution,
+        known,
         judge,
         span_s,
     );
@@ -196,15 +200,26 @@ impl Partial<'_> {
 
 /// The uncertainty budget of a check's error, in the error's unit (GUM): the spread of the
 /// unit's readings (Type A), its resolution and the reference's accuracy (Type B, rectangular).
+/// What is known of the unit's readings beyond the samples: its resolution (from the link) and
+/// a repeatability declared by the plan.
+struct Known<'a> {
+    resolution: Option<f64>,
+    repeatability: Option<&'a crate::plan::Repeatability>,
+}
+
 fn budget(
     check: &Check,
     record: &CheckRecord,
     measured: f64,
     reference: Option<f64>,
-    resolution: Option<f64>,
+    known: Known,
     judge: &Judge,
     span_s: f64,
 ) -> Budget {
+    let Known {
+        resolution,
+        repeatability: declared,
+    } = known;
     let relative = check.tolerance.is_relative();
     // Sensitivities of the error to the unit's value and to the reference.
     let (c_unit, c_ref) = match reference {
@@ -214,15 +229,26 @@ fn budget(
     };
     let mut components = Vec::new();
     let mut notes = Vec::new();
-    if let Some(s) = record.summary
-        && let Some(sd) = s.std_dev
-    {
-        components.push(uncertainty::type_a(
+    match (record.summary, declared) {
+        (Some(s), _) if s.std_dev.is_some() => components.push(uncertainty::type_a(
             "repeatability of the unit's readings",
-            sd,
+            s.std_dev.unwrap_or(0.0),
             s.count,
             c_unit,
-        ));
+        )),
+        // One reading: the spread of one reading known from earlier data (Type B, GUM 4.3.1),
+        // for the mean of the readings taken.
+        (summary, Some(r)) if !check.quantity.is_register() => {
+            let n = summary.map_or(1, |s| s.count).max(1);
+            components.push(uncertainty::Component {
+                name: "repeatability of one reading, declared".into(),
+                evaluation: uncertainty::Evaluation::B,
+                u: (r.relative * measured.abs() / (n as f64).sqrt() * c_unit).abs(),
+                dof: None,
+                basis: format!("{} % of the reading, from {}", r.relative * 100.0, r.from),
+            })
+        }
+        _ => {}
     }
     match resolution {
         // A register's advance is the difference of two quantised readings: δ·√2 / √12.

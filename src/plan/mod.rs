@@ -169,6 +169,8 @@ pub struct Step {
     /// How far (a fraction) the reference may read from the nominal load: beyond it the step
     /// is not evaluated, whatever the units read ("load not as planned").
     pub load_within: f64,
+    /// A repeatability declared for the step (a step of one sample has no spread of its own).
+    pub repeatability: Option<Repeatability>,
     /// Seconds to wait after applying the load before the first sample.
     pub settle_s: f64,
     pub samples: u32,
@@ -181,6 +183,14 @@ pub struct Step {
     pub settle_until: Option<SettleRule>,
     /// Sample until decided instead of a fixed count (then `samples` is the most it takes).
     pub sequential: Option<SequentialRule>,
+}
+
+/// The relative standard deviation of one reading, known from earlier data, and its source.
+#[derive(Debug, Clone, PartialEq, Serialize, serde::Deserialize)]
+pub struct Repeatability {
+    /// A fraction of the reading.
+    pub relative: f64,
+    pub from: String,
 }
 
 /// "Settle until stable": every `every_s`, each position's `quantity` is read; the step goes on

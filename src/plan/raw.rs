@@ -171,6 +171,15 @@ pub struct RawDefaults {
     pub samples_until_decided: Option<RawSequential>,
 }
 
+/// A repeatability declared from earlier data: a relative standard deviation of one reading,
+/// and where it comes from.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawRepeatability {
+    pub relative: Text,
+    pub from: Text,
+}
+
 /// Settle until every position's readings are stable.
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -309,6 +318,9 @@ pub struct RawStep {
     pub load: RawLoad,
     #[serde(default)]
     pub load_within: Option<Text>,
+    /// The spread of one reading, known from earlier data, for steps that take one sample.
+    #[serde(default)]
+    pub repeatability: Option<RawRepeatability>,
     #[serde(default)]
     pub settle: Option<Text>,
     #[serde(default)]

@@ -1053,6 +1053,45 @@ fn step(
     if let Some(rule) = sequential {
         samples = Some(rule.max);
     }
+    // One reading has no spread of its own: its repeatability must come from earlier data.
+    let repeatability = match &raw.repeatability {
+        None => Some(None),
+        Some(r) => {
+            let p = format!("{path}.repeatability");
+            let relative = ctx.value(&format!("{p}.relative"), &r.relative, Dimension::Percent);
+            let from = ctx.non_empty(&format!("{p}.from"), &r.from);
+            match relative {
+                Some(v) if v <= 0.0 => {
+                    ctx.error(
+                        &format!("{p}.relative"),
+                        "a repeatability must be above 0 %",
+                    );
+                    None
+                }
+                Some(v) => from.map(|from| {
+                    Some(super::Repeatability {
+                        relative: v / 100.0,
+                        from,
+                    })
+                }),
+                None => None,
+            }
+        }
+    };
+    let measures_spread = raw
+        .checks
+        .iter()
+        .any(|c| Quantity::from_name(c.quantity.0.trim()).is_some_and(|q| !q.is_register()));
+    if samples == Some(1) && raw.repeatability.is_none() && measures_spread {
+        ctx.error(
+            &if raw.samples.is_some() {
+                format!("{path}.samples")
+            } else {
+                "defaults.samples".to_string()
+            },
+            "one sample has no spread of its own, so the uncertainty would leave out the unit's repeatability: take at least 2, or declare it as repeatability: { relative: 0.05 %, from: \"where it was measured\" }",
+        );
+    }
     let window_s = match (samples, interval_s) {
         (Some(n), Some(i)) => f64::from(n.saturating_sub(1)) * i,
         _ => 0.0,
@@ -1120,6 +1159,7 @@ fn step(
         description: raw.description.as_ref().map(|t| t.0.clone()),
         load: load?,
         load_within: load_within?,
+        repeatability: repeatability?,
         settle_s: settle_s?,
         samples: samples?,
         interval_s: interval_s?,
