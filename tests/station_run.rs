@@ -375,3 +375,74 @@ fn a_station_with_typed_references_gets_the_builtin_verdicts() {
     assert_eq!(records[0].steps[1].references[0].reading.source, "operator");
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// The reference's accuracy is a term of every budget: a station must state it, or say in so
+/// many words that it is unknown, and then every report says so on its first page.
+#[test]
+fn a_reference_accuracy_is_stated_or_declared_unknown() {
+    let dir = temp_dir("accuracy");
+    let text = std::fs::read_to_string("test-plans/station-example.yaml").unwrap();
+    let line = text
+        .lines()
+        .find(|l| l.trim_start().starts_with("accuracy:"))
+        .unwrap()
+        .to_string();
+    let without = dir.join("without.yaml");
+    std::fs::write(&without, text.replace(&format!("{line}\n"), "")).unwrap();
+    let o = bin().arg("check").arg(&without).output().unwrap();
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{err}");
+    assert!(err.contains("state the reference's accuracy"), "{err}");
+    let unknown = dir.join("unknown.yaml");
+    std::fs::write(&unknown, text.replace(&line, "  accuracy: unknown")).unwrap();
+    let o = bin().arg("check").arg(&unknown).output().unwrap();
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    // A run on a served station whose accuracy is unknown: the reports say so.
+    let served = serve(&dir, &[]);
+    let station = std::fs::read_to_string(&served.station).unwrap();
+    let acc = station
+        .lines()
+        .find(|l| l.trim_start().starts_with("accuracy:"))
+        .unwrap()
+        .to_string();
+    let unknown_station = dir.join("served-unknown.yaml");
+    std::fs::write(
+        &unknown_station,
+        station.replace(&acc, "  accuracy: unknown"),
+    )
+    .unwrap();
+    let (_, out, records) = run(
+        "test-plans/demo-serial.yaml",
+        &unknown_station,
+        &dir.join("out"),
+        &[],
+    );
+    assert_eq!(records.len(), 4, "{out}");
+    let run_dir = std::fs::read_dir(dir.join("out"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .find(|p| p.is_dir())
+        .unwrap();
+    let html =
+        std::fs::read_to_string(run_dir.join(format!("{}-p1.html", records[0].serial))).unwrap();
+    assert!(
+        html.contains("The reference&#x27;s accuracy is not stated")
+            || html.contains("The reference's accuracy is not stated"),
+        "{html}"
+    );
+    // No reference term in any budget, and the record says why.
+    let c = &records[0].steps[2].checks[0];
+    let b = c.uncertainty.as_ref().unwrap();
+    assert!(
+        b.components
+            .iter()
+            .all(|x| x.name != "accuracy of the reference instrument")
+    );
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -450,11 +450,21 @@ fn reference(doc: &mut Document, raw: &RawReference) -> Option<ReferenceSpec> {
         }
         RawReferenceRead::Operator {} => Some(ReferenceRead::Operator),
     };
-    let accuracy = raw.accuracy.as_ref().and_then(|t| {
-        crate::metrology::accuracy::Accuracy::parse(&t.0)
+    // The reference's accuracy is a term of every check's budget: it must be stated, or its
+    // absence declared in so many words (and then every report says so).
+    let accuracy = match raw.accuracy.as_ref().map(|t| t.0.trim()) {
+        None => {
+            doc.error(
+                "reference",
+                "state the reference's accuracy (accuracy: \"0.05 % of reading + 0.01 % of range\"), or write accuracy: unknown to run without it (every report will say so)",
+            );
+            None
+        }
+        Some(ACCURACY_UNKNOWN) => None,
+        Some(text) => crate::metrology::accuracy::Accuracy::parse(text)
             .map_err(|e| doc.error("reference.accuracy", e))
-            .ok()
-    });
+            .ok(),
+    };
     let mut ranges = BTreeMap::new();
     for (name, text) in &raw.ranges {
         let path = format!("reference.ranges.{name}");
@@ -506,6 +516,9 @@ fn reference(doc: &mut Document, raw: &RawReference) -> Option<ReferenceSpec> {
         read: read?,
     })
 }
+
+/// What a station writes when the reference's accuracy is not known.
+pub const ACCURACY_UNKNOWN: &str = "unknown";
 
 /// Why a station could not be made into a bench.
 #[derive(Debug, thiserror::Error)]
