@@ -446,3 +446,87 @@ fn an_archive_that_fails_mid_run_stops_the_loads_and_loses_no_record() {
     }
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// `explain` prints one check's whole computation from the archive; redoing its arithmetic from
+/// the printed figures alone gives the printed results (GUM 5.1.2 and 6.2.1 for the budget;
+/// the percentage error as IEC 62053-21 defines it).
+#[test]
+fn explain_prints_a_computation_that_can_be_redone_by_hand() {
+    let dir = temp_dir("explain");
+    run_demo(&dir, &["--serials", "A-1,A-2,A-3,A-4"]);
+    let archive = dir.join("archive.sqlite");
+    let run_id = std::fs::read_dir(&dir)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .find(|n| n.starts_with("20"))
+        .unwrap();
+    let (code, text) = cmd(
+        &["explain", &run_id, "A-2", "basic-pf0.5", "active_power"],
+        &archive,
+    );
+    assert_eq!(code, 0, "{text}");
+    let after = |line_start: &str, marker: &str| -> f64 {
+        let line = text
+            .lines()
+            .find(|l| l.trim_start().starts_with(line_start))
+            .unwrap_or_else(|| panic!("no line {line_start}: {text}"));
+        let rest = &line[line.rfind(marker).unwrap() + marker.len()..];
+        rest.split_whitespace()
+            .next()
+            .unwrap()
+            .trim_end_matches(';')
+            .parse()
+            .unwrap()
+    };
+    let values: Vec<f64> = text
+        .lines()
+        .filter(|l| l.contains("value = "))
+        .map(|l| {
+            l.split("value = ")
+                .nth(1)
+                .unwrap()
+                .split_whitespace()
+                .next()
+                .unwrap()
+                .parse()
+                .unwrap()
+        })
+        .collect();
+    assert_eq!(values.len(), 8);
+    let mean = values.iter().sum::<f64>() / 8.0;
+    assert!((after("mean =", "/ n = ") - mean).abs() < 1e-9);
+    let e = after("e = (measured", "= ");
+    let ref_line = text
+        .lines()
+        .find(|l| l.contains("from the instrument"))
+        .unwrap();
+    let r: f64 = ref_line.split_whitespace().next().unwrap().parse().unwrap();
+    assert!((e - (mean - r) / r * 100.0).abs() < 1e-9, "{e}");
+    let us: Vec<f64> = text
+        .lines()
+        .filter(|l| l.trim_start().starts_with("Type "))
+        .map(|l| {
+            l.split("u = ")
+                .nth(1)
+                .unwrap()
+                .split_whitespace()
+                .next()
+                .unwrap()
+                .parse()
+                .unwrap()
+        })
+        .collect();
+    let uc = after("u_c =", "= ");
+    assert!((uc - us.iter().map(|u| u * u).sum::<f64>().sqrt()).abs() < 1e-12);
+    let k = after("k = Student", "= ");
+    let big_u = after("U = k", "= ");
+    assert!((big_u - k * uc).abs() < 1e-12);
+    // A step or quantity that is not there is named with what is.
+    let (code, text) = cmd(&["explain", &run_id, "A-2", "nine", "current"], &archive);
+    assert_eq!(code, 2);
+    assert!(
+        text.contains("no step \"nine\"") && text.contains("basic-pf0.5"),
+        "{text}"
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}

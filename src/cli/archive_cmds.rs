@@ -52,7 +52,7 @@ fn open(path: &Path) -> Result<Archive, CliError> {
 }
 
 /// Opens an archive to read from: never changes it, works where it is read-only.
-fn open_to_read(path: &Path) -> Result<Archive, CliError> {
+pub(super) fn open_to_read(path: &Path) -> Result<Archive, CliError> {
     Archive::open_read_only(path).map_err(|e| match e {
         crate::archive::ArchiveError::NotFound(what) => CliError::Usage(what),
         crate::archive::ArchiveError::NotAnArchive { .. } => CliError::NotArchive(e.to_string()),

@@ -5,6 +5,7 @@
 //! 2 an invalid plan or invalid arguments; 3 the run could not complete.
 
 mod archive_cmds;
+mod explain;
 
 use crate::archive::{Archive, RunRecorder, RunRow, RunState};
 use crate::bench::Bench;
@@ -71,6 +72,8 @@ enum Command {
     Summary(archive_cmds::SummaryArgs),
     /// Render the reports of a run or a serial number again, from the archive.
     Report(archive_cmds::ReportArgs),
+    /// Print one check's whole computation from its stored record, to follow by hand.
+    Explain(explain::ExplainArgs),
 }
 
 #[derive(clap::Args)]
@@ -213,6 +216,7 @@ pub fn main() -> i32 {
         Command::Compare(args) => archive_cmds::compare(&args),
         Command::Summary(args) => archive_cmds::summary(&args),
         Command::Report(args) => archive_cmds::report(&args),
+        Command::Explain(args) => explain::explain(&args),
     };
     match result {
         Ok(code) => code,
@@ -1146,6 +1150,14 @@ fn terminal_safe(text: &str) -> String {
             }
         })
         .collect()
+}
+
+/// Several lines made safe for a terminal, line by line (the line breaks kept).
+fn terminal_safe_lines(text: &str) -> String {
+    text.split('\n')
+        .map(terminal_safe)
+        .collect::<Vec<_>>()
+        .join("\n")
 }
 
 /// Files written for one unit.
