@@ -264,7 +264,9 @@ fn ctrl_c_at_a_prompt_keeps_what_was_taken_and_exits_3() {
 
 /// A reference CSV with the plan's nominal values.
 fn reference_csv(plan: &Plan) -> String {
-    let mut csv = String::from("step,quantity,value,unit\n");
+    let mut csv = String::from(
+        "# instrument: REF-LAB-4 (invented)\n# accuracy: 0.02 % of reading\nstep,quantity,value,unit\n",
+    );
     for (i, s) in plan.steps.iter().enumerate() {
         for q in asked(plan, i) {
             let v = s.load.nominal(q, s.sampling_window_s());
@@ -307,8 +309,14 @@ fn a_reference_file_needs_no_typing() {
     );
     let reading = &rs[0].steps[1].references[0].reading;
     assert_eq!(reading.source, "file");
+    // The file's instrument is the run's reference, in every record.
+    assert_eq!(rs[0].station.reference.id, "REF-LAB-4 (invented)");
+    assert_eq!(
+        rs[0].station.reference.accuracy.as_deref(),
+        Some("0.02 % of reading")
+    );
     assert!(
-        reading.as_given.as_deref().unwrap().contains("line 2 of"),
+        reading.as_given.as_deref().unwrap().contains("line 4 of"),
         "{:?}",
         reading.as_given
     );
@@ -320,9 +328,10 @@ fn a_bad_reference_file_is_refused_before_any_step_with_every_bad_line() {
     let plan = demo();
     let dir = temp_dir("badcsv");
     let good = reference_csv(&plan);
+    // Lines 1 and 2 name the instrument; line 3 is the header.
     let mut lines: Vec<String> = good.lines().map(String::from).collect();
-    lines[2] = "low-0.1Ib,active_power,115,V".into(); // wrong unit (line 3)
-    lines[3] = lines[1].clone(); // a duplicate of line 2 (line 4)
+    lines[4] = "low-0.1Ib,active_power,115,V".into(); // wrong unit (line 5)
+    lines[5] = lines[3].clone(); // a duplicate of line 4 (line 6)
     lines.push("no-such-step,current,5,A".into()); // unknown step
     lines.push("basic-Ib,torque,5,Nm".into()); // unknown quantity
     lines.push("no-load,current,0,A".into()); // an extra row: no-load needs no reference
@@ -340,8 +349,8 @@ fn a_bad_reference_file_is_refused_before_any_step_with_every_bad_line() {
     let err = String::from_utf8_lossy(&o.stderr);
     let f = file.display().to_string();
     for expected in [
-        format!("{f}:3: active_power: expected an active power"),
-        format!("{f}:4: a second current for step low-0.1Ib (the first is on line 2)"),
+        format!("{f}:5: active_power: expected an active power"),
+        format!("{f}:6: a second current for step low-0.1Ib (the first is on line 4)"),
         format!("{f}:{}: no step \"no-such-step\"", lines.len() - 3),
         format!("{f}:{}: unknown quantity \"torque\"", lines.len() - 2),
         format!(
@@ -355,6 +364,24 @@ fn a_bad_reference_file_is_refused_before_any_step_with_every_bad_line() {
     }
     // Nothing ran: no run folder has any record.
     assert!(!dir.join("out").exists() || records_in(&dir.join("out")).is_empty());
+    // A file that does not name its instrument and accuracy is refused: its readings could
+    // carry no uncertainty.
+    let anonymous = dir.join("anonymous.csv");
+    std::fs::write(
+        &anonymous,
+        good.lines().skip(2).collect::<Vec<_>>().join("\n"),
+    )
+    .unwrap();
+    let o = bin()
+        .args(["run", "test-plans/demo.yaml", "--quiet", "--reference"])
+        .arg(&anonymous)
+        .arg("--out")
+        .arg(dir.join("out2"))
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(err.contains("must name the instrument"), "{err}");
     std::fs::remove_dir_all(&dir).unwrap();
 }
 
@@ -362,7 +389,9 @@ fn a_bad_reference_file_is_refused_before_any_step_with_every_bad_line() {
 fn a_reference_file_of_a_million_bad_rows_prints_the_first_and_counts_the_rest() {
     let dir = temp_dir("csv-million");
     let file = dir.join("refs.csv");
-    let mut csv = String::from("step,quantity,value,unit\n");
+    let mut csv = String::from(
+        "# instrument: REF-LAB-4 (invented)\n# accuracy: 0.02 % of reading\nstep,quantity,value,unit\n",
+    );
     for i in 0..1_000_000 {
         csv.push_str(&format!("nowhere-{i},current,1,A\n"));
     }
@@ -385,7 +414,7 @@ fn a_reference_file_of_a_million_bad_rows_prints_the_first_and_counts_the_rest()
         lines.last().unwrap()
     );
     assert!(
-        lines[0].contains("refs.csv:2: no step \"nowhere-0\""),
+        lines[0].contains("refs.csv:4: no step \"nowhere-0\""),
         "{}",
         lines[0]
     );

@@ -600,7 +600,9 @@ fn an_identity_with_control_characters_is_refused_and_kept_escaped() {
 fn every_position_failing_alike_is_taken_for_the_reference() {
     let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
     let dir = temp_dir("reference-fault");
-    let mut csv = String::from("step,quantity,value,unit\n");
+    let mut csv = String::from(
+        "# instrument: REF-LAB-4 (invented)\n# accuracy: 0.02 % of reading\nstep,quantity,value,unit\n",
+    );
     let mut wrong_step = None;
     for s in &plan.steps {
         let mut asked: Vec<Quantity> = Vec::new();

@@ -59,11 +59,75 @@ struct Row {
 #[derive(Debug)]
 pub struct FileReference {
     file: String,
+    /// The instrument the readings came from, as the file's head names it.
+    instrument: super::InstrumentInfo,
     rows: BTreeMap<(String, Quantity), Row>,
     /// Timestamped rows without a step: (time, quantity, row).
     logged: Vec<(chrono::DateTime<chrono::FixedOffset>, Quantity, Row)>,
     /// Wall-clock time at bench time zero, to place the sampling windows.
     origin: Option<chrono::DateTime<chrono::FixedOffset>>,
+}
+
+/// The instrument a file's readings came from, from its head: `# instrument: ID` and
+/// `# accuracy: SPEC` (or `unknown`), with `# range QUANTITY: VALUE` for an accuracy with a
+/// range term and `# certificate:` / `# calibration_due:` where known. Readings whose
+/// instrument and accuracy nobody can name cannot carry an uncertainty: the file is refused.
+fn instrument_of(
+    file: &str,
+    text: &str,
+    errors: &mut Vec<(usize, String)>,
+) -> super::InstrumentInfo {
+    let mut info = super::InstrumentInfo {
+        id: String::new(),
+        description: format!("reference readings imported from {file}"),
+        certificate: None,
+        calibration_due: None,
+        accuracy: None,
+        ranges: BTreeMap::new(),
+    };
+    for (i, line) in text.lines().enumerate() {
+        let Some(rest) = line.trim().strip_prefix('#') else {
+            continue;
+        };
+        let Some((key, value)) = rest.split_once(':') else {
+            continue;
+        };
+        let (key, value) = (key.trim().to_lowercase(), value.trim().to_string());
+        match key.as_str() {
+            "instrument" => info.id = value,
+            "accuracy" => {
+                if value != crate::bench::station::ACCURACY_UNKNOWN
+                    && let Err(e) = crate::metrology::accuracy::Accuracy::parse(&value)
+                {
+                    errors.push((i + 1, format!("accuracy: {e}")));
+                }
+                info.accuracy = Some(value);
+            }
+            "certificate" => info.certificate = Some(value),
+            "calibration_due" => info.calibration_due = Some(value),
+            k if k.starts_with("range ") => {
+                let name = k["range ".len()..].trim();
+                match Quantity::from_name(name) {
+                    Some(q) => match crate::plan::units::parse(&value, q.dimension()) {
+                        Ok(v) if v > 0.0 => {
+                            info.ranges.insert(q.name().to_string(), v);
+                        }
+                        _ => errors
+                            .push((i + 1, format!("range {name}: \"{value}\" is not a range"))),
+                    },
+                    None => errors.push((i + 1, format!("unknown quantity \"{name}\""))),
+                }
+            }
+            _ => {}
+        }
+    }
+    if info.id.is_empty() || info.accuracy.is_none() {
+        errors.push((
+            1,
+            "the file must name the instrument its readings came from and its accuracy, in lines before the header: \"# instrument: ID\" and \"# accuracy: 0.05 % of reading + 0.01 % of range\" (or \"# accuracy: unknown\")".into(),
+        ));
+    }
+    info
 }
 
 /// The (step, quantity) pairs a plan needs a reference reading for.
@@ -91,6 +155,11 @@ fn needed(plan: &Plan) -> Vec<(String, Quantity)> {
 }
 
 impl FileReference {
+    /// The instrument the readings came from.
+    pub fn instrument(&self) -> &super::InstrumentInfo {
+        &self.instrument
+    }
+
     /// Reads `path` and checks it against `plan`.
     pub fn load(path: &Path, plan: &Plan) -> Result<FileReference, ReferenceFileErrors> {
         let file = path.display().to_string();
@@ -107,9 +176,11 @@ impl FileReference {
         plan: &Plan,
     ) -> Result<FileReference, ReferenceFileErrors> {
         let mut errors: Vec<(usize, String)> = Vec::new();
+        let instrument = instrument_of(file, text, &mut errors);
         let mut reader = csv::ReaderBuilder::new()
             .trim(csv::Trim::All)
             .flexible(true)
+            .comment(Some(b'#'))
             .from_reader(text.as_bytes());
         let headers = match reader.headers() {
             Ok(h) => h.clone(),
@@ -244,6 +315,7 @@ impl FileReference {
         if errors.is_empty() {
             Ok(FileReference {
                 file: file.into(),
+                instrument,
                 rows,
                 logged,
                 origin: None,
@@ -354,7 +426,9 @@ mod tests {
     /// A reference meter's log (timestamp, no step) is matched to the sampling windows.
     #[test]
     fn logged_rows_are_averaged_over_the_window_they_fall_in() {
-        let mut csv = String::from("step,quantity,value,unit,timestamp\n");
+        let mut csv = String::from(
+            "# instrument: LOG-1 (invented)\n# accuracy: 0.05 % of reading\nstep,quantity,value,unit,timestamp\n",
+        );
         for (s, q, v, u) in [
             ("low-0.1Ib", "active_power", "115.0", "W"),
             ("basic-Ib", "voltage", "230.1", "V"),

@@ -498,6 +498,9 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
     if let Some(mut r) = file_reference {
         let now = chrono::Local::now().fixed_offset();
         r.anchor(now - chrono::Duration::microseconds((bench.clock.now_s() * 1e6) as i64));
+        // The file's instrument is the reference of this run: its accuracy goes into every
+        // budget, and its name into every record.
+        bench.station.reference = r.instrument().clone();
         bench.reference = Box::new(r);
     }
     let ctx = RunContext {
