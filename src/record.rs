@@ -301,6 +301,24 @@ pub fn record_hash(record: &UnitRecord) -> String {
     canonical_sha256(record)
 }
 
+/// Text with its control characters (escape sequences, NUL, line breaks) written as escapes,
+/// so that text from a device, a file or the archive can reach neither a terminal's control
+/// nor a file's structure.
+pub fn escape_controls(text: &str) -> String {
+    if !text.chars().any(char::is_control) {
+        return text.to_string();
+    }
+    text.chars()
+        .map(|c| {
+            if c.is_control() {
+                c.escape_default().to_string()
+            } else {
+                c.to_string()
+            }
+        })
+        .collect()
+}
+
 /// Why a record could not be written.
 #[derive(Debug, thiserror::Error)]
 pub enum WriteError {

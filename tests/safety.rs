@@ -13,7 +13,7 @@ use meterproof::bench::{BenchError, LoadSource};
 use meterproof::exec::{self, Silent};
 use meterproof::link::{DutLink, Identity, LinkError};
 use meterproof::plan::{Load, Plan, Quantity};
-use meterproof::record::{StepStatus, UnitRecord, UnitStatus};
+use meterproof::record::{StepStatus, UnitStatus};
 use std::io::{BufRead, BufReader, Read, Write};
 use std::path::Path;
 use std::process::Stdio;
@@ -44,17 +44,6 @@ fn source_port(station: &Path) -> String {
     let text = std::fs::read_to_string(station).unwrap();
     let v: serde_yaml::Value = serde_yaml::from_str(&text).unwrap();
     v["source"]["port"].as_str().unwrap().to_string()
-}
-
-fn records_of(dir: &Path) -> Vec<UnitRecord> {
-    let mut rs: Vec<UnitRecord> = std::fs::read_dir(dir)
-        .unwrap()
-        .map(|e| e.unwrap().path())
-        .filter(|p| p.extension().is_some_and(|x| x == "json"))
-        .map(|p| meterproof::record::read(&p).unwrap())
-        .collect();
-    rs.sort_by_key(|r| r.position);
-    rs
 }
 
 /// A run on a served station, stopped by `signal` while its second step is under load.
@@ -119,7 +108,7 @@ fn stop_mid_run(signal: &str) {
         .find(|p| p.is_dir())
         .unwrap();
     let run_id = run_dir.file_name().unwrap().to_string_lossy().to_string();
-    let records = records_of(&run_dir);
+    let records = common::records_of_dir(&run_dir);
     assert_eq!(records.len(), 4);
     for r in &records {
         assert_eq!(r.verdict.status, UnitStatus::Incomplete, "{:?}", r.verdict);
@@ -166,7 +155,7 @@ fn stop_mid_run(signal: &str) {
         "{text}{}",
         String::from_utf8_lossy(&o.stderr)
     );
-    let finals = records_of(&run_dir);
+    let finals = common::records_of_dir(&run_dir);
     let statuses: Vec<UnitStatus> = finals.iter().map(|r| r.verdict.status).collect();
     assert_eq!(
         statuses,
@@ -178,7 +167,7 @@ fn stop_mid_run(signal: &str) {
         ]
     );
     // The interrupted run's files are kept aside, the final ones have the plain names.
-    assert_eq!(records_of(&run_dir.join("earlier-1")).len(), 4);
+    assert_eq!(common::records_of_dir(&run_dir.join("earlier-1")).len(), 4);
     assert!(
         std::fs::read_dir(&run_dir).unwrap().all(|e| !e
             .unwrap()

@@ -35,17 +35,6 @@ fn run_on_small_disk(full: &Path, size: &str, fallback: &str) -> Output {
     o
 }
 
-fn json_records(dir: &Path) -> Vec<UnitRecord> {
-    let mut rs: Vec<UnitRecord> = std::fs::read_dir(dir)
-        .unwrap()
-        .map(|e| e.unwrap().path())
-        .filter(|p| p.extension().is_some_and(|x| x == "json"))
-        .map(|p| meterproof::record::read(&p).unwrap())
-        .collect();
-    rs.sort_by_key(|r| r.position);
-    rs
-}
-
 #[test]
 fn a_full_disk_stops_the_loads_and_keeps_every_reading_in_the_fallback() {
     let dir = temp_dir("full-disk");
@@ -75,7 +64,7 @@ fn a_full_disk_stops_the_loads_and_keeps_every_reading_in_the_fallback() {
     // The fallback folder holds every unit's record with every reading taken.
     let runs: Vec<_> = std::fs::read_dir(&fallback).unwrap().collect();
     assert_eq!(runs.len(), 1);
-    let records = json_records(&runs[0].as_ref().unwrap().path());
+    let records = common::records_of_dir(&runs[0].as_ref().unwrap().path());
     assert_eq!(records.len(), 4);
     let taken: usize = records
         .iter()

@@ -1141,18 +1141,7 @@ fn set_aside_earlier_files(dir: &Path) -> Result<(), CliError> {
 /// Text from a device, a file or the archive made safe for a terminal: control characters
 /// (escape sequences, NUL, newlines) are shown escaped, never sent to the screen.
 fn terminal_safe(text: &str) -> String {
-    if !text.chars().any(char::is_control) {
-        return text.to_string();
-    }
-    text.chars()
-        .map(|c| {
-            if c.is_control() {
-                c.escape_default().to_string()
-            } else {
-                c.to_string()
-            }
-        })
-        .collect()
+    record::escape_controls(text)
 }
 
 /// Several lines made safe for a terminal, line by line (the line breaks kept).

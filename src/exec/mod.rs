@@ -662,17 +662,7 @@ fn hostile_identity(id: &Identity) -> Option<(Identity, String)> {
     if !(bad(&id.model) || bad(&id.serial) || bad(&id.firmware)) {
         return None;
     }
-    let escape = |t: &str| -> String {
-        t.chars()
-            .map(|c| {
-                if c.is_control() {
-                    c.escape_default().to_string()
-                } else {
-                    c.to_string()
-                }
-            })
-            .collect()
-    };
+    let escape = crate::record::escape_controls;
     let safe = Identity {
         model: escape(&id.model),
         serial: escape(&id.serial),

@@ -247,18 +247,7 @@ impl<'a> Document<'a> {
             Ok(v) => Some(v),
             Err(e) => {
                 let inner = e.path().to_string();
-                let path = join_path(prefix, if inner == "." { "" } else { &inner });
-                let message = plain_words(&e.into_inner().to_string());
-                let key = message.starts_with("unknown field");
-                self.errors.push((
-                    PlanError {
-                        file: self.file.to_string(),
-                        position: None,
-                        path,
-                        message,
-                    },
-                    key,
-                ));
+                self.structure_error(prefix, &inner, &e.into_inner().to_string());
                 None
             }
         }

@@ -31,6 +31,18 @@ pub fn ctx() -> RunContext {
     }
 }
 
+/// Every unit record (`*.json`) in one folder, by position.
+pub fn records_of_dir(dir: &Path) -> Vec<UnitRecord> {
+    let mut rs: Vec<UnitRecord> = std::fs::read_dir(dir)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|x| x == "json"))
+        .map(|p| meterproof::record::read(&p).unwrap())
+        .collect();
+    rs.sort_by_key(|r| r.position);
+    rs
+}
+
 /// Every unit record in the run folders under `out`, by position.
 pub fn records_in(out: &Path) -> Vec<UnitRecord> {
     let mut rs: Vec<UnitRecord> = std::fs::read_dir(out)
