@@ -473,18 +473,14 @@ fn check_refuses_plans_that_cannot_work() {
     std::fs::remove_dir_all(&dir).unwrap();
 }
 
-/// A station whose current command sets the voltage instead (it passes `check`: the command is
-/// well formed): the source never gets its current set-point, and the reference says so.
-#[test]
-fn a_unit_is_never_judged_at_a_load_never_applied() {
-    let dir = temp_dir("load-not-applied");
-    let served = serve_at(&dir, "25", &[]);
-    let text = std::fs::read_to_string(&served.station).unwrap().replace(
-        "current: 'SOUR:CURR {value}'",
-        "current: 'SOUR:VOLT {value}'",
-    );
-    let station = dir.join("wrong.yaml");
-    std::fs::write(&station, text).unwrap();
+/// Serves a simulated station, edits its station file (`from` becomes `to`) and runs the
+/// serial demo on it into `dir/out`.
+fn run_on_edited_station(dir: &Path, from: &str, to: &str) -> (Served, std::process::Output) {
+    let served = serve_at(dir, "25", &[]);
+    let text = std::fs::read_to_string(&served.station).unwrap();
+    assert!(text.contains(from), "the station file has {from}");
+    let station = dir.join("edited.yaml");
+    std::fs::write(&station, text.replace(from, to)).unwrap();
     let o = bin()
         .args(["run", "test-plans/demo-serial.yaml", "--quiet", "--bench"])
         .arg(&station)
@@ -492,6 +488,19 @@ fn a_unit_is_never_judged_at_a_load_never_applied() {
         .arg(dir.join("out"))
         .output()
         .unwrap();
+    (served, o)
+}
+
+/// A station whose current command sets the voltage instead (it passes `check`: the command is
+/// well formed): the source never gets its current set-point, and the reference says so.
+#[test]
+fn a_unit_is_never_judged_at_a_load_never_applied() {
+    let dir = temp_dir("load-not-applied");
+    let (served, o) = run_on_edited_station(
+        &dir,
+        "current: 'SOUR:CURR {value}'",
+        "current: 'SOUR:VOLT {value}'",
+    );
     let stdout = String::from_utf8_lossy(&o.stdout);
     assert_eq!(o.status.code(), Some(3), "{stdout}");
     let records = common::records_in(&dir.join("out"));
@@ -516,20 +525,11 @@ fn a_unit_is_never_judged_at_a_load_never_applied() {
 #[test]
 fn a_source_error_stops_before_any_load() {
     let dir = temp_dir("source-error");
-    let served = serve_at(&dir, "25", &[]);
-    let text = std::fs::read_to_string(&served.station).unwrap().replace(
+    let (served, o) = run_on_edited_station(
+        &dir,
         "setup: ['*RST', '*CLS']",
         "setup: ['*RST', '*CLS', 'SYST:BEEP']",
     );
-    let station = dir.join("beep.yaml");
-    std::fs::write(&station, text).unwrap();
-    let o = bin()
-        .args(["run", "test-plans/demo-serial.yaml", "--quiet", "--bench"])
-        .arg(&station)
-        .arg("--out")
-        .arg(dir.join("out"))
-        .output()
-        .unwrap();
     let stdout = String::from_utf8_lossy(&o.stdout);
     assert_eq!(o.status.code(), Some(3), "{stdout}");
     assert!(
