@@ -135,6 +135,9 @@ fn stop_mid_run(signal: &str) {
         "{stdout}"
     );
     let archive = out.join("archive.sqlite");
+    // A write the kill cut short left its temporary file behind: the resume clears it.
+    let stale = run_dir.join(".TM16-322610-p1.json.99999.tmp");
+    std::fs::write(&stale, b"{\"half\": ").unwrap();
     let row = meterproof::archive::Archive::open_read_only(&archive)
         .unwrap()
         .run(&run_id)
@@ -166,6 +169,7 @@ fn stop_mid_run(signal: &str) {
             UnitStatus::Accepted
         ]
     );
+    assert!(!stale.exists(), "the stale temporary file is gone");
     // The interrupted run's files are kept aside, the final ones have the plain names.
     assert_eq!(common::records_of_dir(&run_dir.join("earlier-1")).len(), 4);
     assert!(
