@@ -274,3 +274,55 @@ fn a_retried_reading_is_timed_by_the_attempt_that_was_answered() {
     );
     assert!(first < 0.25, "{first}");
 }
+
+/// A unit reseated on its port: the link opens the port again, checks that the same unit
+/// answers (its serial) and counts the reconnection; another unit in its place, or no unit, is
+/// an error that says so.
+#[test]
+fn a_reseated_unit_is_reopened_and_must_be_the_same_unit() {
+    use meterproof::link::DutLink;
+    use meterproof::link::line::open_port;
+    use meterproof::plan::Quantity;
+    use std::sync::Mutex;
+    let serial_plan = plan("demo-serial.yaml");
+    let LinkSpec::Text(spec) = &serial_plan.link else {
+        panic!("a text link")
+    };
+    let spec = Arc::new((**spec).clone());
+    let mut config = SimConfig::new(1, 2);
+    config.plant_defect = false;
+    let sim = SimBench::new(&config);
+    let first = PtyDevice::spawn(Device::new(sim.meter(0), Faults::default())).unwrap();
+    // Where the unit is now: a reseated unit comes back on another pseudo-terminal here (a
+    // real port keeps its path).
+    let now_at = Arc::new(Mutex::new(first.path.clone()));
+    let settings = spec.port;
+    let at = now_at.clone();
+    let mut link = text::TextLink::new(
+        spec.clone(),
+        open_port(&first.path, settings).unwrap(),
+        "p1",
+    )
+    .with_reopen(Box::new(move || open_port(&at.lock().unwrap(), settings)));
+    let id = link.identify().unwrap();
+    assert!(link.read(Quantity::Voltage, "L").is_ok());
+    // Unplugged, nothing to open: the read fails, saying the link is gone.
+    drop(first);
+    *now_at.lock().unwrap() = "/dev/meterproof-nowhere".into();
+    let e = link.read(Quantity::Voltage, "L").unwrap_err();
+    assert!(
+        matches!(e, meterproof::link::LinkError::Disconnected(_)),
+        "{e}"
+    );
+    // Plugged in again: the same unit, so the read goes on, and the reconnection is counted.
+    let again = PtyDevice::spawn(Device::new(sim.meter(0), Faults::default())).unwrap();
+    *now_at.lock().unwrap() = again.path.clone();
+    assert!(link.read(Quantity::Voltage, "L").is_ok());
+    assert_eq!(link.health().unwrap().reconnects, 1);
+    // Another unit in its place: refused by its serial.
+    drop(again);
+    let other = PtyDevice::spawn(Device::new(sim.meter(1), Faults::default())).unwrap();
+    *now_at.lock().unwrap() = other.path.clone();
+    let e = link.read(Quantity::Voltage, "L").unwrap_err().to_string();
+    assert!(e.contains(&format!("instead of {}", id.serial)), "{e}");
+}

@@ -115,6 +115,14 @@ pub struct LineChannel<W: Wire> {
 }
 
 impl<W: Wire> LineChannel<W> {
+    /// Puts a new byte stream under the channel (a port opened again), forgetting any half
+    /// line of the old one.
+    pub fn replace_wire(&mut self, wire: W) {
+        self.wire = wire;
+        self.pending.clear();
+        self.last_transaction_end = None;
+    }
+
     pub fn new(settings: LineSettings, wire: W, name: &str) -> LineChannel<W> {
         LineChannel {
             settings,

@@ -31,6 +31,9 @@ pub struct LinkHealth {
     pub not_understood: u64,
     /// Times the unit's restart line was seen.
     pub restarts: u64,
+    /// Times the port was lost and opened again (a unit reseated, a cable pulled).
+    #[serde(default)]
+    pub reconnects: u64,
 }
 
 /// A failure on the link to one unit.

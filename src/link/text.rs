@@ -7,11 +7,18 @@ use crate::plan::Quantity;
 use crate::plan::text_link::TextLinkSpec;
 use std::sync::Arc;
 
-/// Opens the port at `path` and returns a link to the unit on it.
+/// Opens the port at `path` and returns a link to the unit on it; a port that is lost later
+/// (a unit reseated) is opened again at the same path.
 pub fn open(path: &str, spec: Arc<TextLinkSpec>) -> Result<Box<dyn DutLink>, LinkError> {
     let port = open_port(path, spec.port)?;
-    Ok(Box::new(TextLink::new(spec, port, path)))
+    let (again, settings) = (path.to_string(), spec.port);
+    Ok(Box::new(TextLink::new(spec, port, path).with_reopen(
+        Box::new(move || open_port(&again, settings)),
+    )))
 }
+
+/// Opens a lost port again.
+pub type Reopen<W> = Box<dyn FnMut() -> Result<W, LinkError> + Send>;
 
 /// The channel settings a text link asks for.
 pub fn line_settings(spec: &TextLinkSpec) -> LineSettings {
@@ -44,12 +51,82 @@ fn number(request: &str, text: &str) -> Result<f64, LinkError> {
 pub struct TextLink<W: Wire> {
     spec: Arc<TextLinkSpec>,
     channel: LineChannel<W>,
+    /// How to open the port again when it is lost; none for a link that cannot.
+    reopen: Option<Reopen<W>>,
+    /// The serial the unit gave when identified: a reopened port must answer with it.
+    serial: Option<String>,
+    reconnects: u64,
 }
 
 impl<W: Wire> TextLink<W> {
     pub fn new(spec: Arc<TextLinkSpec>, wire: W, name: &str) -> TextLink<W> {
         let channel = LineChannel::new(line_settings(&spec), wire, name);
-        TextLink { spec, channel }
+        TextLink {
+            spec,
+            channel,
+            reopen: None,
+            serial: None,
+            reconnects: 0,
+        }
+    }
+
+    /// Lets the link open its port again when it is lost.
+    pub fn with_reopen(mut self, reopen: Reopen<W>) -> TextLink<W> {
+        self.reopen = Some(reopen);
+        self
+    }
+
+    /// Runs `f`; when the port is lost, opens it again once, makes sure the same unit answers
+    /// (its serial), counts the reconnection and runs `f` again.
+    fn reconnecting<T>(
+        &mut self,
+        f: impl Fn(&mut Self) -> Result<T, LinkError>,
+    ) -> Result<T, LinkError> {
+        let lost = match f(self) {
+            Err(LinkError::Disconnected(why)) => why,
+            other => return other,
+        };
+        let Some(reopen) = self.reopen.as_mut() else {
+            return Err(LinkError::Disconnected(lost));
+        };
+        let wire = reopen().map_err(|_| LinkError::Disconnected(lost.clone()))?;
+        self.channel.replace_wire(wire);
+        self.reconnects += 1;
+        if let Some(expected) = self.serial.clone() {
+            let now = self.identify_once()?;
+            if now.serial != expected {
+                return Err(LinkError::Disconnected(format!(
+                    "{lost}; opened again, the port answers as unit {} instead of {expected}",
+                    now.serial
+                )));
+            }
+        }
+        f(self)
+    }
+
+    fn identify_once(&mut self) -> Result<Identity, LinkError> {
+        let spec = self.spec.clone();
+        let id = &spec.identity;
+        let line = self.channel.transact(&id.request, &id.reply.regex)?;
+        let caps = id
+            .reply
+            .regex
+            .captures(&line)
+            .ok_or_else(|| LinkError::Garbled {
+                request: id.request.clone(),
+                reply: line.clone(),
+                why: "it does not match the identity pattern".into(),
+            })?;
+        let group = |name: &str| {
+            caps.name(name)
+                .map(|m| m.as_str().trim().to_string())
+                .unwrap_or_default()
+        };
+        Ok(Identity {
+            model: group("model"),
+            serial: group("serial"),
+            firmware: group("firmware"),
+        })
     }
 
     /// Counters of transactions, retries and skipped lines.
@@ -97,91 +174,25 @@ impl<W: Wire> TextLink<W> {
 
 impl<W: Wire> DutLink for TextLink<W> {
     fn identify(&mut self) -> Result<Identity, LinkError> {
-        let spec = self.spec.clone();
-        let id = &spec.identity;
-        let line = self.channel.transact(&id.request, &id.reply.regex)?;
-        let caps = id
-            .reply
-            .regex
-            .captures(&line)
-            .ok_or_else(|| LinkError::Garbled {
-                request: id.request.clone(),
-                reply: line.clone(),
-                why: "it does not match the identity pattern".into(),
-            })?;
-        let group = |name: &str| {
-            caps.name(name)
-                .map(|m| m.as_str().trim().to_string())
-                .unwrap_or_default()
-        };
-        Ok(Identity {
-            model: group("model"),
-            serial: group("serial"),
-            firmware: group("firmware"),
-        })
+        let id = self.reconnecting(|l| l.identify_once())?;
+        self.serial = Some(id.serial.clone());
+        Ok(id)
     }
 
     fn read(&mut self, quantity: Quantity, channel: &str) -> Result<f64, LinkError> {
-        let spec = self.spec.clone();
-        let q = spec
-            .request_for(quantity)
-            .ok_or_else(|| LinkError::Unsupported {
-                quantity: quantity.name().into(),
-                channel: channel.into(),
-            })?;
-        let request = q.request.replace("{channel}", channel);
-        let text = self.captured(&request, &q.reply.regex, "value")?;
-        let raw: f64 = text.trim().parse().map_err(|_| LinkError::Garbled {
-            request: request.clone(),
-            reply: text.clone(),
-            why: "the value is not a number".into(),
-        })?;
-        let value = q.convert(raw);
-        if !value.is_finite() {
-            return Err(LinkError::Garbled {
-                request,
-                reply: text,
-                why: "the value is not finite".into(),
-            });
-        }
-        Ok(value)
+        self.reconnecting(|l| l.read_once(quantity, channel))
     }
 
     fn write_constant(&mut self, name: &str, channel: &str, value: f64) -> Result<(), LinkError> {
-        self.write_named(name, channel, value)
+        self.reconnecting(|l| l.write_named(name, channel, value))
     }
 
     fn read_raw(&mut self, quantity: Quantity, channel: &str) -> Result<f64, LinkError> {
-        let spec = self.spec.clone();
-        let q = spec
-            .request_for(quantity)
-            .ok_or_else(|| LinkError::Unsupported {
-                quantity: quantity.name().into(),
-                channel: channel.into(),
-            })?;
-        // The raw request where there is one; otherwise the reading itself, unconverted.
-        let (request, pattern) = match &q.raw {
-            Some(raw) => (raw.request.replace("{channel}", channel), &raw.reply.regex),
-            None => (q.request.replace("{channel}", channel), &q.reply.regex),
-        };
-        let text = self.captured(&request, pattern, "value")?;
-        number(&request, &text)
+        self.reconnecting(|l| l.read_raw_once(quantity, channel))
     }
 
     fn read_constant(&mut self, name: &str, channel: &str) -> Result<f64, LinkError> {
-        let spec = self.spec.clone();
-        let readback = spec
-            .writes
-            .iter()
-            .find(|w| w.name == name)
-            .and_then(|w| w.readback.as_ref())
-            .ok_or_else(|| LinkError::Unsupported {
-                quantity: format!("read back {name}"),
-                channel: channel.into(),
-            })?;
-        let request = readback.request.replace("{channel}", channel);
-        let text = self.captured(&request, &readback.reply.regex, "value")?;
-        number(&request, &text)
+        self.reconnecting(|l| l.read_constant_once(name, channel))
     }
 
     fn resolution(&self, quantity: Quantity) -> Option<f64> {
@@ -208,6 +219,68 @@ impl<W: Wire> DutLink for TextLink<W> {
             lines_skipped: s.skipped_lines,
             not_understood: s.not_understood,
             restarts: s.restarts,
+            reconnects: self.reconnects,
         })
+    }
+}
+
+impl<W: Wire> TextLink<W> {
+    fn read_once(&mut self, quantity: Quantity, channel: &str) -> Result<f64, LinkError> {
+        let spec = self.spec.clone();
+        let q = spec
+            .request_for(quantity)
+            .ok_or_else(|| LinkError::Unsupported {
+                quantity: quantity.name().into(),
+                channel: channel.into(),
+            })?;
+        let request = q.request.replace("{channel}", channel);
+        let text = self.captured(&request, &q.reply.regex, "value")?;
+        let raw: f64 = text.trim().parse().map_err(|_| LinkError::Garbled {
+            request: request.clone(),
+            reply: text.clone(),
+            why: "the value is not a number".into(),
+        })?;
+        let value = q.convert(raw);
+        if !value.is_finite() {
+            return Err(LinkError::Garbled {
+                request,
+                reply: text,
+                why: "the value is not finite".into(),
+            });
+        }
+        Ok(value)
+    }
+
+    fn read_raw_once(&mut self, quantity: Quantity, channel: &str) -> Result<f64, LinkError> {
+        let spec = self.spec.clone();
+        let q = spec
+            .request_for(quantity)
+            .ok_or_else(|| LinkError::Unsupported {
+                quantity: quantity.name().into(),
+                channel: channel.into(),
+            })?;
+        // The raw request where there is one; otherwise the reading itself, unconverted.
+        let (request, pattern) = match &q.raw {
+            Some(raw) => (raw.request.replace("{channel}", channel), &raw.reply.regex),
+            None => (q.request.replace("{channel}", channel), &q.reply.regex),
+        };
+        let text = self.captured(&request, pattern, "value")?;
+        number(&request, &text)
+    }
+
+    fn read_constant_once(&mut self, name: &str, channel: &str) -> Result<f64, LinkError> {
+        let spec = self.spec.clone();
+        let readback = spec
+            .writes
+            .iter()
+            .find(|w| w.name == name)
+            .and_then(|w| w.readback.as_ref())
+            .ok_or_else(|| LinkError::Unsupported {
+                quantity: format!("read back {name}"),
+                channel: channel.into(),
+            })?;
+        let request = readback.request.replace("{channel}", channel);
+        let text = self.captured(&request, &readback.reply.regex, "value")?;
+        number(&request, &text)
     }
 }
