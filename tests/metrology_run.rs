@@ -42,6 +42,22 @@ fn every_check_carries_its_budget_and_decision() {
             // acceptance with w = U carries at most about 1 − Φ(k) ≤ 2.3 % of it (ILAC-G8;
             // normal table), a little more for a two-sided limit's second tail.
             let risk = d.risk.expect("a specific risk");
+            // The reference of the step carries the window it stands for, to redo the figure.
+            if c.reference.is_some() {
+                let step = r
+                    .steps
+                    .iter()
+                    .find(|s| s.checks.iter().any(|x| std::ptr::eq(x, c)))
+                    .unwrap();
+                let reading = &step
+                    .references
+                    .iter()
+                    .find(|x| x.quantity == c.quantity)
+                    .expect("the check's reference")
+                    .reading;
+                let (t0, t1) = reading.window_s.expect("its window");
+                assert!(t1 >= t0 && t0 >= step.started_at_s.unwrap());
+            }
             assert!((0.0..=1.0).contains(&risk));
             if d.accepted {
                 assert!(risk < 0.0235, "{risk} for {:?}", c.evaluation);

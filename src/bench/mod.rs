@@ -208,6 +208,10 @@ pub struct ReferenceReading {
     /// Everything the operator typed for this reading, refused entries and corrections included.
     #[serde(skip_serializing_if = "Vec::is_empty", default)]
     pub entries: Vec<operator::TypedEntry>,
+    /// Bench times of the first and last sample of the window the reading stands for, so that
+    /// a reference energy (and its scaling to a register's span) can be redone from the record.
+    #[serde(skip_serializing_if = "Option::is_none", default)]
+    pub window_s: Option<(f64, f64)>,
 }
 
 /// The instrument (or person, or file) that says what really flowed.

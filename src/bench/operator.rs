@@ -267,6 +267,7 @@ impl ReferenceMeter for TypedReference {
             }
         };
         Ok(ReferenceReading {
+            window_s: None,
             value: accepted.0,
             source: "operator".into(),
             taken_at_s: request.window.1,

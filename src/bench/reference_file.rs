@@ -353,6 +353,7 @@ impl FileReference {
         let value = rows.iter().map(|r| r.value).sum::<f64>() / rows.len() as f64;
         let lines: Vec<String> = rows.iter().map(|r| r.line.to_string()).collect();
         Some(ReferenceReading {
+            window_s: None,
             value,
             source: "file".into(),
             taken_at_s: request.window.1,
@@ -388,6 +389,7 @@ impl ReferenceMeter for FileReference {
                 ))
             })?;
         Ok(ReferenceReading {
+            window_s: None,
             value: row.value,
             source: "file".into(),
             taken_at_s: request.window.1,

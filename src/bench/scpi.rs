@@ -188,6 +188,7 @@ impl<W: Wire> ReferenceMeter for ScpiReference<W> {
             self.query(request.quantity)?
         };
         Ok(ReferenceReading {
+            window_s: None,
             value,
             source: "instrument".into(),
             taken_at_s: request.window.1,

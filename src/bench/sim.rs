@@ -701,6 +701,7 @@ impl SimReference {
             q => actual.nominal(q, t1 - t0) * factor,
         };
         ReferenceReading {
+            window_s: None,
             value: round_significant(value, 6),
             source: "instrument".into(),
             taken_at_s: now,

@@ -1155,7 +1155,13 @@ fn take_references(
             load: &step.load,
             window,
         };
-        let reading = reference.read(&request).map_err(|e| e.to_string());
+        let reading = reference
+            .read(&request)
+            .map(|mut r| {
+                r.window_s = Some(window);
+                r
+            })
+            .map_err(|e| e.to_string());
         out.push((quantity, reading));
     }
     out

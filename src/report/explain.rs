@@ -143,6 +143,13 @@ fn reference(w: &mut String, s: &StepRecord, c: &CheckRecord) {
                     .as_deref()
                     .map_or(String::new(), |g| format!(", given as \"{g}\""))
             );
+            if let Some((t0, t1)) = r.reading.window_s {
+                let _ = writeln!(
+                    w,
+                    "   for the sampling window from bench time {t0} s to {t1} s ({} s)",
+                    t1 - t0
+                );
+            }
         }
         None => {
             let _ = writeln!(w, "   none read for this quantity");
