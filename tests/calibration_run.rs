@@ -80,6 +80,26 @@ fn calibration_written_back_brings_every_unit_within_limits() {
             u.calibration.as_ref().unwrap().status,
             CalibrationStatus::Fitted
         );
+        // After the write, a verification reading's resolution is one count at the gain
+        // written (GUM F.2.2.1: δ/√12), not at the nominal gain.
+        let (_, gain) = cal.written.unwrap();
+        let verify = c.steps.iter().find(|s| s.id == "verify-5A").unwrap();
+        let check = &verify.checks[0];
+        let term = check
+            .uncertainty
+            .as_ref()
+            .unwrap()
+            .components
+            .iter()
+            .find(|x| x.name == "resolution of the unit's reading")
+            .unwrap();
+        let c_unit = 100.0 / check.reference.unwrap();
+        let expected = (1.0 / gain.abs()) / 12f64.sqrt() * c_unit;
+        assert!(
+            (term.u - expected).abs() < 1e-12 * expected,
+            "{} vs {expected}",
+            term.u
+        );
         // The new constants reduce the error the verification steps see.
         assert!(
             verification_error(c) < verification_error(u),

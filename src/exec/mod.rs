@@ -558,6 +558,27 @@ fn now_iso() -> String {
     chrono::Local::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, false)
 }
 
+/// The resolution of a reading after the unit's constants were written: a calibrated
+/// quantity is whole counts of the front end divided by the gain written to the unit, so one
+/// count is 1/gain; it replaces the resolution the link states for the nominal front end (a
+/// finer display resolution, as a firmware printing six decimals, is then below one count).
+fn calibrated_resolution(
+    stated: Option<f64>,
+    calibration: Option<&crate::record::CalibrationRecord>,
+    check: &crate::plan::Check,
+) -> Option<f64> {
+    let written_gain = calibration
+        .filter(|c| c.quantity == check.quantity && c.channel == check.channel)
+        .filter(|c| c.status == crate::record::CalibrationStatus::Written)
+        .and_then(|c| c.written)
+        .map(|(_, gain)| gain)
+        .filter(|g| *g != 0.0 && g.is_finite());
+    match written_gain {
+        None => stated,
+        Some(g) => Some(1.0 / g.abs()),
+    }
+}
+
 /// Calibrates every unit still under test; a unit whose constants did not take is tested no
 /// further.
 fn calibrate_units(cal: &CalibrationSpec, bench: &mut Bench, units: &mut [Unit]) {
@@ -869,10 +890,17 @@ fn run_step(
     let resolutions: Vec<Vec<Option<f64>>> = bench
         .positions
         .iter()
-        .map(|p| {
+        .zip(units.iter())
+        .map(|(p, u)| {
             step.checks
                 .iter()
-                .map(|c| p.link.resolution(c.quantity))
+                .map(|c| {
+                    calibrated_resolution(
+                        p.link.resolution(c.quantity),
+                        u.record.calibration.as_ref(),
+                        c,
+                    )
+                })
                 .collect()
         })
         .collect();
