@@ -92,7 +92,7 @@ fn hash_of(value: &Value) -> String {
 }
 
 /// The newest entry's hash, which the next one links to.
-fn newest(conn: &Connection) -> rusqlite::Result<(i64, String)> {
+pub(super) fn newest(conn: &Connection) -> rusqlite::Result<(i64, String)> {
     Ok(conn
         .query_row(
             "SELECT seq, sha256 FROM chain ORDER BY seq DESC LIMIT 1",

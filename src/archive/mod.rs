@@ -16,10 +16,9 @@
 //! implement the same operations.
 
 use crate::exec::{ReadingKey, Recorder};
-use crate::plan::{Plan, Quantity};
+use crate::plan::Plan;
 use crate::record::{Sample, StepRecord, StepStatus, UnitRecord};
 use rusqlite::{Connection, OptionalExtension, params};
-use std::collections::BTreeMap;
 use std::path::Path;
 use std::sync::Mutex;
 
@@ -639,9 +638,10 @@ impl Archive {
             let entry = resume.attempts.entry((position, index)).or_insert(0);
             *entry = (*entry).max(attempt);
             if status == "done" {
-                let mut record: StepRecord = serde_json::from_str(&text)
-                    .map_err(|e| ArchiveError::Corrupt(e.to_string()))?;
-                fill_step_samples(&conn, run_id, position, index, &mut record)?;
+                let corrupt = |e: serde_json::Error| ArchiveError::Corrupt(e.to_string());
+                let mut json: serde_json::Value = serde_json::from_str(&text).map_err(corrupt)?;
+                chain::fill_step_json(&conn, run_id, position as i64, index as i64, &mut json)?;
+                let record: StepRecord = serde_json::from_value(json).map_err(corrupt)?;
                 resume
                     .done
                     .entry(position)
@@ -920,7 +920,8 @@ fn insert_readings_of(conn: &Connection, r: &UnitRecord) -> rusqlite::Result<()>
 fn insert_unit_row(conn: &Connection, r: &UnitRecord) -> rusqlite::Result<()> {
     let hash = crate::record::record_hash(r);
     let text = serde_json::to_string(&stripped(r)).expect("a record serialises");
-    let prev = chain::head(conn)?.unwrap_or_default();
+    // Kept filled for the schema-1 column; the chain entry below is what links the record.
+    let prev = chain::newest(conn)?.1;
     conn.prepare_cached(
         "INSERT INTO units (run_id, position, serial, firmware, status, finished_at, record, record_sha256, prev_sha256)
          VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9)",
@@ -951,67 +952,11 @@ fn insert_unit_row(conn: &Connection, r: &UnitRecord) -> rusqlite::Result<()> {
 const INSERT_READING: &str = "INSERT INTO readings (run_id, position, step_index, attempt, quantity, channel, raw, t_s, value, took_s)
      VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10)";
 
-/// A stored (stripped) unit record with its samples put back from the readings.
+/// A stored (stripped) unit record with its samples put back from the readings: the same
+/// reassembly `verify` hashes (`chain::unit_json`), read into the record type.
 fn reassemble(conn: &Connection, text: &str) -> Result<UnitRecord, ArchiveError> {
-    let mut record: UnitRecord =
-        serde_json::from_str(text).map_err(|e| ArchiveError::Corrupt(e.to_string()))?;
-    let run_id = record.run_id.clone();
-    let position = record.position;
-    for (index, step) in record.steps.iter_mut().enumerate() {
-        fill_step_samples(conn, &run_id, position, index, step)?;
-    }
-    Ok(record)
-}
-
-/// Puts a step record's samples back from the readings of its attempt.
-fn fill_step_samples(
-    conn: &Connection,
-    run_id: &str,
-    position: usize,
-    index: usize,
-    step: &mut StepRecord,
-) -> Result<(), ArchiveError> {
-    // A step that never ran took no readings (see `chain::fill_step_json`).
-    if step.status == StepStatus::NotRun {
-        return Ok(());
-    }
-    let mut stmt = conn.prepare_cached(
-        "SELECT quantity, channel, raw, t_s, value, took_s FROM readings
-         WHERE run_id = ?1 AND position = ?2 AND step_index = ?3 AND attempt = ?4 ORDER BY id",
-    )?;
-    let mut by_key: BTreeMap<(String, String, bool), Vec<Sample>> = BTreeMap::new();
-    let rows = stmt.query_map(
-        params![run_id, position as i64, index as i64, step.attempt as i64],
-        |r| {
-            Ok((
-                r.get::<_, String>(0)?,
-                r.get::<_, String>(1)?,
-                r.get::<_, bool>(2)?,
-                Sample {
-                    t_s: r.get(3)?,
-                    value: r.get(4)?,
-                    took_s: r.get(5)?,
-                },
-            ))
-        },
-    )?;
-    for row in rows {
-        let (q, ch, raw, s) = row?;
-        by_key.entry((q, ch, raw)).or_default().push(s);
-    }
-    let take = |q: Quantity, ch: &str, raw: bool| {
-        by_key
-            .get(&(q.name().to_string(), ch.to_string(), raw))
-            .cloned()
-            .unwrap_or_default()
-    };
-    for c in &mut step.checks {
-        c.samples = take(c.quantity, &c.channel, false);
-    }
-    if let Some(p) = &mut step.calibration_point {
-        p.samples = take(p.quantity, &p.channel, true);
-    }
-    Ok(())
+    serde_json::from_value(chain::unit_json(conn, text)?)
+        .map_err(|e| ArchiveError::Corrupt(e.to_string()))
 }
 
 /// The archive, recording one run.
