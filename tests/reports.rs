@@ -309,17 +309,11 @@ fn reports_are_well_formed_and_can_be_rendered_again_from_the_archive() {
     std::fs::remove_dir_all(&dir).unwrap();
 }
 
-/// Capability by the side a limit bounds: a lower bound (the starting test's register advance)
-/// gives CPL = (mean − bound) / 3s, positive when the lot lies above it; a limit with an
-/// absolute term varies by unit and is handled as a share of each unit's own limit. Checked
-/// against the handbook formulas on the lot's own figures (NIST/SEMATECH e-Handbook 6.1.6, from
-/// memory).
-#[test]
-fn lot_capability_follows_the_side_of_each_limit() {
-    use meterproof::report::summary::LotSummary;
-    let plan = meterproof::plan::Plan::load(Path::new("test-plans/type-tests.yaml")).unwrap();
+/// The records of four simulated units (no planted defect) for each seed, through `plan`.
+fn lot_of(plan: &str, seeds: std::ops::RangeInclusive<u64>) -> Vec<meterproof::record::UnitRecord> {
+    let plan = meterproof::plan::Plan::load(&Path::new("test-plans").join(plan)).unwrap();
     let mut records = Vec::new();
-    for seed in 1..=3 {
+    for seed in seeds {
         let mut config = meterproof::bench::sim::SimConfig::new(seed, 4);
         config.plant_defect = false;
         let mut bench = meterproof::bench::sim::SimBench::new(&config).into_bench();
@@ -330,6 +324,18 @@ fn lot_capability_follows_the_side_of_each_limit() {
             &mut meterproof::exec::Silent,
         ));
     }
+    records
+}
+
+/// Capability by the side a limit bounds: a lower bound (the starting test's register advance)
+/// gives CPL = (mean − bound) / 3s, positive when the lot lies above it; a limit with an
+/// absolute term varies by unit and is handled as a share of each unit's own limit. Checked
+/// against the handbook formulas on the lot's own figures (NIST/SEMATECH e-Handbook 6.1.6, from
+/// memory).
+#[test]
+fn lot_capability_follows_the_side_of_each_limit() {
+    use meterproof::report::summary::LotSummary;
+    let records = lot_of("type-tests.yaml", 1..=3);
     let s = LotSummary::of("lot", &records, &|_| String::new());
     let lower = s
         .checks
@@ -359,20 +365,8 @@ fn lot_capability_follows_the_side_of_each_limit() {
 #[test]
 fn a_limit_that_varies_by_unit_is_said_and_handled() {
     use meterproof::report::summary::LotSummary;
-    let plan = meterproof::plan::Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
     // Three runs: each has its own reference readings, so the limits differ between them.
-    let mut records = Vec::new();
-    for seed in 4..=6 {
-        let mut config = meterproof::bench::sim::SimConfig::new(seed, 4);
-        config.plant_defect = false;
-        let mut bench = meterproof::bench::sim::SimBench::new(&config).into_bench();
-        records.extend(meterproof::exec::run(
-            &plan,
-            &mut bench,
-            &common::ctx(),
-            &mut meterproof::exec::Silent,
-        ));
-    }
+    let records = lot_of("demo.yaml", 4..=6);
     let s = LotSummary::of("lot", &records, &|_| String::new());
     // low-0.1Ib current: ±(1 % + 5 mA), the absolute term a different share at each reading.
     let varying = s
