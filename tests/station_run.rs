@@ -446,3 +446,66 @@ fn a_reference_accuracy_is_stated_or_declared_unknown() {
     drop(served);
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// Directive 2014/32/EU, Annex V (MI-003), Table 2 [published]: class B's maximum permissible
+/// error from Itr to Imax is 2 % at +5…+30 °C and 2.5 % at −10…+5 or +30…+40 °C. The run takes
+/// the band of the station's stated ambient temperature; a station that states none is refused
+/// before any load.
+#[test]
+fn the_directive_class_limits_follow_the_bench_temperature() {
+    let dir = temp_dir("ambient");
+    let plan = std::fs::read_to_string("test-plans/demo-serial.yaml")
+        .unwrap()
+        .replace(
+            "  class: \"1\"          # IEC 62053-21 class 1: active power and energy limits come from the class table",
+            "  class: B\n  class_table: Directive 2014/32/EU\n  transitional_current: 0.5 A\n  minimum_current: 0.25 A",
+        );
+    assert!(plan.contains("class_table"));
+    let plan_path = dir.join("class-b.yaml");
+    std::fs::write(&plan_path, &plan).unwrap();
+    // `check`, with no bench, shows the reference band and says so.
+    let out = bin().arg("check").arg(&plan_path).output().unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{text}{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(text.contains("±2 % (class)"), "{text}");
+    let served = serve(&dir, &[]);
+    let station = std::fs::read_to_string(&served.station).unwrap();
+    // No stated temperature: refused, saying what to add, and no unit is tested.
+    let (code, text, records) = run(
+        plan_path.to_str().unwrap(),
+        &served.station,
+        &dir.join("none"),
+        &[],
+    );
+    assert_eq!(code, 2, "{text}");
+    assert!(text.contains("ambient_temperature"), "{text}");
+    assert!(records.is_empty());
+    // At 35 °C every class check is held to 2.5 %, with the band named as its source.
+    let warm = dir.join("warm.yaml");
+    std::fs::write(&warm, format!("ambient_temperature: 35 °C\n{station}")).unwrap();
+    let (_, text, records) = run(plan_path.to_str().unwrap(), &warm, &dir.join("warm"), &[]);
+    assert_eq!(records.len(), 4, "{text}");
+    assert_eq!(records[0].station.ambient_c, Some(35.0));
+    let class_checks: Vec<_> = records[0]
+        .steps
+        .iter()
+        .flat_map(|s| &s.checks)
+        .filter(|c| matches!(c.tolerance, meterproof::plan::Tolerance::Class { .. }))
+        .collect();
+    assert!(class_checks.len() >= 4);
+    for c in class_checks {
+        let e = c.evaluation.as_ref().expect("every class check evaluated");
+        let basis = match &c.tolerance {
+            meterproof::plan::Tolerance::Class { basis, .. } => basis.clone(),
+            t => panic!("{t:?}"),
+        };
+        assert_eq!(e.limit, 2.5, "{basis}");
+        assert!(basis.contains("+30 to +40 °C"), "{basis}");
+    }
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}

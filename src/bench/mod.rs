@@ -267,6 +267,9 @@ pub struct StationInfo {
     pub description: String,
     pub reference: InstrumentInfo,
     pub source: String,
+    /// The bench's stated ambient temperature, °C (class limits by temperature band use it).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub ambient_c: Option<f64>,
 }
 
 /// One test position and the link to the unit in it.

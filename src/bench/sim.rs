@@ -494,6 +494,8 @@ impl SimBench {
                     ranges: sim_reference_ranges(),
                 },
                 source: "simulated lamp-bank load with switch-on surge".into(),
+                // The simulated bench sits at the usual reference temperature.
+                ambient_c: Some(crate::plan::REFERENCE_AMBIENT_C),
             },
             clock: self.clock.clone(),
             source: SourceHandle::new(source),

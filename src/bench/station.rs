@@ -22,6 +22,8 @@ pub struct Station {
     pub file: String,
     /// Bench seconds per real second: 1 for real benches; more for simulated stations run fast.
     pub time_scale: f64,
+    /// The bench's stated ambient temperature, °C.
+    pub ambient_c: Option<f64>,
     pub positions: Vec<StationPosition>,
     pub source: SourceSpec,
     pub reference: ReferenceSpec,
@@ -76,6 +78,9 @@ struct RawStation {
     description: Option<Text>,
     #[serde(default)]
     simulation: Option<RawSimulation>,
+    /// The bench's ambient temperature as the station states it: "23 °C".
+    #[serde(default)]
+    ambient_temperature: Option<Text>,
     positions: Vec<RawStationPosition>,
     source: RawSource,
     reference: RawReference,
@@ -212,6 +217,20 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
             }
         },
     };
+    let ambient_c = match &raw.ambient_temperature {
+        None => None,
+        Some(t) => match doc.value("ambient_temperature", t, Dimension::Temperature) {
+            Some(c) if (-60.0..=100.0).contains(&c) => Some(c),
+            Some(c) => {
+                doc.error(
+                    "ambient_temperature",
+                    format!("{c} °C is not a bench's temperature (expected −60 to +100 °C)"),
+                );
+                None
+            }
+            None => None,
+        },
+    };
     let mut positions = Vec::new();
     for (i, p) in raw.positions.iter().enumerate() {
         let path = format!("positions[{i}]");
@@ -317,6 +336,7 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
         description: raw.description.map(|t| t.0).unwrap_or_default(),
         file: file.to_string(),
         time_scale: time_scale?,
+        ambient_c,
         positions,
         source: source?,
         reference: reference?,
@@ -598,6 +618,7 @@ pub fn build_bench(
             description: station.description.clone(),
             reference: station.reference.info.clone(),
             source: source_description,
+            ambient_c: station.ambient_c,
         },
         clock: Arc::new(RealClock::scaled(station.time_scale)),
         source: super::SourceHandle::new(source),

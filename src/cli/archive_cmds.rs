@@ -2,7 +2,7 @@
 
 use super::{
     BenchOptions, BenchSpec, CliError, TerminalReporter, build_bench, exit_status, finish_run,
-    print_json, print_summary, write_file, write_outputs,
+    plan_at_bench, print_json, print_summary, write_file, write_outputs,
 };
 use crate::archive::{Archive, RunFilter, RunRecorder};
 use crate::exec::{self, RunContext};
@@ -102,6 +102,7 @@ pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
     let templates =
         Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
     let (mut bench, mut notes) = build_bench(&spec, &plan, args)?;
+    let plan = plan_at_bench(plan, &bench)?;
     let state = archive.resume_state(&run.run_id).map_err(db)?;
     notes.insert(0, format!("plan as archived (SHA-256 {})", run.plan_sha256));
     let ctx = RunContext {

@@ -495,6 +495,7 @@ fn run(args: &RunArgs) -> Result<i32, CliError> {
         }
     };
     let (mut bench, notes) = build_bench(&spec, &plan, args)?;
+    let plan = plan_at_bench(plan, &bench)?;
     if let Some(mut r) = file_reference {
         let now = chrono::Local::now().fixed_offset();
         r.anchor(now - chrono::Duration::microseconds((bench.clock.now_s() * 1e6) as i64));
@@ -750,6 +751,22 @@ impl BenchOptions for RunArgs {
     fn allow_overdue_reference(&self) -> Option<&str> {
         self.allow_overdue_reference.as_deref()
     }
+}
+
+/// The plan with its class limits looked up at the bench's stated ambient temperature, where
+/// they depend on it (a plan is checked without a bench; a run always knows its bench).
+fn plan_at_bench(plan: Plan, bench: &Bench) -> Result<Plan, CliError> {
+    if !plan.class_depends_on_ambient() {
+        return Ok(plan);
+    }
+    let Some(ambient_c) = bench.station.ambient_c else {
+        return Err(CliError::Usage(format!(
+            "the plan's class limits ({}) depend on the ambient temperature, and station \"{}\" does not state it: add ambient_temperature: \"23 °C\" (as measured at the bench) to the station file",
+            plan.ratings.class_table.as_deref().unwrap_or_default(),
+            bench.station.id
+        )));
+    };
+    plan.at_ambient(Some(ambient_c)).map_err(CliError::Plan)
 }
 
 fn build_bench(

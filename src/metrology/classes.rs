@@ -45,6 +45,10 @@ struct Table {
     energy: Energy,
     base: Base,
     classes: Vec<String>,
+    /// Ambient temperature ranges (°C, inclusive) the table holds for; empty for a table of
+    /// reference conditions.
+    #[serde(default)]
+    ambient: Vec<[f64; 2]>,
     rows: Vec<Row>,
 }
 
@@ -139,6 +143,136 @@ pub enum ClassError {
     },
     #[error("class {class} tables need the meter's {what}")]
     MissingRating { class: String, what: &'static str },
+    #[error("class {class} has no table from \"{standard}\"; its tables come from: {known}")]
+    UnknownStandard {
+        class: String,
+        standard: String,
+        known: String,
+    },
+    #[error(
+        "the {standard} limits for class {class} depend on the ambient temperature: the bench must state it (ambient_temperature in the station file)"
+    )]
+    NeedsAmbient { class: String, standard: String },
+    #[error(
+        "{standard} gives class {class} no limits at an ambient temperature of {ambient_c} °C; its bands cover {bands}"
+    )]
+    OutsideAmbient {
+        class: String,
+        standard: String,
+        ambient_c: f64,
+        bands: String,
+    },
+}
+
+/// Which of a class's tables applies: a named standard (or the class's table of reference
+/// conditions when none is named), and the bench's ambient temperature for tables by band.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct TableChoice<'a> {
+    pub standard: Option<&'a str>,
+    pub ambient_c: Option<f64>,
+}
+
+/// The standards whose tables give limits for `class` (first the default one).
+pub fn standards_for(class: &str, energy: Energy, base: Base) -> Vec<String> {
+    let mut out: Vec<String> = Vec::new();
+    for t in &DATA.tables {
+        if t.energy == energy
+            && t.base == base
+            && t.classes.iter().any(|c| c == class)
+            && !out.contains(&t.standard)
+        {
+            out.push(t.standard.clone());
+        }
+    }
+    out
+}
+
+/// Whether the limits of `class` from `standard` depend on the ambient temperature.
+pub fn depends_on_ambient(class: &str, energy: Energy, base: Base, standard: &str) -> bool {
+    DATA.tables.iter().any(|t| {
+        t.energy == energy
+            && t.base == base
+            && t.standard == standard
+            && t.classes.iter().any(|c| c == class)
+            && !t.ambient.is_empty()
+    })
+}
+
+fn band_text(bands: &[[f64; 2]]) -> String {
+    bands
+        .iter()
+        .map(|[lo, hi]| format!("{lo:+} to {hi:+} °C"))
+        .collect::<Vec<_>>()
+        .join(" or ")
+}
+
+/// The table of `class` that `choice` selects.
+fn table_for(
+    class: &str,
+    energy: Energy,
+    base: Base,
+    choice: &TableChoice,
+) -> Result<&'static Table, ClassError> {
+    let of_class: Vec<&'static Table> = DATA
+        .tables
+        .iter()
+        .filter(|t| t.energy == energy && t.base == base && t.classes.iter().any(|c| c == class))
+        .collect();
+    if of_class.is_empty() {
+        return Err(ClassError::Unknown {
+            class: class.into(),
+            energy: energy_name(energy),
+            base,
+            known: known_classes(energy, base).join(", "),
+        });
+    }
+    let standard = match choice.standard {
+        Some(s) => s.to_string(),
+        // The default is the class's table of reference conditions, else its first table.
+        None => of_class
+            .iter()
+            .find(|t| t.ambient.is_empty())
+            .unwrap_or(&of_class[0])
+            .standard
+            .clone(),
+    };
+    let of_standard: Vec<&'static Table> = of_class
+        .iter()
+        .copied()
+        .filter(|t| t.standard == standard)
+        .collect();
+    if of_standard.is_empty() {
+        return Err(ClassError::UnknownStandard {
+            class: class.into(),
+            standard,
+            known: standards_for(class, energy, base).join(", "),
+        });
+    }
+    if let Some(t) = of_standard.iter().find(|t| t.ambient.is_empty()) {
+        return Ok(t);
+    }
+    let ambient_c = choice.ambient_c.ok_or_else(|| ClassError::NeedsAmbient {
+        class: class.into(),
+        standard: standard.clone(),
+    })?;
+    of_standard
+        .iter()
+        .find(|t| {
+            t.ambient
+                .iter()
+                .any(|[lo, hi]| ambient_c >= *lo && ambient_c <= *hi)
+        })
+        .copied()
+        .ok_or_else(|| ClassError::OutsideAmbient {
+            class: class.into(),
+            standard,
+            ambient_c,
+            bands: of_standard
+                .iter()
+                .map(|t| band_text(&t.ambient))
+                .collect::<Vec<_>>()
+                .join("; "),
+        })
 }
 
 fn energy_name(e: Energy) -> &'static str {
@@ -156,6 +290,9 @@ fn pf_matches(condition: &str, energy: Energy, phase_deg: f64) -> bool {
         (Energy::Active, "1") => near(0.0),
         (Energy::Active, "0.5i") => near(60.0),
         (Energy::Active, "0.8c") => near(-(0.8f64.acos().to_degrees())),
+        (Energy::Active, "0.5i..0.8c") => {
+            (-(0.8f64.acos().to_degrees()) - TOL..=60.0 + TOL).contains(&phase_deg)
+        }
         (Energy::Reactive, "1") => near(90.0) || near(-90.0),
         (Energy::Reactive, "0.5i") => near(30.0),
         (Energy::Reactive, "0.5c") => near(-30.0),
@@ -189,13 +326,27 @@ fn row_text(row: &Row, base: Base) -> String {
     )
 }
 
+/// "IEC 62053-21:2003", or the name alone where it carries its year ("Directive 2014/32/EU").
+fn standard_text(table: &Table) -> String {
+    if table.standard.contains(&table.edition) {
+        table.standard.clone()
+    } else {
+        format!("{}:{}", table.standard, table.edition)
+    }
+}
+
 /// The class names known for an energy and base.
 pub fn known_classes(energy: Energy, base: Base) -> Vec<String> {
     DATA.tables
         .iter()
         .filter(|t| t.energy == energy && t.base == base)
         .flat_map(|t| t.classes.clone())
-        .collect()
+        .fold(Vec::new(), |mut known, c| {
+            if !known.contains(&c) {
+                known.push(c);
+            }
+            known
+        })
 }
 
 /// The limit for `class` at a load of `current_a` amperes and `phase_deg`.
@@ -205,19 +356,9 @@ pub fn limit(
     currents: &Currents,
     current_a: f64,
     phase_deg: f64,
+    choice: &TableChoice,
 ) -> Result<ClassLimit, ClassError> {
-    let table = DATA
-        .tables
-        .iter()
-        .find(|t| {
-            t.energy == energy && t.base == currents.base && t.classes.iter().any(|c| c == class)
-        })
-        .ok_or_else(|| ClassError::Unknown {
-            class: class.into(),
-            energy: energy_name(energy),
-            base: currents.base,
-            known: known_classes(energy, currents.base).join(", "),
-        })?;
+    let table = table_for(class, energy, currents.base, choice)?;
     let eps = 1e-9 * currents.max_a;
     for row in &table.rows {
         let lo = bound_a(row.from, currents).ok_or_else(|| ClassError::MissingRating {
@@ -239,9 +380,8 @@ pub fn limit(
             return Ok(ClassLimit {
                 percent: row.limits[class],
                 basis: format!(
-                    "{}:{} class {class}, {}{provenance}; {}",
-                    table.standard,
-                    table.edition,
+                    "{} class {class}, {}{provenance}; {}",
+                    standard_text(table),
                     row_text(row, table.base),
                     table.table
                 ),
@@ -318,7 +458,9 @@ mod tests {
     fn iec_62053_21_class_1_and_2() {
         let c = ib(5.0, 60.0);
         let at = |class: &str, i: f64, phi: f64| {
-            limit(class, Energy::Active, &c, i, phi).unwrap().percent
+            limit(class, Energy::Active, &c, i, phi, &TableChoice::default())
+                .unwrap()
+                .percent
         };
         assert_eq!(at("1", 0.25, 0.0), 1.5); // 0.05 Ib
         assert_eq!(at("1", 0.5, 0.0), 1.0); // 0.1 Ib
@@ -328,7 +470,9 @@ mod tests {
         assert_eq!(at("1", 0.5, 60.0), 1.5); // 0.1 Ib at 0.5 inductive
         assert_eq!(at("1", 1.0, 60.0), 1.0); // 0.2 Ib
         assert_eq!(at("2", 5.0, -36.87), 2.0); // 0.8 capacitive
-        let basis = limit("1", Energy::Active, &c, 5.0, 0.0).unwrap().basis;
+        let basis = limit("1", Energy::Active, &c, 5.0, 0.0, &TableChoice::default())
+            .unwrap()
+            .basis;
         assert!(
             basis.starts_with("IEC 62053-21:2003 class 1, 0.1 Ib ≤ I ≤ Imax at PF 1"),
             "{basis}"
@@ -346,7 +490,9 @@ mod tests {
             min_a: None,
         };
         let at = |class: &str, i: f64, phi: f64| {
-            limit(class, Energy::Active, &c, i, phi).unwrap().percent
+            limit(class, Energy::Active, &c, i, phi, &TableChoice::default())
+                .unwrap()
+                .percent
         };
         assert_eq!(at("0.2 S", 0.05, 0.0), 0.4); // 0.01 In
         assert_eq!(at("0.2 S", 5.0, 0.0), 0.2);
@@ -360,7 +506,9 @@ mod tests {
     fn iec_62053_23_reactive() {
         let c = ib(5.0, 60.0);
         let at = |class: &str, i: f64, phi: f64| {
-            limit(class, Energy::Reactive, &c, i, phi).unwrap().percent
+            limit(class, Energy::Reactive, &c, i, phi, &TableChoice::default())
+                .unwrap()
+                .percent
         };
         assert_eq!(at("2", 0.3, 90.0), 2.5);
         assert_eq!(at("3", 5.0, 90.0), 3.0);
@@ -377,7 +525,11 @@ mod tests {
             max_a: 40.0,
             min_a: Some(0.25),
         };
-        let at = |class: &str, i: f64| limit(class, Energy::Active, &c, i, 0.0).unwrap().percent;
+        let at = |class: &str, i: f64| {
+            limit(class, Energy::Active, &c, i, 0.0, &TableChoice::default())
+                .unwrap()
+                .percent
+        };
         assert_eq!(at("A", 0.3), 2.5);
         assert_eq!(at("B", 0.3), 1.5);
         assert_eq!(at("C", 0.3), 1.0);
@@ -385,29 +537,157 @@ mod tests {
         assert_eq!(at("B", 5.0), 1.0);
         assert_eq!(at("C", 40.0), 0.5);
         assert!(
-            limit("B", Energy::Active, &c, 0.1, 0.0).is_err(),
+            limit("B", Energy::Active, &c, 0.1, 0.0, &TableChoice::default()).is_err(),
             "below Imin"
         );
         assert!(
-            limit("B", Energy::Active, &c, 5.0, 60.0).is_err(),
+            limit("B", Energy::Active, &c, 5.0, 60.0, &TableChoice::default()).is_err(),
             "PF 0.5 is not in the table"
+        );
+    }
+
+    /// Directive 2014/32/EU, Annex V (MI-003), Table 2 [published; decoded in the domain notes
+    /// §3]: classes A, B, C by current range and ambient temperature band.
+    #[test]
+    fn directive_2014_32_annex_v_by_temperature_band() {
+        let c = Currents {
+            base: Base::Itr,
+            base_a: 0.5,
+            max_a: 40.0,
+            min_a: Some(0.25),
+        };
+        let at = |class: &str, i: f64, phi: f64, t: f64| {
+            let choice = TableChoice {
+                standard: Some("Directive 2014/32/EU"),
+                ambient_c: Some(t),
+            };
+            limit(class, Energy::Active, &c, i, phi, &choice)
+                .unwrap()
+                .percent
+        };
+        // Imin <= I < Itr, the four bands, classes A / B / C.
+        for (t, a, b, cc) in [
+            (23.0, 3.5, 2.0, 1.0),
+            (35.0, 5.0, 2.5, 1.3),
+            (-5.0, 5.0, 2.5, 1.3),
+            (45.0, 7.0, 3.5, 1.7),
+            (-15.0, 7.0, 3.5, 1.7),
+            (60.0, 9.0, 4.0, 2.0),
+            (-30.0, 9.0, 4.0, 2.0),
+        ] {
+            assert_eq!(at("A", 0.3, 0.0, t), a, "A at {t} °C");
+            assert_eq!(at("B", 0.3, 0.0, t), b, "B at {t} °C");
+            assert_eq!(at("C", 0.3, 0.0, t), cc, "C at {t} °C");
+        }
+        // Itr <= I <= Imax.
+        for (t, a, b, cc) in [
+            (23.0, 3.5, 2.0, 0.7),
+            (35.0, 4.5, 2.5, 1.0),
+            (50.0, 7.0, 3.5, 1.3),
+            (65.0, 9.0, 4.0, 1.5),
+        ] {
+            assert_eq!(at("A", 40.0, 0.0, t), a, "A at {t} °C");
+            assert_eq!(at("B", 5.0, 0.0, t), b, "B at {t} °C");
+            assert_eq!(at("C", 0.5, 0.0, t), cc, "C at {t} °C");
+        }
+        // The limits hold across the rated power-factor range, 0.5 inductive to 0.8 capacitive.
+        assert_eq!(at("B", 5.0, 60.0, 23.0), 2.0);
+        assert_eq!(at("B", 5.0, -36.87, 23.0), 2.0);
+        assert_eq!(at("B", 5.0, 25.84, 23.0), 2.0); // PF 0.9 inductive
+        // A shared edge takes the better band; +30 °C is still the reference band.
+        assert_eq!(at("C", 5.0, 0.0, 30.0), 0.7);
+        assert_eq!(at("C", 5.0, 0.0, 5.0), 0.7);
+        let choice = TableChoice {
+            standard: Some("Directive 2014/32/EU"),
+            ambient_c: Some(23.0),
+        };
+        let basis = limit("B", Energy::Active, &c, 5.0, 0.0, &choice)
+            .unwrap()
+            .basis;
+        assert!(
+            basis.starts_with("Directive 2014/32/EU class B, 1 Itr ≤ I ≤ Imax"),
+            "{basis}"
+        );
+        assert!(
+            basis.contains("Annex V (MI-003), Table 2, ambient +5 to +30 °C"),
+            "{basis}"
+        );
+        assert!(!basis.contains("memory"), "{basis}");
+        // Beyond the bands, at PF 0.5 capacitive, with no ambient, or from a standard the class
+        // has no table in: refused, saying why.
+        let e = limit(
+            "B",
+            Energy::Active,
+            &c,
+            5.0,
+            0.0,
+            &TableChoice {
+                ambient_c: Some(75.0),
+                ..choice
+            },
+        )
+        .unwrap_err()
+        .to_string();
+        assert!(e.contains("+55 to +70 °C") && e.contains("75 °C"), "{e}");
+        assert!(limit("B", Energy::Active, &c, 5.0, -60.0, &choice).is_err());
+        let e = limit(
+            "B",
+            Energy::Active,
+            &c,
+            5.0,
+            0.0,
+            &TableChoice {
+                ambient_c: None,
+                ..choice
+            },
+        )
+        .unwrap_err()
+        .to_string();
+        assert!(e.contains("ambient_temperature"), "{e}");
+        let e = limit("1", Energy::Active, &ib(5.0, 60.0), 5.0, 0.0, &choice)
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("IEC 62053-21"), "{e}");
+        // With no standard named, A/B/C keep their reference-conditions table (EN 50470-3).
+        assert!(!depends_on_ambient(
+            "B",
+            Energy::Active,
+            Base::Itr,
+            "EN 50470-3"
+        ));
+        assert!(depends_on_ambient(
+            "B",
+            Energy::Active,
+            Base::Itr,
+            "Directive 2014/32/EU"
+        ));
+        assert_eq!(
+            standards_for("B", Energy::Active, Base::Itr),
+            ["EN 50470-3", "Directive 2014/32/EU"]
         );
     }
 
     #[test]
     fn outside_the_table_says_where_the_rows_are() {
         let c = ib(5.0, 60.0);
-        let e = limit("1", Energy::Active, &c, 0.1, 0.0)
+        let e = limit("1", Energy::Active, &c, 0.1, 0.0, &TableChoice::default())
             .unwrap_err()
             .to_string();
         assert!(e.contains("0.05 Ib ≤ I < 0.1 Ib at PF 1"), "{e}");
         assert!(
-            limit("1", Energy::Active, &c, 5.0, 45.0).is_err(),
+            limit("1", Energy::Active, &c, 5.0, 45.0, &TableChoice::default()).is_err(),
             "PF 0.707 is not in the table"
         );
-        let e = limit("0.2 S", Energy::Active, &c, 5.0, 0.0)
-            .unwrap_err()
-            .to_string();
+        let e = limit(
+            "0.2 S",
+            Energy::Active,
+            &c,
+            5.0,
+            0.0,
+            &TableChoice::default(),
+        )
+        .unwrap_err()
+        .to_string();
         assert!(e.contains("known: 1, 2"), "{e}");
     }
 

@@ -13,6 +13,7 @@ mod validate_link;
 
 pub use locate::Position;
 pub use raw::{RawPort, Text};
+pub use validate::REFERENCE_AMBIENT_C;
 pub use validate::{Document, MAX_SHOWN_ERRORS, PlanError, PlanErrors, counted_from_one};
 pub use validate_link::port_settings;
 
@@ -106,6 +107,11 @@ pub struct Ratings {
     pub class: String,
     /// Class for reactive energy, if the meter has one.
     pub reactive_class: Option<String>,
+    /// The standard whose table gives the class limits ("Directive 2014/32/EU"); the class's
+    /// table of reference conditions when none.
+    pub class_table: Option<String>,
+    /// The bench's ambient temperature (°C) the class limits were looked up at, when known.
+    pub ambient_c: Option<f64>,
     /// Itr and Imin (EN 50470-3 classes).
     pub transitional_current: Option<f64>,
     pub minimum_current: Option<f64>,
@@ -437,13 +443,32 @@ impl Plan {
 
     /// Validates a plan given as text; `file` names it in error messages.
     pub fn from_text(file: &str, text: &str) -> Result<Plan, PlanErrors> {
-        let mut plan = validate::validate(file, text)?;
+        Plan::from_text_at(file, text, None)
+    }
+
+    /// As [`Plan::from_text`], looking class limits up at the bench's ambient temperature.
+    pub fn from_text_at(
+        file: &str,
+        text: &str,
+        ambient_c: Option<f64>,
+    ) -> Result<Plan, PlanErrors> {
+        let mut plan = validate::validate(file, text, ambient_c)?;
         plan.source = PlanSource {
             file: file.to_string(),
             text: text.to_string(),
             sha256: sha256_hex(text.as_bytes()),
         };
         Ok(plan)
+    }
+
+    /// The same plan with its class limits looked up at the bench's ambient temperature.
+    pub fn at_ambient(&self, ambient_c: Option<f64>) -> Result<Plan, PlanErrors> {
+        Plan::from_text_at(&self.source.file, &self.source.text, ambient_c)
+    }
+
+    /// Whether the plan's class limits depend on the bench's ambient temperature.
+    pub fn class_depends_on_ambient(&self) -> bool {
+        validate::class_depends_on_ambient(&self.ratings)
     }
 
     pub fn check_count(&self) -> usize {

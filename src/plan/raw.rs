@@ -141,6 +141,9 @@ pub struct RawRatings {
     pub class: Text,
     #[serde(default)]
     pub reactive_class: Option<Text>,
+    /// The standard whose table gives the class limits, where a class has more than one.
+    #[serde(default)]
+    pub class_table: Option<Text>,
     #[serde(default)]
     pub transitional_current: Option<Text>,
     #[serde(default)]

@@ -26,6 +26,7 @@ pub enum Dimension {
     Percent,
     Ratio,
     Resistance,
+    Temperature,
 }
 
 impl Dimension {
@@ -45,6 +46,7 @@ impl Dimension {
             Dimension::Percent => "%",
             Dimension::Ratio => "",
             Dimension::Resistance => "Ω",
+            Dimension::Temperature => "°C",
         }
     }
 
@@ -64,6 +66,7 @@ impl Dimension {
             Dimension::Percent => "a percentage",
             Dimension::Ratio => "a plain number",
             Dimension::Resistance => "a resistance",
+            Dimension::Temperature => "a temperature",
         }
     }
 
@@ -83,6 +86,7 @@ impl Dimension {
             Dimension::Percent => "0.5 %",
             Dimension::Ratio => "0.5",
             Dimension::Resistance => "10 mΩ",
+            Dimension::Temperature => "23 °C",
         }
     }
 }
@@ -219,6 +223,8 @@ const PLAIN_UNITS: &[(&str, Dimension, f64)] = &[
     ("min", Dimension::Time, 60.0),
     ("h", Dimension::Time, 3600.0),
     ("ohm", Dimension::Resistance, 1.0),
+    ("°C", Dimension::Temperature, 1.0),
+    ("degC", Dimension::Temperature, 1.0),
 ];
 
 /// Units that take an SI prefix.

@@ -145,6 +145,8 @@ pub struct Document<'a> {
     /// Mistakes found so far, with whether each points at a key (not its value); positions
     /// are looked up once, at the end, for the paths that need them.
     errors: Vec<(PlanError, bool)>,
+    /// The bench's ambient temperature (°C), for class tables by temperature band.
+    ambient_c: Option<f64>,
 }
 
 pub(super) type Ctx<'a> = Document<'a>;
@@ -172,6 +174,7 @@ impl<'a> Document<'a> {
                 file,
                 text,
                 errors: Vec::new(),
+                ambient_c: None,
             },
         ))
     }
@@ -332,7 +335,9 @@ fn join_path(prefix: &str, inner: &str) -> String {
 }
 
 /// Validates a whole plan text.
-pub fn validate(file: &str, text: &str) -> Result<Plan, PlanErrors> {
+/// Reads and checks a plan; `ambient_c` is the bench's ambient temperature, where known, for
+/// class limits that depend on it.
+pub fn validate(file: &str, text: &str, ambient_c: Option<f64>) -> Result<Plan, PlanErrors> {
     // Straight from the text when the top level reads: no tree of the whole document is built,
     // so memory stays a small multiple of the text however many steps there are.
     let direct =
@@ -342,6 +347,7 @@ pub fn validate(file: &str, text: &str) -> Result<Plan, PlanErrors> {
             file,
             text,
             errors: Vec::new(),
+            ambient_c,
         };
         let raw_steps: Vec<Option<RawStep>> = std::mem::take(&mut raw.steps)
             .into_iter()
@@ -358,6 +364,7 @@ pub fn validate(file: &str, text: &str) -> Result<Plan, PlanErrors> {
     }
     // The top level has a mistake: read it as a tree, to report every mistake with its place.
     let (mut document, mut ctx) = Document::parse(file, text)?;
+    ctx.ambient_c = ambient_c;
     // Steps are taken out and read one by one (each dropped once read), so that a plan of many
     // steps is held once, not copied; and read even when the top level failed, so that all
     // their mistakes show.
@@ -804,7 +811,7 @@ fn ratings(ctx: &mut Ctx, raw: &RawPlan) -> Option<Ratings> {
             }
         },
     };
-    Some(Ratings {
+    let ratings = Ratings {
         nominal_voltage,
         base_current,
         base_current_kind: base_kind,
@@ -812,13 +819,36 @@ fn ratings(ctx: &mut Ctx, raw: &RawPlan) -> Option<Ratings> {
         frequency,
         class,
         reactive_class: r.reactive_class.as_ref().map(|t| t.0.trim().to_string()),
+        class_table: r.class_table.as_ref().map(|t| t.0.trim().to_string()),
+        ambient_c: ctx.ambient_c,
         transitional_current,
         minimum_current,
         meter_constant,
         elements,
         shunt,
-    })
+    };
+    if let (Some(table), Ok(currents)) = (
+        &ratings.class_table,
+        class_currents(&ratings, &ratings.class),
+    ) {
+        let known = classes::standards_for(&ratings.class, classes::Energy::Active, currents.base);
+        if !known.contains(table) {
+            ctx.error(
+                "ratings.class_table",
+                format!(
+                    "class {} has no table from \"{table}\"; write one of: {}",
+                    ratings.class,
+                    known.join(", ")
+                ),
+            );
+        }
+    }
+    Some(ratings)
 }
+
+/// The temperature a plan read without a bench shows temperature-banded class limits at: the
+/// usual reference temperature of meter tests (IEC 62052-11, EN 50470-1: 23 °C; from memory).
+pub const REFERENCE_AMBIENT_C: f64 = 23.0;
 
 /// The currents a class lookup needs, for the ratings' kind of class.
 fn class_currents(ratings: &Ratings, class: &str) -> Result<classes::Currents, String> {
@@ -842,6 +872,22 @@ fn class_currents(ratings: &Ratings, class: &str) -> Result<classes::Currents, S
         max_a: ratings.max_current,
         min_a: ratings.minimum_current,
     })
+}
+
+/// Whether the ratings' active-energy class limits depend on the bench's ambient temperature.
+pub(super) fn class_depends_on_ambient(ratings: &Ratings) -> bool {
+    let (Some(standard), Ok(currents)) = (
+        ratings.class_table.as_deref(),
+        class_currents(ratings, &ratings.class),
+    ) else {
+        return false;
+    };
+    classes::depends_on_ambient(
+        &ratings.class,
+        classes::Energy::Active,
+        currents.base,
+        standard,
+    )
 }
 
 /// The class limit for `quantity` at `load`.
@@ -869,8 +915,34 @@ fn class_limit(
         }
     };
     let currents = class_currents(ratings, &class)?;
-    classes::limit(&class, energy, &currents, load.current, load.phase_deg)
-        .map(|l| (l.percent, l.basis))
+    let standard = match energy {
+        classes::Energy::Active => ratings.class_table.as_deref(),
+        classes::Energy::Reactive => None,
+    };
+    let by_band =
+        standard.is_some_and(|s| classes::depends_on_ambient(&class, energy, currents.base, s));
+    // A plan read with no bench (`check`) is shown at the reference temperature; a run reads
+    // the plan again at its bench's stated temperature.
+    let (ambient_c, assumed) = match ratings.ambient_c {
+        None if by_band => (Some(REFERENCE_AMBIENT_C), true),
+        a => (a, false),
+    };
+    let choice = classes::TableChoice {
+        standard,
+        ambient_c,
+    };
+    classes::limit(&class, energy, &currents, load.current, load.phase_deg, &choice)
+        .map(|l| {
+            let basis = if assumed {
+                format!(
+                    "{} (shown at {REFERENCE_AMBIENT_C} °C; a run takes its bench's ambient temperature)",
+                    l.basis
+                )
+            } else {
+                l.basis
+            };
+            (l.percent, basis)
+        })
         .map_err(|e| e.to_string())
 }
 
