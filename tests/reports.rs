@@ -391,3 +391,75 @@ fn a_limit_that_varies_by_unit_is_said_and_handled() {
     assert!((varying.cp.unwrap() - 2.0 / (6.0 * sd)).abs() < 1e-9);
     assert!((varying.cpk.unwrap() - (1.0 - mean.abs()) / (3.0 * sd)).abs() < 1e-9);
 }
+
+/// The lot's global risks (JCGM 106:2012, 9.5) are those of a normal process with the lot's
+/// mean and its own spread σ₀ = √(s² − u²), measured with the units' RMS standard uncertainty,
+/// against the tolerance and the units' mean acceptance limit: recomputed here from the records
+/// (the integral itself is checked against Deaver's published figures in metrology::risk).
+#[test]
+fn the_lot_summary_gives_the_rule_s_global_risks() {
+    use meterproof::metrology::risk::{Interval, global_risk};
+    use meterproof::report::summary::LotSummary;
+    let records = lot_of("demo.yaml", 7..=12);
+    let s = LotSummary::of("lot", &records, &|_| String::new());
+    let c = s
+        .checks
+        .iter()
+        .find(|c| c.step == "basic-Ib" && c.quantity == "active_power")
+        .unwrap();
+    assert!(!c.limit_varies);
+    let checks: Vec<_> = records
+        .iter()
+        .flat_map(|r| &r.steps)
+        .filter(|st| st.id == "basic-Ib")
+        .flat_map(|st| &st.checks)
+        .filter(|k| k.quantity.name() == "active_power")
+        .collect();
+    let errors: Vec<f64> = checks
+        .iter()
+        .map(|k| k.evaluation.as_ref().unwrap().error)
+        .collect();
+    let n = errors.len() as f64;
+    let mean = errors.iter().sum::<f64>() / n;
+    let sd = (errors.iter().map(|a| (a - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
+    let u = (checks
+        .iter()
+        .map(|k| k.uncertainty.as_ref().unwrap().combined.powi(2))
+        .sum::<f64>()
+        / n)
+        .sqrt();
+    let al = checks
+        .iter()
+        .map(|k| k.decision.as_ref().unwrap().acceptance_limit)
+        .sum::<f64>()
+        / n;
+    let sigma = (sd * sd - u * u).max(0.0).sqrt();
+    assert!((c.process_sd.unwrap() - sigma).abs() < 1e-12);
+    let expected = global_risk(
+        mean,
+        sigma,
+        u,
+        Interval::symmetric(c.tolerance_limit),
+        Interval::symmetric(al),
+    )
+    .unwrap();
+    let got = c.global_risk.unwrap();
+    let close = |a: f64, b: f64| (a - b).abs() <= 1e-9 * b.abs().max(1e-300);
+    assert!(
+        close(got.consumer, expected.consumer),
+        "{got:?} {expected:?}"
+    );
+    assert!(
+        close(got.producer, expected.producer),
+        "{got:?} {expected:?}"
+    );
+    assert!(got.consumer < 0.01 && got.producer < 0.5, "{got:?}");
+    // And in the spreadsheet.
+    let csv = String::from_utf8(s.csv().unwrap()).unwrap();
+    assert!(
+        csv.lines()
+            .next()
+            .unwrap()
+            .ends_with("global_consumer_risk,global_producer_risk")
+    );
+}

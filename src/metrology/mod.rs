@@ -12,6 +12,7 @@ pub mod compare;
 pub mod decision;
 pub mod fit;
 pub mod pulses;
+pub mod risk;
 pub mod stats;
 pub mod tolerance;
 pub mod uncertainty;

@@ -32,6 +32,13 @@ pub struct CheckStats {
     /// The limit differs from unit to unit (a limit with an absolute term, at readings that
     /// differ): capability is then computed on each error as a share of its own limit.
     pub limit_varies: bool,
+    /// The process's own spread once the measurement's share is taken out,
+    /// σ₀ = √(s² − u_m²), in the unit the indices use; absent with fewer than two units.
+    pub process_sd: Option<f64>,
+    /// Global risks of the plan's decision rule for this lot's spread (JCGM 106:2012, 9.5):
+    /// the share of units expected non-conforming yet accepted (consumer's) and conforming yet
+    /// rejected (producer's).
+    pub global_risk: Option<crate::metrology::risk::GlobalRisk>,
     /// Inline SVG histogram, marked safe when rendered.
     #[serde(skip)]
     pub histogram: String,
@@ -42,6 +49,66 @@ pub struct CheckStats {
     limits: Vec<f64>,
     #[serde(skip)]
     sense: crate::metrology::tolerance::Sense,
+    /// Each unit's standard uncertainty of the error and acceptance limit, where decided.
+    #[serde(skip)]
+    uncertainties: Vec<f64>,
+    #[serde(skip)]
+    acceptance: Vec<f64>,
+}
+
+/// The lot's process spread and the global risks of its decision rule, from the values the
+/// indices use (errors, or shares of each unit's limit) against `limit`. Every unit must carry
+/// an uncertainty and a decision; the measurement's standard uncertainty is their root mean
+/// square and the acceptance limit their mean.
+fn lot_risk(
+    c: &CheckStats,
+    values: &[f64],
+    limit: f64,
+) -> (Option<f64>, Option<crate::metrology::risk::GlobalRisk>) {
+    use crate::metrology::risk::{Interval, global_risk, process_sd};
+    let Some(Summary {
+        mean,
+        std_dev: Some(sd),
+        ..
+    }) = Summary::of(values)
+    else {
+        return (None, None);
+    };
+    if c.uncertainties.len() != values.len() || values.is_empty() {
+        return (None, None);
+    }
+    let n = c.uncertainties.len() as f64;
+    let scale = if c.limit_varies { 1.0 } else { limit };
+    let u_m = (c.uncertainties.iter().map(|u| u * u).sum::<f64>() / n).sqrt() * scale;
+    let al = c.acceptance.iter().sum::<f64>() / n * scale;
+    let sigma = process_sd(sd, u_m);
+    let (tolerance, acceptance) = match c.sense {
+        Sense::PlusMinus => (Interval::symmetric(limit), Interval::symmetric(al)),
+        Sense::AtMost => (
+            Interval {
+                lower: None,
+                upper: Some(limit),
+            },
+            Interval {
+                lower: None,
+                upper: Some(al),
+            },
+        ),
+        Sense::AtLeast => (
+            Interval {
+                lower: Some(limit),
+                upper: None,
+            },
+            Interval {
+                lower: Some(al),
+                upper: None,
+            },
+        ),
+    };
+    (
+        Some(sigma),
+        global_risk(mean, sigma, u_m, tolerance, acceptance),
+    )
 }
 
 /// One unit's line in the summary.
@@ -127,11 +194,22 @@ impl LotSummary {
                         cpk: None,
                         cpk_low: false,
                         limit_varies: false,
+                        process_sd: None,
+                        global_risk: None,
                         histogram: String::new(),
                         errors: Vec::new(),
                         limits: Vec::new(),
                         sense: e.sense,
+                        uncertainties: Vec::new(),
+                        acceptance: Vec::new(),
                     });
+                    if let (Some(b), Some(d)) = (&c.uncertainty, &c.decision) {
+                        let share = if e.limit != 0.0 { 1.0 / e.limit } else { 0.0 };
+                        // Kept as shares of the unit's own limit, like the errors below when
+                        // the limit varies.
+                        entry.uncertainties.push(b.combined * share);
+                        entry.acceptance.push(d.acceptance_limit * share);
+                    }
                     entry.units += 1;
                     entry.errors.push(e.error);
                     entry.limits.push(e.limit);
@@ -185,6 +263,7 @@ impl LotSummary {
                     }
                 }
                 c.cpk_low = c.cpk.is_some_and(|k| k < capability::CPK_WARNING_BELOW);
+                (c.process_sd, c.global_risk) = lot_risk(&c, &values, limit);
                 c.histogram = histogram(&c.errors, c.tolerance_limit, &c.error_unit);
                 c
             })
@@ -252,6 +331,9 @@ impl LotSummary {
             "sides",
             "cp",
             "cpk",
+            "process_sd",
+            "global_consumer_risk",
+            "global_producer_risk",
         ])?;
         let opt = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x}"));
         for c in &self.checks {
@@ -269,6 +351,9 @@ impl LotSummary {
                 c.sides.to_string(),
                 opt(c.cp),
                 opt(c.cpk),
+                opt(c.process_sd),
+                opt(c.global_risk.map(|r| r.consumer)),
+                opt(c.global_risk.map(|r| r.producer)),
             ])?;
         }
         w.flush()?;
