@@ -81,10 +81,8 @@ pub fn global_risk(
     tolerance: Interval,
     acceptance: Interval,
 ) -> Option<GlobalRisk> {
-    if !(process_sd >= 0.0 && measurement_u >= 0.0 && mean.is_finite())
-        || !process_sd.is_finite()
-        || !measurement_u.is_finite()
-    {
+    let fit = |x: f64| x.is_finite() && x >= 0.0;
+    if !(fit(process_sd) && fit(measurement_u) && mean.is_finite()) {
         return None;
     }
     let accept = |eta: f64| -> f64 {
