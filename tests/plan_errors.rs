@@ -349,3 +349,40 @@ fn one_sample_needs_a_declared_repeatability() {
     let r = plan.steps[1].repeatability.as_ref().unwrap();
     assert!((r.relative - 0.0005).abs() < 1e-15 && r.from == "golden-unit study GU-12");
 }
+
+/// `check` warns, before any load, when the reference alone leaves a guarded check no
+/// acceptance zone (ILAC-G8:09/2019: AL = TL − U below zero): the simulated reference's
+/// ±(0.01 % of reading + 0.005 % of range) at 230 V already gives U ≥ 0.019 %, above a ±0.015 % tolerance.
+#[test]
+fn check_warns_of_an_empty_acceptance_zone() {
+    let dir = std::env::temp_dir().join(format!("meterproof-zone-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let path = dir.join("tight.yaml");
+    std::fs::write(
+        &path,
+        GOOD.replace(
+            "      - { quantity: voltage, tolerance: { percent: 0.5 % } }",
+            "      - { quantity: voltage, tolerance: { percent: 0.015 % } }",
+        ),
+    )
+    .unwrap();
+    let check = |p: &std::path::Path| {
+        let out = std::process::Command::new(env!("CARGO_BIN_EXE_meterproof"))
+            .arg("check")
+            .arg(p)
+            .output()
+            .unwrap();
+        assert!(out.status.success());
+        String::from_utf8(out.stdout).unwrap()
+    };
+    let text = check(&path);
+    assert!(
+        text.contains("warning: step basic-Ib voltage: U is at least")
+            && text.contains("no acceptance zone"),
+        "{text}"
+    );
+    assert!(text.contains("simulated bench's reference"), "{text}");
+    // The shipped plan has none.
+    assert!(!check(std::path::Path::new("test-plans/demo.yaml")).contains("warning"));
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -231,11 +231,17 @@ fn check(paths: &[PathBuf]) -> Result<i32, CliError> {
     let mut invalid = 0;
     let stdout = std::io::stdout();
     let mut out = stdout.lock();
+    // A plan is checked against the reference of the first station given with it, else against
+    // the simulated bench's.
+    let station = paths
+        .iter()
+        .filter(|p| is_station_file(p))
+        .find_map(|p| Station::load(p).ok());
     for path in paths {
         let summary = if is_station_file(path) {
             Station::load(path).map(|s| station_summary(&s))
         } else {
-            Plan::load(path).map(|p| plan_summary(&p))
+            Plan::load(path).map(|p| plan_summary(&p) + &zone_warnings(&p, station.as_ref()))
         };
         match summary {
             Ok(text) => {
@@ -254,6 +260,43 @@ fn check(paths: &[PathBuf]) -> Result<i32, CliError> {
         )));
     }
     Ok(0)
+}
+
+/// Warnings for the plan's checks whose acceptance zone the reference and the unit's
+/// resolution alone leave empty or nearly so.
+fn zone_warnings(plan: &Plan, station: Option<&Station>) -> String {
+    use crate::exec::preview::{ExpectedReference, narrow_zones};
+    let sim_ranges = crate::bench::sim::sim_reference_ranges();
+    let reference = match station {
+        Some(s) => ExpectedReference {
+            name: format!("station {}'s reference {}", s.id, s.reference.info.id),
+            accuracy: s
+                .reference
+                .info
+                .accuracy
+                .as_deref()
+                .and_then(|a| crate::metrology::accuracy::Accuracy::parse(a).ok()),
+            ranges: &s.reference.info.ranges,
+        },
+        None => ExpectedReference {
+            name: "the simulated bench's reference (give a station file to check against yours)"
+                .into(),
+            accuracy: crate::metrology::accuracy::Accuracy::parse(
+                crate::bench::sim::SIM_REFERENCE_ACCURACY,
+            )
+            .ok(),
+            ranges: &sim_ranges,
+        },
+    };
+    let zones = narrow_zones(plan, &reference);
+    if zones.is_empty() {
+        return String::new();
+    }
+    let mut s = format!("  warning: against {}:\n", reference.name);
+    for z in zones {
+        s.push_str(&format!("  warning: {z}\n"));
+    }
+    s
 }
 
 /// Whether a YAML file is a station file (its top level names a `station`) rather than a plan.

@@ -8,6 +8,7 @@
 
 mod calibrate;
 mod decide;
+pub mod preview;
 
 pub use decide::failure_text;
 mod sampling;
