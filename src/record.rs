@@ -167,6 +167,9 @@ pub struct CalibrationRecord {
     pub read_back: Option<(f64, f64)>,
     pub status: CalibrationStatus,
     pub reason: Option<String>,
+    /// The plan's limits on the fit, and how the fit fared against each.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub limits: Vec<crate::metrology::calibration::LimitResult>,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -180,6 +183,8 @@ pub enum CalibrationStatus {
     NotDone,
     /// The constants read back differ from those written.
     Mismatch,
+    /// The fit lies outside the plan's calibration limits: nothing was written.
+    OutsideLimits,
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]

@@ -225,3 +225,91 @@ fn calibration_mistakes_in_a_plan_are_refused() {
         .to_string();
     assert!(e.contains("write-back needs fit: line"), "{e}");
 }
+
+/// A calibration outside the plan's limits rejects the unit with the reason and writes nothing
+/// (a front end far from its design gain has a fault that constants would hide). The window is
+/// ±0.05 % around 1700 counts/A, i.e. ±0.85 counts/A; each unit's fitted gain is recomputed
+/// here from its recorded points by least squares (the line through the points, by hand).
+#[test]
+fn a_calibration_outside_its_limits_rejects_the_unit_and_writes_nothing() {
+    let text = std::fs::read_to_string("test-plans/calibrate.yaml").unwrap();
+    let tight = Plan::from_text(
+        "tight.yaml",
+        &text.replace(
+            "gain: { nominal: 1700, within: 3 % }",
+            "gain: { nominal: 1700, within: 0.05 % }",
+        ),
+    )
+    .unwrap();
+    assert!(tight.source.text.contains("0.05 %"));
+    let records = exec::run(
+        &tight,
+        &mut SimBench::new(&config()).into_bench(),
+        &ctx(),
+        &mut Silent,
+    );
+    let mut rejected = 0;
+    for r in &records {
+        let cal = r.calibration.as_ref().unwrap();
+        let points = &cal.result.as_ref().unwrap().points;
+        let n = points.len() as f64;
+        let (mx, my) = (
+            points.iter().map(|p| p.reference).sum::<f64>() / n,
+            points.iter().map(|p| p.counts).sum::<f64>() / n,
+        );
+        let sxy: f64 = points
+            .iter()
+            .map(|p| (p.reference - mx) * (p.counts - my))
+            .sum();
+        let sxx: f64 = points.iter().map(|p| (p.reference - mx).powi(2)).sum();
+        let gain = sxy / sxx;
+        let outside = (gain - 1700.0).abs() > 0.85;
+        let limit = cal.limits.iter().find(|l| l.what == "gain").unwrap();
+        assert!((limit.value - gain).abs() < 1e-6 * gain);
+        assert_eq!(limit.within, !outside);
+        if outside {
+            rejected += 1;
+            assert_eq!(cal.status, CalibrationStatus::OutsideLimits);
+            assert_eq!(cal.written, None, "nothing written");
+            assert_eq!(r.verdict.status, UnitStatus::Rejected);
+            let reason = r.verdict.reasons.join("; ");
+            assert!(
+                reason.contains("gain") && reason.contains("from nominal 1700"),
+                "{reason}"
+            );
+            assert!(
+                r.steps.iter().all(|s| !s.id.starts_with("verify")
+                    || s.checks.iter().all(|c| c.evaluation.is_none())),
+                "not tested further"
+            );
+        } else {
+            assert_eq!(cal.status, CalibrationStatus::Written);
+        }
+    }
+    assert!(
+        rejected >= 1 && rejected < records.len(),
+        "{rejected} of {}",
+        records.len()
+    );
+    // The lot summary counts them by limit, among the rejections.
+    let lot = meterproof::report::summary::LotSummary::of("lot", &records, &|_| String::new());
+    let gain = lot
+        .calibration
+        .iter()
+        .find(|c| c.what == "current gain")
+        .unwrap();
+    assert_eq!((gain.units, gain.outside), (records.len(), rejected));
+    assert!(
+        lot.rejections
+            .iter()
+            .any(|(what, n)| what == "calibration current gain" && *n == rejected)
+    );
+    // The unit's CSV has a row per calibration limit with its verdict.
+    let csv = String::from_utf8(meterproof::report::unit_csv(&records[0]).unwrap()).unwrap();
+    let rows: Vec<&str> = csv
+        .lines()
+        .filter(|l| l.contains(",calibration,"))
+        .collect();
+    assert_eq!(rows.len(), 4, "{csv}");
+    assert!(rows.iter().any(|r| r.contains("current gain")));
+}

@@ -386,3 +386,36 @@ fn check_warns_of_an_empty_acceptance_zone() {
     assert!(!check(std::path::Path::new("test-plans/demo.yaml")).contains("warning"));
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+#[test]
+fn calibration_limits_are_checked_where_they_are_written() {
+    let good = include_str!("../test-plans/calibrate.yaml");
+    let e = errors(&good.replace(
+        "gain: { nominal: 1700, within: 3 % }",
+        "gain: { nominal: 1700, within: 0 % }",
+    ))
+    .to_string();
+    assert!(
+        e.contains("calibration.limits.gain.within") && e.contains("wider than zero"),
+        "{e}"
+    );
+    let e = errors(&good.replace(
+        "offset: { nominal: 395, within: 40 }",
+        "offset: { nominal: lots, within: 40 }",
+    ))
+    .to_string();
+    assert!(e.contains("calibration.limits.offset.nominal"), "{e}");
+    let e = errors(
+        &good
+            .replace(
+                "  write: { offset: offset_current, gain: gain_current }\n",
+                "",
+            )
+            .replace(
+                "    linearity: 0.5 %",
+                "    linearity: 0.5 %\n    read_back: 0.01 %",
+            ),
+    )
+    .to_string();
+    assert!(e.contains("nothing is written back"), "{e}");
+}

@@ -458,9 +458,60 @@ pub fn plan_summary(plan: &Plan) -> String {
             None => {}
         }
     }
+    if let Some(cal) = &plan.calibration {
+        s.push_str(&calibration_text(cal));
+    }
     s.push_str(&format!(
         "  decision rule: {}\n",
         report::decision_text(plan.decision)
+    ));
+    s
+}
+
+/// The plan's calibration and what it is held to, for `check`.
+fn calibration_text(cal: &crate::plan::CalibrationSpec) -> String {
+    let mut s = format!(
+        "  calibration: {} on {}, {} fit through {}; {}\n",
+        cal.quantity.name(),
+        cal.channel,
+        format!("{:?}", cal.model).to_lowercase(),
+        cal.points.join(", "),
+        match &cal.write {
+            Some((o, g)) => format!("written to the unit as {o} and {g}, and read back"),
+            None => "fitted only, nothing written".into(),
+        }
+    );
+    let l = &cal.limits;
+    let window = |w: &crate::metrology::calibration::Window, unit: &str| {
+        if w.relative {
+            format!("{} {unit} ± {} %", w.nominal, w.within * 100.0)
+        } else {
+            format!("{} {unit} ± {}", w.nominal, w.within)
+        }
+    };
+    let mut limits = Vec::new();
+    if let Some(w) = &l.gain {
+        limits.push(format!("gain {}", window(w, "counts per unit")));
+    }
+    if let Some(w) = &l.offset {
+        limits.push(format!("offset {}", window(w, "counts")));
+    }
+    if let Some(p) = l.linearity_percent {
+        limits.push(format!("linearity ≤ {p} % of reading"));
+    }
+    if let Some(p) = l.point_gain_percent {
+        limits.push(format!("points' gains within {p} % of the fit"));
+    }
+    if let Some(f) = l.read_back {
+        limits.push(format!("read back within {} %", f * 100.0));
+    }
+    s.push_str(&format!(
+        "  calibration limits: {} (a unit outside them is rejected and nothing is written)\n",
+        if limits.is_empty() {
+            "none".to_string()
+        } else {
+            limits.join("; ")
+        }
     ));
     s
 }

@@ -26,6 +26,7 @@ pub(super) fn calibrate_unit(
         read_back: None,
         status: CalibrationStatus::NotDone,
         reason: None,
+        limits: Vec::new(),
     };
     let points = match points_of(spec, steps) {
         Ok(p) => p,
@@ -42,7 +43,20 @@ pub(super) fn calibrate_unit(
         }
     };
     let (offset, gain) = (fitted.offset, fitted.gain);
+    record.limits = calibration::judge(&fitted, &spec.limits);
     record.result = Some(fitted);
+    let outside: Vec<String> = record
+        .limits
+        .iter()
+        .filter(|l| !l.within)
+        .map(ToString::to_string)
+        .collect();
+    if !outside.is_empty() {
+        // Constants that would hide a faulty front end are not written.
+        record.status = CalibrationStatus::OutsideLimits;
+        record.reason = Some(format!("outside its limits: {}", outside.join("; ")));
+        return record;
+    }
     let Some((offset_name, gain_name)) = &spec.write else {
         record.status = CalibrationStatus::Fitted;
         return record;
@@ -67,7 +81,8 @@ pub(super) fn calibrate_unit(
         Err(e) => record.reason = Some(format!("reading the constants back failed: {e}")),
         Ok((o, g)) => {
             record.read_back = Some((o, g));
-            if same(o, offset) && same(g, gain) {
+            let tolerance = spec.limits.read_back.unwrap_or(READBACK_TOLERANCE);
+            if same(o, offset, tolerance) && same(g, gain, tolerance) {
                 record.status = CalibrationStatus::Written;
             } else {
                 record.status = CalibrationStatus::Mismatch;
@@ -80,8 +95,8 @@ pub(super) fn calibrate_unit(
     record
 }
 
-fn same(a: f64, b: f64) -> bool {
-    (a - b).abs() <= READBACK_TOLERANCE * b.abs().max(1.0)
+fn same(a: f64, b: f64, tolerance: f64) -> bool {
+    (a - b).abs() <= tolerance * b.abs().max(1.0)
 }
 
 /// The (reference, mean counts) points of the unit's calibration steps.

@@ -588,7 +588,11 @@ fn calibrate_units(cal: &CalibrationSpec, bench: &mut Bench, units: &mut [Unit])
             continue;
         }
         let record = calibrate::calibrate_unit(cal, &unit.record.steps, position.link.as_mut());
-        if record.status == crate::record::CalibrationStatus::Mismatch {
+        if matches!(
+            record.status,
+            crate::record::CalibrationStatus::Mismatch
+                | crate::record::CalibrationStatus::OutsideLimits
+        ) {
             unit.active = false;
             unit.record.verdict = UnitVerdict {
                 status: UnitStatus::Rejected,

@@ -56,6 +56,8 @@ pub struct CalibrationSpec {
     pub points: Vec<String>,
     /// Names of the link's writes for the offset and the gain.
     pub write: Option<(String, String)>,
+    /// What the fit and the read-back are held to; a unit outside them is rejected.
+    pub limits: crate::metrology::calibration::Limits,
 }
 
 impl CalibrationSpec {

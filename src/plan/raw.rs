@@ -102,6 +102,32 @@ pub struct RawCalibration {
     pub points: Vec<Text>,
     #[serde(default)]
     pub write: Option<RawCalibrationWrite>,
+    #[serde(default)]
+    pub limits: Option<RawCalibrationLimits>,
+}
+
+/// What a unit's calibration is held to.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawCalibrationLimits {
+    #[serde(default)]
+    pub gain: Option<RawWindow>,
+    #[serde(default)]
+    pub offset: Option<RawWindow>,
+    #[serde(default)]
+    pub linearity: Option<Text>,
+    #[serde(default)]
+    pub point_gains: Option<Text>,
+    #[serde(default)]
+    pub read_back: Option<Text>,
+}
+
+/// `{ nominal: 1700, within: 2 % }` or `{ nominal: 395, within: 40 }` (counts).
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawWindow {
+    pub nominal: Text,
+    pub within: Text,
 }
 
 #[derive(Debug, Deserialize)]

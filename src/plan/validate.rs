@@ -638,13 +638,96 @@ fn calibration(
             }
         }
     }
+    let limits = raw
+        .limits
+        .as_ref()
+        .map(|l| calibration_limits(ctx, l, write.is_some()))
+        .unwrap_or_default();
     Some(super::CalibrationSpec {
         quantity: quantity?,
         channel: channel?,
         model: model?,
         points,
         write,
+        limits,
     })
+}
+
+/// A count or a percentage: "40" (counts) or "2 %" (of the nominal).
+fn calibration_limits(
+    ctx: &mut Ctx,
+    raw: &super::raw::RawCalibrationLimits,
+    writes: bool,
+) -> crate::metrology::calibration::Limits {
+    use crate::metrology::calibration::{Limits, Window};
+    let number = |ctx: &mut Ctx, path: &str, text: &Text| -> Option<f64> {
+        match text.0.trim().parse::<f64>() {
+            Ok(v) if v.is_finite() => Some(v),
+            _ => {
+                ctx.error(
+                    path,
+                    format!("expected a number of counts, got \"{}\"", text.0),
+                );
+                None
+            }
+        }
+    };
+    let mut windows = Vec::new();
+    for (key, w) in [("gain", &raw.gain), ("offset", &raw.offset)] {
+        let Some(w) = w else {
+            windows.push(None);
+            continue;
+        };
+        let path = format!("calibration.limits.{key}");
+        let nominal = number(ctx, &format!("{path}.nominal"), &w.nominal);
+        let within = if w.within.0.trim().ends_with('%') {
+            ctx.value(&format!("{path}.within"), &w.within, Dimension::Percent)
+                .map(|p| (p / 100.0, true))
+        } else {
+            number(ctx, &format!("{path}.within"), &w.within).map(|v| (v, false))
+        };
+        windows.push(match (nominal, within) {
+            (Some(nominal), Some((within, relative))) if within > 0.0 => Some(Window {
+                nominal,
+                within,
+                relative,
+            }),
+            (Some(_), Some(_)) => {
+                ctx.error(
+                    &format!("{path}.within"),
+                    "a window must be wider than zero",
+                );
+                None
+            }
+            _ => None,
+        });
+    }
+    let mut percent = |key: &str, text: &Option<Text>| -> Option<f64> {
+        let path = format!("calibration.limits.{key}");
+        let v = ctx.value(&path, text.as_ref()?, Dimension::Percent)?;
+        if v > 0.0 {
+            Some(v)
+        } else {
+            ctx.error(&path, "a limit must be greater than zero");
+            None
+        }
+    };
+    let linearity_percent = percent("linearity", &raw.linearity);
+    let point_gain_percent = percent("point_gains", &raw.point_gains);
+    let read_back = percent("read_back", &raw.read_back).map(|p| p / 100.0);
+    if raw.read_back.is_some() && !writes {
+        ctx.error(
+            "calibration.limits.read_back",
+            "nothing is written back (calibration.write), so nothing is read back",
+        );
+    }
+    Limits {
+        gain: windows[0],
+        offset: windows[1],
+        linearity_percent,
+        point_gain_percent,
+        read_back,
+    }
 }
 
 fn decision(ctx: &mut Ctx, raw: Option<&super::raw::RawDecision>) -> Option<DecisionRule> {

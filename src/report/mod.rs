@@ -562,6 +562,39 @@ pub fn unit_csv(record: &UnitRecord) -> Result<Vec<u8>, ReportError> {
             ])?;
         }
     }
+    // The calibration's limits, one row each, in the same columns: the fitted value against
+    // its nominal (or the largest deviation against its bound).
+    if let Some(cal) = &record.calibration {
+        for l in &cal.limits {
+            w.write_record([
+                spreadsheet_safe(&record.serial),
+                "calibration".to_string(),
+                String::new(),
+                format!("{} {}", cal.quantity.name(), l.what),
+                spreadsheet_safe(&cal.channel),
+                l.unit.clone(),
+                plain(l.nominal),
+                format!("{}", l.value),
+                String::new(),
+                cal.result
+                    .as_ref()
+                    .map_or(0, |r| r.points.len())
+                    .to_string(),
+                format!("{}", l.deviation),
+                l.unit.clone(),
+                format!("{}", l.limit),
+                String::new(),
+                String::new(),
+                String::new(),
+                String::new(),
+                String::new(),
+                if l.within { "pass" } else { "fail" }.to_string(),
+                String::new(),
+                String::new(),
+                String::new(),
+            ])?;
+        }
+    }
     w.flush().map_err(csv::Error::from)?;
     w.into_inner()
         .map_err(|e| ReportError::Csv(csv::Error::from(e.into_error())))

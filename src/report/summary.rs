@@ -142,6 +142,64 @@ pub struct LotSummary {
     /// Steps that settled until stable ran out of time on (a unit, a fixture or a load that is
     /// slower than the plan expects), over all units.
     pub unsettled_steps: usize,
+    /// Each calibration limit across the lot.
+    pub calibration: Vec<CalibrationStats>,
+}
+
+/// One calibration limit across the lot: the fitted values and how many units fell outside.
+#[derive(Debug, Clone, Serialize)]
+pub struct CalibrationStats {
+    /// "current gain".
+    pub what: String,
+    pub unit: String,
+    pub units: usize,
+    pub outside: usize,
+    pub mean: f64,
+    pub std_dev: Option<f64>,
+    pub min: f64,
+    pub max: f64,
+    /// "1700 ± 51", "≤ 0.5".
+    pub limit: String,
+}
+
+/// The lot's calibration limits, in the order the records give them.
+fn calibration_stats(records: &[UnitRecord]) -> Vec<CalibrationStats> {
+    let mut by: Vec<(String, String, String, Vec<f64>, usize)> = Vec::new();
+    for r in records {
+        let Some(cal) = &r.calibration else { continue };
+        for l in &cal.limits {
+            let what = format!("{} {}", cal.quantity.name(), l.what);
+            let limit = match l.nominal {
+                Some(n) => format!("{n} ± {}", l.limit),
+                None => format!("≤ {}", l.limit),
+            };
+            let i = match by.iter().position(|b| b.0 == what) {
+                Some(i) => i,
+                None => {
+                    by.push((what, l.unit.clone(), limit, Vec::new(), 0));
+                    by.len() - 1
+                }
+            };
+            by[i].3.push(l.value);
+            by[i].4 += usize::from(!l.within);
+        }
+    }
+    by.into_iter()
+        .filter_map(|(what, unit, limit, values, outside)| {
+            let s = Summary::of(&values)?;
+            Some(CalibrationStats {
+                what,
+                unit,
+                units: values.len(),
+                outside,
+                mean: s.mean,
+                std_dev: s.std_dev,
+                min: values.iter().copied().fold(f64::INFINITY, f64::min),
+                max: values.iter().copied().fold(f64::NEG_INFINITY, f64::max),
+                limit,
+            })
+        })
+        .collect()
 }
 
 /// The mean bench time per unit: a run's bench time is shared by the units it tested together.
@@ -276,6 +334,13 @@ impl LotSummary {
             .filter(|c| c.failed > 0)
             .map(|c| (format!("{} {} {}", c.step, c.quantity, c.channel), c.failed))
             .collect();
+        let calibration = calibration_stats(records);
+        rejections.extend(
+            calibration
+                .iter()
+                .filter(|c| c.outside > 0)
+                .map(|c| (format!("calibration {}", c.what), c.outside)),
+        );
         rejections.sort_by(|a, b| b.1.cmp(&a.1).then(a.0.cmp(&b.0)));
         let unit_lines = records
             .iter()
@@ -311,6 +376,7 @@ impl LotSummary {
                 .flat_map(|r| &r.steps)
                 .filter(|s| s.settled == Some(false))
                 .count(),
+            calibration,
         }
     }
 
