@@ -509,3 +509,64 @@ fn the_directive_class_limits_follow_the_bench_temperature() {
     drop(served);
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// An SCPI reference with no energy counter: the reference energy is inferred from its power at
+/// the window's two ends (the trapezoid, E = (P₀ + P₁)/2 · t), both readings are kept in the
+/// record, and the drift between them enters the budget as a rectangular term of half-width
+/// |P₁ − P₀|/2 · t (GUM 4.3.7), so the figure can be redone from the record.
+#[test]
+fn an_energy_inferred_from_power_keeps_both_ends_and_their_drift() {
+    let dir = temp_dir("energy");
+    let served = serve(&dir, &[]);
+    let (_, text, records) = run(
+        "test-plans/demo-serial.yaml",
+        &served.station,
+        &dir.join("out"),
+        &[],
+    );
+    assert_eq!(records.len(), 4, "{text}");
+    for r in &records {
+        let step = r.steps.iter().find(|s| s.id == "max-Imax").unwrap();
+        let energy = step
+            .references
+            .iter()
+            .find(|x| x.quantity.name() == "active_energy")
+            .unwrap();
+        let reading = &energy.reading;
+        let (t0, t1) = reading.window_s.unwrap();
+        assert_eq!(reading.power_readings.len(), 2, "{reading:?}");
+        let [(_, p0), (_, p1)] = [reading.power_readings[0], reading.power_readings[1]];
+        let expected = (p0 + p1) / 2.0 * (t1 - t0) / 3600.0;
+        assert!(
+            (reading.value - expected).abs() <= 1e-12 * expected,
+            "{reading:?}"
+        );
+        let check = step
+            .checks
+            .iter()
+            .find(|c| c.quantity.name() == "active_energy")
+            .unwrap();
+        let budget = check.uncertainty.as_ref().unwrap();
+        let drift = budget
+            .components
+            .iter()
+            .find(|c| c.name.starts_with("load drift over the window"))
+            .expect("a drift term");
+        // u = a/√3 with a = |P₁ − P₀|/2 · span (h), times the sensitivity 100·E_unit/E_ref².
+        let share = {
+            let s = &check.samples;
+            (s[s.len() - 1].t_s - s[0].t_s) / (t1 - t0)
+        };
+        let span_h = (t1 - t0) * share / 3600.0;
+        let e_ref = check.reference.unwrap();
+        let c = 100.0 * check.measured.unwrap() / (e_ref * e_ref);
+        let u = (p1 - p0).abs() / 2.0 * span_h / 3f64.sqrt() * c;
+        assert!(
+            (drift.u - u).abs() <= 1e-9 * u.max(1e-12),
+            "{} vs {u}",
+            drift.u
+        );
+    }
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -212,6 +212,10 @@ pub struct ReferenceReading {
     /// a reference energy (and its scaling to a register's span) can be redone from the record.
     #[serde(skip_serializing_if = "Option::is_none", default)]
     pub window_s: Option<(f64, f64)>,
+    /// For an energy the reference did not count itself but inferred from its power readings:
+    /// those readings, as (bench time s, watts), at the window's start and end.
+    #[serde(skip_serializing_if = "Vec::is_empty", default)]
+    pub power_readings: Vec<(f64, f64)>,
 }
 
 /// The instrument (or person, or file) that says what really flowed.
@@ -230,6 +234,21 @@ pub trait ReferenceMeter: Send {
     /// the checks' readings stay those of a bench that does not confirm).
     fn read_load(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError> {
         self.read(request)
+    }
+
+    /// The engine is about to take the first sample of a window over which an energy will be
+    /// asked for. A reference that infers energy from power reads its power now, so that the
+    /// energy stands on the power at both ends of the window and the drift between them is
+    /// known.
+    fn window_starts(&mut self, _at_s: f64) -> Result<(), BenchError> {
+        Ok(())
+    }
+
+    /// Whether a reading can be taken again over another window without troubling anybody (an
+    /// instrument or a file, not a person): a step sampled until decided then reads its
+    /// references again over the window it finally sampled, instead of scaling an earlier one.
+    fn reads_again_freely(&self) -> bool {
+        !self.load_quantities().is_empty()
     }
 }
 

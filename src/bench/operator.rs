@@ -267,6 +267,7 @@ impl ReferenceMeter for TypedReference {
             }
         };
         Ok(ReferenceReading {
+            power_readings: Vec::new(),
             window_s: None,
             value: accepted.0,
             source: "operator".into(),

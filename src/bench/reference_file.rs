@@ -353,6 +353,7 @@ impl FileReference {
         let value = rows.iter().map(|r| r.value).sum::<f64>() / rows.len() as f64;
         let lines: Vec<String> = rows.iter().map(|r| r.line.to_string()).collect();
         Some(ReferenceReading {
+            power_readings: Vec::new(),
             window_s: None,
             value,
             source: "file".into(),
@@ -369,6 +370,11 @@ impl FileReference {
 }
 
 impl ReferenceMeter for FileReference {
+    /// A file is read again for any window without asking anybody.
+    fn reads_again_freely(&self) -> bool {
+        true
+    }
+
     fn read(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError> {
         if !self
             .rows
@@ -389,6 +395,7 @@ impl ReferenceMeter for FileReference {
                 ))
             })?;
         Ok(ReferenceReading {
+            power_readings: Vec::new(),
             window_s: None,
             value: row.value,
             source: "file".into(),

@@ -137,6 +137,8 @@ impl<W: Wire> LoadSource for ScpiSource<W> {
 pub struct ScpiReference<W: Wire> {
     channel: LineChannel<W>,
     queries: Vec<(Quantity, String)>,
+    /// The power read at the start of the current energy window: (bench time s, watts).
+    window_start: Option<(f64, f64)>,
 }
 
 impl<W: Wire> ScpiReference<W> {
@@ -149,6 +151,7 @@ impl<W: Wire> ScpiReference<W> {
         ScpiReference {
             channel: LineChannel::new(settings, wire, name),
             queries,
+            window_start: None,
         }
     }
 
@@ -171,6 +174,16 @@ impl<W: Wire> ScpiReference<W> {
     }
 }
 
+impl<W: Wire> ScpiReference<W> {
+    /// Whether an energy is inferred from power (the station gives no energy query).
+    fn infers_energy(&self) -> bool {
+        !self
+            .queries
+            .iter()
+            .any(|(k, _)| *k == Quantity::ActiveEnergy)
+    }
+}
+
 impl<W: Wire> ReferenceMeter for ScpiReference<W> {
     fn load_quantities(&self) -> Vec<Quantity> {
         super::LOAD_QUANTITIES
@@ -179,15 +192,36 @@ impl<W: Wire> ReferenceMeter for ScpiReference<W> {
             .collect()
     }
 
+    fn window_starts(&mut self, at_s: f64) -> Result<(), BenchError> {
+        self.window_start = if self.infers_energy() {
+            Some((at_s, self.query(Quantity::ActivePower)?))
+        } else {
+            None
+        };
+        Ok(())
+    }
+
     fn read(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError> {
-        let has_own_query = self.queries.iter().any(|(k, _)| *k == request.quantity);
-        let value = if request.quantity == Quantity::ActiveEnergy && !has_own_query {
+        let mut power_readings = Vec::new();
+        let value = if request.quantity == Quantity::ActiveEnergy && self.infers_energy() {
+            // No energy counter: the energy is inferred from the power at the window's two
+            // ends (the trapezoid), and the budget holds the drift between them.
             let (t0, t1) = request.window;
-            self.query(Quantity::ActivePower)? * (t1 - t0) / 3600.0
+            let end = self.query(Quantity::ActivePower)?;
+            let start = self
+                .window_start
+                .filter(|(t, _)| (t - t0).abs() <= 0.5 * (t1 - t0).max(1e-9));
+            if let Some(s) = start {
+                power_readings.push(s);
+            }
+            power_readings.push((t1, end));
+            let mean = start.map_or(end, |(_, p)| (p + end) / 2.0);
+            mean * (t1 - t0) / 3600.0
         } else {
             self.query(request.quantity)?
         };
         Ok(ReferenceReading {
+            power_readings,
             window_s: None,
             value,
             source: "instrument".into(),

@@ -703,6 +703,7 @@ impl SimReference {
             q => actual.nominal(q, t1 - t0) * factor,
         };
         ReferenceReading {
+            power_readings: Vec::new(),
             window_s: None,
             value: round_significant(value, 6),
             source: "instrument".into(),

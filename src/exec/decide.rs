@@ -65,7 +65,7 @@ pub(super) fn evaluate_check(input: CheckInputs, record: &mut CheckRecord, judge
         return;
     };
     let share = register_share(&record.samples, window);
-    let reference_value = match reference {
+    let reference_value = match &reference {
         None => None,
         Some(Ok(r)) if check.quantity.is_register() => Some(r.value * share),
         Some(Ok(r)) => Some(r.value),
@@ -101,9 +101,16 @@ pub(super) fn evaluate_check(input: CheckInputs, record: &mut CheckRecord, judge
         }
     };
     let span_s = (window.1 - window.0) * share;
+    let power_readings = match reference {
+        Some(Ok(r)) => r.power_readings.clone(),
+        _ => Vec::new(),
+    };
     let known = Known {
         resolution,
         repeatability: step.repeatability.as_ref(),
+        power_readings: &power_readings,
+        share,
+        load_within: step.load_within,
     };
     let budget = budget(
         check,
@@ -205,6 +212,12 @@ impl Partial<'_> {
 struct Known<'a> {
     resolution: Option<f64>,
     repeatability: Option<&'a crate::plan::Repeatability>,
+    /// The reference's power readings an energy was inferred from (bench time s, W).
+    power_readings: &'a [(f64, f64)],
+    /// The unit's register span over the reference's window (above 1: extrapolated).
+    share: f64,
+    /// How far the load may be from nominal (the bound it was confirmed to), a fraction.
+    load_within: f64,
 }
 
 fn budget(
@@ -219,6 +232,9 @@ fn budget(
     let Known {
         resolution,
         repeatability: declared,
+        power_readings,
+        share,
+        load_within,
     } = known;
     let relative = check.tolerance.is_relative();
     // Sensitivities of the error to the unit's value and to the reference.
@@ -284,6 +300,16 @@ fn budget(
             )),
             Err(why) => notes.push(format!("reference accuracy not included: {why}")),
         }
+        if check.quantity.is_register() {
+            energy_terms(
+                &mut components,
+                &mut notes,
+                r,
+                c_ref,
+                (power_readings, span_s),
+                (share, load_within),
+            );
+        }
     }
     let mut b = Budget::of(components);
     b.notes = notes;
@@ -319,6 +345,47 @@ fn reference_half_width(
             range.map_or("-".into(), |r| r.to_string())
         ),
     ))
+}
+
+/// What a reference energy does not measure directly. Inferred from power at the window's two
+/// ends (trapezoid), the unknown path between them is a rectangular term of half-width
+/// |P₁ − P₀| / 2 · t (a monotone drift keeps the energy between P₀·t and P₁·t). Extrapolated
+/// from a shorter window (share s > 1), the energy of the extra (s − 1)/s of the span may differ
+/// from the window's mean power by up to the step's load bound: half-width
+/// (s − 1)/s · |E| · load_within.
+fn energy_terms(
+    components: &mut Vec<uncertainty::Component>,
+    notes: &mut Vec<String>,
+    reference: f64,
+    c_ref: f64,
+    (power_readings, span_s): (&[(f64, f64)], f64),
+    (share, load_within): (f64, f64),
+) {
+    match power_readings {
+        [(_, p0), (_, p1)] => components.push(uncertainty::rectangular(
+            "load drift over the window (energy inferred from power at its two ends)",
+            (p1 - p0).abs() / 2.0 * span_s / 3600.0,
+            c_ref,
+            &format!("|{p1:.6} W − {p0:.6} W| / 2 × {span_s:.3} s"),
+        )),
+        [(_, p)] => notes.push(format!(
+            "the reference energy stands on one power reading ({p:.6} W at the window's end): the load's drift over the window is not in the budget"
+        )),
+        _ => {}
+    }
+    if share > 1.0 + 1e-9 {
+        let a = (share - 1.0) / share * reference.abs() * load_within;
+        components.push(uncertainty::rectangular(
+            "extrapolation beyond the reference's window",
+            a,
+            c_ref,
+            &format!(
+                "the last {:.1} % of the span taken at the window's mean power, within the step's load bound {} %",
+                (share - 1.0) / share * 100.0,
+                load_within * 100.0
+            ),
+        ));
+    }
 }
 
 /// "error −3.676 % ± 0.092 % (U) is outside the acceptance limit ±0.908 % (tolerance ±1 %, guard
@@ -443,6 +510,37 @@ pub(super) fn unit_verdict(steps: &[StepRecord]) -> UnitVerdict {
 
 #[cfg(test)]
 mod tests {
+    /// The energy terms by hand: power 1000 W then 1010 W over 36 s gives a = 5 W · 0.01 h =
+    /// 0.05 Wh; a register span 1.25 times the reference's window, at 10 Wh and a 5 % load
+    /// bound, gives a = 0.2 · 10 · 0.05 = 0.1 Wh (GUM 4.3.7 rectangular, u = a/√3).
+    #[test]
+    fn energy_inferred_or_extrapolated_enters_the_budget() {
+        let (mut components, mut notes) = (Vec::new(), Vec::new());
+        energy_terms(
+            &mut components,
+            &mut notes,
+            10.0,
+            1.0,
+            (&[(0.0, 1000.0), (36.0, 1010.0)], 36.0),
+            (1.25, 0.05),
+        );
+        assert_eq!(components.len(), 2);
+        assert!((components[0].u - 0.05 / 3f64.sqrt()).abs() < 1e-12);
+        assert!((components[1].u - 0.1 / 3f64.sqrt()).abs() < 1e-12);
+        assert!(notes.is_empty());
+        let (mut components, mut notes) = (Vec::new(), Vec::new());
+        energy_terms(
+            &mut components,
+            &mut notes,
+            10.0,
+            1.0,
+            (&[(36.0, 1010.0)], 36.0),
+            (1.0, 0.05),
+        );
+        assert!(components.is_empty());
+        assert!(notes[0].contains("one power reading"), "{notes:?}");
+    }
+
     use super::*;
     use crate::record::Sample;
 

@@ -928,6 +928,20 @@ fn run_step(
         };
         sc.recorder.reading(&key, sample);
     };
+    // An energy the reference infers from power stands on its power at both ends of the window.
+    let energy_window = step
+        .checks
+        .iter()
+        .any(|c| c.quantity.is_register() && c.tolerance.needs_reference());
+    let start_problem = if energy_window {
+        bench
+            .reference
+            .window_starts(bench.clock.now_s())
+            .err()
+            .map(|e| e.to_string())
+    } else {
+        None
+    };
     let interrupt = bench.interrupt.clone();
     let sampler = sampling::Sampler {
         step,
@@ -947,6 +961,14 @@ fn run_step(
         };
         if n < rule.min {
             return false;
+        }
+        // An instrument is read over the window sampled so far each time; a person once, at
+        // the minimum (a register's reference is then scaled to the span, with a budget term).
+        if reference.reads_again_freely() {
+            early_references = Some((
+                take_references(step, calibration, reference.as_mut(), window),
+                window,
+            ));
         }
         let (refs, reference_window) = early_references.get_or_insert_with(|| {
             (
@@ -1006,6 +1028,12 @@ fn run_step(
         }
     }
     let (references, reference_window) = match early_references.take() {
+        // Sampled on past the early references: an instrument (or a file) is read again over
+        // the window finally sampled, rather than scaling a register's reference up to it.
+        Some((_, early)) if early != window && bench.reference.reads_again_freely() => (
+            take_references(step, calibration, bench.reference.as_mut(), window),
+            window,
+        ),
         Some(taken) => taken,
         None if stopped => (Vec::new(), window),
         None => (
@@ -1034,6 +1062,11 @@ fn run_step(
         if let Some(s) = sc.settle {
             record.settle_actual_s = Some(s.actual_s);
             record.settled = Some(s.settled);
+        }
+        if let Some(why) = &start_problem {
+            record.sampling_note = Some(format!(
+                "the reference's power at the window's start could not be read ({why})"
+            ));
         }
         if let Some(rule) = step.sequential {
             let taken = series[u].samples.first().map_or(0, |s| s.len());
