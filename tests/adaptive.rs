@@ -48,9 +48,11 @@ fn a_unit_that_settles_at_once_waits_only_the_minimum_and_a_full_window() {
     let records = run_at(&plan, 0.001);
     let step = &records[0].steps[2];
     assert_eq!(step.settled, Some(true));
-    // Four readings 150 ms apart fill the window at 0.45 s; the rule's minimum is 0.5 s.
+    // Four readings 150 ms apart fill the window at 0.45 s; the rule's minimum is 0.5 s. The
+    // readings' own noise (about 0.04 %) spreads a window of four beyond the 0.15 % band now
+    // and then, which costs a reading or two of 150 ms, not the 4 s maximum.
     let t = step.settle_actual_s.unwrap();
-    assert!((0.5..=0.61).contains(&t), "{t}");
+    assert!((0.5..=0.8).contains(&t), "{t}");
 }
 
 #[test]

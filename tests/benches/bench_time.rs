@@ -1,6 +1,7 @@
 //! Benchmark of bench time: 1,000 simulated units (250 runs of 4 positions) through the demo plan
 //! with fixed settle and sample times and through its adaptive variant (settle until stable,
-//! sample until decided); then the real-time overhead of the engine over a plan's scheduled
+//! sample until decided), with the paired difference of every check kind's errors between the
+//! two (a settling bias shows there); then the real-time overhead of the engine over a plan's scheduled
 //! time for 1 and 16 positions. Run with `cargo bench --bench bench_time`; it asserts nothing.
 
 use meterproof::archive::{Archive, RunRecorder};
@@ -73,6 +74,23 @@ fn errors_within_u(x: &UnitRecord, y: &UnitRecord) -> (usize, usize) {
     pairs.fold((0, 0), |(n, k), ok| (n + 1, k + usize::from(ok)))
 }
 
+/// Each check kind's paired differences of the errors (adaptive − fixed), unit by unit.
+fn add_paired(
+    x: &UnitRecord,
+    y: &UnitRecord,
+    into: &mut std::collections::BTreeMap<String, Vec<f64>>,
+) {
+    for (a, b) in x.steps.iter().zip(&y.steps) {
+        for (ca, cb) in a.checks.iter().zip(&b.checks) {
+            if let (Some(ea), Some(eb)) = (&ca.evaluation, &cb.evaluation) {
+                into.entry(format!("{} {}", a.id, ca.quantity.name()))
+                    .or_default()
+                    .push(eb.error - ea.error);
+            }
+        }
+    }
+}
+
 /// Adds each step's bench time (from its load change to the next step's, or to the run's end).
 fn add_step_times(r: &UnitRecord, into: &mut [f64]) {
     let starts: Vec<f64> = r
@@ -89,7 +107,15 @@ fn add_step_times(r: &UnitRecord, into: &mut [f64]) {
 fn main() {
     let fixed = plan("test-plans/demo.yaml");
     let adaptive = plan("test-plans/demo-adaptive.yaml");
-    let runs = 250u64;
+    // MP_BENCH_RUNS sets a smaller count for a quick look; 250 runs of 4 by default.
+    let runs: u64 = std::env::var("MP_BENCH_RUNS")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(250);
+    let adaptive = match std::env::var("MP_BENCH_ADAPTIVE_PLAN") {
+        Ok(path) => plan(&path),
+        Err(_) => adaptive,
+    };
     let (mut t_fixed, mut t_adaptive) = (0.0, 0.0);
     let (mut agree, mut disagree, mut units) = (0, 0, 0);
     let mut differing = [0; 4];
@@ -97,6 +123,7 @@ fn main() {
     let (mut checks_compared, mut checks_within_u) = (0, 0);
     let steps = fixed.steps.len();
     let (mut step_fixed, mut step_adaptive) = (vec![0.0; steps], vec![0.0; steps]);
+    let mut paired: std::collections::BTreeMap<String, Vec<f64>> = Default::default();
     for seed in 1..=runs {
         let config = SimConfig::new(seed, 4);
         let a = exec::run(
@@ -117,6 +144,7 @@ fn main() {
         add_step_times(&b[0], &mut step_adaptive);
         for (x, y) in a.iter().zip(&b) {
             units += 1;
+            add_paired(x, y, &mut paired);
             checks_fixed_failed += x.failed_checks().count();
             checks_adaptive_failed += y.failed_checks().count();
             let (compared, within) = errors_within_u(x, y);
@@ -151,6 +179,33 @@ fn main() {
     println!(
         "  errors of the same check agree within their combined U (√(U₁² + U₂²)) for {checks_within_u} of {checks_compared} checks ({:.1} %; at least 95 % expected at k = 2)",
         100.0 * checks_within_u as f64 / checks_compared as f64
+    );
+    // Paired t of the errors per check kind (Student, n − 1 degrees of freedom): a settling
+    // bias of the adaptive plan shows as a mean difference many standard errors from zero.
+    println!(
+        "  paired difference of the errors, adaptive − fixed, per check (mean ± standard error, t; |t| > 3.3 is significant at 0.1 %):"
+    );
+    let mut significant = 0;
+    for (kind, d) in &paired {
+        let n = d.len() as f64;
+        if n < 3.0 {
+            continue;
+        }
+        let mean = d.iter().sum::<f64>() / n;
+        let sd = (d.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
+        let se = sd / n.sqrt();
+        let t = if se > 0.0 { mean / se } else { 0.0 };
+        let flag = if t.abs() > 3.3 {
+            significant += 1;
+            "  SIGNIFICANT"
+        } else {
+            ""
+        };
+        println!("    {kind:<32} {mean:+.5} ± {se:.5} (n {n}), t {t:+.2}{flag}");
+    }
+    println!(
+        "  check kinds with a significant paired difference: {significant} of {}",
+        paired.len()
     );
     println!("  bench time per run of 4, step by step (fixed / adaptive):");
     for (i, step) in fixed.steps.iter().enumerate() {
