@@ -400,10 +400,32 @@ pub fn to_json(record: &UnitRecord) -> Result<Vec<u8>, WriteError> {
     Ok(bytes)
 }
 
+/// Why a record file could not be read.
+#[derive(Debug, thiserror::Error)]
+pub enum ReadError {
+    #[error("{path}: {source}")]
+    Io {
+        path: String,
+        source: std::io::Error,
+    },
+    #[error("{path}: not a unit record: {source}")]
+    NotARecord {
+        path: String,
+        source: serde_json::Error,
+    },
+}
+
 /// Reads a record written by [`to_json`].
-pub fn read(path: &Path) -> Result<UnitRecord, String> {
-    let text = fs::read_to_string(path).map_err(|e| format!("{}: {e}", path.display()))?;
-    serde_json::from_str(&text).map_err(|e| format!("{}: not a unit record: {e}", path.display()))
+pub fn read(path: &Path) -> Result<UnitRecord, ReadError> {
+    let shown = || path.display().to_string();
+    let text = fs::read_to_string(path).map_err(|source| ReadError::Io {
+        path: shown(),
+        source,
+    })?;
+    serde_json::from_str(&text).map_err(|source| ReadError::NotARecord {
+        path: shown(),
+        source,
+    })
 }
 
 /// Turns a serial number (data from a device or a person) into a file name that cannot leave its

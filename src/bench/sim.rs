@@ -88,6 +88,15 @@ pub fn sim_reference_ranges() -> std::collections::BTreeMap<String, f64> {
     .collect()
 }
 
+/// Why a simulated meter refused a constant.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum ConstantError {
+    #[error("no constant {0}")]
+    Unknown(String),
+    #[error("{value} is not a valid {name}")]
+    Invalid { name: String, value: f64 },
+}
+
 /// Readings below this current are suppressed to zero power by the simulated firmware (its
 /// no-load threshold), as meters do to keep the energy register from creeping.
 const NO_LOAD_THRESHOLD_A: f64 = 0.010;
@@ -560,10 +569,14 @@ impl SimMeterHandle {
     }
 
     /// Sets a firmware constant; a gain must not be zero.
-    pub fn set_constant(&self, name: &str, value: f64) -> Result<(), String> {
-        let (is_gain, q) = constant_name(name).ok_or_else(|| format!("no constant {name}"))?;
+    pub fn set_constant(&self, name: &str, value: f64) -> Result<(), ConstantError> {
+        let (is_gain, q) =
+            constant_name(name).ok_or_else(|| ConstantError::Unknown(name.to_string()))?;
         if !value.is_finite() || (is_gain && value == 0.0) {
-            return Err(format!("{value} is not a valid {name}"));
+            return Err(ConstantError::Invalid {
+                name: name.to_string(),
+                value,
+            });
         }
         let mut world = lock(&self.world);
         let meter = &mut world.meters[self.index];

@@ -81,7 +81,16 @@ impl SimStation {
 
 /// Reads a fault given as `POSITION:KIND[=VALUE]`: `2:drop-every=5`, `3:die-after=60`,
 /// `1:slow=300ms`, `4:reboot-after=30`, `2:firmware=2.0.9`, `1:garble-every=4`, `3:echo`.
-pub fn parse_fault(text: &str) -> Result<(usize, Faults), String> {
+pub fn parse_fault(text: &str) -> Result<(usize, Faults), FaultError> {
+    parse_fault_text(text).map_err(FaultError)
+}
+
+/// A fault given to `sim-meter --fault` that cannot be read, and how to write one.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[error("{0}")]
+pub struct FaultError(String);
+
+fn parse_fault_text(text: &str) -> Result<(usize, Faults), String> {
     let help = "write a fault as POSITION:KIND[=VALUE], KIND one of drop-every, garble-every, \
                 slow, reboot-after, firmware, die-after, echo, ignore-writes";
     let (position, rest) = text

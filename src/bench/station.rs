@@ -482,7 +482,7 @@ fn reference(doc: &mut Document, raw: &RawReference) -> Option<ReferenceSpec> {
         }
         Some(ACCURACY_UNKNOWN) => None,
         Some(text) => crate::metrology::accuracy::Accuracy::parse(text)
-            .map_err(|e| doc.error("reference.accuracy", e))
+            .map_err(|e| doc.error("reference.accuracy", e.to_string()))
             .ok(),
     };
     let mut ranges = BTreeMap::new();

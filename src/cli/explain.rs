@@ -48,7 +48,7 @@ pub(super) fn explain(args: &ExplainArgs) -> Result<i32, CliError> {
         &args.quantity,
         args.channel.as_deref(),
     )
-    .map_err(CliError::Usage)?;
+    .map_err(|e| CliError::Usage(e.to_string()))?;
     print!("{}", super::terminal_safe_lines(&text));
     Ok(0)
 }

@@ -1470,7 +1470,7 @@ fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
     }
     let mut faults = vec![Faults::default(); args.positions];
     for text in &args.faults {
-        let (position, f) = parse_fault(text).map_err(CliError::Usage)?;
+        let (position, f) = parse_fault(text).map_err(|e| CliError::Usage(e.to_string()))?;
         let slot = faults.get_mut(position - 1).ok_or_else(|| {
             CliError::Usage(format!(
                 "--fault {text}: there are only {} positions",

@@ -322,10 +322,10 @@ fn reference_half_width(
     reading: f64,
     judge: &Judge,
     span_s: f64,
-) -> Result<(f64, String), String> {
+) -> Result<(f64, String), crate::metrology::accuracy::AccuracyError> {
     let accuracy = judge
         .accuracy
-        .ok_or("the station states no accuracy for the reference")?;
+        .ok_or(crate::metrology::accuracy::AccuracyError::NotStated)?;
     if check.quantity.is_register() {
         // Energy from the reference's power reading over the window.
         let hours = span_s / 3600.0;

@@ -4,6 +4,17 @@
 
 use serde::{Deserialize, Serialize};
 
+/// Why an accuracy specification cannot be read or applied.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum AccuracyError {
+    #[error("{0}")]
+    Unreadable(String),
+    #[error("the specification has a range term but no range is given")]
+    NoRange,
+    #[error("the station states no accuracy for the reference")]
+    NotStated,
+}
+
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct Accuracy {
     pub reading_percent: f64,
@@ -13,8 +24,9 @@ pub struct Accuracy {
 impl Accuracy {
     /// Reads "0.05 % of reading + 0.01 % of range", "±(0.05 % of reading + 0.01 % of range)" or
     /// "0.1 % of reading".
-    pub fn parse(text: &str) -> Result<Accuracy, String> {
+    pub fn parse(text: &str) -> Result<Accuracy, AccuracyError> {
         let help = "write an accuracy as \"0.05 % of reading + 0.01 % of range\"";
+        let bad = |why: String| AccuracyError::Unreadable(why);
         let cleaned: String = text
             .chars()
             .filter(|c| !matches!(c, '±' | '(' | ')'))
@@ -31,30 +43,30 @@ impl Accuracy {
             }
             let (number, rest) = term
                 .split_once('%')
-                .ok_or_else(|| format!("\"{term}\" has no %: {help}"))?;
+                .ok_or_else(|| bad(format!("\"{term}\" has no %: {help}")))?;
             let value: f64 = number
                 .trim()
                 .parse()
-                .map_err(|_| format!("\"{}\" is not a number: {help}", number.trim()))?;
+                .map_err(|_| bad(format!("\"{}\" is not a number: {help}", number.trim())))?;
             match rest.trim() {
                 "of reading" | "of rdg" => acc.reading_percent += value,
                 "of range" | "of rng" | "of full scale" | "of fs" => acc.range_percent += value,
-                other => return Err(format!("\"{other}\": {help}")),
+                other => return Err(bad(format!("\"{other}\": {help}"))),
             }
             seen_any = true;
         }
         if !seen_any {
-            return Err(help.to_string());
+            return Err(bad(help.to_string()));
         }
         Ok(acc)
     }
 
     /// The half-width at `reading` on a `range` (needed only when the range term is not zero).
-    pub fn half_width(&self, reading: f64, range: Option<f64>) -> Result<f64, String> {
+    pub fn half_width(&self, reading: f64, range: Option<f64>) -> Result<f64, AccuracyError> {
         let range_term = if self.range_percent == 0.0 {
             0.0
         } else {
-            let range = range.ok_or("the specification has a range term but no range is given")?;
+            let range = range.ok_or(AccuracyError::NoRange)?;
             self.range_percent / 100.0 * range
         };
         Ok(self.reading_percent / 100.0 * reading.abs() + range_term)

@@ -1513,7 +1513,7 @@ fn load(ctx: &mut Ctx, path: &str, raw: &RawLoad, ratings: &Ratings) -> Option<L
         (Some(pf), None) => match parse_power_factor(&pf.0) {
             Ok(phase) => Some(phase),
             Err(message) => {
-                ctx.error(&format!("{path}.power_factor"), message);
+                ctx.error(&format!("{path}.power_factor"), message.to_string());
                 None
             }
         },
@@ -1568,37 +1568,43 @@ fn load(ctx: &mut Ctx, path: &str, raw: &RawLoad, ratings: &Ratings) -> Option<L
     })
 }
 
+/// Why a power factor cannot be read.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum PowerFactorError {
+    #[error("\"{0}\" is not a power factor: {HELP}")]
+    NotANumber(String),
+    #[error("a power factor lies in (0, 1], got {0}: {HELP}")]
+    OutOfRange(f64),
+    #[error("\"{0}\" does not say inductive or capacitive: {HELP}")]
+    NoSide(String),
+    #[error("\"{0}\" is neither inductive nor capacitive: {HELP}")]
+    UnknownSide(String),
+}
+
+const HELP: &str = "write a power factor as \"1\", \"0.5 inductive\" or \"0.8 capacitive\"";
+
 /// Reads "1", "0.5 inductive" (or "ind", "lagging"), "0.8 capacitive" (or "cap", "leading")
 /// into the phase angle in degrees, positive when the current lags.
-pub(crate) fn parse_power_factor(text: &str) -> Result<f64, String> {
+pub(crate) fn parse_power_factor(text: &str) -> Result<f64, PowerFactorError> {
     let mut parts = text.split_whitespace();
     let number = parts.next().unwrap_or("");
     let side = parts.next();
-    let help = "write a power factor as \"1\", \"0.5 inductive\" or \"0.8 capacitive\"";
     if parts.next().is_some() {
-        return Err(format!("\"{text}\" is not a power factor: {help}"));
+        return Err(PowerFactorError::NotANumber(text.to_string()));
     }
     let pf: f64 = number
         .parse()
-        .map_err(|_| format!("\"{text}\" is not a power factor: {help}"))?;
+        .map_err(|_| PowerFactorError::NotANumber(text.to_string()))?;
     if !(pf > 0.0 && pf <= 1.0) {
-        return Err(format!("a power factor lies in (0, 1], got {pf}: {help}"));
+        return Err(PowerFactorError::OutOfRange(pf));
     }
     let angle = pf.acos().to_degrees();
     let sign = match side {
         None if pf == 1.0 => 1.0,
-        None => {
-            return Err(format!(
-                "\"{text}\" does not say inductive or capacitive: {help}"
-            ));
-        }
+        None => return Err(PowerFactorError::NoSide(text.to_string())),
         Some("ind" | "inductive" | "lag" | "lagging") => 1.0,
         Some("cap" | "capacitive" | "lead" | "leading") => -1.0,
-        Some(other) => {
-            return Err(format!(
-                "\"{other}\" is neither inductive nor capacitive: {help}"
-            ));
-        }
+        Some(other) => return Err(PowerFactorError::UnknownSide(other.to_string())),
     };
     Ok(sign * angle)
 }

@@ -8,6 +8,23 @@ use crate::plan::DecisionRule;
 use crate::record::{CheckRecord, StepRecord, UnitRecord};
 use std::fmt::Write;
 
+/// The step or check asked for is not in the record.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum ExplainError {
+    #[error("no step \"{step}\" in the record of {serial} (steps: {steps})")]
+    NoStep {
+        step: String,
+        serial: String,
+        steps: String,
+    },
+    #[error("step {step} checks no {quantity} (it checks: {checks})")]
+    NoCheck {
+        step: String,
+        quantity: String,
+        checks: String,
+    },
+}
+
 /// The computation of the check of `quantity` (and `channel`, where several) at step `step`
 /// (its id, or its number counted from 1) of `record`.
 pub fn explain(
@@ -15,39 +32,38 @@ pub fn explain(
     step: &str,
     quantity: &str,
     channel: Option<&str>,
-) -> Result<String, String> {
+) -> Result<String, ExplainError> {
     let (index, s) = record
         .steps
         .iter()
         .enumerate()
         .find(|(i, s)| s.id == step || step.parse::<usize>().ok() == Some(i + 1))
-        .ok_or_else(|| {
-            format!(
-                "no step \"{step}\" in the record of {} (steps: {})",
-                record.serial,
-                record
-                    .steps
-                    .iter()
-                    .map(|s| s.id.as_str())
-                    .collect::<Vec<_>>()
-                    .join(", ")
-            )
+        .ok_or_else(|| ExplainError::NoStep {
+            step: step.to_string(),
+            serial: record.serial.clone(),
+            steps: record
+                .steps
+                .iter()
+                .map(|s| s.id.as_str())
+                .collect::<Vec<_>>()
+                .join(", "),
         })?;
     let c = s
         .checks
         .iter()
         .find(|c| c.quantity.name() == quantity && channel.is_none_or(|ch| c.channel == ch))
-        .ok_or_else(|| {
-            format!(
-                "step {} checks no {quantity}{} (it checks: {})",
-                s.id,
-                channel.map_or(String::new(), |ch| format!(" on channel {ch}")),
-                s.checks
-                    .iter()
-                    .map(|c| format!("{} on {}", c.quantity.name(), c.channel))
-                    .collect::<Vec<_>>()
-                    .join(", ")
-            )
+        .ok_or_else(|| ExplainError::NoCheck {
+            step: s.id.clone(),
+            quantity: format!(
+                "{quantity}{}",
+                channel.map_or(String::new(), |ch| format!(" on channel {ch}"))
+            ),
+            checks: s
+                .checks
+                .iter()
+                .map(|c| format!("{} on {}", c.quantity.name(), c.channel))
+                .collect::<Vec<_>>()
+                .join(", "),
         })?;
     let mut out = String::new();
     let w = &mut out;
