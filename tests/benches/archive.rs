@@ -39,6 +39,11 @@ fn main() {
         .ok()
         .and_then(|v| v.parse().ok())
         .unwrap_or(1_000_000);
+    run(units);
+}
+
+/// The benchmark over an archive of `units` unit runs (the smoke test runs a small one).
+pub fn run(units: usize) {
     let lots = units.div_ceil(LOT);
     let dir = std::env::temp_dir().join(format!("meterproof-bench-archive-{}", std::process::id()));
     std::fs::create_dir_all(&dir).unwrap();

@@ -105,13 +105,18 @@ fn add_step_times(r: &UnitRecord, into: &mut [f64]) {
 }
 
 fn main() {
-    let fixed = plan("test-plans/demo.yaml");
-    let adaptive = plan("test-plans/demo-adaptive.yaml");
     // MP_BENCH_RUNS sets a smaller count for a quick look; 250 runs of 4 by default.
     let runs: u64 = std::env::var("MP_BENCH_RUNS")
         .ok()
         .and_then(|v| v.parse().ok())
         .unwrap_or(250);
+    run(runs, false);
+}
+
+/// The benchmark over `runs` runs of four; `smoke` keeps the real-clock part to one position.
+pub fn run(runs: u64, smoke: bool) {
+    let fixed = plan("test-plans/demo.yaml");
+    let adaptive = plan("test-plans/demo-adaptive.yaml");
     let adaptive = match std::env::var("MP_BENCH_ADAPTIVE_PLAN") {
         Ok(path) => plan(&path),
         Err(_) => adaptive,
@@ -232,8 +237,13 @@ fn main() {
     let allowed = scheduled * 1.01 + 0.020 * steps;
     let dir = std::env::temp_dir().join(format!("meterproof-bench-time-{}", std::process::id()));
     std::fs::create_dir_all(&dir).unwrap();
-    for positions in [1usize, 16] {
-        for archived in [false, true] {
+    let (positions_tried, archive_tried): (&[usize], &[bool]) = if smoke {
+        (&[1], &[true])
+    } else {
+        (&[1, 16], &[false, true])
+    };
+    for &positions in positions_tried {
+        for &archived in archive_tried {
             let mut config = SimConfig::new(7, positions);
             config.plant_defect = false;
             let mut bench =
@@ -258,7 +268,9 @@ fn main() {
             );
         }
     }
-    adaptive_overhead(&quick_adaptive(&text[..cut]), &dir);
+    if !smoke {
+        adaptive_overhead(&quick_adaptive(&text[..cut]), &dir);
+    }
     std::fs::remove_dir_all(&dir).unwrap();
 }
 

@@ -36,6 +36,11 @@ fn main() {
         .ok()
         .and_then(|v| v.parse().ok())
         .unwrap_or(100_000);
+    run(steps);
+}
+
+/// The benchmark with a plan of `steps` steps.
+pub fn run(steps: usize) {
     for mistake in [false, true] {
         let text = plan_text(steps, mistake);
         let before = peak_kb();

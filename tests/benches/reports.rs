@@ -17,6 +17,11 @@ fn peak_mb() -> Option<f64> {
 }
 
 fn main() {
+    run(1000);
+}
+
+/// The benchmark with `units` unit reports and a lot summary of them.
+pub fn run(units: usize) {
     let plan = Plan::load(std::path::Path::new("test-plans/demo.yaml")).unwrap();
     let ctx = RunContext {
         run_id: "bench".into(),
@@ -27,7 +32,7 @@ fn main() {
     };
     let records = exec::run(
         &plan,
-        &mut SimBench::new(&SimConfig::new(1, 1000)).into_bench(),
+        &mut SimBench::new(&SimConfig::new(1, units)).into_bench(),
         &ctx,
         &mut Silent,
     );
