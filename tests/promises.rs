@@ -1,0 +1,142 @@
+//! Promises the README makes about the binary, each held by a test that fails if it breaks:
+//! exit statuses, located plan mistakes, the words of the check verdicts, a unit that failed
+//! before its link died.
+
+mod common;
+use common::{bin, records_in, serve_at, temp_dir};
+use meterproof::record::{CheckVerdict, UnitStatus};
+use std::path::Path;
+
+fn text_of(o: &std::process::Output) -> String {
+    format!(
+        "{}{}",
+        String::from_utf8_lossy(&o.stdout),
+        String::from_utf8_lossy(&o.stderr)
+    )
+}
+
+/// An invalid plan: `check` and `run` both exit 2 with `FILE:LINE:COLUMN: PATH: what`, and
+/// `run` tests nothing (README, "Commands" and the exit statuses). Steps are counted from 1 in
+/// messages: the third step is steps[3].
+#[test]
+fn an_invalid_plan_exits_2_with_its_place_from_check_and_from_run() {
+    let dir = temp_dir("promise-invalid");
+    let plan = dir.join("typo.yaml");
+    let text = std::fs::read_to_string("test-plans/demo.yaml")
+        .unwrap()
+        .replace("load: { current: 5 A }", "load: { current: 5 Amps }");
+    let line = text.lines().position(|l| l.contains("5 Amps")).unwrap() + 1;
+    std::fs::write(&plan, &text).unwrap();
+    let shown = format!("{}:{line}:", plan.display());
+    let check = bin().arg("check").arg(&plan).output().unwrap();
+    assert_eq!(check.status.code(), Some(2), "{}", text_of(&check));
+    let err = String::from_utf8_lossy(&check.stderr);
+    assert!(
+        err.contains(&shown) && err.contains("steps[3].load.current") && err.contains("Amps"),
+        "{err}"
+    );
+    let out = dir.join("out");
+    let run = bin()
+        .args(["run", "--quiet", "--out"])
+        .arg(&out)
+        .arg(&plan)
+        .output()
+        .unwrap();
+    assert_eq!(run.status.code(), Some(2), "{}", text_of(&run));
+    assert!(String::from_utf8_lossy(&run.stderr).contains(&shown));
+    assert!(!out.exists() || records_in(&out).is_empty(), "nothing tested");
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// The demo plan with its power-factor step moved to run second, so that position 2's planted
+/// phase defect fails before later steps.
+fn pf_first(dir: &Path) -> std::path::PathBuf {
+    let text = std::fs::read_to_string("test-plans/demo-serial.yaml").unwrap();
+    let start = text.find("  - id: basic-pf0.5").unwrap();
+    let pf = text[start..].to_string();
+    let low = text.find("  - id: low-0.1Ib").unwrap();
+    let moved = format!("{}{}\n{}", &text[..low], pf.trim_end(), &text[low..start]);
+    let path = dir.join("pf-first.yaml");
+    std::fs::write(&path, moved).unwrap();
+    path
+}
+
+/// A run with a rejected unit and an incomplete one exits 3 (the run did not complete for
+/// every unit), and a unit that failed a check before its link died is REJECTED, not
+/// INCOMPLETE: what it was seen to do wrong stands (README, "Verdicts").
+#[test]
+fn rejected_and_incomplete_units_exit_3_and_a_failure_before_a_dead_link_stands() {
+    let dir = temp_dir("promise-mixed");
+    let plan = pf_first(&dir);
+    let check = bin().arg("check").arg(&plan).output().unwrap();
+    assert!(check.status.success(), "{}", text_of(&check));
+    // Position 2 (the planted defect) dies after its power-factor step; position 3 dies early.
+    let served = serve_at(
+        &dir,
+        "25",
+        &["--fault", "2:die-after=45", "--fault", "3:die-after=12"],
+    );
+    let out = dir.join("out");
+    let o = bin()
+        .args(["run", "--quiet", "--out"])
+        .arg(&out)
+        .arg("--bench")
+        .arg(&served.station)
+        .arg(&plan)
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(3), "{}", text_of(&o));
+    let records = records_in(&out);
+    assert_eq!(records.len(), 4);
+    let statuses: Vec<UnitStatus> = records.iter().map(|r| r.verdict.status).collect();
+    assert_eq!(
+        statuses,
+        [
+            UnitStatus::Accepted,
+            UnitStatus::Rejected,
+            UnitStatus::Incomplete,
+            UnitStatus::Accepted
+        ],
+        "{:?}",
+        records.iter().map(|r| &r.verdict).collect::<Vec<_>>()
+    );
+    // The rejected unit's link did die: later steps were not done.
+    let defective = &records[1];
+    assert!(
+        defective
+            .steps
+            .iter()
+            .any(|s| s.checks.iter().any(|c| c.verdict == CheckVerdict::NotEvaluated)),
+        "{:?}",
+        defective.verdict
+    );
+    assert!(
+        defective
+            .failed_checks()
+            .any(|(s, c)| s.id == "basic-pf0.5" && c.quantity.name() == "active_power")
+    );
+    // The check verdicts in the words the README gives, in the unit reports.
+    let html = |serial: &str| {
+        let run_dir = std::fs::read_dir(&out)
+            .unwrap()
+            .map(|e| e.unwrap().path())
+            .find(|p| p.is_dir())
+            .unwrap();
+        std::fs::read_dir(run_dir)
+            .unwrap()
+            .map(|e| e.unwrap().path())
+            .find(|p| {
+                p.extension().is_some_and(|x| x == "html")
+                    && p.file_name().unwrap().to_string_lossy().starts_with(serial)
+            })
+            .map(|p| std::fs::read_to_string(p).unwrap())
+            .unwrap()
+    };
+    let accepted = html(&records[0].serial);
+    assert!(accepted.contains("✔ pass") && !accepted.contains("FAIL"));
+    let rejected = html(&defective.serial);
+    assert!(rejected.contains("✘ FAIL"), "FAIL in the rejected unit's report");
+    assert!(rejected.contains("not evaluated"));
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
