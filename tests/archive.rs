@@ -85,10 +85,36 @@ fn the_demo_lands_in_the_archive_and_can_be_queried() {
         r["accepted"].as_u64().unwrap() + r["rejected"].as_u64().unwrap(),
         4
     );
-    let (_, json) = cmd(&["runs", "--verdict", "incomplete", "--json"], &archive);
-    assert_eq!(json.trim(), "[]");
+    // The built-in simulator plants its defect at position 2 (seed 1 and 2 alike): 3 accepted,
+    // 1 rejected in each run.
+    assert_eq!(r["accepted"].as_u64(), Some(3), "{r}");
+    assert_eq!(r["rejected"].as_u64(), Some(1), "{r}");
+    assert_eq!(r["incomplete"].as_u64(), Some(0), "{r}");
+    let count = |args: &[&str]| -> usize {
+        let mut a = vec!["runs", "--json"];
+        a.extend_from_slice(args);
+        let (code, json) = cmd(&a, &archive);
+        assert_eq!(code, 0, "{json}");
+        serde_json::from_str::<serde_json::Value>(&json)
+            .unwrap()
+            .as_array()
+            .unwrap()
+            .len()
+    };
+    // --verdict finds the runs with such a unit, and none where there is none.
+    assert_eq!(count(&[]), 2);
+    assert_eq!(count(&["--verdict", "rejected"]), 2);
+    assert_eq!(count(&["--verdict", "incomplete"]), 0);
     let (code, _) = cmd(&["runs", "--verdict", "maybe"], &archive);
     assert_eq!(code, 2);
+    // --plan by the plan's id, --since by date (today's runs are since yesterday, not since
+    // tomorrow).
+    assert_eq!(count(&["--plan", "TM16-EOL"]), 2);
+    assert_eq!(count(&["--plan", "NO-SUCH-PLAN"]), 0);
+    let today = chrono::Local::now().date_naive();
+    let day = |d: chrono::NaiveDate| d.format("%Y-%m-%d").to_string();
+    assert_eq!(count(&["--since", &day(today - chrono::Days::new(1))]), 2);
+    assert_eq!(count(&["--since", &day(today + chrono::Days::new(1))]), 0);
     // Export by serial: both runs' records and the plan text, byte for byte the plan file.
     let to = dir.join("export");
     let (code, text) = cmd(&["export", "A-1", "--to", to.to_str().unwrap()], &archive);
