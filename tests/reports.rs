@@ -177,11 +177,14 @@ fn the_lot_summary_counts_the_yield_and_the_rejections() {
             .unwrap();
         assert_eq!(o.status.code(), Some(1));
     }
+    let junit = dir.join("lot.xml");
     let o = bin()
         .args(["summary", "--lot", "LOT-S", "--json", "--out"])
         .arg(&dir)
         .arg("--archive")
         .arg(dir.join("archive.sqlite"))
+        .arg("--junit")
+        .arg(&junit)
         .output()
         .unwrap();
     assert_eq!(
@@ -213,6 +216,34 @@ fn the_lot_summary_counts_the_yield_and_the_rejections() {
     }
     let csv = std::fs::read_to_string(dir.join("summary-lot-LOT-S.csv")).unwrap();
     assert_eq!(csv.lines().count(), 14);
+    // Cpk of the lot's current errors at Ib against ±0.5 %, recomputed from the records:
+    // Cpk = min(USL − μ, μ − LSL) / 3s (NIST/SEMATECH e-Handbook 6.1.6, from memory).
+    let errors: Vec<f64> = records
+        .iter()
+        .flat_map(|r| &r.steps)
+        .filter(|st| st.id == "basic-Ib")
+        .flat_map(|st| &st.checks)
+        .filter(|c| c.quantity.name() == "current")
+        .map(|c| c.evaluation.as_ref().unwrap().error)
+        .collect();
+    assert_eq!(errors.len(), 10);
+    let n = errors.len() as f64;
+    let mean = errors.iter().sum::<f64>() / n;
+    let sd = (errors.iter().map(|e| (e - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
+    let cpk = (0.5 - mean).min(mean + 0.5) / (3.0 * sd);
+    let row = s["checks"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["step"] == "basic-Ib" && c["quantity"] == "current")
+        .unwrap();
+    assert!((row["cpk"].as_f64().unwrap() - cpk).abs() < 1e-9 * cpk.abs(), "{row}");
+    // --junit: one test case per unit and check, a failure for each failed check.
+    let xml = std::fs::read_to_string(&junit).unwrap();
+    well_formed(&xml).unwrap();
+    let failed: usize = records.iter().map(|r| r.failed_checks().count()).sum();
+    assert!(failed >= 2);
+    assert_eq!(xml.matches("<failure").count(), failed, "{xml}");
     std::fs::remove_dir_all(&dir).unwrap();
 }
 
