@@ -361,3 +361,133 @@ fn bad_selectors_and_allowances_are_refused() {
     assert!(String::from_utf8_lossy(&o.stderr).contains("no archive at"));
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+fn by_check<'a>(
+    c: &'a meterproof::regression::Comparison,
+    step: &str,
+    quantity: &str,
+) -> &'a meterproof::regression::CheckComparison {
+    c.checks
+        .iter()
+        .find(|x| x.step == step && x.quantity.name() == quantity)
+        .unwrap()
+}
+
+/// Each of the comparison's verdicts, from a firmware change made to produce it (the meters are
+/// the same simulated ones; only the firmware differs). The significance and equivalence tests
+/// themselves are checked against NIST's reference datasets in metrology::compare.
+#[test]
+fn every_movement_verdict_is_reached() {
+    let plan = plan_for_any_2x();
+    let base = run(&plan, &golden(FirmwareChange::default(), 0), "R-base");
+    let step_of = |size: f64, version: &str| FirmwareChange {
+        version: Some(version.into()),
+        gain_step_above: Some((10.0, size)),
+        extra_noise: 0.0,
+    };
+    // A 0.05 % step above 10 A on the same eight units, allowed 50 % of the 0.5 % limit:
+    // a significant shift, shown within ±0.25 %: "moved, within allowance".
+    let small = run(&plan, &golden(step_of(0.0005, "2.2.2"), 1), "R-small");
+    let c = compare(&base, &small, 0.5, &[]);
+    let imax = by_check(&c, "max-Imax", "current");
+    assert!(imax.test.as_ref().unwrap().paired);
+    assert_eq!(imax.movement, Movement::MovedWithinAllowance, "{imax:?}");
+    assert_eq!(imax.movement.words(), "moved, within allowance");
+    assert!(!c.gates());
+    // A baseline whose units fail at Imax (a 0.8 % step), a candidate without it: "newly
+    // passing", which does not stop a release.
+    let bad = run(&plan, &golden(step_of(0.008, "2.2.3"), 2), "R-bad");
+    let c = compare(&bad, &base, 0.2, &[]);
+    let imax = by_check(&c, "max-Imax", "current");
+    assert_eq!(imax.movement, Movement::NewlyPassing, "{imax:?}");
+    assert_eq!(imax.newly_passing.len(), 8);
+    assert_eq!(imax.movement.words(), "newly passing");
+    assert!(!imax.movement.gates());
+}
+
+/// Units not tested on both sides (a lot against another lot) are compared with Welch's test
+/// (unpaired); too few units and too tight an allowance leave a check "not shown within
+/// allowance" rather than "unchanged".
+#[test]
+fn unpaired_units_take_welch_s_test() {
+    let plan = plan_for_any_2x();
+    let lot = |first: usize, n: usize, seed: u64| SimConfig {
+        plant_defect: false,
+        serials: Some((first..first + n).map(|i| format!("UNIT-{i}")).collect()),
+        ..SimConfig::new(seed, n)
+    };
+    let a = run(&plan, &lot(1, 3, 11), "R-a");
+    let b = run(&plan, &lot(101, 3, 12), "R-b");
+    let c = compare(&a, &b, 0.01, &[]);
+    assert!(c.paired_units.is_empty());
+    assert!(!c.checks.is_empty());
+    for check in &c.checks {
+        if let Some(t) = &check.test {
+            assert!(!t.paired, "{check:?}");
+        }
+    }
+    let ib = by_check(&c, "basic-Ib", "current");
+    assert_eq!(ib.movement, Movement::NotShownWithinAllowance, "{ib:?}");
+    assert_eq!(
+        ib.movement.words(),
+        "no significant shift, not shown within allowance"
+    );
+}
+
+/// `compare` through the binary: lots selected by `lot=`, records narrowed by `--plan`, and the
+/// comparison as JSON.
+#[test]
+fn compare_selects_lots_and_plans_and_speaks_json() {
+    let dir = temp_dir("compare-lots");
+    let archive = dir.join("archive.sqlite");
+    for (lot, seed) in [("L-1", "1"), ("L-2", "2")] {
+        let o = bin()
+            .args([
+                "run",
+                "test-plans/demo.yaml",
+                "--quiet",
+                "--lot",
+                lot,
+                "--seed",
+                seed,
+            ])
+            .arg("--out")
+            .arg(dir.join("out"))
+            .arg("--archive")
+            .arg(&archive)
+            .output()
+            .unwrap();
+        assert_eq!(o.status.code(), Some(1));
+    }
+    let compare = |plan: &str| {
+        bin()
+            .args([
+                "compare",
+                "--baseline",
+                "lot=L-1",
+                "--candidate",
+                "lot=L-2",
+                "--plan",
+                plan,
+                "--json",
+                "--archive",
+            ])
+            .arg(&archive)
+            .output()
+            .unwrap()
+    };
+    let o = compare("TM16-EOL");
+    let json: serde_json::Value = serde_json::from_slice(&o.stdout)
+        .unwrap_or_else(|e| panic!("{e}: {}", String::from_utf8_lossy(&o.stderr)));
+    let checks = json["checks"].as_array().unwrap();
+    assert_eq!(checks.len(), 13, "every evaluated check of the demo plan");
+    for c in checks {
+        assert_eq!(c["baseline_units"], 4);
+        assert_eq!(c["candidate_units"], 4);
+    }
+    // Another plan's records: none selected, and it says which side.
+    let o = compare("NO-SUCH-PLAN");
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("the baseline selects no unit records"));
+    std::fs::remove_dir_all(&dir).unwrap();
+}

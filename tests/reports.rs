@@ -237,7 +237,10 @@ fn the_lot_summary_counts_the_yield_and_the_rejections() {
         .iter()
         .find(|c| c["step"] == "basic-Ib" && c["quantity"] == "current")
         .unwrap();
-    assert!((row["cpk"].as_f64().unwrap() - cpk).abs() < 1e-9 * cpk.abs(), "{row}");
+    assert!(
+        (row["cpk"].as_f64().unwrap() - cpk).abs() < 1e-9 * cpk.abs(),
+        "{row}"
+    );
     // --junit: one test case per unit and check, a failure for each failed check.
     let xml = std::fs::read_to_string(&junit).unwrap();
     well_formed(&xml).unwrap();
