@@ -561,3 +561,64 @@ fn a_unit_swapped_during_an_interruption_keeps_its_own_record() {
         std::fs::remove_dir_all(&dir).unwrap();
     }
 }
+
+/// `verify` names what it found changed: an edited reading and an edited verdict each name the
+/// run, the position and the serial of the record they belong to; so do the readings of an
+/// attempt that was cut short by the interruption (kept, though no verdict rests on them).
+#[test]
+fn verify_names_the_record_a_change_belongs_to() {
+    let dir = temp_dir("tamper-named");
+    let archive = dir.join("archive.sqlite");
+    fixture(&archive);
+    let conn = Connection::open(&archive).unwrap();
+    // A reading of a finished step, and a cut-short attempt's reading: the interrupted run's
+    // step 3 (index 2) was stopped during its sampling, then run again as attempt 2.
+    let cut_short: i64 = conn
+        .query_row(
+            "SELECT COUNT(*) FROM readings WHERE run_id = 'R2' AND step_index = 2 AND attempt = 1",
+            [],
+            |r| r.get(0),
+        )
+        .unwrap();
+    drop(conn);
+    let cases = [
+        (
+            "UPDATE readings SET value = value * 1.01 WHERE rowid = (SELECT rowid FROM readings WHERE run_id = 'R1' AND position = 2 AND step_index = 1 LIMIT 1)",
+            "R1",
+            2,
+        ),
+        (
+            "UPDATE units SET record = replace(record, '\"status\":\"rejected\"', '\"status\":\"accepted\"') WHERE run_id = 'R1' AND position = 2",
+            "R1",
+            2,
+        ),
+        (
+            "UPDATE readings SET value = value * 1.01 WHERE rowid = (SELECT rowid FROM readings WHERE run_id = 'R2' AND position = 3 AND step_index = 2 AND attempt = 1 LIMIT 1)",
+            "R2",
+            3,
+        ),
+    ];
+    for (i, (sql, run, position)) in cases.iter().enumerate() {
+        if i == 2 && cut_short == 0 {
+            panic!("the fixture's interruption left no cut-short attempt");
+        }
+        let copy = copy_of(&archive, &dir, 1000 + i);
+        Connection::open(&copy).unwrap().execute_batch(sql).unwrap();
+        let v = Archive::open_read_only(&copy).unwrap().verify(None).unwrap();
+        assert!(!v.failures.is_empty(), "{sql}: not found");
+        let serial = {
+            let c = Connection::open(&copy).unwrap();
+            c.query_row(
+                "SELECT serial FROM units WHERE run_id = ?1 AND position = ?2 LIMIT 1",
+                rusqlite::params![run, position],
+                |r| r.get::<_, String>(0),
+            )
+            .unwrap()
+        };
+        let named = v.failures.iter().any(|f| {
+            f.what.contains(run) && f.what.contains(&format!("position {position}")) && f.what.contains(&serial)
+        });
+        assert!(named, "{sql}: {:#?}", v.failures);
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}
