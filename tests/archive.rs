@@ -556,3 +556,86 @@ fn explain_prints_a_computation_that_can_be_redone_by_hand() {
     );
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// The archive's durability settings as SQLite itself reports them (the WAL journal, fsync at
+/// every commit), and the group commit of readings that arrive together: sixteen positions
+/// handing over readings at once are committed in fewer transactions than readings, and every
+/// reading is stored.
+#[test]
+fn durability_settings_and_group_commit_of_concurrent_readings() {
+    use meterproof::archive::{RunRecorder, RunRow};
+    use meterproof::exec::{ReadingKey, Recorder};
+    use meterproof::plan::{Plan, Quantity};
+    use meterproof::record::Sample;
+    let dir = temp_dir("durability");
+    let path = dir.join("archive.sqlite");
+    let archive = meterproof::archive::Archive::open(&path).unwrap();
+    assert_eq!(archive.durability().unwrap(), ("wal".to_string(), 2));
+    let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
+    archive
+        .begin_run(
+            &plan,
+            &RunRow {
+                run_id: "G".into(),
+                plan_sha256: plan.source.sha256.clone(),
+                plan_id: plan.id.clone(),
+                revision: plan.revision.clone(),
+                lot: None,
+                station: "sim".into(),
+                operator: "tester".into(),
+                bench: "{\"kind\":\"sim\"}".into(),
+                tool_version: "test".into(),
+                started_at: "2026-12-01T10:00:00.000+00:00".into(),
+                finished_at: None,
+                state: "running".into(),
+            },
+        )
+        .unwrap();
+    let recorder = RunRecorder::new(&archive, "G");
+    let (positions, per_position) = (16usize, 40usize);
+    let start = std::sync::Barrier::new(positions);
+    std::thread::scope(|s| {
+        for position in 1..=positions {
+            let (recorder, start) = (&recorder, &start);
+            s.spawn(move || {
+                start.wait();
+                for i in 0..per_position {
+                    let key = ReadingKey {
+                        position,
+                        step_index: 0,
+                        attempt: 1,
+                        quantity: Quantity::Current,
+                        channel: "L".into(),
+                        raw: false,
+                    };
+                    recorder.reading(
+                        &key,
+                        Sample {
+                            t_s: i as f64,
+                            value: position as f64 + i as f64 / 1000.0,
+                            took_s: None,
+                        },
+                    );
+                }
+            });
+        }
+    });
+    assert_eq!(archive.failure(), None);
+    let total = positions * per_position;
+    let stored: i64 = rusqlite::Connection::open(&path)
+        .unwrap()
+        .query_row(
+            "SELECT COUNT(*) FROM readings WHERE run_id = 'G'",
+            [],
+            |r| r.get(0),
+        )
+        .unwrap();
+    assert_eq!(stored as usize, total, "every reading stored");
+    let commits = recorder.reading_commits();
+    println!("{total} readings from {positions} threads in {commits} commits");
+    assert!(
+        commits < total as u64,
+        "{commits} commits for {total} readings"
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -604,7 +604,10 @@ fn verify_names_the_record_a_change_belongs_to() {
         }
         let copy = copy_of(&archive, &dir, 1000 + i);
         Connection::open(&copy).unwrap().execute_batch(sql).unwrap();
-        let v = Archive::open_read_only(&copy).unwrap().verify(None).unwrap();
+        let v = Archive::open_read_only(&copy)
+            .unwrap()
+            .verify(None)
+            .unwrap();
         assert!(!v.failures.is_empty(), "{sql}: not found");
         let serial = {
             let c = Connection::open(&copy).unwrap();
@@ -616,7 +619,9 @@ fn verify_names_the_record_a_change_belongs_to() {
             .unwrap()
         };
         let named = v.failures.iter().any(|f| {
-            f.what.contains(run) && f.what.contains(&format!("position {position}")) && f.what.contains(&serial)
+            f.what.contains(run)
+                && f.what.contains(&format!("position {position}"))
+                && f.what.contains(&serial)
         });
         assert!(named, "{sql}: {:#?}", v.failures);
     }

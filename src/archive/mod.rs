@@ -469,6 +469,15 @@ impl Archive {
         self.conn.lock().unwrap_or_else(|p| p.into_inner())
     }
 
+    /// The connection's durability settings as SQLite reports them: the journal mode ("wal")
+    /// and the synchronous level (2 is FULL: an fsync at every commit).
+    pub fn durability(&self) -> Result<(String, i64), ArchiveError> {
+        let conn = self.conn();
+        let mode: String = conn.pragma_query_value(None, "journal_mode", |r| r.get(0))?;
+        let sync: i64 = conn.pragma_query_value(None, "synchronous", |r| r.get(0))?;
+        Ok((mode, sync))
+    }
+
     /// The first write that failed during a run, if one did.
     pub fn failure(&self) -> Option<String> {
         self.first_error
@@ -969,6 +978,8 @@ pub struct RunRecorder<'a> {
     archive: &'a Archive,
     run_id: String,
     pending: Mutex<PendingReadings>,
+    /// Transactions that committed readings, to show the grouping.
+    reading_commits: std::sync::atomic::AtomicU64,
 }
 
 /// Readings handed over but not yet committed, and how far the commits have got.
@@ -987,7 +998,15 @@ impl<'a> RunRecorder<'a> {
             archive,
             run_id: run_id.to_string(),
             pending: Mutex::new(PendingReadings::default()),
+            reading_commits: Default::default(),
         }
+    }
+
+    /// How many transactions have committed readings so far (fewer than the readings when
+    /// readings arrived together).
+    pub fn reading_commits(&self) -> u64 {
+        self.reading_commits
+            .load(std::sync::atomic::Ordering::SeqCst)
     }
 
     fn pending(&self) -> std::sync::MutexGuard<'_, PendingReadings> {
@@ -1076,6 +1095,8 @@ impl Recorder for RunRecorder<'_> {
             }
             tx.commit()
         });
+        self.reading_commits
+            .fetch_add(1, std::sync::atomic::Ordering::SeqCst);
         self.pending().committed = upto;
         drop(conn);
         if let Err(e) = result {
