@@ -59,6 +59,7 @@ fn a_unit_that_settles_at_once_waits_only_the_minimum_and_a_full_window() {
 fn clear_decisions_stop_sampling_at_the_minimum_and_doubtful_ones_take_the_maximum() {
     let plan = adaptive();
     let records = run_at(&plan, 0.2);
+    assert_eq!(records.len(), 2, "two simulated meters");
     for r in &records {
         for s in &r.steps {
             let n = s.checks[0].samples.len() as u32;

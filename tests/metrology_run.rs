@@ -25,6 +25,7 @@ fn demo_text() -> String {
 fn every_check_carries_its_budget_and_decision() {
     let plan = Plan::from_text("demo.yaml", &demo_text()).unwrap();
     let records = run(&plan, &SimConfig::new(1, 4));
+    assert_eq!(records.len(), 4);
     for r in &records {
         for c in r.steps.iter().flat_map(|s| &s.checks) {
             let b = c.uncertainty.as_ref().expect("a budget");

@@ -191,7 +191,9 @@ fn skip_and_abort_go_into_the_records() {
         &input,
     );
     assert_eq!(o.status.code(), Some(3), "the run did not complete");
-    for r in records_in(&dir) {
+    let records = records_in(&dir);
+    assert_eq!(records.len(), 4);
+    for r in records {
         assert_eq!(r.verdict.status, UnitStatus::Incomplete);
         assert_eq!(r.steps[0].status, StepStatus::NotRun);
         assert_eq!(
@@ -225,10 +227,38 @@ fn ctrl_c_at_a_prompt_keeps_what_was_taken_and_exits_3() {
         .spawn()
         .unwrap();
     let mut stdin = child.stdin.take().unwrap();
-    // Identities and the first (no-load) step, then wait at the second step's prompt.
+    // The prompts come on standard error: read it as it comes, to know when the run waits.
+    let mut stderr = child.stderr.take().unwrap();
+    let (tx, rx) = std::sync::mpsc::channel::<Vec<u8>>();
+    let reader = std::thread::spawn(move || {
+        let mut buf = [0u8; 4096];
+        loop {
+            match std::io::Read::read(&mut stderr, &mut buf) {
+                Ok(0) | Err(_) => break,
+                Ok(n) => {
+                    if tx.send(buf[..n].to_vec()).is_err() {
+                        break;
+                    }
+                }
+            }
+        }
+    });
+    // Identities and the first (no-load) step, then wait until the second step's prompt is
+    // shown (an observable event, not a fixed pause).
     stdin.write_all(b"op\nL\n1\n2\n3\n4\n\n").unwrap();
     stdin.flush().unwrap();
-    std::thread::sleep(std::time::Duration::from_millis(800));
+    let mut seen = Vec::new();
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(60);
+    while !String::from_utf8_lossy(&seen).contains("Set the load to 500 mA") {
+        let left = deadline.saturating_duration_since(std::time::Instant::now());
+        match rx.recv_timeout(left) {
+            Ok(chunk) => seen.extend(chunk),
+            Err(_) => panic!(
+                "the second step's prompt never came: {}",
+                String::from_utf8_lossy(&seen)
+            ),
+        }
+    }
     let status = Command::new("kill")
         .args(["-INT", &child.id().to_string()])
         .status()
@@ -236,13 +266,17 @@ fn ctrl_c_at_a_prompt_keeps_what_was_taken_and_exits_3() {
     assert!(status.success());
     let o = child.wait_with_output().unwrap();
     drop(stdin);
+    reader.join().unwrap();
+    seen.extend(rx.try_iter().flatten());
     assert_eq!(
         o.status.code(),
         Some(3),
         "{}",
-        String::from_utf8_lossy(&o.stderr)
+        String::from_utf8_lossy(&seen)
     );
-    for r in records_in(&dir) {
+    let records = records_in(&dir);
+    assert_eq!(records.len(), 4, "every unit's record kept");
+    for r in records {
         assert_eq!(r.verdict.status, UnitStatus::Incomplete);
         assert_eq!(
             r.steps[0].status,

@@ -540,7 +540,9 @@ fn a_source_error_stops_before_any_load() {
         stdout.contains("the source reports an error after its set-up commands: -113"),
         "{stdout}"
     );
-    for r in common::records_in(&dir.join("out")) {
+    let records = common::records_in(&dir.join("out"));
+    assert!(!records.is_empty(), "the units' records are kept");
+    for r in records {
         assert_eq!(r.verdict.status, UnitStatus::Incomplete);
         assert!(r.steps.iter().all(|s| s.status == StepStatus::NotRun));
     }
@@ -632,7 +634,9 @@ fn every_position_failing_alike_is_taken_for_the_reference() {
         )),
         "{stderr}"
     );
-    for r in common::records_in(&dir.join("out")) {
+    let records = common::records_in(&dir.join("out"));
+    assert!(!records.is_empty(), "the units' records are kept");
+    for r in records {
         let s = r.steps.iter().find(|s| s.id == wrong_step).unwrap();
         assert_eq!(s.status, StepStatus::Incomplete);
         assert!(

@@ -191,6 +191,7 @@ fn an_overdue_reference_is_refused_unless_a_reason_is_given() {
         ],
     );
     assert_eq!(code, 1);
+    assert_eq!(records.len(), 4);
     for r in &records {
         assert!(
             r.notes
