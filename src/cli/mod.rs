@@ -1539,35 +1539,75 @@ fn export_templates(dir: &Path) -> Result<i32, CliError> {
 fn ports() -> Result<i32, CliError> {
     let ports = serialport::available_ports()
         .map_err(|e| CliError::Run(format!("cannot list serial ports: {e}")))?;
+    print!("{}", ports_text(&ports));
+    Ok(0)
+}
+
+/// The serial ports as `ports` lists them: path, kind, and for USB adapters the vendor and
+/// product ids, serial number and product name (what tells two adapters of one model apart).
+fn ports_text(ports: &[serialport::SerialPortInfo]) -> String {
     if ports.is_empty() {
-        println!("no serial ports found (pseudo-terminals are never listed)");
-        return Ok(0);
+        return "no serial ports found (pseudo-terminals are never listed)\n".into();
     }
-    println!(
-        "{:<24} {:<10} {:<10} {:<18} product",
+    let mut s = format!(
+        "{:<24} {:<10} {:<10} {:<18} product\n",
         "port", "type", "vid:pid", "serial"
     );
     for p in ports {
-        match p.port_type {
-            serialport::SerialPortType::UsbPort(u) => println!(
-                "{:<24} {:<10} {:04x}:{:04x}  {:<18} {}",
-                p.port_name,
+        let name = terminal_safe(&p.port_name);
+        let line = match &p.port_type {
+            serialport::SerialPortType::UsbPort(u) => format!(
+                "{name:<24} {:<10} {:04x}:{:04x}  {:<18} {}",
                 "usb",
                 u.vid,
                 u.pid,
-                u.serial_number.unwrap_or_default(),
-                u.product.unwrap_or_default()
+                terminal_safe(u.serial_number.as_deref().unwrap_or_default()),
+                terminal_safe(u.product.as_deref().unwrap_or_default())
             ),
-            serialport::SerialPortType::PciPort => {
-                println!("{:<24} {:<10}", p.port_name, "pci")
-            }
-            serialport::SerialPortType::BluetoothPort => {
-                println!("{:<24} {:<10}", p.port_name, "bluetooth")
-            }
-            serialport::SerialPortType::Unknown => {
-                println!("{:<24} {:<10}", p.port_name, "other")
-            }
-        }
+            serialport::SerialPortType::PciPort => format!("{name:<24} {:<10}", "pci"),
+            serialport::SerialPortType::BluetoothPort => format!("{name:<24} {:<10}", "bluetooth"),
+            serialport::SerialPortType::Unknown => format!("{name:<24} {:<10}", "other"),
+        };
+        s.push_str(line.trim_end());
+        s.push('\n');
     }
-    Ok(0)
+    s
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use serialport::{SerialPortInfo, SerialPortType, UsbPortInfo};
+
+    /// Two USB-UART adapters of one model (vendor 0403, product 6001: the ids a common
+    /// USB-serial bridge reports; common practice, no published source) are told apart by
+    /// their serial numbers; a serial number with a terminal escape in it is shown harmless.
+    #[test]
+    fn ports_are_listed_with_what_tells_adapters_apart() {
+        let usb = |path: &str, serial: &str| SerialPortInfo {
+            port_name: path.into(),
+            port_type: SerialPortType::UsbPort(UsbPortInfo {
+                vid: 0x0403,
+                pid: 0x6001,
+                serial_number: Some(serial.into()),
+                manufacturer: None,
+                product: Some("USB-UART bench adapter".into()),
+            }),
+        };
+        let text = ports_text(&[
+            usb("/dev/ttyUSB0", "A10K3X"),
+            usb("/dev/ttyUSB1", "B2\u{1b}[2J"),
+            SerialPortInfo {
+                port_name: "/dev/ttyS0".into(),
+                port_type: SerialPortType::Unknown,
+            },
+        ]);
+        let lines: Vec<&str> = text.lines().collect();
+        assert_eq!(lines.len(), 4, "{text}");
+        assert!(lines[1].starts_with("/dev/ttyUSB0") && lines[1].contains("0403:6001"));
+        assert!(lines[1].contains("A10K3X") && lines[1].ends_with("USB-UART bench adapter"));
+        assert!(!lines[2].contains('\u{1b}'), "{:?}", lines[2]);
+        assert!(lines[3].starts_with("/dev/ttyS0") && lines[3].ends_with("other"));
+        assert!(ports_text(&[]).starts_with("no serial ports found"));
+    }
 }

@@ -224,18 +224,4 @@ mod tests {
         let between = error(1.05, 1.0);
         assert!(!settled(&between, &decide(&between, Some(0.1), rule)));
     }
-
-    /// Conformance probability (JCGM 106:2012, normal result): tolerance ±1.0 %, measured
-    /// +0.8 %, U = 0.3 % (k = 2): P(true error > 1.0 %) = 1 − Φ((1.0 − 0.8)/0.15) = 0.0912
-    /// (domain notes §5, computed).
-    #[test]
-    fn risk_at_a_marginal_pass() {
-        use statrs::distribution::{ContinuousCDF, Normal};
-        let u = 0.3 / 2.0;
-        let p = 1.0 - Normal::standard().cdf((1.0 - 0.8) / u);
-        assert!((p - 0.0912).abs() < 5e-5, "{p}");
-        // At the guarded acceptance limit (w = U) the risk is 1 − Φ(2) ≈ 2.3 %.
-        let at_al = 1.0 - Normal::standard().cdf(2.0);
-        assert!((at_al - 0.02275).abs() < 1e-5);
-    }
 }
