@@ -3,7 +3,6 @@
 
 mod common;
 use common::{bin, records_in, temp_dir};
-use meterproof::report::Templates;
 use std::path::Path;
 
 fn count_xml(xml: &str, names: &[&str]) -> Vec<usize> {
