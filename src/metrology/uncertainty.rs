@@ -167,6 +167,43 @@ impl Budget {
 mod tests {
     use super::*;
 
+    /// GUM (JCGM 100:2008) H.2.4, second approach, on the observations of Table H.2: R, X and Z
+    /// computed for each of the five sets (R = V/I·cos θ, X = V/I·sin θ, Z = V/I), then averaged,
+    /// with the Type A standard uncertainty s/√n of each mean. Table H.4 gives R = 127.732 Ω,
+    /// X = 219.847 Ω, Z = 254.260 Ω, u(R) = 0.071 Ω, u(X) = 0.295 Ω, u(Z) = 0.236 Ω.
+    #[test]
+    fn gum_h2_resistance_reactance_impedance_by_the_second_approach() {
+        let rows: Vec<(f64, f64, f64)> = include_str!("../../tests/data/gum/H2-VItheta.csv")
+            .lines()
+            .filter(|l| !l.starts_with('#') && !l.starts_with('V'))
+            .map(|l| {
+                let v: Vec<f64> = l.split(',').map(|x| x.parse().unwrap()).collect();
+                (v[0], v[1] / 1000.0, v[2])
+            })
+            .collect();
+        assert_eq!(rows.len(), 5);
+        let of = |f: &dyn Fn(f64, f64, f64) -> f64| -> (f64, f64) {
+            let values: Vec<f64> = rows.iter().map(|(v, i, t)| f(*v, *i, *t)).collect();
+            let s = crate::metrology::Summary::of(&values).unwrap();
+            let c = type_a("mean", s.std_dev.unwrap(), s.count, 1.0);
+            assert_eq!(c.dof, Some(4.0));
+            (s.mean, c.u)
+        };
+        let (r, ur) = of(&|v, i, t| v / i * t.cos());
+        let (x, ux) = of(&|v, i, t| v / i * t.sin());
+        let (z, uz) = of(&|v, i, _| v / i);
+        for (got, want, digits) in [
+            (r, 127.732, 0.0005),
+            (x, 219.847, 0.0005),
+            (z, 254.260, 0.0005),
+            (ur, 0.071, 0.0005),
+            (ux, 0.295, 0.0005),
+            (uz, 0.236, 0.0005),
+        ] {
+            assert!((got - want).abs() <= digits, "{got} vs {want}");
+        }
+    }
+
     /// GUM (JCGM 100:2008) Table G.2, p = 95.45 %; exact quantiles from the reference-data note
     /// (tests/data/README.md): t(1) = 13.96773, t(2) = 4.5265367, t(5) = 2.6486494,
     /// t(10) = 2.2836782, t(20) = 2.1330255, t(50) = 2.0512482; ν = ∞ gives 2.
