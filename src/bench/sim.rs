@@ -769,6 +769,8 @@ mod tests {
         }
     }
 
+    /// The simulator's random streams are ChaCha8 seeded by the seed alone (rand_chacha): the same
+    /// seed gives the same readings.
     #[test]
     fn same_seed_same_numbers() {
         let read_all = || {
@@ -784,6 +786,8 @@ mod tests {
         assert_eq!(read_all(), read_all());
     }
 
+    /// A first-order settling leaves e^(−t/τ) of a load change after t (e^(−1) = 36.8 % at one time
+    /// constant): read at τ/2 the meter is far from its final reading (common practice).
     #[test]
     fn a_meter_read_too_early_has_not_settled() {
         let sim = SimBench::new(&SimConfig {
@@ -808,6 +812,9 @@ mod tests {
         assert!((late - 5.0).abs() < 0.05, "late {late}");
     }
 
+    /// Energy is the integral of power, E = P·t (2300 W for 36 s is 23 Wh; SI Brochure, 9th
+    /// edition, the watt hour as a derived unit); the meter's own errors are a fraction of a
+    /// percent.
     #[test]
     fn the_energy_register_integrates_power() {
         let sim = SimBench::new(&SimConfig {
@@ -830,6 +837,8 @@ mod tests {
         assert!(((e1 - e0) - 23.0).abs() < 0.2, "{}", e1 - e0);
     }
 
+    /// Below the no-load threshold nothing registers: IEC 62053-21's no-load condition, at most
+    /// one pulse in the test time (from memory); here, over ten minutes, none at all.
     #[test]
     fn no_load_does_not_creep() {
         let mut bench = SimBench::new(&SimConfig::new(5, 2)).into_bench();
@@ -841,6 +850,8 @@ mod tests {
         }
     }
 
+    /// The simulator's own rule (invented for demos): the planted defect sits at position
+    /// seed mod N + 1.
     #[test]
     fn the_defect_lies_where_the_seed_says() {
         let sim = SimBench::new(&SimConfig::new(6, 4));
@@ -848,6 +859,8 @@ mod tests {
         assert_eq!(sim.defects()[0].position, 6 % 4 + 1);
     }
 
+    /// Rounding to six significant digits, half away from zero, as a six-digit display shows
+    /// (common practice, no published source).
     #[test]
     fn rounds_like_a_six_digit_display() {
         assert_eq!(round_significant(4.987654321, 6), 4.98765);

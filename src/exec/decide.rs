@@ -559,6 +559,8 @@ mod tests {
         assert_eq!(register_timing_half_width(&instant, 10.0), None);
     }
 
+    /// Under a steady load energy is proportional to time (E = P·t): readings 5 s apart in a 10 s
+    /// window cover half of its energy.
     #[test]
     fn a_register_read_late_covers_less_of_the_window() {
         let s = |t_s| Sample::at(t_s, 0.0);

@@ -181,6 +181,8 @@ mod tests {
         assert!(off_plan(Quantity::Current, 15.19, 16.0, 0.05, 5.0).is_some());
     }
 
+    /// A no-load step allows 5 % of Ib (0.25 A at Ib 5 A) and a power factor is held to 0.05
+    /// absolute: the plan's own bounds (common practice, no published source).
     #[test]
     fn no_load_must_be_no_load_and_power_factor_is_compared_absolutely() {
         assert!(off_plan(Quantity::Current, 0.2, 0.0, 0.05, 5.0).is_none());

@@ -78,8 +78,8 @@ mod tests {
     use super::*;
 
     /// "±(0.05 % of reading + 0.01 % of range)" is a rectangular half-width
-    /// a = 0.0005 · reading + 0.0001 · range (domain notes §4; the usual data-sheet form, common
-    /// practice, no published source): at 5 A on a 10 A range, a = 3.5 mA.
+    /// a = 0.0005 · reading + 0.0001 · range (the usual data-sheet form, taken as a
+    /// rectangular half-width per GUM 4.3.7; common practice, no published source): at 5 A on a 10 A range, a = 3.5 mA.
     #[test]
     fn reads_a_data_sheet_specification() {
         let a = Accuracy::parse("±(0.05 % of reading + 0.01 % of range)").unwrap();

@@ -282,7 +282,7 @@ mod tests {
     }
 
     /// Ohm's law: a 10 mΩ shunt carrying 1.21 A develops 12.1 mV (common practice, no published
-    /// source); 5 A through 10 mΩ gives 50 mV and dissipates 0.25 W (domain notes §2).
+    /// source); 5 A through 10 mΩ gives 50 mV and dissipates I²R = 0.25 W (Ohm's and Joule's laws).
     #[test]
     fn shunt_by_ohms_law() {
         assert!((shunt_voltage(0.010, 1.21) - 0.0121).abs() < 1e-15);

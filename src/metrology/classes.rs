@@ -453,7 +453,8 @@ mod tests {
         }
     }
 
-    /// IEC 62053-21:2003 limits (from memory, as the data file says), domain notes §3.
+    /// IEC 62053-21:2003 limits (from memory, as the data file says; verify against the current
+    /// edition).
     #[test]
     fn iec_62053_21_class_1_and_2() {
         let c = ib(5.0, 60.0);
@@ -546,8 +547,8 @@ mod tests {
         );
     }
 
-    /// Directive 2014/32/EU, Annex V (MI-003), Table 2 [published; decoded in the domain notes
-    /// §3]: classes A, B, C by current range and ambient temperature band.
+    /// Directive 2014/32/EU, Annex V (MI-003), Table 2 (published, Official Journal of the EU L 96,
+    /// 29.3.2014): classes A, B, C by current range and ambient temperature band.
     #[test]
     fn directive_2014_32_annex_v_by_temperature_band() {
         let c = Currents {

@@ -21,7 +21,8 @@ mod tests {
     use super::*;
     use crate::metrology::tolerance::percent_error;
 
-    /// Check values computed from the published pulse formulas (domain notes §2).
+    /// Check values computed by hand from the pulse formulas of IEC 62053-21:2003 / IEC 62052-11
+    /// (E = N/k; fixed-time error e = (3.6·10⁶·N/(k·P·t) − 1)·100; from memory).
     #[test]
     fn pulse_formulas() {
         // k = 1600 imp/kWh, N = 40, P = 2000 W, t = 45 s → e = 0.00 %.

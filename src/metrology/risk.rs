@@ -164,7 +164,8 @@ mod tests {
     use rand::{RngExt, SeedableRng};
     use rand_distr::StandardNormal;
 
-    /// Published in the guard-banding literature (Deaver), as domain notes §9 records: process
+    /// Published in the guard-banding literature (D. Deaver, NCSL workshop paper on guard-banding,
+    /// as tabulated in an open metrology toolkit's tests), and recomputed here by quadrature: process
     /// σ 4, measurement σ 1, limits ±8, simple acceptance → false accept 0.008, false reject
     /// 0.015.
     #[test]

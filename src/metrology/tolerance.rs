@@ -126,6 +126,8 @@ mod tests {
         assert!((e - 2.564).abs() < 0.0005, "{e}");
     }
 
+    /// IEC 62053-21:2003, 3.5 (from memory): the error is positive when the meter reads more than
+    /// the reference; a zero reference has no percentage error.
     #[test]
     fn sign_says_whether_the_meter_reads_high() {
         assert!(percent_error(101.0, 100.0).unwrap() > 0.0);
@@ -173,6 +175,8 @@ mod tests {
         assert!(e.within);
     }
 
+    /// Absolute bands in the quantity's own unit (a frequency within ±0.05 Hz; common practice, no
+    /// published source): 50.04 Hz against 50 Hz is 0.04 Hz, inside.
     #[test]
     fn band_and_upper_bound_are_in_the_quantity_unit() {
         let band = evaluate(

@@ -204,8 +204,8 @@ mod tests {
         }
     }
 
-    /// GUM (JCGM 100:2008) Table G.2, p = 95.45 %; exact quantiles from the reference-data note
-    /// (tests/data/README.md): t(1) = 13.96773, t(2) = 4.5265367, t(5) = 2.6486494,
+    /// GUM (JCGM 100:2008) Table G.2, p = 95.45 %; quantiles of Student's t at
+    /// one-sided 0.977249868 computed at 40 digits with an arbitrary-precision library: t(1) = 13.96773, t(2) = 4.5265367, t(5) = 2.6486494,
     /// t(10) = 2.2836782, t(20) = 2.1330255, t(50) = 2.0512482; ν = ∞ gives 2.
     #[test]
     fn coverage_factors_match_gum_table_g2() {
@@ -263,7 +263,8 @@ mod tests {
     }
 
     /// GUM G.4.1 example: relative standard uncertainties 0.25 %, 0.57 %, 0.82 % with ν = 9, 4,
-    /// 14 give u_c = 1.0295 % and ν_eff = 18.9987 (reference-data note).
+    /// 14 give u_c = 1.0295 % and ν_eff = 18.9987 (GUM G.4.1; ν_eff to four decimals recomputed
+    /// from the example's own figures).
     #[test]
     fn welch_satterthwaite_matches_gum_g41() {
         let c = |u: f64, nu: f64| Component {

@@ -311,6 +311,8 @@ mod tests {
         (a - b).abs() <= 1e-12 * b.abs().max(1.0)
     }
 
+    /// Values and their SI units as the SI Brochure (BIPM, 9th edition 2019) writes them: a number,
+    /// a space (or none), a unit symbol with its prefix.
     #[test]
     fn reads_values_as_people_write_them() {
         assert!(close(parse("230 V", Dimension::Voltage).unwrap(), 230.0));
@@ -349,6 +351,8 @@ mod tests {
         assert!(close(parse("10 mΩ", Dimension::Resistance).unwrap(), 0.01));
     }
 
+    /// Dimensions per the SI Brochure (BIPM, 9th edition 2019), Table 4 (V, A are not
+    /// interchangeable); the message is ours.
     #[test]
     fn a_value_of_the_wrong_dimension_says_what_was_expected() {
         let err = parse("5 V", Dimension::Current).unwrap_err();
@@ -358,6 +362,8 @@ mod tests {
         );
     }
 
+    /// A quantity value is a number and a unit (SI Brochure, 9th edition, 5.4.3): no unit, or an
+    /// unknown one, is refused.
     #[test]
     fn a_missing_or_unknown_unit_is_refused() {
         assert!(matches!(
@@ -385,6 +391,8 @@ mod tests {
         ));
     }
 
+    /// The decimal marker may be a point or a comma (SI Brochure, 9th edition, 5.4.4); plans take
+    /// only the point, typed readings also the comma.
     #[test]
     fn a_decimal_comma_is_read_only_where_allowed() {
         assert!(parse("4,98 A", Dimension::Current).is_err());
@@ -401,6 +409,8 @@ mod tests {
         );
     }
 
+    /// Prefixes chosen so that the number lies between 1 and 1000 where it can (SI Brochure,
+    /// 9th edition, 3: prefixes; the choice is common practice, no published source).
     #[test]
     fn displays_values_with_a_prefix_that_fits() {
         assert_eq!(Display(0.25, Dimension::Current).to_string(), "250 mA");

@@ -1817,7 +1817,8 @@ mod tests {
         assert_eq!(parse_power_factor("1").unwrap(), 0.0);
         assert!((parse_power_factor("0.5 inductive").unwrap() - 60.0).abs() < 1e-9);
         assert!((parse_power_factor("0.5 ind").unwrap() - 60.0).abs() < 1e-9);
-        // 0.8 capacitive: current leads by 36.87° (domain notes, §1).
+        // 0.8 capacitive: current leads by arccos 0.8 = 36.87° (the definition of power factor,
+        // cos φ; IEC 60050-131, from memory).
         assert!((parse_power_factor("0.8 capacitive").unwrap() + 36.869_897_6).abs() < 1e-6);
         assert!(parse_power_factor("0.5").is_err());
         assert!(parse_power_factor("1.2").is_err());
