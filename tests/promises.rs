@@ -146,3 +146,122 @@ fn rejected_and_incomplete_units_exit_3_and_a_failure_before_a_dead_link_stands(
     drop(served);
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// A plan for another model: every unit is refused before any load, REJECTED, with the model
+/// it reported and the one the plan tests (README, "Verdicts").
+#[test]
+fn a_unit_of_another_model_is_rejected_before_any_step() {
+    let dir = temp_dir("promise-model");
+    let plan = dir.join("other-model.yaml");
+    std::fs::write(
+        &plan,
+        std::fs::read_to_string("test-plans/demo.yaml")
+            .unwrap()
+            .replace("  model: TM-16", "  model: TM-99"),
+    )
+    .unwrap();
+    let o = bin()
+        .args(["run", "--quiet", "--out"])
+        .arg(dir.join("out"))
+        .arg(&plan)
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(1), "{}", text_of(&o));
+    let records = records_in(&dir.join("out"));
+    assert_eq!(records.len(), 4);
+    for r in &records {
+        assert_eq!(r.verdict.status, UnitStatus::Rejected);
+        let why = r.verdict.reasons.join("; ");
+        assert!(why.contains("TM-16") && why.contains("TM-99"), "{why}");
+        assert!(
+            r.steps
+                .iter()
+                .all(|s| s.checks.iter().all(|c| c.samples.is_empty())),
+            "no step was run"
+        );
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// A reference that answers nothing (a placeholder while the real one is wrapped).
+struct Nothing;
+
+impl meterproof::bench::ReferenceMeter for Nothing {
+    fn read(
+        &mut self,
+        _: &meterproof::bench::ReferenceRequest,
+    ) -> Result<meterproof::bench::ReferenceReading, meterproof::bench::BenchError> {
+        Err(meterproof::bench::BenchError::Reference("nothing".into()))
+    }
+}
+
+/// A reference that cannot be read at one step.
+struct SilentAt {
+    inner: Box<dyn meterproof::bench::ReferenceMeter>,
+    step: &'static str,
+}
+
+impl meterproof::bench::ReferenceMeter for SilentAt {
+    fn read(
+        &mut self,
+        request: &meterproof::bench::ReferenceRequest,
+    ) -> Result<meterproof::bench::ReferenceReading, meterproof::bench::BenchError> {
+        if request.step_id == self.step {
+            return Err(meterproof::bench::BenchError::Reference(
+                "the reference did not answer".into(),
+            ));
+        }
+        self.inner.read(request)
+    }
+
+    fn load_quantities(&self) -> Vec<meterproof::plan::Quantity> {
+        self.inner.load_quantities()
+    }
+
+    fn read_load(
+        &mut self,
+        request: &meterproof::bench::ReferenceRequest,
+    ) -> Result<meterproof::bench::ReferenceReading, meterproof::bench::BenchError> {
+        self.inner.read_load(request)
+    }
+}
+
+/// "No reference" and "calibration not possible" leave a unit INCOMPLETE, never ACCEPTED: with
+/// the reference silent at one calibration point, that point has no reference, the fit cannot
+/// be made, and no unit is accepted (README, "Verdicts").
+#[test]
+fn no_reference_and_calibration_not_possible_are_incomplete() {
+    use meterproof::bench::sim::{SimBench, SimConfig};
+    use meterproof::record::CalibrationStatus;
+    let plan = meterproof::plan::Plan::load(Path::new("test-plans/calibrate.yaml")).unwrap();
+    let mut bench = SimBench::new(&SimConfig {
+        plant_defect: false,
+        ..SimConfig::new(1, 3)
+    })
+    .into_bench();
+    let inner = std::mem::replace(&mut bench.reference, Box::new(Nothing));
+    bench.reference = Box::new(SilentAt {
+        inner,
+        step: "cal-2.4A",
+    });
+    let records = meterproof::exec::run(
+        &plan,
+        &mut bench,
+        &common::ctx(),
+        &mut meterproof::exec::Silent,
+    );
+    assert_eq!(records.len(), 3);
+    for r in &records {
+        assert_eq!(r.verdict.status, UnitStatus::Incomplete, "{:?}", r.verdict);
+        let cal = r.calibration.as_ref().unwrap();
+        assert_eq!(cal.status, CalibrationStatus::NotDone);
+        assert!(
+            r.verdict
+                .reasons
+                .iter()
+                .any(|x| x.contains("calibration not done")),
+            "{:?}",
+            r.verdict
+        );
+    }
+}

@@ -780,3 +780,58 @@ fn typed_identities_with_control_characters_are_refused() {
     assert!(!dir.join("out").exists(), "nothing was run");
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// A second stop signal quits at once (status 130), after switching the output off again: the
+/// operator who presses Ctrl-C twice is not kept waiting for the records to be written. The
+/// second signal is sent as soon as the first one's message shows (an observable event); at
+/// real time the run takes about two seconds to wind down, so the second lands in time.
+#[test]
+fn a_second_stop_signal_quits_at_once_with_the_output_off() {
+    let dir = temp_dir("signal-twice");
+    let served: Served = serve_at(&dir, "1", &[]);
+    let mut child = bin()
+        .args(["run", "test-plans/demo-serial.yaml", "--bench"])
+        .arg(&served.station)
+        .arg("--out")
+        .arg(dir.join("out"))
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let stderr = child.stderr.take().unwrap();
+    let (tx, rx) = std::sync::mpsc::channel();
+    std::thread::spawn(move || {
+        for line in BufReader::new(stderr).lines() {
+            let Ok(line) = line else { break };
+            let _ = tx.send(line);
+        }
+    });
+    let mut seen = Vec::new();
+    let wait_for = |what: &str, seen: &mut Vec<String>| loop {
+        let line = rx
+            .recv_timeout(Duration::from_secs(60))
+            .unwrap_or_else(|_| panic!("never saw {what:?}: {seen:#?}"));
+        let found = line.contains(what);
+        seen.push(line);
+        if found {
+            break;
+        }
+    };
+    let signal = |child: &std::process::Child| {
+        std::process::Command::new("kill")
+            .args(["-INT", &child.id().to_string()])
+            .status()
+            .unwrap()
+    };
+    wait_for("[2/", &mut seen);
+    assert!(signal(&child).success());
+    wait_for("stop requested", &mut seen);
+    assert!(signal(&child).success(), "the run was still winding down");
+    let code = child.wait().unwrap().code();
+    wait_for("quitting at once", &mut seen);
+    assert_eq!(code, Some(130), "{seen:#?}");
+    let port = source_port(&served.station);
+    assert_eq!(ask(&port, "OUTP?"), "0", "the output is off");
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}

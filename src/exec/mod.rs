@@ -605,6 +605,21 @@ fn calibrate_units(cal: &CalibrationSpec, bench: &mut Bench, units: &mut [Unit])
                 )],
             };
         }
+        // A unit that could not be calibrated is not verified with constants nobody fitted:
+        // whatever its verification steps showed would say nothing of the product. It is
+        // INCOMPLETE (or REJECTED where a check before calibration already failed).
+        if record.status == crate::record::CalibrationStatus::NotDone && unit.active {
+            unit.active = false;
+            let mut verdict = decide::unit_verdict(&unit.record.steps);
+            if verdict.status == UnitStatus::Accepted {
+                verdict.status = UnitStatus::Incomplete;
+            }
+            verdict.reasons.push(format!(
+                "calibration not done: {}: the unit was not tested further",
+                record.reason.as_deref().unwrap_or("no reason given")
+            ));
+            unit.record.verdict = verdict;
+        }
         unit.record.calibration = Some(record);
     }
 }
