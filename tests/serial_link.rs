@@ -326,3 +326,57 @@ fn a_reseated_unit_is_reopened_and_must_be_the_same_unit() {
     let e = link.read(Quantity::Voltage, "L").unwrap_err().to_string();
     assert!(e.contains(&format!("instead of {}", id.serial)), "{e}");
 }
+
+/// An energy register sampled until decided stops early only when its budget allows: the same
+/// register stated 1000 times coarser (`resolution: 1 Wh` instead of one count, 1 mWh) keeps
+/// sampling to the step's maximum, because its resolution term (δ·√2/√12 over two readings,
+/// GUM F.2.2.1) leaves the decision open (README, "Bench time").
+#[test]
+fn a_coarse_register_keeps_sampling() {
+    // The serial demo with its energy step sampled until decided, as in demo-adaptive.yaml.
+    let base = std::fs::read_to_string("test-plans/demo-serial.yaml")
+        .unwrap()
+        .replace(
+            "    samples: 11\n    interval: 1 s\n",
+            "    samples_until_decided: { min: 3, max: 11 }\n    interval: 1 s\n",
+        );
+    assert!(base.contains("samples_until_decided"));
+    let energy_line = "    active_energy:  { request: \"rd E {channel}\",  reply: '^= E \\S+ (?P<value>-?\\d+)$',  gain: 1000 }";
+    assert!(base.contains(energy_line), "the demo's energy line");
+    let coarse = base.replace(
+        energy_line,
+        &energy_line.replace("gain: 1000 }", "gain: 1000, resolution: 1 Wh }"),
+    );
+    let config = SimConfig {
+        plant_defect: false,
+        ..SimConfig::new(1, 4)
+    };
+    let taken = |text: &str| -> Vec<usize> {
+        let plan = Plan::from_text("adaptive-serial.yaml", text).unwrap();
+        let (mut bench, _devices) = serial_bench(&plan, &config, &[]);
+        let records = run(&plan, &mut bench);
+        assert_eq!(records.len(), 4);
+        records
+            .iter()
+            .map(|r| {
+                let step = r.steps.iter().find(|s| s.id == "max-Imax").unwrap();
+                step.checks
+                    .iter()
+                    .find(|c| c.quantity.name() == "active_energy")
+                    .unwrap()
+                    .samples
+                    .len()
+            })
+            .collect()
+    };
+    let fine = taken(&base);
+    let coarse = taken(&coarse);
+    assert!(
+        fine.iter().all(|n| *n < 11),
+        "fine registers stop early: {fine:?}"
+    );
+    assert!(
+        coarse.iter().all(|n| *n == 11),
+        "coarse ones go on: {coarse:?}"
+    );
+}

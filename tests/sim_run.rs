@@ -249,6 +249,17 @@ fn check_accepts_every_shipped_plan() {
         stdout.contains("5 steps, 13 checks, scheduled bench time 40.5 s"),
         "{stdout}"
     );
+    // Each class limit is printed with its source (standard, class, range, and that it is from
+    // memory), under the step it applies to.
+    assert!(
+        stdout.contains("class limit: IEC 62053-21:2003 class 1, 0.1 Ib ≤ I ≤ Imax at PF 1 (from memory; verify against the current edition)"),
+        "{stdout}"
+    );
+    assert!(
+        stdout
+            .contains("class limit: IEC 62053-21:2003 class 1, 0.2 Ib ≤ I ≤ Imax at PF 0.5i/0.8c"),
+        "{stdout}"
+    );
     // The adaptive plan's rules are shown as rules, and its time as an upper bound.
     for shown in [
         "scheduled bench time 40.5 s at most",

@@ -282,6 +282,47 @@ impl ReferenceMeter for TypedReference {
 mod tests {
     use super::*;
 
+    /// A typed current at 5 A nominal, read through a console fed `lines`.
+    fn typed(lines: &[&str]) -> ReferenceReading {
+        let (tx, rx) = channel();
+        for l in lines {
+            tx.send(l.to_string()).unwrap();
+        }
+        drop(tx);
+        let console = Arc::new(Mutex::new(Console {
+            lines: rx,
+            interrupt: Arc::new(AtomicBool::new(false)),
+        }));
+        let mut reference = TypedReference::new(console, 0.10);
+        let load = crate::plan::Load {
+            voltage: 230.0,
+            current: 5.0,
+            phase_deg: 0.0,
+            frequency: 50.0,
+        };
+        reference
+            .read(&ReferenceRequest {
+                step_id: "basic-Ib",
+                quantity: crate::plan::Quantity::Current,
+                load: &load,
+                window: (0.0, 4.0),
+            })
+            .unwrap()
+    }
+
+    /// The plausibility limit at its edge (the plan's `reference_plausibility`, 10 % by
+    /// default; our rule, common practice, no published source): 5.5 A against 5 A nominal is
+    /// 10 % off and recorded with Enter; 5.51 A is beyond and taken only when typed again.
+    #[test]
+    fn the_plausibility_limit_at_its_edge() {
+        let at_edge = typed(&["5.5 A", ""]);
+        assert_eq!(at_edge.value, 5.5);
+        assert!(at_edge.entries.iter().all(|e| e.outcome != "confirm"));
+        let confirmed = typed(&["5.51 A", "5.51 A"]);
+        assert_eq!(confirmed.value, 5.51);
+        assert!(confirmed.entries.iter().any(|e| e.outcome == "confirm"));
+    }
+
     #[test]
     fn skip_and_abort_carry_their_reasons() {
         assert_eq!(step_answer(""), Ok(()));
