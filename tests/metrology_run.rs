@@ -129,6 +129,20 @@ fn no_load_and_starting_tests_follow_the_class_tables() {
         "115 % of 230 V"
     );
     assert!((plan.steps[1].load.current - 0.020).abs() < 1e-12);
+    // The starting test's threshold (our rule): the register must advance by at least half
+    // the energy 20 mA at 230 V delivers over the 10 min window, 0.5 · 230 · 0.020 · 600 / 3600
+    // = 0.3833 Wh.
+    let starting = &plan.steps[1].checks[0];
+    assert_eq!(starting.quantity, meterproof::plan::Quantity::ActiveEnergy);
+    match starting.tolerance {
+        meterproof::plan::Tolerance::AtLeast { bound } => {
+            assert!(
+                (bound - 0.5 * 230.0 * 0.020 * 600.0 / 3600.0).abs() < 1e-12,
+                "{bound}"
+            )
+        }
+        ref t => panic!("{t:?}"),
+    }
 
     let good = run(&plan, &SimConfig::new(3, 2));
     assert!(
