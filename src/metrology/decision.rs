@@ -8,8 +8,18 @@
 //! *marginal*: the true error may lie on the other side of the limit.
 
 use super::tolerance::{Evaluation, Sense};
-use crate::plan::DecisionRule;
 use serde::{Deserialize, Serialize};
+
+/// How a measured error and its uncertainty become a verdict (ILAC-G8:09/2019).
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize)]
+#[serde(tag = "rule", rename_all = "snake_case")]
+pub enum DecisionRule {
+    /// Accept within the tolerance limit (guard band w = 0).
+    #[default]
+    Simple,
+    /// Accept within the tolerance limit less a guard band w = multiple · U.
+    Guarded { multiple: f64 },
+}
 
 /// Below this test uncertainty ratio (TL / U) a check's uncertainty is worth a warning.
 pub const TUR_WARNING_BELOW: f64 = 4.0;

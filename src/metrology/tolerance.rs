@@ -3,8 +3,48 @@
 //! Percentage error e = (E_meter − E_ref) / E_ref × 100, positive when the meter reads high
 //! (IEC 62053-21:2003, 3.5; the same definition in IEC 62052-11 and EN 50470-1).
 
-use crate::plan::Tolerance;
 use serde::{Deserialize, Serialize};
+
+/// How far a reading may be from the reference.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum Tolerance {
+    /// ± percent of the reference value.
+    PercentOfReading { percent: f64 },
+    /// ± (percent of the reference value + an absolute term in the quantity's unit).
+    PercentPlusAbsolute { percent: f64, absolute: f64 },
+    /// ± (percent of the reference value + percent of a range).
+    PercentPlusRange {
+        percent: f64,
+        range_percent: f64,
+        range: f64,
+    },
+    /// ± an absolute band around the reference, in the quantity's unit.
+    Band { half_width: f64 },
+    /// The magnitude of the reading is at most this, in the quantity's unit (no-load steps).
+    AtMost { bound: f64 },
+    /// ± the accuracy class's limit at this step's load, looked up in the class tables.
+    Class { percent: f64, basis: String },
+    /// The magnitude of the reading is at least this (a register that must advance).
+    AtLeast { bound: f64 },
+}
+
+impl Tolerance {
+    /// Whether the limit is relative to the reference, so that a zero reference is meaningless.
+    pub fn is_relative(&self) -> bool {
+        matches!(
+            self,
+            Tolerance::PercentOfReading { .. }
+                | Tolerance::PercentPlusAbsolute { .. }
+                | Tolerance::PercentPlusRange { .. }
+                | Tolerance::Class { .. }
+        )
+    }
+
+    pub fn needs_reference(&self) -> bool {
+        !matches!(self, Tolerance::AtMost { .. } | Tolerance::AtLeast { .. })
+    }
+}
 
 /// The error of a reading, in the form its tolerance is stated in, and the limit it is held to.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]

@@ -13,6 +13,9 @@ mod validate_link;
 
 pub use locate::Position;
 pub use raw::{RawPort, Text};
+// The trade's concepts belong to metrology; the plan reads text into them.
+pub use crate::metrology::decision::DecisionRule;
+pub use crate::metrology::tolerance::Tolerance;
 pub use validate::REFERENCE_AMBIENT_C;
 pub use validate::{Document, MAX_SHOWN_ERRORS, PlanError, PlanErrors, counted_from_one};
 pub use validate_link::port_settings;
@@ -65,17 +68,6 @@ impl CalibrationSpec {
     pub fn last_point(&self, steps: &[Step]) -> Option<usize> {
         steps.iter().rposition(|s| self.points.contains(&s.id))
     }
-}
-
-/// How a measured error and its uncertainty become a verdict (ILAC-G8:09/2019).
-#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, serde::Deserialize)]
-#[serde(tag = "rule", rename_all = "snake_case")]
-pub enum DecisionRule {
-    /// Accept within the tolerance limit (guard band w = 0).
-    #[default]
-    Simple,
-    /// Accept within the tolerance limit less a guard band w = multiple · U.
-    Guarded { multiple: f64 },
 }
 
 /// The file a plan was read from, kept so that a record names exactly what it was tested against.
@@ -389,47 +381,6 @@ pub struct Check {
     pub quantity: Quantity,
     pub channel: String,
     pub tolerance: Tolerance,
-}
-
-/// How far a reading may be from the reference.
-#[derive(Debug, Clone, PartialEq, Serialize, serde::Deserialize)]
-#[serde(tag = "kind", rename_all = "snake_case")]
-pub enum Tolerance {
-    /// ± percent of the reference value.
-    PercentOfReading { percent: f64 },
-    /// ± (percent of the reference value + an absolute term in the quantity's unit).
-    PercentPlusAbsolute { percent: f64, absolute: f64 },
-    /// ± (percent of the reference value + percent of a range).
-    PercentPlusRange {
-        percent: f64,
-        range_percent: f64,
-        range: f64,
-    },
-    /// ± an absolute band around the reference, in the quantity's unit.
-    Band { half_width: f64 },
-    /// The magnitude of the reading is at most this, in the quantity's unit (no-load steps).
-    AtMost { bound: f64 },
-    /// ± the accuracy class's limit at this step's load, looked up in the class tables.
-    Class { percent: f64, basis: String },
-    /// The magnitude of the reading is at least this (a register that must advance).
-    AtLeast { bound: f64 },
-}
-
-impl Tolerance {
-    /// Whether the limit is relative to the reference, so that a zero reference is meaningless.
-    pub fn is_relative(&self) -> bool {
-        matches!(
-            self,
-            Tolerance::PercentOfReading { .. }
-                | Tolerance::PercentPlusAbsolute { .. }
-                | Tolerance::PercentPlusRange { .. }
-                | Tolerance::Class { .. }
-        )
-    }
-
-    pub fn needs_reference(&self) -> bool {
-        !matches!(self, Tolerance::AtMost { .. } | Tolerance::AtLeast { .. })
-    }
 }
 
 impl Plan {

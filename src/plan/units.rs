@@ -271,6 +271,21 @@ fn lookup_unit(unit: &str) -> Option<(Dimension, f64)> {
     })
 }
 
+/// A duration as people read it: "45.0 s", "1 min 12 s", "1 h 2 min".
+pub fn duration_text(seconds: f64) -> String {
+    if seconds < 60.0 {
+        format!("{seconds:.1} s")
+    } else if seconds < 3600.0 {
+        format!("{} min {:.0} s", (seconds / 60.0).floor(), seconds % 60.0)
+    } else {
+        format!(
+            "{} h {} min",
+            (seconds / 3600.0).floor(),
+            ((seconds % 3600.0) / 60.0).floor()
+        )
+    }
+}
+
 /// Writes a value in its base unit with a sensible number of digits, for summaries.
 pub struct Display(pub f64, pub Dimension);
 

@@ -1401,8 +1401,8 @@ fn settle_rule(
             &format!("{path}.at_most"),
             format!(
                 "{readings} readings {} apart take {}, longer than at_most: the step could never settle",
-                crate::report::duration_text(every_s),
-                crate::report::duration_text(needed_s)
+                super::units::duration_text(every_s),
+                super::units::duration_text(needed_s)
             ),
         );
         return None;

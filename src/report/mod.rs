@@ -443,19 +443,7 @@ pub fn risk_text(p: f64) -> String {
     }
 }
 
-pub fn duration_text(seconds: f64) -> String {
-    if seconds < 60.0 {
-        format!("{seconds:.1} s")
-    } else if seconds < 3600.0 {
-        format!("{} min {:.0} s", (seconds / 60.0).floor(), seconds % 60.0)
-    } else {
-        format!(
-            "{} h {} min",
-            (seconds / 3600.0).floor(),
-            ((seconds % 3600.0) / 60.0).floor()
-        )
-    }
-}
+pub use crate::plan::units::duration_text;
 
 /// A run's records as JUnit XML: one test suite per unit, one test case per check; a failed
 /// check is a failure with its error and limit, a check not evaluated (or a step not done) an
