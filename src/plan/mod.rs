@@ -4,6 +4,7 @@
 //! unknown keys refused), and meaning (`validate`: units, ranges, cross-references). Every
 //! mistake found is reported with its file, line, column and path inside the plan.
 
+mod document;
 mod locate;
 mod raw;
 pub mod text_link;
@@ -16,8 +17,8 @@ pub use raw::{RawPort, Text};
 // The trade's concepts belong to metrology; the plan reads text into them.
 pub use crate::metrology::decision::DecisionRule;
 pub use crate::metrology::tolerance::Tolerance;
+pub use document::{Document, MAX_SHOWN_ERRORS, PlanError, PlanErrors, counted_from_one};
 pub use validate::REFERENCE_AMBIENT_C;
-pub use validate::{Document, MAX_SHOWN_ERRORS, PlanError, PlanErrors, counted_from_one};
 pub use validate_link::port_settings;
 
 use serde::Serialize;

@@ -1,13 +1,13 @@
 //! Validation of the `text` link kind: port settings, patterns, requests and scaling.
 
 use super::Quantity;
+use super::document::{Ctx, channel_names};
 use super::raw::{RawTextLink, Text};
 use super::text_link::{
     Exchange, FlowControl, IdentityRequest, LineEnding, Parity, Pattern, PortSettings,
     QuantityRequest, TextLinkSpec, WriteRequest,
 };
 use super::units::{self, Dimension};
-use super::validate::{Ctx, channel_names};
 
 /// Compiles a pattern, and checks that it has the named groups the link needs from it.
 fn pattern(ctx: &mut Ctx, path: &str, text: &Text, groups: &[&str]) -> Option<Pattern> {
