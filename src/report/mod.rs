@@ -6,6 +6,7 @@
 //! the same name. HTML templates are autoescaped (by their `.html` name) and undefined variables
 //! are errors, so a misspelt name in an edited template fails loudly instead of printing nothing.
 
+pub mod describe;
 pub mod explain;
 pub mod plot;
 pub mod summary;

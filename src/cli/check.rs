@@ -1,0 +1,114 @@
+//! `meterproof check`: plans and station files validated and described, and the warnings a plan
+//! earns before any load (a guarded check with no acceptance zone).
+
+use super::*;
+
+pub(super) fn check(paths: &[PathBuf]) -> Result<i32, CliError> {
+    let mut invalid = 0;
+    let stdout = std::io::stdout();
+    let mut out = stdout.lock();
+    // A plan is checked against the reference of the first station given with it, else against
+    // the simulated bench's.
+    let station = paths
+        .iter()
+        .filter(|p| is_station_file(p))
+        .find_map(|p| Station::load(p).ok());
+    for path in paths {
+        let summary = if is_station_file(path) {
+            Station::load(path).map(|s| station_summary(&s))
+        } else {
+            Plan::load(path).map(|p| {
+                crate::report::describe::plan_summary(&p) + &zone_warnings(&p, station.as_ref())
+            })
+        };
+        match summary {
+            Ok(text) => {
+                let _ = write!(out, "{text}");
+            }
+            Err(errors) => {
+                invalid += 1;
+                eprintln!("{errors}");
+            }
+        }
+    }
+    if invalid > 0 {
+        return Err(CliError::Usage(format!(
+            "{invalid} of {} files invalid",
+            paths.len()
+        )));
+    }
+    Ok(0)
+}
+
+/// Warnings for the plan's checks whose acceptance zone the reference and the unit's
+/// resolution alone leave empty or nearly so.
+fn zone_warnings(plan: &Plan, station: Option<&Station>) -> String {
+    use crate::exec::preview::{ExpectedReference, narrow_zones};
+    let sim_ranges = crate::bench::sim::sim_reference_ranges();
+    let reference = match station {
+        Some(s) => ExpectedReference {
+            name: format!("station {}'s reference {}", s.id, s.reference.info.id),
+            accuracy: s
+                .reference
+                .info
+                .accuracy
+                .as_deref()
+                .and_then(|a| crate::metrology::accuracy::Accuracy::parse(a).ok()),
+            ranges: &s.reference.info.ranges,
+        },
+        None => ExpectedReference {
+            name: "the simulated bench's reference (give a station file to check against yours)"
+                .into(),
+            accuracy: crate::metrology::accuracy::Accuracy::parse(
+                crate::bench::sim::SIM_REFERENCE_ACCURACY,
+            )
+            .ok(),
+            ranges: &sim_ranges,
+        },
+    };
+    let zones = narrow_zones(plan, &reference);
+    if zones.is_empty() {
+        return String::new();
+    }
+    let mut s = format!("  warning: against {}:\n", reference.name);
+    for z in zones {
+        s.push_str(&format!("  warning: {z}\n"));
+    }
+    s
+}
+
+/// Whether a YAML file is a station file (its top level names a `station`) rather than a plan.
+fn is_station_file(path: &Path) -> bool {
+    /// The top-level keys that tell the two apart, read without building the document.
+    #[derive(serde::Deserialize)]
+    struct Probe {
+        station: Option<serde::de::IgnoredAny>,
+        steps: Option<serde::de::IgnoredAny>,
+    }
+    std::fs::read_to_string(path)
+        .ok()
+        .and_then(|t| serde_yaml::from_str::<Probe>(&t).ok())
+        .is_some_and(|p| p.station.is_some() && p.steps.is_none())
+}
+
+/// What `check` prints for a valid station file.
+fn station_summary(s: &Station) -> String {
+    let source = match &s.source {
+        station::SourceSpec::Scpi { port, .. } => format!("SCPI source on {}", port.path),
+        station::SourceSpec::Manual => "load set by the operator".into(),
+    };
+    let reading = match &s.reference.read {
+        station::ReferenceRead::Scpi { port, .. } => format!("read over SCPI on {}", port.path),
+        station::ReferenceRead::Operator => "typed by the operator".into(),
+    };
+    format!(
+        "{}: station {}, {} positions, {source}; reference {} ({reading}){}\n",
+        s.file,
+        s.id,
+        s.positions.len(),
+        s.reference.info.id,
+        s.reference
+            .calibration_due
+            .map_or(String::new(), |d| format!(", calibration due {d}"))
+    )
+}

@@ -1,0 +1,186 @@
+//! What the operator sees of a run on the terminal: the progress of each step as the engine's
+//! events arrive, the verdicts at the end, and every text from outside made safe to print. A
+//! front end like any other: it is fed the same events as the archive's recorder and a browser
+//! would be.
+
+use super::*;
+
+/// Text from a device, a file or the archive made safe for a terminal: control characters
+/// (escape sequences, NUL, newlines) are shown escaped, never sent to the screen.
+pub(super) fn terminal_safe(text: &str) -> String {
+    record::escape_controls(text)
+}
+
+/// Several lines made safe for a terminal, line by line (the line breaks kept).
+pub(super) fn terminal_safe_lines(text: &str) -> String {
+    text.split('\n')
+        .map(terminal_safe)
+        .collect::<Vec<_>>()
+        .join("\n")
+}
+
+/// Files written for one unit.
+pub(super) struct Written {
+    pub(super) html: PathBuf,
+}
+
+pub(super) fn print_summary(records: &[UnitRecord], written: &Option<Vec<Written>>) {
+    println!();
+    println!("{:<4} {:<20} {:<14} report", "pos", "serial", "verdict");
+    for (i, r) in records.iter().enumerate() {
+        let report = match written.as_ref().and_then(|w| w.get(i)) {
+            Some(w) => terminal_safe(&w.html.display().to_string()),
+            None => "(not written)".to_string(),
+        };
+        println!(
+            "{:<4} {:<20} {} {:<12} {}",
+            r.position,
+            terminal_safe(&r.serial),
+            r.verdict.status.symbol(),
+            r.verdict.status.word(),
+            report
+        );
+        for reason in &r.verdict.reasons {
+            println!("       {}", terminal_safe(reason));
+        }
+    }
+    let count = |s: UnitStatus| records.iter().filter(|r| r.verdict.status == s).count();
+    println!(
+        "{} accepted, {} rejected, {} incomplete",
+        count(UnitStatus::Accepted),
+        count(UnitStatus::Rejected),
+        count(UnitStatus::Incomplete)
+    );
+}
+
+/// 3 when any unit is incomplete (the run did not complete for it), else 1 when any is
+/// rejected, else 0.
+pub(super) fn exit_status(records: &[UnitRecord]) -> i32 {
+    let any = |s: UnitStatus| records.iter().any(|r| r.verdict.status == s);
+    if any(UnitStatus::Incomplete) {
+        3
+    } else if any(UnitStatus::Rejected) {
+        1
+    } else {
+        0
+    }
+}
+
+/// Progress on standard error, one line per step.
+pub(super) struct TerminalReporter {
+    quiet: bool,
+    /// The bar of the step being measured, and the flag that stops its ticker.
+    bar: Option<(indicatif::ProgressBar, Arc<AtomicBool>)>,
+}
+
+impl TerminalReporter {
+    pub(super) fn new(quiet: bool) -> TerminalReporter {
+        TerminalReporter { quiet, bar: None }
+    }
+
+    /// A bar with the time left while a step settles and samples; indicatif draws nothing
+    /// when standard error is not a terminal.
+    fn start_bar(&mut self, step: &crate::plan::Step, real_s: f64) {
+        let bar = indicatif::ProgressBar::new((real_s * 1000.0) as u64);
+        bar.set_style(
+            indicatif::ProgressStyle::with_template("      {prefix} [{bar:30}] {msg}")
+                .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar())
+                .progress_chars("=> "),
+        );
+        bar.set_prefix(step.id.clone());
+        let stop = Arc::new(AtomicBool::new(false));
+        let (b, s) = (bar.clone(), stop.clone());
+        std::thread::spawn(move || {
+            let start = Instant::now();
+            while !s.load(Ordering::SeqCst) {
+                let elapsed = start.elapsed().as_secs_f64();
+                if elapsed >= real_s {
+                    b.finish_and_clear();
+                    return;
+                }
+                b.set_position((elapsed * 1000.0) as u64);
+                b.set_message(format!("{:.0} s left", (real_s - elapsed).ceil()));
+                std::thread::sleep(std::time::Duration::from_millis(200));
+            }
+            b.finish_and_clear();
+        });
+        self.bar = Some((bar, stop));
+    }
+
+    fn stop_bar(&mut self) {
+        if let Some((bar, stop)) = self.bar.take() {
+            stop.store(true, Ordering::SeqCst);
+            bar.finish_and_clear();
+        }
+    }
+}
+
+impl Reporter for TerminalReporter {
+    fn event(&mut self, event: &Event) {
+        if self.quiet {
+            return;
+        }
+        match event {
+            Event::RunStarted { plan, positions } => eprintln!(
+                "plan {} revision {} ({}), {positions} positions, scheduled bench time {}",
+                plan.id,
+                plan.revision,
+                plan.product.model,
+                crate::report::describe::scheduled_text(plan)
+            ),
+            Event::UnitIdentified { position, identity } => eprintln!(
+                "  position {position}: {} serial {} firmware {}",
+                terminal_safe(&identity.model),
+                terminal_safe(&identity.serial),
+                terminal_safe(&identity.firmware)
+            ),
+            Event::UnitRefused { position, reason } => {
+                eprintln!(
+                    "  position {position}: not tested: {}",
+                    terminal_safe(reason)
+                )
+            }
+            Event::StepStarted { index, total, step } => eprintln!(
+                "[{}/{total}] {}: {}",
+                index + 1,
+                step.id,
+                step.load.describe()
+            ),
+            Event::Measuring { step, real_s } => {
+                if *real_s > 0.5 {
+                    self.start_bar(step, *real_s);
+                }
+            }
+            Event::StepFinished { results, .. } => {
+                self.stop_bar();
+                let marks: Vec<String> = results
+                    .iter()
+                    .map(|(pos, status, failed)| {
+                        let mark = match (status, failed) {
+                            (crate::record::StepStatus::Done, 0) => "✔",
+                            (crate::record::StepStatus::Done, _) => "✘",
+                            _ => "◐",
+                        };
+                        format!("{pos}{mark}")
+                    })
+                    .collect();
+                eprintln!("      {}", marks.join(" "));
+            }
+            Event::RecordingFailed { what } => {
+                self.stop_bar();
+                eprintln!(
+                    "ARCHIVE: {what}. Nothing more can be kept: no further load is applied, the output is switched off, and what was taken is written as files (or to the fallback folder)."
+                );
+            }
+            Event::StepSetAside { step, reason } => {
+                self.stop_bar();
+                eprintln!(
+                    "!!! step {} NOT JUDGED for any unit: {}",
+                    terminal_safe(&step.id),
+                    terminal_safe(reason)
+                );
+            }
+            Event::RunFinished { .. } => {}
+        }
+    }
+}
