@@ -10,7 +10,6 @@ mod raw;
 pub mod text_link;
 pub mod units;
 mod validate;
-mod validate_link;
 
 pub use locate::Position;
 pub use raw::{RawPort, Text};
@@ -18,8 +17,8 @@ pub use raw::{RawPort, Text};
 pub use crate::metrology::decision::DecisionRule;
 pub use crate::metrology::tolerance::Tolerance;
 pub use document::{Document, MAX_SHOWN_ERRORS, PlanError, PlanErrors, counted_from_one};
-pub use validate::REFERENCE_AMBIENT_C;
-pub use validate_link::port_settings;
+pub use validate::link::port_settings;
+pub use validate::ratings::REFERENCE_AMBIENT_C;
 
 use serde::Serialize;
 use sha2::{Digest, Sha256};
@@ -422,7 +421,7 @@ impl Plan {
 
     /// Whether the plan's class limits depend on the bench's ambient temperature.
     pub fn class_depends_on_ambient(&self) -> bool {
-        validate::class_depends_on_ambient(&self.ratings)
+        validate::ratings::class_depends_on_ambient(&self.ratings)
     }
 
     pub fn check_count(&self) -> usize {

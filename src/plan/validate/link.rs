@@ -1,13 +1,13 @@
 //! Validation of the `text` link kind: port settings, patterns, requests and scaling.
 
-use super::Quantity;
-use super::document::{Ctx, channel_names};
-use super::raw::{RawTextLink, Text};
-use super::text_link::{
+use crate::plan::Quantity;
+use crate::plan::document::{Ctx, channel_names};
+use crate::plan::raw::{RawTextLink, Text};
+use crate::plan::text_link::{
     Exchange, FlowControl, IdentityRequest, LineEnding, Parity, Pattern, PortSettings,
     QuantityRequest, TextLinkSpec, WriteRequest,
 };
-use super::units::{self, Dimension};
+use crate::plan::units::{self, Dimension};
 
 /// Compiles a pattern, and checks that it has the named groups the link needs from it.
 fn pattern(ctx: &mut Ctx, path: &str, text: &Text, groups: &[&str]) -> Option<Pattern> {
@@ -47,7 +47,11 @@ fn pattern(ctx: &mut Ctx, path: &str, text: &Text, groups: &[&str]) -> Option<Pa
 }
 
 /// A request with `{channel}` and a reply pattern with a `value` group.
-fn exchange(ctx: &mut Ctx, path: &str, raw: &super::raw::RawIdentity) -> Option<Option<Exchange>> {
+fn exchange(
+    ctx: &mut Ctx,
+    path: &str,
+    raw: &crate::plan::raw::RawIdentity,
+) -> Option<Option<Exchange>> {
     let request = template(ctx, &format!("{path}.request"), &raw.request, &["channel"]);
     let reply = pattern(ctx, &format!("{path}.reply"), &raw.reply, &["value"]);
     request
@@ -128,7 +132,7 @@ fn choice<T: Copy>(
 pub fn port_settings(
     ctx: &mut Ctx,
     prefix: &str,
-    raw: &super::raw::RawPort,
+    raw: &crate::plan::raw::RawPort,
 ) -> Option<PortSettings> {
     let d = PortSettings::default();
     let baud = match &raw.baud {
