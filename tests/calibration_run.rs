@@ -4,8 +4,8 @@
 mod common;
 use common::ctx;
 
+use meterproof::bench::sim::device::{Device, Faults, PtyDevice};
 use meterproof::bench::sim::{SimBench, SimConfig};
-use meterproof::bench::sim_device::{Device, Faults, PtyDevice};
 use meterproof::exec::{self, Silent};
 use meterproof::link::text;
 use meterproof::plan::{LinkSpec, Plan};

@@ -5,8 +5,8 @@ mod common;
 use common::ctx;
 
 use meterproof::bench::Bench;
+use meterproof::bench::sim::device::{Device, Faults, PtyDevice};
 use meterproof::bench::sim::{SimBench, SimConfig};
-use meterproof::bench::sim_device::{Device, Faults, PtyDevice};
 use meterproof::exec::{self, Silent};
 use meterproof::link::text;
 use meterproof::plan::{LinkSpec, Plan};

@@ -297,10 +297,10 @@ fn a_station_with_typed_references_gets_the_builtin_verdicts() {
     // The operator types what the reference meter shows: the simulated source's real output.
     // The library replays the station's SCPI commands on a simulator of the same seed, so the
     // source draws its errors exactly as the served one does.
-    use meterproof::bench::sim_device::LineDevice;
+    use meterproof::bench::sim::device::LineDevice;
     let sim = meterproof::bench::sim::SimBench::new(&meterproof::bench::sim::SimConfig::new(1, 4));
     let (source, mut reference) = sim.instruments();
-    let mut source = meterproof::bench::sim_scpi::ScpiSourceDevice::new(source);
+    let mut source = meterproof::bench::sim::instruments::ScpiSourceDevice::new(source);
     for c in ["*RST", "*CLS"] {
         source.handle(c);
     }

@@ -7,9 +7,6 @@ pub mod operator;
 pub mod reference_file;
 pub mod scpi;
 pub mod sim;
-pub mod sim_device;
-pub mod sim_scpi;
-pub mod sim_station;
 pub mod station;
 
 use crate::link::DutLink;

@@ -4,8 +4,8 @@
 use super::*;
 
 pub(super) fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
-    use crate::bench::sim_device::Faults;
-    use crate::bench::sim_station::{SimStation, merge_faults, parse_fault};
+    use crate::bench::sim::device::Faults;
+    use crate::bench::sim::served::{SimStation, merge_faults, parse_fault};
     if args.positions == 0 {
         return Err(CliError::Usage("--positions must be at least 1".into()));
     }

@@ -3,8 +3,8 @@
 //!
 //! Run with `cargo bench --bench serial_link`. It prints figures; it asserts nothing.
 
+use meterproof::bench::sim::device::{Device, Faults, PtyDevice};
 use meterproof::bench::sim::{SimBench, SimConfig};
-use meterproof::bench::sim_device::{Device, Faults, PtyDevice};
 use meterproof::bench::{Bench, RealClock};
 use meterproof::exec::{self, RunContext, Silent};
 use meterproof::link::{DutLink, text};

@@ -4,7 +4,7 @@
 //! The device answers from the same simulated world as the built-in bench, so a plan run through
 //! real serial ports and the `text` link reads the same counts as one run on the `sim` link.
 
-use super::sim::SimMeterHandle;
+use super::SimMeterHandle;
 use crate::plan::Quantity;
 use std::io::{self, Read, Write};
 use std::sync::Arc;

@@ -3,10 +3,10 @@
 //! file that wires them. `meterproof sim-meter` serves it; the tests use it to drive the real
 //! binary through real ports.
 
-use super::RealClock;
-use super::sim::{SimBench, SimConfig};
-use super::sim_device::{Device, Faults, PtyDevice};
-use super::sim_scpi::{REFERENCE_QUERIES, ScpiReferenceDevice, ScpiSourceDevice};
+use super::device::{Device, Faults, PtyDevice};
+use super::instruments::{REFERENCE_QUERIES, ScpiReferenceDevice, ScpiSourceDevice};
+use super::{SimBench, SimConfig};
+use crate::bench::RealClock;
 use std::io;
 use std::sync::Arc;
 use std::time::Duration;
@@ -165,7 +165,7 @@ mod tests {
     #[test]
     fn the_station_file_it_writes_is_valid() {
         let station = SimStation::serve(&SimConfig::new(1, 2), 10.0, &[]).unwrap();
-        let parsed = super::super::station::Station::from_text("x", &station.station_yaml())
+        let parsed = crate::bench::station::Station::from_text("x", &station.station_yaml())
             .unwrap_or_else(|e| panic!("{e}\n{}", station.station_yaml()));
         assert_eq!(parsed.positions.len(), 2);
         assert_eq!(parsed.time_scale, 10.0);

@@ -5,8 +5,8 @@
 //! understood is queued as an error for `SYST:ERR?`, with the standard's code -113
 //! ("undefined header").
 
-use super::sim_device::LineDevice;
-use super::{LoadSource, ReferenceMeter, ReferenceRequest};
+use super::device::LineDevice;
+use crate::bench::{LoadSource, ReferenceMeter, ReferenceRequest};
 use crate::plan::{Load, Quantity};
 
 const NO_ERROR: &str = "0,\"No error\"";

@@ -14,6 +14,10 @@
 //! The same seed gives the same numbers, bit for bit: every random stream is a ChaCha8 stream
 //! derived from the seed and the part it drives.
 
+pub mod device;
+pub mod instruments;
+pub mod served;
+
 use super::{
     Bench, BenchError, Clock, InstrumentInfo, LoadSource, Position, ReferenceMeter,
     ReferenceReading, ReferenceRequest, SourceHandle, StationInfo, VirtualClock,
