@@ -226,45 +226,8 @@ pub fn run_with(
         plan,
         positions: bench.positions.len(),
     });
-    let mut units: Vec<Unit> = bench
-        .positions
-        .iter_mut()
-        .map(|p| identify(plan, p, ctx, &bench.station, &started_at))
-        .collect();
-    refuse_shared_serials(&mut units);
-    // A unit found in a position where the interrupted run had another is a new unit: it is
-    // tested from the first step, and the unit it replaced keeps its own record.
-    let mut replaced: Vec<UnitRecord> = Vec::new();
-    if let Some(r) = resume {
-        for u in units.iter_mut().filter(|u| u.active) {
-            let position = u.record.position;
-            match r.serials.get(&position) {
-                Some(old) if *old != u.record.serial => {
-                    u.fresh = true;
-                    u.record.notes.push(format!(
-                        "this unit replaced {old} in position {position} while the run was interrupted; {old} keeps its own record"
-                    ));
-                    if !r.sealed.contains(&position) {
-                        replaced.push(replaced_record(&u.record, old, r, plan));
-                    }
-                }
-                _ => {}
-            }
-        }
-    }
-    for u in &units {
-        recorder.unit_started(&u.record);
-        match (&u.record.identity, u.active) {
-            (Some(identity), true) => reporter.event(&Event::UnitIdentified {
-                position: u.record.position,
-                identity,
-            }),
-            _ => reporter.event(&Event::UnitRefused {
-                position: u.record.position,
-                reason: u.record.verdict.reasons.first().map_or("", String::as_str),
-            }),
-        }
-    }
+    let (mut units, replaced) = identify_all(plan, bench, ctx, &started_at, resume);
+    announce_units(&units, reporter, recorder);
     let ranges = bench.station.reference.ranges.clone();
     let judge = decide::Judge {
         rule: plan.decision,
@@ -288,17 +251,7 @@ pub fn run_with(
             }
             continue;
         }
-        // Steps an interrupted run finished are kept as they were.
-        let kept: Vec<Option<StepRecord>> = units
-            .iter()
-            .map(|u| {
-                resume
-                    .filter(|_| !u.fresh)
-                    .and_then(|r| r.done.get(&u.record.position))
-                    .and_then(|d| d.get(&index))
-                    .cloned()
-            })
-            .collect();
+        let kept = kept_steps(&units, resume, index);
         let to_run: Vec<bool> = units
             .iter()
             .zip(&kept)
@@ -340,21 +293,13 @@ pub fn run_with(
             continue;
         }
         let restarts_before = restarts(bench);
-        if let Err(e) = bench.source.apply(&step.load) {
-            let reason = e.to_string();
-            if let crate::bench::BenchError::Skipped(_) = e {
-                for (u, run) in units.iter_mut().zip(&to_run) {
-                    if *run {
-                        u.record.steps.push(not_run(step, &reason));
-                    }
-                }
+        match apply_load(step, bench, &mut units, &to_run) {
+            Applied::Yes => {}
+            Applied::Skipped => continue,
+            Applied::Failed(reason) => {
+                source_failure = Some(reason);
                 continue;
             }
-            for u in units.iter_mut().filter(|u| u.active) {
-                u.record.steps.push(not_run(step, &reason));
-            }
-            source_failure = Some(reason);
-            continue;
         }
         let started_at_s = bench.clock.now_s();
         reporter.event(&Event::Measuring {
@@ -365,20 +310,7 @@ pub fn run_with(
                 step.scheduled_s() / bench.clock.scale()
             },
         });
-        let settle = match &step.settle_until {
-            Some(rule) => Some(settle::settle_until(
-                rule,
-                bench.clock.as_ref(),
-                &mut bench.positions,
-                &to_run,
-                bench.parallel,
-                &bench.interrupt,
-            )),
-            None => {
-                bench.clock.sleep_s(step.settle_s);
-                None
-            }
-        };
+        let settle = settle_step(step, bench, &to_run);
         let ctx_step = StepContext {
             settle,
             index,
@@ -430,13 +362,172 @@ pub fn run_with(
     let finished_at = now_iso();
     let health: Vec<Option<crate::link::LinkHealth>> =
         bench.positions.iter().map(|p| p.link.health()).collect();
-    let records: Vec<UnitRecord> = units
+    let ending = Ending {
+        finished_at: &finished_at,
+        bench_time_s,
+        off_failure: off_failure.as_deref(),
+        resumed_at: resumed_at.as_deref(),
+    };
+    let mut records = final_records(units, health, &ending);
+    let replaced: Vec<UnitRecord> = replaced
+        .into_iter()
+        .map(|mut r| {
+            r.finished_at = finished_at.clone();
+            r.bench_time_s = bench_time_s;
+            r
+        })
+        .collect();
+    keep(&mut records, &replaced, recorder);
+    records.extend(replaced);
+    reporter.event(&Event::RunFinished {
+        records: &records,
+        bench_time_s,
+    });
+    records
+}
+
+/// Phase one: every position identified (model, serial, firmware), units sharing a serial
+/// refused, and on a resume a unit found where the interrupted run had another taken for a
+/// new unit (tested from the first step; the one it replaced keeps its own record, returned
+/// beside).
+fn identify_all(
+    plan: &Plan,
+    bench: &mut Bench,
+    ctx: &RunContext,
+    started_at: &str,
+    resume: Option<&Resume>,
+) -> (Vec<Unit>, Vec<UnitRecord>) {
+    let mut units: Vec<Unit> = bench
+        .positions
+        .iter_mut()
+        .map(|p| identify(plan, p, ctx, &bench.station, started_at))
+        .collect();
+    refuse_shared_serials(&mut units);
+    let mut replaced: Vec<UnitRecord> = Vec::new();
+    if let Some(r) = resume {
+        for u in units.iter_mut().filter(|u| u.active) {
+            let position = u.record.position;
+            match r.serials.get(&position) {
+                Some(old) if *old != u.record.serial => {
+                    u.fresh = true;
+                    u.record.notes.push(format!(
+                        "this unit replaced {old} in position {position} while the run was interrupted; {old} keeps its own record"
+                    ));
+                    if !r.sealed.contains(&position) {
+                        replaced.push(replaced_record(&u.record, old, r, plan));
+                    }
+                }
+                _ => {}
+            }
+        }
+    }
+    (units, replaced)
+}
+
+/// Tells the recorder and the front end which units are under test and which were refused.
+fn announce_units(units: &[Unit], reporter: &mut dyn Reporter, recorder: &dyn Recorder) {
+    for u in units {
+        recorder.unit_started(&u.record);
+        match (&u.record.identity, u.active) {
+            (Some(identity), true) => reporter.event(&Event::UnitIdentified {
+                position: u.record.position,
+                identity,
+            }),
+            _ => reporter.event(&Event::UnitRefused {
+                position: u.record.position,
+                reason: u.record.verdict.reasons.first().map_or("", String::as_str),
+            }),
+        }
+    }
+}
+
+/// The steps an interrupted run finished, kept as they were (none for a unit new to its
+/// position).
+fn kept_steps(units: &[Unit], resume: Option<&Resume>, index: usize) -> Vec<Option<StepRecord>> {
+    units
+        .iter()
+        .map(|u| {
+            resume
+                .filter(|_| !u.fresh)
+                .and_then(|r| r.done.get(&u.record.position))
+                .and_then(|d| d.get(&index))
+                .cloned()
+        })
+        .collect()
+}
+
+/// What became of a step's load.
+enum Applied {
+    Yes,
+    /// The operator skipped the step (with a reason, in the units' records).
+    Skipped,
+    /// The source failed or the operator aborted: no further load is applied.
+    Failed(String),
+}
+
+/// Applies the step's load; a skipped step or a failed source leaves every unit a step record
+/// saying why.
+fn apply_load(step: &Step, bench: &mut Bench, units: &mut [Unit], to_run: &[bool]) -> Applied {
+    let Err(e) = bench.source.apply(&step.load) else {
+        return Applied::Yes;
+    };
+    let reason = e.to_string();
+    if let crate::bench::BenchError::Skipped(_) = e {
+        for (u, run) in units.iter_mut().zip(to_run) {
+            if *run {
+                u.record.steps.push(not_run(step, &reason));
+            }
+        }
+        return Applied::Skipped;
+    }
+    for u in units.iter_mut().filter(|u| u.active) {
+        u.record.steps.push(not_run(step, &reason));
+    }
+    Applied::Failed(reason)
+}
+
+/// Waits for the load to settle: a fixed time, or until every position's readings are stable.
+fn settle_step(step: &Step, bench: &mut Bench, to_run: &[bool]) -> Option<settle::SettleOutcome> {
+    match &step.settle_until {
+        Some(rule) => Some(settle::settle_until(
+            rule,
+            bench.clock.as_ref(),
+            &mut bench.positions,
+            to_run,
+            bench.parallel,
+            &bench.interrupt,
+        )),
+        None => {
+            bench.clock.sleep_s(step.settle_s);
+            None
+        }
+    }
+}
+
+/// How the run ended, for every record.
+struct Ending<'a> {
+    finished_at: &'a str,
+    bench_time_s: f64,
+    /// The output could not be switched off at the end.
+    off_failure: Option<&'a str>,
+    /// When a resumed run took up again.
+    resumed_at: Option<&'a str>,
+}
+
+/// The last phase: each unit's verdict from its steps (a calibration not done leaves it
+/// incomplete), with the link's health, the run's end and a resume's note.
+fn final_records(
+    units: Vec<Unit>,
+    health: Vec<Option<crate::link::LinkHealth>>,
+    ending: &Ending,
+) -> Vec<UnitRecord> {
+    units
         .into_iter()
         .zip(health)
         .map(|(mut u, health)| {
             u.record.link_health = health;
-            u.record.finished_at = finished_at.clone();
-            u.record.bench_time_s = bench_time_s;
+            u.record.finished_at = ending.finished_at.to_string();
+            u.record.bench_time_s = ending.bench_time_s;
             if u.active {
                 u.record.verdict = decide::unit_verdict(&u.record.steps);
                 if let Some(c) = &u.record.calibration
@@ -451,10 +542,10 @@ pub fn run_with(
                     ));
                 }
             }
-            if let Some(e) = &off_failure {
+            if let Some(e) = ending.off_failure {
                 u.record.verdict.reasons.push(format!("after the run: {e}"));
             }
-            if let Some(at) = &resumed_at {
+            if let Some(at) = ending.resumed_at {
                 u.record.notes.push(format!(
                     "resumed at {at} after an interruption; steps run again: {}",
                     if u.repeated.is_empty() {
@@ -466,20 +557,15 @@ pub fn run_with(
             }
             u.record
         })
-        .collect();
-    let mut records = records;
-    let replaced: Vec<UnitRecord> = replaced
-        .into_iter()
-        .map(|mut r| {
-            r.finished_at = finished_at.clone();
-            r.bench_time_s = bench_time_s;
-            r
-        })
-        .collect();
-    // The units that left come before those that took their places, in the archive too (the
-    // newest record of a position is the one that counts); in what is returned, after them.
+        .collect()
+}
+
+/// Hands the records to the recorder (the units that left first: the newest record of a
+/// position is the one that counts), and never shows accepted a unit whose record the archive
+/// could not keep.
+fn keep(records: &mut Vec<UnitRecord>, replaced: &[UnitRecord], recorder: &dyn Recorder) {
     if !replaced.is_empty() {
-        recorder.units_finished(&replaced);
+        recorder.units_finished(replaced);
     }
     // A unit whose record the archive could not keep is never shown accepted.
     let keep_failed = |records: &mut Vec<UnitRecord>, what: &str| {
@@ -493,18 +579,12 @@ pub fn run_with(
         }
     };
     if let Some(what) = recorder.failure() {
-        keep_failed(&mut records, &what);
+        keep_failed(records, &what);
     }
-    recorder.units_finished(&records);
+    recorder.units_finished(records);
     if let Some(what) = recorder.failure() {
-        keep_failed(&mut records, &what);
+        keep_failed(records, &what);
     }
-    records.extend(replaced);
-    reporter.event(&Event::RunFinished {
-        records: &records,
-        bench_time_s,
-    });
-    records
 }
 
 /// Owns the source's output for the length of a run: switches it off when dropped, so that an
