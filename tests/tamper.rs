@@ -627,3 +627,80 @@ fn verify_names_the_record_a_change_belongs_to() {
     }
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// Forgeries made the way one who knows the scheme would make them: a run's end time changed in
+/// its row and in its chain entry's content (the canonical JSON's SHA-256, recomputed), with the
+/// entry's own hash left as it was, and then recomputed too. The first is caught by the entry's
+/// own hash, the second by the next entry's link to it (the run is not the last in the chain).
+#[test]
+fn a_consistent_forgery_is_caught_by_the_chain_itself() {
+    use meterproof::plan::sha256_hex;
+    use meterproof::record::canonical_bytes;
+    let dir = temp_dir("tamper-forged");
+    let archive = dir.join("archive.sqlite");
+    fixture(&archive);
+    let forged_at = "2026-12-01T23:59:59.000+00:00";
+    let content = sha256_hex(&canonical_bytes(&serde_json::json!({
+        "run_id": "R1",
+        "state": "finished",
+        "finished_at": forged_at,
+    })));
+    let (seq, prev): (i64, String) = Connection::open(&archive)
+        .unwrap()
+        .query_row(
+            "SELECT seq, prev_sha256 FROM chain WHERE kind = 'end' AND run_id = 'R1' ORDER BY seq DESC LIMIT 1",
+            [],
+            |r| Ok((r.get(0)?, r.get(1)?)),
+        )
+        .unwrap();
+    let last: i64 = Connection::open(&archive)
+        .unwrap()
+        .query_row("SELECT MAX(seq) FROM chain", [], |r| r.get(0))
+        .unwrap();
+    assert!(seq < last, "R1's end is not the last entry");
+    let rehashed = sha256_hex(format!("{prev}\nend\n{content}").as_bytes());
+    let forge = |i: usize, with_hash: bool| {
+        let copy = copy_of(&archive, &dir, 2000 + i);
+        let c = Connection::open(&copy).unwrap();
+        c.execute(
+            "UPDATE runs SET finished_at = ?1 WHERE run_id = 'R1'",
+            [forged_at],
+        )
+        .unwrap();
+        c.execute(
+            "UPDATE chain SET content_sha256 = ?1 WHERE seq = ?2",
+            rusqlite::params![content, seq],
+        )
+        .unwrap();
+        if with_hash {
+            c.execute(
+                "UPDATE chain SET sha256 = ?1 WHERE seq = ?2",
+                rusqlite::params![rehashed, seq],
+            )
+            .unwrap();
+        }
+        drop(c);
+        Archive::open_read_only(&copy)
+            .unwrap()
+            .verify(None)
+            .unwrap()
+    };
+    let own = forge(0, false);
+    assert!(
+        own.failures
+            .iter()
+            .any(|f| f.why.contains("its own hash does not match its content")),
+        "{:#?}",
+        own.failures
+    );
+    let linked = forge(1, true);
+    assert!(
+        linked
+            .failures
+            .iter()
+            .any(|f| f.why.contains("missing, reordered or changed")),
+        "{:#?}",
+        linked.failures
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
