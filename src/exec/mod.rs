@@ -976,7 +976,6 @@ fn run_step(
     units: &mut [Unit],
     judge: &decide::Judge,
 ) -> StepOutcome {
-    let started_at_s = sc.started_at_s;
     let attempt_of = |position: usize| {
         sc.attempts
             .and_then(|a| a.get(&(position, sc.index)))
@@ -1096,22 +1095,7 @@ fn run_step(
             .max()
             .unwrap_or(0) as u32;
     }
-    // A unit that restarted while under this load: what it read before may be from another
-    // life (registers reset, constants reloaded), so none of this step's readings count.
-    let restarted: Vec<Option<String>> = restarts(bench)
-        .into_iter()
-        .enumerate()
-        .map(|(u, now)| {
-            let before = sc.restarts_before.get(u).copied().unwrap_or(0);
-            (sc.to_run[u] && now > before).then(|| {
-                format!(
-                    "the unit restarted during the step ({} restart line{} seen): its readings of this step are not used",
-                    now - before,
-                    if now - before > 1 { "s" } else { "" }
-                )
-            })
-        })
-        .collect();
+    let restarted = restarted_during(bench, sc);
     // A stop signal after the last sample: the output is already off, so no reference may be
     // read for this step and none of its samples decide anything.
     let stopped = bench.interrupt.load(std::sync::atomic::Ordering::SeqCst);
@@ -1148,121 +1132,36 @@ fn run_step(
             sc.base_current,
         )
     };
+    let taken = Taken {
+        wanted: &wanted,
+        evaluated_step: &evaluated_step,
+        references: &references,
+        reference_window,
+        load_references: &load_references,
+        load_problem: load_problem.as_deref(),
+        resolutions: &resolutions,
+        calibration,
+        start_problem: start_problem.as_deref(),
+    };
     for (u, unit) in units.iter_mut().enumerate() {
         if !sc.to_run[u] {
             continue;
         }
-        let mut record = empty_step(step, Some(started_at_s));
-        record.attempt = attempt_of(unit.record.position);
-        if let Some(s) = sc.settle {
-            record.settle_actual_s = Some(s.actual_s);
-            record.settled = Some(s.settled);
-        }
-        if let Some(why) = &start_problem {
-            record.sampling_note = Some(format!(
-                "the reference's power at the window's start could not be read ({why})"
-            ));
-        }
-        if let Some(rule) = step.sequential {
-            let taken = series[u].samples.first().map_or(0, |s| s.len());
-            record.sampling_note = Some(format!(
-                "sampled until decided: {taken} samples (at least {}, at most {})",
-                rule.min, rule.max
-            ));
-        }
-        record.references = references
-            .iter()
-            .filter_map(|(q, r)| {
-                r.as_ref().ok().map(|reading| ReferenceRecord {
-                    quantity: *q,
-                    reading: reading.clone(),
-                })
-            })
-            .collect();
-        for (i, (check, check_record)) in
-            step.checks.iter().zip(record.checks.iter_mut()).enumerate()
-        {
-            let w = wanted
-                .iter()
-                .position(|w| !w.raw && w.quantity == check.quantity && w.channel == check.channel)
-                .expect("every check's reading is wanted");
-            check_record.samples = series[u].samples.get(w).cloned().unwrap_or_default();
-            let reference = references
-                .iter()
-                .find(|(q, _)| *q == check.quantity)
-                .map(|(_, r)| r.clone());
-            let input = decide::CheckInputs {
-                check,
-                step: &evaluated_step,
-                reference,
-                window: reference_window,
-                resolution: resolutions[u][i],
-            };
-            decide::evaluate_check(input, check_record, judge);
-        }
-        if let Some(cal) = calibration {
-            let w = wanted
-                .iter()
-                .position(|w| w.raw)
-                .expect("a raw reading is wanted");
-            let samples = series[u].samples.get(w).cloned().unwrap_or_default();
-            let counts: Vec<f64> = samples.iter().map(|s| s.value).collect();
-            record.calibration_point = Some(CalibrationPoint {
-                quantity: cal.quantity,
-                channel: cal.channel.clone(),
-                mean_counts: (counts.len() == step.samples as usize)
-                    .then(|| crate::metrology::Summary::of(&counts).map(|s| s.mean))
-                    .flatten(),
-                samples,
-                reference: references
-                    .iter()
-                    .find(|(q, _)| *q == cal.quantity)
-                    .and_then(|(_, r)| r.as_ref().ok().map(|r| r.value)),
-            });
-        }
-        let missing_reference: Vec<String> = references
-            .iter()
-            .filter_map(|(q, r)| r.as_ref().err().map(|e| format!("{}: {e}", q.name())))
-            .collect();
-        record.references.extend(load_references.iter().cloned());
-        if let Some(fault) = series[u].fault.take() {
-            record.status = StepStatus::Incomplete;
-            record.reason = Some(fault);
-        } else if !missing_reference.is_empty() {
-            record.status = StepStatus::Incomplete;
-            record.reason = Some(format!(
-                "no reference reading for {}",
-                missing_reference.join("; ")
-            ));
-        }
-        if let Some(problem) = &load_problem {
-            trust::set_aside(&mut record, problem);
-        } else if let Some(why) = &restarted[u] {
-            trust::set_aside(&mut record, why);
-        }
+        let attempt = attempt_of(unit.record.position);
+        let record = unit_step_record(
+            step,
+            sc,
+            &taken,
+            (u, attempt),
+            &mut series[u],
+            restarted[u].as_deref(),
+            judge,
+        );
         unit.record.steps.push(record);
     }
-    // Every unit failing by the same error points at the reference, not the units.
-    let mut set_aside = load_problem.clone();
-    if set_aside.is_none() {
-        let done: Vec<&StepRecord> = units
-            .iter()
-            .zip(sc.to_run)
-            .filter(|(_, run)| **run)
-            .filter_map(|(u, _)| u.record.steps.last())
-            .filter(|r| r.status == StepStatus::Done)
-            .collect();
-        if let Some(reason) = trust::suspect_reference(&done) {
-            for (u, _) in units.iter_mut().zip(sc.to_run).filter(|(_, run)| **run) {
-                if let Some(r) = u.record.steps.last_mut()
-                    && r.status == StepStatus::Done
-                {
-                    trust::set_aside(r, &reason);
-                }
-            }
-            set_aside = Some(reason);
-        }
-    }
+    let set_aside = load_problem
+        .clone()
+        .or_else(|| suspect_reference(units, sc));
     // One write for the whole step: a single commit for all positions.
     let finished: Vec<(usize, &StepRecord)> = units
         .iter()
@@ -1271,20 +1170,192 @@ fn run_step(
         .filter_map(|(u, _)| Some((u.record.position, u.record.steps.last()?)))
         .collect();
     sc.recorder.step_finished(sc.index, &finished);
-    // An operator who aborted at a reference prompt, or Ctrl-C, ends the run here.
+    StepOutcome {
+        stop: stop_reason(&references, bench),
+        set_aside,
+    }
+}
+
+/// What a step took beyond each unit's own series: the readings wanted, the references and
+/// the window they stand for, the load as the reference saw it, each unit's resolutions.
+struct Taken<'a> {
+    wanted: &'a [sampling::Wanted],
+    /// The step as evaluated (a step sampled until decided, with the samples it took).
+    evaluated_step: &'a Step,
+    references: &'a References,
+    reference_window: (f64, f64),
+    load_references: &'a [ReferenceRecord],
+    load_problem: Option<&'a str>,
+    resolutions: &'a [Vec<Option<f64>>],
+    calibration: Option<&'a CalibrationSpec>,
+    start_problem: Option<&'a str>,
+}
+
+/// One unit's record of a step: its samples, every check evaluated, a calibration point's
+/// counts, and the step set aside where the load or the unit's restart says so.
+fn unit_step_record(
+    step: &Step,
+    sc: &StepContext,
+    taken: &Taken,
+    (u, attempt): (usize, u32),
+    series: &mut sampling::Series,
+    restarted: Option<&str>,
+    judge: &decide::Judge,
+) -> StepRecord {
+    let Taken {
+        wanted,
+        evaluated_step,
+        references,
+        reference_window,
+        load_references,
+        load_problem,
+        resolutions,
+        calibration,
+        start_problem,
+    } = *taken;
+    let mut record = empty_step(step, Some(sc.started_at_s));
+    record.attempt = attempt;
+    if let Some(s) = sc.settle {
+        record.settle_actual_s = Some(s.actual_s);
+        record.settled = Some(s.settled);
+    }
+    if let Some(why) = start_problem {
+        record.sampling_note = Some(format!(
+            "the reference's power at the window's start could not be read ({why})"
+        ));
+    }
+    if let Some(rule) = step.sequential {
+        let n = series.samples.first().map_or(0, |s| s.len());
+        record.sampling_note = Some(format!(
+            "sampled until decided: {n} samples (at least {}, at most {})",
+            rule.min, rule.max
+        ));
+    }
+    record.references = references
+        .iter()
+        .filter_map(|(q, r)| {
+            r.as_ref().ok().map(|reading| ReferenceRecord {
+                quantity: *q,
+                reading: reading.clone(),
+            })
+        })
+        .collect();
+    for (i, (check, check_record)) in step.checks.iter().zip(record.checks.iter_mut()).enumerate() {
+        let w = wanted
+            .iter()
+            .position(|w| !w.raw && w.quantity == check.quantity && w.channel == check.channel)
+            .expect("every check's reading is wanted");
+        check_record.samples = series.samples.get(w).cloned().unwrap_or_default();
+        let reference = references
+            .iter()
+            .find(|(q, _)| *q == check.quantity)
+            .map(|(_, r)| r.clone());
+        let input = decide::CheckInputs {
+            check,
+            step: evaluated_step,
+            reference,
+            window: reference_window,
+            resolution: resolutions[u][i],
+        };
+        decide::evaluate_check(input, check_record, judge);
+    }
+    if let Some(cal) = calibration {
+        let w = wanted
+            .iter()
+            .position(|w| w.raw)
+            .expect("a raw reading is wanted");
+        let samples = series.samples.get(w).cloned().unwrap_or_default();
+        let counts: Vec<f64> = samples.iter().map(|s| s.value).collect();
+        record.calibration_point = Some(CalibrationPoint {
+            quantity: cal.quantity,
+            channel: cal.channel.clone(),
+            mean_counts: (counts.len() == step.samples as usize)
+                .then(|| crate::metrology::Summary::of(&counts).map(|s| s.mean))
+                .flatten(),
+            samples,
+            reference: references
+                .iter()
+                .find(|(q, _)| *q == cal.quantity)
+                .and_then(|(_, r)| r.as_ref().ok().map(|r| r.value)),
+        });
+    }
+    let missing_reference: Vec<String> = references
+        .iter()
+        .filter_map(|(q, r)| r.as_ref().err().map(|e| format!("{}: {e}", q.name())))
+        .collect();
+    record.references.extend(load_references.iter().cloned());
+    if let Some(fault) = series.fault.take() {
+        record.status = StepStatus::Incomplete;
+        record.reason = Some(fault);
+    } else if !missing_reference.is_empty() {
+        record.status = StepStatus::Incomplete;
+        record.reason = Some(format!(
+            "no reference reading for {}",
+            missing_reference.join("; ")
+        ));
+    }
+    if let Some(problem) = load_problem {
+        trust::set_aside(&mut record, problem);
+    } else if let Some(why) = restarted {
+        trust::set_aside(&mut record, why);
+    }
+    record
+}
+
+/// A unit that restarted while under this load: what it read before may be from another life
+/// (registers reset, constants reloaded), so none of this step's readings count.
+fn restarted_during(bench: &Bench, sc: &StepContext) -> Vec<Option<String>> {
+    restarts(bench)
+        .into_iter()
+        .enumerate()
+        .map(|(u, now)| {
+            let before = sc.restarts_before.get(u).copied().unwrap_or(0);
+            (sc.to_run[u] && now > before).then(|| {
+                format!(
+                    "the unit restarted during the step ({} restart line{} seen): its readings of this step are not used",
+                    now - before,
+                    if now - before > 1 { "s" } else { "" }
+                )
+            })
+        })
+        .collect()
+}
+
+/// Every unit failing by the same error points at the reference, not the units: the step is
+/// set aside for all of them.
+fn suspect_reference(units: &mut [Unit], sc: &StepContext) -> Option<String> {
+    let done: Vec<&StepRecord> = units
+        .iter()
+        .zip(sc.to_run)
+        .filter(|(_, run)| **run)
+        .filter_map(|(u, _)| u.record.steps.last())
+        .filter(|r| r.status == StepStatus::Done)
+        .collect();
+    let reason = trust::suspect_reference(&done)?;
+    for (u, _) in units.iter_mut().zip(sc.to_run).filter(|(_, run)| **run) {
+        if let Some(r) = u.record.steps.last_mut()
+            && r.status == StepStatus::Done
+        {
+            trust::set_aside(r, &reason);
+        }
+    }
+    Some(reason)
+}
+
+/// An operator who aborted at a reference prompt, or a stop signal, ends the run here.
+fn stop_reason(references: &References, bench: &Bench) -> Option<String> {
     let aborted = references.iter().find_map(|(_, r)| {
         r.as_ref()
             .err()
             .filter(|e| e.starts_with("aborted"))
             .cloned()
     });
-    let stop = aborted.or_else(|| {
+    aborted.or_else(|| {
         bench
             .interrupt
             .load(std::sync::atomic::Ordering::SeqCst)
             .then(|| STOPPED.to_string())
-    });
-    StepOutcome { stop, set_aside }
+    })
 }
 
 type ReferenceResult = Result<crate::bench::ReferenceReading, String>;
