@@ -13,7 +13,7 @@ use crate::plan::units::Display;
 use crate::plan::{Quantity, Step};
 use crate::record::{CheckVerdict, ReferenceRecord, StepRecord, StepStatus};
 
-use super::References;
+use super::step::References;
 
 /// How far the load is from the plan's, where the reference shows it: the readings used (those
 /// read only for this are returned, to be recorded) and the first quantity beyond
