@@ -563,7 +563,7 @@ fn explain_prints_a_computation_that_can_be_redone_by_hand() {
 /// reading is stored.
 #[test]
 fn durability_settings_and_group_commit_of_concurrent_readings() {
-    use meterproof::archive::{RunRecorder, RunRow};
+    use meterproof::archive::RunRecorder;
     use meterproof::exec::{ReadingKey, Recorder};
     use meterproof::plan::{Plan, Quantity};
     use meterproof::record::Sample;
@@ -573,23 +573,7 @@ fn durability_settings_and_group_commit_of_concurrent_readings() {
     assert_eq!(archive.durability().unwrap(), ("wal".to_string(), 2));
     let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
     archive
-        .begin_run(
-            &plan,
-            &RunRow {
-                run_id: "G".into(),
-                plan_sha256: plan.source.sha256.clone(),
-                plan_id: plan.id.clone(),
-                revision: plan.revision.clone(),
-                lot: None,
-                station: "sim".into(),
-                operator: "tester".into(),
-                bench: "{\"kind\":\"sim\"}".into(),
-                tool_version: "test".into(),
-                started_at: "2026-12-01T10:00:00.000+00:00".into(),
-                finished_at: None,
-                state: "running".into(),
-            },
-        )
+        .begin_run(&plan, &common::run_row(&plan, "G", None))
         .unwrap();
     let recorder = RunRecorder::new(&archive, "G");
     let (positions, per_position) = (16usize, 40usize);

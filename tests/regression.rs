@@ -2,7 +2,7 @@
 
 mod common;
 use common::{bin, ctx, temp_dir};
-use meterproof::archive::{Archive, RunRow};
+use meterproof::archive::Archive;
 use meterproof::bench::sim::{FirmwareChange, SimBench, SimConfig};
 use meterproof::exec::{self, Silent};
 use meterproof::plan::Plan;
@@ -128,23 +128,7 @@ fn more_noise_within_the_allowance_is_not_flagged() {
 
 fn archive_run(archive: &Archive, plan: &Plan, records: &[UnitRecord], run_id: &str) {
     archive
-        .begin_run(
-            plan,
-            &RunRow {
-                run_id: run_id.into(),
-                plan_sha256: plan.source.sha256.clone(),
-                plan_id: plan.id.clone(),
-                revision: plan.revision.clone(),
-                lot: None,
-                station: "sim".into(),
-                operator: "tester".into(),
-                bench: "{}".into(),
-                tool_version: "test".into(),
-                started_at: "2026-12-01T00:00:00+00:00".into(),
-                finished_at: None,
-                state: "running".into(),
-            },
-        )
+        .begin_run(plan, &common::run_row(plan, run_id, None))
         .unwrap();
     archive.import_units(records).unwrap();
     archive

@@ -46,6 +46,19 @@ fn source_port(station: &Path) -> String {
     v["source"]["port"].as_str().unwrap().to_string()
 }
 
+/// The child's standard error, line by line as it comes, on a channel.
+fn stderr_lines(child: &mut std::process::Child) -> std::sync::mpsc::Receiver<String> {
+    let stderr = child.stderr.take().unwrap();
+    let (tx, rx) = std::sync::mpsc::channel();
+    std::thread::spawn(move || {
+        for line in BufReader::new(stderr).lines() {
+            let Ok(line) = line else { break };
+            let _ = tx.send(line);
+        }
+    });
+    rx
+}
+
 /// A run on a served station, stopped by `signal` while its second step is under load.
 fn stop_mid_run(signal: &str) {
     let dir = temp_dir(&format!("signal-{signal}"));
@@ -61,14 +74,7 @@ fn stop_mid_run(signal: &str) {
         .spawn()
         .unwrap();
     // Wait for the observable moment: the second step has started and its load is on.
-    let stderr = child.stderr.take().unwrap();
-    let (tx, rx) = std::sync::mpsc::channel();
-    std::thread::spawn(move || {
-        for line in BufReader::new(stderr).lines() {
-            let Ok(line) = line else { break };
-            let _ = tx.send(line);
-        }
-    });
+    let rx = stderr_lines(&mut child);
     let mut seen = Vec::new();
     loop {
         let line = rx
@@ -798,14 +804,7 @@ fn a_second_stop_signal_quits_at_once_with_the_output_off() {
         .stderr(Stdio::piped())
         .spawn()
         .unwrap();
-    let stderr = child.stderr.take().unwrap();
-    let (tx, rx) = std::sync::mpsc::channel();
-    std::thread::spawn(move || {
-        for line in BufReader::new(stderr).lines() {
-            let Ok(line) = line else { break };
-            let _ = tx.send(line);
-        }
-    });
+    let rx = stderr_lines(&mut child);
     let mut seen = Vec::new();
     let wait_for = |what: &str, seen: &mut Vec<String>| loop {
         let line = rx

@@ -39,20 +39,7 @@ impl Reporter for StopAfter {
 }
 
 fn run_row(plan: &Plan, run_id: &str, lot: &str) -> RunRow {
-    RunRow {
-        run_id: run_id.into(),
-        plan_sha256: plan.source.sha256.clone(),
-        plan_id: plan.id.clone(),
-        revision: plan.revision.clone(),
-        lot: Some(lot.into()),
-        station: "sim".into(),
-        operator: "tester".into(),
-        bench: "{\"kind\":\"sim\"}".into(),
-        tool_version: "test".into(),
-        started_at: "2026-12-01T10:00:00.000+00:00".into(),
-        finished_at: None,
-        state: "running".into(),
-    }
+    common::run_row(plan, run_id, Some(lot))
 }
 
 fn context(run_id: &str, lot: &str) -> RunContext {

@@ -31,6 +31,28 @@ pub fn ctx() -> RunContext {
     }
 }
 
+/// The archive's row for a run of `plan` begun by a test (simulated bench, no lot unless given).
+pub fn run_row(
+    plan: &meterproof::plan::Plan,
+    run_id: &str,
+    lot: Option<&str>,
+) -> meterproof::archive::RunRow {
+    meterproof::archive::RunRow {
+        run_id: run_id.into(),
+        plan_sha256: plan.source.sha256.clone(),
+        plan_id: plan.id.clone(),
+        revision: plan.revision.clone(),
+        lot: lot.map(str::to_string),
+        station: "sim".into(),
+        operator: "tester".into(),
+        bench: "{\"kind\":\"sim\"}".into(),
+        tool_version: "test".into(),
+        started_at: "2026-12-01T10:00:00.000+00:00".into(),
+        finished_at: None,
+        state: "running".into(),
+    }
+}
+
 /// Every unit record (`*.json`) in one folder, by position.
 pub fn records_of_dir(dir: &Path) -> Vec<UnitRecord> {
     let mut rs: Vec<UnitRecord> = std::fs::read_dir(dir)
