@@ -268,6 +268,11 @@ fn the_example_station_file_is_valid() {
     let s = meterproof::bench::station::Station::load(Path::new("test-plans/station-example.yaml"))
         .unwrap();
     assert_eq!(s.positions.len(), 4);
+    assert_eq!(
+        s.ambient_c,
+        Some(23.0),
+        "the example states its ambient temperature"
+    );
 }
 
 #[test]

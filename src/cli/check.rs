@@ -102,13 +102,17 @@ fn station_summary(s: &Station) -> String {
         station::ReferenceRead::Operator => "typed by the operator".into(),
     };
     format!(
-        "{}: station {}, {} positions, {source}; reference {} ({reading}){}\n",
+        "{}: station {}, {} positions, {source}; reference {} ({reading}){}; {}\n",
         s.file,
         s.id,
         s.positions.len(),
         s.reference.info.id,
         s.reference
             .calibration_due
-            .map_or(String::new(), |d| format!(", calibration due {d}"))
+            .map_or(String::new(), |d| format!(", calibration due {d}")),
+        s.ambient_c
+            .map_or("ambient temperature not stated".to_string(), |c| {
+                format!("ambient {c} °C")
+            })
     )
 }
