@@ -65,8 +65,9 @@ fn a_typed_session_with_mistakes_gets_the_right_verdicts() {
             if step == 1 && q == Quantity::Current {
                 // A wrong unit, then a decimal comma, then a typo corrected before it counts.
                 input.push_str("500 mV\n0,5 A\n0.6 A\n");
-                // 0.6 A is 20 % from the nominal 0.5 A: confirmation asked; not given.
-                input.push_str("0.55 A\n");
+                // 0.6 A is 20 % from the nominal 0.5 A: confirmation asked; another value
+                // typed instead replaces it, and is itself replaced by the nominal one.
+                input.push_str("0.52 A\n");
                 input.push_str(&format!("{text}\n\n"));
                 continue;
             }
@@ -119,8 +120,10 @@ fn a_typed_session_with_mistakes_gets_the_right_verdicts() {
     );
     assert_eq!(typed[1], ("0,5 A", "corrected"));
     assert_eq!(typed[2], ("0.6 A", "confirm"));
-    assert_eq!(typed[3], ("0.55 A", "refused: not confirmed"));
+    assert_eq!(typed[3], ("0.6 A", "corrected"));
+    assert_eq!(typed[4], ("0.52 A", "corrected"));
     assert_eq!(typed.last().unwrap().1, "accepted");
+    assert_eq!(typed.len(), 6, "{typed:?}");
     assert!(
         reading
             .entries
@@ -179,18 +182,28 @@ fn skip_and_abort_go_into_the_records() {
     let plan = demo();
     let dir = temp_dir("abort");
     let mut input = String::from("op\nL\n1\n2\n3\n4\n");
-    input.push_str("skip lamp bank fuse blown\n"); // step 1 skipped
+    // Step 1 skipped: a skip without a reason is asked for one.
+    input.push_str("skip\nlamp bank fuse blown\n");
     input.push('\n'); // step 2
     for q in asked(&plan, 1) {
         input.push_str(&format!("{}\n\n", nominal_text(&plan, 1, q)));
     }
-    input.push_str("abort end of shift\n"); // at step 3
+    // At step 3 an abort is confirmed: first declined (the prompt comes back), then given.
+    input.push_str("abort end of shift\n\nabort end of shift\nyes\n");
     let o = run_with_input(
         &["run", "test-plans/demo.yaml", "--ask", "--quiet"],
         &dir,
         &input,
     );
     assert_eq!(o.status.code(), Some(3), "the run did not complete");
+    let stderr = String::from_utf8_lossy(&o.stderr);
+    assert!(stderr.contains("Why skip? A reason is needed"), "{stderr}");
+    assert!(stderr.contains("skipped: the step at"), "{stderr}");
+    assert_eq!(
+        stderr.matches("Abort the run (end of shift)?").count(),
+        2,
+        "{stderr}"
+    );
     let records = records_in(&dir);
     assert_eq!(records.len(), 4);
     for r in records {

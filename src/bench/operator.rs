@@ -84,6 +84,9 @@ fn lock(c: &SharedConsole) -> std::sync::MutexGuard<'_, Console> {
     c.lock().unwrap_or_else(|p| p.into_inner())
 }
 
+/// The reason of a skip or an abort typed without one (the console then asks for one).
+const NO_REASON: &str = "no reason given";
+
 /// What the operator answered at a step's load prompt: Enter (or anything else) goes on;
 /// `skip REASON` skips the step; `abort REASON` ends the run.
 fn step_answer(answer: &str) -> Result<(), BenchError> {
@@ -91,7 +94,7 @@ fn step_answer(answer: &str) -> Result<(), BenchError> {
         .split_once(char::is_whitespace)
         .unwrap_or((answer, ""));
     let reason = match rest.trim() {
-        "" => "no reason given".to_string(),
+        "" => NO_REASON.to_string(),
         r => r.to_string(),
     };
     match word.to_lowercase().as_str() {
@@ -122,13 +125,57 @@ impl LoadSource for ManualSource {
     fn apply(&mut self, load: &Load) -> Result<(), BenchError> {
         let console = lock(&self.console);
         console.say(PROMPT_CAUTION);
-        let answer = console
+        let interrupted = |e: Interrupted| BenchError::Aborted(e.to_string());
+        let mut answer = console
             .ask(&format!(
                 "Set the load to {}. Press Enter when it is set (or type: skip REASON / abort REASON): ",
                 load.describe()
             ))
-            .map_err(|e| BenchError::Aborted(e.to_string()))?;
-        step_answer(&answer)?;
+            .map_err(interrupted)?;
+        // A skip or an abort goes into the records with its reason: one is asked for until
+        // given, and an abort, which ends the run, is confirmed.
+        loop {
+            match step_answer(&answer) {
+                Ok(()) => break,
+                Err(BenchError::Skipped(reason) | BenchError::Aborted(reason))
+                    if reason == NO_REASON =>
+                {
+                    let word = answer
+                        .split_whitespace()
+                        .next()
+                        .unwrap_or("")
+                        .to_lowercase();
+                    let reason = console
+                        .ask(&format!("Why {word}? A reason is needed for the records: "))
+                        .map_err(interrupted)?;
+                    answer = format!("{word} {reason}");
+                }
+                Err(BenchError::Aborted(reason)) => {
+                    let sure = console
+                        .ask(&format!(
+                            "Abort the run ({reason})? The load goes off and the units not finished stay INCOMPLETE. Type yes to abort, Enter to go on: "
+                        ))
+                        .map_err(interrupted)?;
+                    if sure.eq_ignore_ascii_case("yes") {
+                        return Err(BenchError::Aborted(reason));
+                    }
+                    answer = console
+                        .ask(&format!(
+                            "Set the load to {}. Press Enter when it is set (or type: skip REASON / abort REASON): ",
+                            load.describe()
+                        ))
+                        .map_err(interrupted)?;
+                }
+                Err(BenchError::Skipped(reason)) => {
+                    console.say(&format!(
+                        "  skipped: the step at {} is not run for any unit ({reason})",
+                        load.describe()
+                    ));
+                    return Err(BenchError::Skipped(reason));
+                }
+                Err(e) => return Err(e),
+            }
+        }
         drop(console);
         match &mut self.inner {
             Some(inner) => inner.apply(load),
@@ -154,6 +201,14 @@ pub struct TypedEntry {
     pub text: String,
     /// "refused: ...", "confirm", "corrected" or "accepted".
     pub outcome: String,
+}
+
+/// A typed value not recorded yet.
+struct Pending {
+    value: f64,
+    text: String,
+    /// Beyond the plausibility limit: it must be typed again to count.
+    far: bool,
 }
 
 /// Reference readings typed by the operator from a reference meter.
@@ -182,8 +237,10 @@ impl ReferenceMeter for TypedReference {
         let nominal = request.load.nominal(q, request.window.1 - request.window.0);
         let console = lock(&self.console);
         let mut entries = Vec::new();
-        let mut pending: Option<(f64, String)> = None;
         let abort = |e: Interrupted| BenchError::Aborted(e.to_string());
+        // What was typed and not recorded yet: a plausible value waits for Enter, an
+        // implausible one for the same value typed again; either may be replaced by another.
+        let mut pending: Option<Pending> = None;
         let accepted = loop {
             let prompt = match &pending {
                 None => format!(
@@ -192,17 +249,25 @@ impl ReferenceMeter for TypedReference {
                     request.step_id,
                     units::Display(nominal, q.dimension())
                 ),
-                Some((_, text)) => format!("  {text}: Enter to record it, or type it again: "),
+                Some(p) if p.far => format!(
+                    "  again: type {} once more to confirm it, or type another value: ",
+                    p.text
+                ),
+                Some(p) => format!("  {}: Enter to record it, or type it again: ", p.text),
             };
             let text = console.ask(&prompt).map_err(abort)?;
             if text.is_empty() {
-                if let Some((value, typed)) = pending.take() {
-                    entries.push(TypedEntry {
-                        at: now(),
-                        text: typed.clone(),
-                        outcome: "accepted".into(),
-                    });
-                    break (value, typed);
+                match pending.take() {
+                    Some(p) if !p.far => {
+                        entries.push(TypedEntry {
+                            at: now(),
+                            text: p.text.clone(),
+                            outcome: "accepted".into(),
+                        });
+                        break (p.value, p.text);
+                    }
+                    // Enter does not confirm an implausible value: it must be typed again.
+                    other => pending = other,
                 }
                 continue;
             }
@@ -214,17 +279,29 @@ impl ReferenceMeter for TypedReference {
                         text,
                         outcome: format!("refused: {e}"),
                     });
-                    pending = None;
                 }
                 Ok(value) => {
-                    // A new value replaces one not yet recorded: the old one was a typo.
-                    if let Some((_, old)) = pending.take() {
+                    if let Some(p) = pending.take() {
+                        // The implausible value typed again: confirmed.
+                        if p.far && value == p.value {
+                            entries.push(TypedEntry {
+                                at: now(),
+                                text: text.clone(),
+                                outcome: "accepted".into(),
+                            });
+                            break (value, text);
+                        }
+                        // Another value replaces the one not yet recorded: the old was a typo.
                         entries.push(TypedEntry {
                             at: now(),
-                            text: old,
+                            text: p.text,
                             outcome: "corrected".into(),
                         });
                     }
+                    console.say(&format!(
+                        "  read as {}",
+                        units::Display(value, q.dimension())
+                    ));
                     let far =
                         nominal != 0.0 && ((value - nominal) / nominal).abs() > self.plausibility;
                     if far {
@@ -238,31 +315,8 @@ impl ReferenceMeter for TypedReference {
                             text: text.clone(),
                             outcome: "confirm".into(),
                         });
-                        pending = None;
-                        let again = console.ask("  again: ").map_err(abort)?;
-                        let confirmed = units::parse_with(
-                            &again,
-                            q.dimension(),
-                            DecimalSeparator::PointOrComma,
-                        )
-                        .is_ok_and(|v| v == value);
-                        if confirmed {
-                            entries.push(TypedEntry {
-                                at: now(),
-                                text: again.clone(),
-                                outcome: "accepted".into(),
-                            });
-                            break (value, again);
-                        }
-                        entries.push(TypedEntry {
-                            at: now(),
-                            text: again,
-                            outcome: "refused: not confirmed".into(),
-                        });
-                        console.say("  not confirmed; enter the reading again");
-                        continue;
                     }
-                    pending = Some((value, text));
+                    pending = Some(Pending { value, text, far });
                 }
             }
         };
@@ -321,6 +375,22 @@ mod tests {
         let confirmed = typed(&["5.51 A", "5.51 A"]);
         assert_eq!(confirmed.value, 5.51);
         assert!(confirmed.entries.iter().any(|e| e.outcome == "confirm"));
+    }
+
+    /// At the confirmation prompt another value may be typed instead: it replaces the
+    /// implausible one (kept in the entries as corrected) and is recorded with Enter; Enter
+    /// alone never confirms an implausible value. Every entry is kept, in order.
+    #[test]
+    fn a_corrected_value_at_the_confirmation_prompt_is_taken() {
+        let corrected = typed(&["5.51 A", "", "5,02 A", ""]);
+        assert!((corrected.value - 5.02).abs() < 1e-12);
+        assert_eq!(corrected.as_given.as_deref(), Some("5,02 A"));
+        let outcomes: Vec<&str> = corrected
+            .entries
+            .iter()
+            .map(|e| e.outcome.as_str())
+            .collect();
+        assert_eq!(outcomes, ["confirm", "corrected", "accepted"]);
     }
 
     #[test]
