@@ -70,7 +70,7 @@ fn calibration_written_back_brings_every_unit_within_limits() {
         let cal = c.calibration.as_ref().unwrap();
         assert_eq!(cal.status, CalibrationStatus::Written);
         // The constants before are the front end's nominal ones; those read back are those written.
-        assert_eq!(cal.before, Some((395.0, 1700.0)));
+        assert_eq!(cal.before, Some((128.0, 2240.0)));
         assert_eq!(cal.read_back, cal.written);
         let fit = cal.result.as_ref().unwrap();
         assert_eq!(fit.points.len(), 4);
@@ -170,7 +170,7 @@ fn calibration_over_serial_writes_reads_back_and_refuses_constants_that_did_not_
     assert_eq!(cal.status, CalibrationStatus::Mismatch);
     assert_eq!(
         cal.read_back,
-        Some((395.0, 1700.0)),
+        Some((128.0, 2240.0)),
         "the nominal constants stayed"
     );
     assert!(
@@ -228,7 +228,7 @@ fn calibration_mistakes_in_a_plan_are_refused() {
 
 /// A calibration outside the plan's limits rejects the unit with the reason and writes nothing
 /// (a front end far from its design gain has a fault that constants would hide). The window is
-/// ±0.05 % around 1700 counts/A, i.e. ±0.85 counts/A; each unit's fitted gain is recomputed
+/// ±0.05 % around 2240 counts/A, i.e. ±1.12 counts/A; each unit's fitted gain is recomputed
 /// here from its recorded points by least squares (the line through the points, by hand).
 #[test]
 fn a_calibration_outside_its_limits_rejects_the_unit_and_writes_nothing() {
@@ -236,8 +236,8 @@ fn a_calibration_outside_its_limits_rejects_the_unit_and_writes_nothing() {
     let tight = Plan::from_text(
         "tight.yaml",
         &text.replace(
-            "gain: { nominal: 1700, within: 3 % }",
-            "gain: { nominal: 1700, within: 0.05 % }",
+            "gain: { nominal: 2240, within: 3 % }",
+            "gain: { nominal: 2240, within: 0.05 % }",
         ),
     )
     .unwrap();
@@ -263,7 +263,7 @@ fn a_calibration_outside_its_limits_rejects_the_unit_and_writes_nothing() {
             .sum();
         let sxx: f64 = points.iter().map(|p| (p.reference - mx).powi(2)).sum();
         let gain = sxy / sxx;
-        let outside = (gain - 1700.0).abs() > 0.85;
+        let outside = (gain - 2240.0).abs() > 1.12;
         let limit = cal.limits.iter().find(|l| l.what == "gain").unwrap();
         assert!((limit.value - gain).abs() < 1e-6 * gain);
         assert_eq!(limit.within, !outside);
@@ -274,7 +274,7 @@ fn a_calibration_outside_its_limits_rejects_the_unit_and_writes_nothing() {
             assert_eq!(r.verdict.status, UnitStatus::Rejected);
             let reason = r.verdict.reasons.join("; ");
             assert!(
-                reason.contains("gain") && reason.contains("from nominal 1700"),
+                reason.contains("gain") && reason.contains("from nominal 2240"),
                 "{reason}"
             );
             assert!(

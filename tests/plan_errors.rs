@@ -391,8 +391,8 @@ fn check_warns_of_an_empty_acceptance_zone() {
 fn calibration_limits_are_checked_where_they_are_written() {
     let good = include_str!("../test-plans/calibrate.yaml");
     let e = errors(&good.replace(
-        "gain: { nominal: 1700, within: 3 % }",
-        "gain: { nominal: 1700, within: 0 % }",
+        "gain: { nominal: 2240, within: 3 % }",
+        "gain: { nominal: 2240, within: 0 % }",
     ))
     .to_string();
     assert!(
@@ -400,7 +400,7 @@ fn calibration_limits_are_checked_where_they_are_written() {
         "{e}"
     );
     let e = errors(&good.replace(
-        "offset: { nominal: 395, within: 40 }",
+        "offset: { nominal: 128, within: 40 }",
         "offset: { nominal: lots, within: 40 }",
     ))
     .to_string();

@@ -122,7 +122,7 @@ pub struct RawCalibrationLimits {
     pub read_back: Option<Text>,
 }
 
-/// `{ nominal: 1700, within: 2 % }` or `{ nominal: 395, within: 40 }` (counts).
+/// `{ nominal: 2240, within: 2 % }` or `{ nominal: 128, within: 40 }` (counts).
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct RawWindow {

@@ -158,7 +158,7 @@ pub struct CalibrationStats {
     pub std_dev: Option<f64>,
     pub min: f64,
     pub max: f64,
-    /// "1700 ± 51", "≤ 0.5".
+    /// "2240 ± 67.2", "≤ 0.5".
     pub limit: String,
 }
 

@@ -46,12 +46,11 @@ mod front_end {
         }
     }
 
-    /// The nominal constants of the simulated TM-16 front end (an invented design; the current
-    /// channel's 395 counts at zero and about 1700 counts per ampere are those of a bench
-    /// measurement of a small front end: common practice, no published source).
+    /// The nominal constants of the simulated TM-16 front end, an invented design of our own:
+    /// 2240 counts per ampere on the current channel and 128 counts at zero.
     pub fn front_end(quantity: Quantity) -> FrontEnd {
         let (gain, offset) = match quantity {
-            Quantity::Current => (1700.0, 395.0),
+            Quantity::Current => (2240.0, 128.0),
             Quantity::Voltage => (100.0, 12.0),
             Quantity::ActivePower | Quantity::ReactivePower | Quantity::ApparentPower => {
                 (100.0, 0.0)
