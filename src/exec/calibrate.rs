@@ -43,7 +43,7 @@ pub(super) fn calibrate_unit(
         }
     };
     let (offset, gain) = (fitted.offset, fitted.gain);
-    record.limits = calibration::judge(&fitted, &spec.limits);
+    record.limits = calibration::judge(&fitted, &spec.limits, spec.quantity.unit());
     record.result = Some(fitted);
     let outside: Vec<String> = record
         .limits

@@ -112,7 +112,7 @@ pub struct LimitResult {
     /// The deviation compared with `limit` (|value − nominal|, or the value itself).
     pub deviation: f64,
     pub limit: f64,
-    /// "counts per unit", "counts", "%".
+    /// "counts per A", "counts", "%".
     pub unit: String,
     pub within: bool,
 }
@@ -134,8 +134,9 @@ impl std::fmt::Display for LimitResult {
     }
 }
 
-/// Holds a fitted calibration to `limits`: one result per limit the plan sets.
-pub fn judge(c: &Calibration, limits: &Limits) -> Vec<LimitResult> {
+/// Holds a fitted calibration to `limits`: one result per limit the plan sets; `unit` is the
+/// calibrated quantity's unit ("A"), for the gain's "counts per A".
+pub fn judge(c: &Calibration, limits: &Limits, unit: &str) -> Vec<LimitResult> {
     let mut out = Vec::new();
     let mut window = |what: &str, value: f64, w: Window, unit: &str| {
         let deviation = (value - w.nominal).abs();
@@ -151,7 +152,7 @@ pub fn judge(c: &Calibration, limits: &Limits) -> Vec<LimitResult> {
         });
     };
     if let Some(w) = limits.gain {
-        window("gain", c.gain, w, "counts per unit");
+        window("gain", c.gain, w, &format!("counts per {unit}"));
     }
     if let Some(w) = limits.offset {
         window("offset", c.offset, w, "counts");
@@ -256,7 +257,7 @@ mod tests {
             point_gain_percent: Some(0.5),
             read_back: None,
         };
-        let r = judge(&c, &limits(0.005));
+        let r = judge(&c, &limits(0.005), "A");
         let by = |what: &str| r.iter().find(|x| x.what == what).unwrap().clone();
         assert!(by("gain").within);
         assert!(
@@ -274,11 +275,11 @@ mod tests {
             by("point gains")
         );
         assert!(by("point gains").within);
-        let r = judge(&c, &limits(0.002));
+        let r = judge(&c, &limits(0.002), "A");
         let gain = r.iter().find(|x| x.what == "gain").unwrap();
         assert!(!gain.within);
         assert!(gain.to_string().contains("from nominal 1700"), "{gain}");
-        assert!(judge(&c, &Limits::default()).is_empty());
+        assert!(judge(&c, &Limits::default(), "A").is_empty());
     }
 
     /// Ohm's law: a 10 mΩ shunt carrying 1.21 A develops 12.1 mV (common practice, no published

@@ -155,7 +155,10 @@ fn calibration_text(cal: &crate::plan::CalibrationSpec) -> String {
     };
     let mut limits = Vec::new();
     if let Some(w) = &l.gain {
-        limits.push(format!("gain {}", window(w, "counts per unit")));
+        limits.push(format!(
+            "gain {}",
+            window(w, &format!("counts per {}", cal.quantity.unit()))
+        ));
     }
     if let Some(w) = &l.offset {
         limits.push(format!("offset {}", window(w, "counts")));
