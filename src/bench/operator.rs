@@ -14,8 +14,10 @@ use std::sync::mpsc::{Receiver, RecvTimeoutError, channel};
 use std::sync::{Arc, Mutex};
 use std::time::Duration;
 
-/// Shown wherever a prompt asks for a change of load or wiring.
-pub const PROMPT_CAUTION: &str = "CAUTION: mains voltage. Qualified people only; de-energise before touching wiring, keep terminals enclosed.";
+/// Shown once per run, before the first prompt that asks for a change of load, wrapped to fit
+/// an 80-column terminal at word boundaries.
+pub const PROMPT_CAUTION: &str = "CAUTION: mains voltage. Qualified people only; de-energise before touching\n\
+                                  wiring, keep terminals enclosed, follow local electrical codes.";
 
 /// Why a prompt got no answer.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
@@ -109,11 +111,17 @@ fn step_answer(answer: &str) -> Result<(), BenchError> {
 pub struct ManualSource {
     console: SharedConsole,
     inner: Option<Box<dyn LoadSource>>,
+    /// The caution was shown: once per run is read; at every prompt it is not.
+    cautioned: bool,
 }
 
 impl ManualSource {
     pub fn new(console: SharedConsole, inner: Option<Box<dyn LoadSource>>) -> ManualSource {
-        ManualSource { console, inner }
+        ManualSource {
+            console,
+            inner,
+            cautioned: false,
+        }
     }
 }
 
@@ -124,7 +132,10 @@ impl LoadSource for ManualSource {
 
     fn apply(&mut self, load: &Load) -> Result<(), BenchError> {
         let console = lock(&self.console);
-        console.say(PROMPT_CAUTION);
+        if !self.cautioned {
+            console.say(PROMPT_CAUTION);
+            self.cautioned = true;
+        }
         let interrupted = |e: Interrupted| BenchError::Aborted(e.to_string());
         let mut answer = console
             .ask(&format!(
