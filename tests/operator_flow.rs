@@ -87,9 +87,16 @@ fn a_typed_session_with_mistakes_gets_the_right_verdicts() {
         "{stderr}"
     );
     // The caution once per run, not at every prompt, and no line of it wider than 80 columns.
-    assert_eq!(stderr.matches("CAUTION: mains voltage").count(), 1, "{stderr}");
+    assert_eq!(
+        stderr.matches("CAUTION: mains voltage").count(),
+        1,
+        "{stderr}"
+    );
     let caution = &stderr[stderr.find("CAUTION").unwrap()..];
-    assert!(caution.lines().take(2).all(|l| l.chars().count() <= 80), "{caution}");
+    assert!(
+        caution.lines().take(2).all(|l| l.chars().count() <= 80),
+        "{caution}"
+    );
     let rs = records_in(&dir);
     let serials: Vec<&str> = rs.iter().map(|r| r.serial.as_str()).collect();
     assert_eq!(serials, ["TM-A", "TM-B", "TM-C", "TM-D"]);

@@ -263,8 +263,8 @@ fn check_accepts_every_shipped_plan() {
     // The adaptive plan's rules are shown as rules, and its time as an upper bound.
     for shown in [
         "scheduled bench time 40.5 s at most",
-        "settle until current stable within 2 mA (0.5 s to 2.0 s), 3 to 5 × 0.5 s until decided",
-        "settle until current stable within 0.15 % (0.5 s to 4.0 s), 3 to 11 × 1.0 s until decided",
+        "settle until current stable within 2 mA (500 ms to 2.0 s), 3 to 5 × 500 ms until decided",
+        "settle until current stable within 0.15 % (500 ms to 4.0 s), 3 to 11 × 1.0 s until decided",
     ] {
         assert!(stdout.contains(shown), "{shown}\n{stdout}");
     }

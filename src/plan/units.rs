@@ -273,16 +273,32 @@ fn lookup_unit(unit: &str) -> Option<(Dimension, f64)> {
 
 /// A duration as people read it: "45.0 s", "1 min 12 s", "1 h 2 min".
 pub fn duration_text(seconds: f64) -> String {
-    if seconds < 60.0 {
-        format!("{seconds:.1} s")
-    } else if seconds < 3600.0 {
-        format!("{} min {:.0} s", (seconds / 60.0).floor(), seconds % 60.0)
+    // Up to `decimals` decimals, without trailing zeros: 2.25, 150, 12.5.
+    let trimmed = |x: f64, decimals: usize| {
+        let t = format!("{x:.decimals$}");
+        if t.contains('.') {
+            t.trim_end_matches('0').trim_end_matches('.').to_string()
+        } else {
+            t
+        }
+    };
+    if seconds > 0.0 && seconds < 1.0 {
+        return format!("{} ms", trimmed(seconds * 1000.0, 3));
+    }
+    if seconds < 59.95 {
+        // Tenths as before ("4.0 s"), unless that would hide digits the plan wrote (2.25 s).
+        return if ((seconds * 10.0).round() - seconds * 10.0).abs() < 1e-9 {
+            format!("{seconds:.1} s")
+        } else {
+            format!("{} s", trimmed(seconds, 3))
+        };
+    }
+    let whole = seconds.round() as u64;
+    if whole < 3600 {
+        format!("{} min {} s", whole / 60, whole % 60)
     } else {
-        format!(
-            "{} h {} min",
-            (seconds / 3600.0).floor(),
-            ((seconds % 3600.0) / 60.0).floor()
-        )
+        let minutes = (seconds / 60.0).round() as u64;
+        format!("{} h {} min", minutes / 60, minutes % 60)
     }
 }
 

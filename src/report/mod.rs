@@ -606,5 +606,13 @@ mod tests {
         assert_eq!(duration_text(45.0), "45.0 s");
         assert_eq!(duration_text(72.0), "1 min 12 s");
         assert_eq!(duration_text(3720.0), "1 h 2 min");
+        // As written: 250 ms is not "0.2 s", 2.25 s not "2.2 s"; 119.7 s is 2 min, not
+        // "1 min 60 s".
+        assert_eq!(duration_text(0.25), "250 ms");
+        assert_eq!(duration_text(0.15), "150 ms");
+        assert_eq!(duration_text(2.25), "2.25 s");
+        assert_eq!(duration_text(4.0), "4.0 s");
+        assert_eq!(duration_text(119.7), "2 min 0 s");
+        assert_eq!(duration_text(3599.9), "1 h 0 min");
     }
 }
