@@ -419,3 +419,20 @@ fn calibration_limits_are_checked_where_they_are_written() {
     .to_string();
     assert!(e.contains("nothing is written back"), "{e}");
 }
+
+/// `ratings.class` is needed only where a check or special test takes the class's figures: a
+/// plan of explicit tolerances may leave it out; a class check without it says what to add.
+#[test]
+fn the_class_is_needed_only_where_it_is_used() {
+    let no_class = GOOD.replace(
+        "  class: \"1\"          # IEC 62053-21 class 1: active power and energy limits come from the class table\n",
+        "",
+    );
+    assert_ne!(no_class, GOOD);
+    let e = errors(&no_class).to_string();
+    assert!(e.contains("give ratings.class"), "{e}");
+    assert!(!e.contains("missing field"), "{e}");
+    let explicit = no_class.replace("tolerance: { class: true }", "tolerance: { percent: 1 % }");
+    let plan = Plan::from_text("p.yaml", &explicit).expect("valid without a class");
+    assert!(plan.ratings.class.is_empty());
+}

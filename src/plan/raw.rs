@@ -164,7 +164,9 @@ pub struct RawRatings {
     pub reference_current: Option<Text>,
     pub max_current: Text,
     pub frequency: Text,
-    pub class: Text,
+    /// The accuracy class; needed only where a check or special test takes the class's figures.
+    #[serde(default)]
+    pub class: Option<Text>,
     #[serde(default)]
     pub reactive_class: Option<Text>,
     /// The standard whose table gives the class limits, where a class has more than one.

@@ -59,7 +59,11 @@ pub fn plan_summary(plan: &Plan) -> String {
         plan.id,
         plan.revision,
         plan.product.model,
-        plan.ratings.class,
+        if plan.ratings.class.is_empty() {
+            "none stated"
+        } else {
+            &plan.ratings.class
+        },
         plan.steps.len(),
         plan.check_count(),
         scheduled_text(plan)

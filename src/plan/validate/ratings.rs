@@ -40,7 +40,11 @@ pub(super) fn ratings(ctx: &mut Ctx, raw: &RawPlan) -> Option<Ratings> {
     );
     let max_current = ctx.value("ratings.max_current", &r.max_current, Dimension::Current);
     let frequency = ctx.value("ratings.frequency", &r.frequency, Dimension::Frequency);
-    let class = ctx.non_empty("ratings.class", &r.class);
+    // No class stated is allowed; a check or special test that needs one says so.
+    let class = match &r.class {
+        Some(t) => ctx.non_empty("ratings.class", t),
+        None => Some(String::new()),
+    };
     let base = match (&r.basic_current, &r.reference_current) {
         (Some(t), None) => ctx
             .value("ratings.basic_current", t, Dimension::Current)
@@ -148,7 +152,12 @@ pub(super) fn ratings(ctx: &mut Ctx, raw: &RawPlan) -> Option<Ratings> {
         class_currents(&ratings, &ratings.class),
     ) {
         let known = classes::standards_for(&ratings.class, classes::Energy::Active, currents.base);
-        if !known.contains(table) {
+        if ratings.class.is_empty() {
+            ctx.error(
+                "ratings.class_table",
+                "a class table needs the class it is for: give ratings.class",
+            );
+        } else if !known.contains(table) {
             ctx.error(
                 "ratings.class_table",
                 format!(
@@ -213,6 +222,12 @@ pub(super) fn class_limit(
     load: &Load,
 ) -> Result<(f64, String), String> {
     let (class, energy) = match quantity {
+        Quantity::ActivePower | Quantity::ActiveEnergy if ratings.class.is_empty() => {
+            return Err(
+                "class: true takes the limit from the meter's accuracy class: give ratings.class"
+                    .into(),
+            );
+        }
         Quantity::ActivePower | Quantity::ActiveEnergy => {
             (ratings.class.clone(), classes::Energy::Active)
         }

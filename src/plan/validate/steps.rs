@@ -375,6 +375,13 @@ pub(super) fn special_test(
         ctx.error(&spath, message);
         None
     };
+    if ratings.class.is_empty() {
+        return fail(
+            ctx,
+            "a special test takes its figures from the meter's accuracy class: give ratings.class"
+                .into(),
+        );
+    }
     let currents = match class_currents(ratings, &ratings.class) {
         Ok(c) => c,
         Err(e) => return fail(ctx, e),
