@@ -102,10 +102,10 @@ fn station_summary(s: &Station) -> String {
         station::ReferenceRead::Operator => "typed by the operator".into(),
     };
     format!(
-        "{}: station {}, {} positions, {source}; reference {} ({reading}){}; {}\n",
+        "{}: station {}, {}, {source}; reference {} ({reading}){}; {}\n",
         s.file,
         s.id,
-        s.positions.len(),
+        counted(s.positions.len(), "position"),
         s.reference.info.id,
         s.reference
             .calibration_due

@@ -245,6 +245,15 @@ pub fn main() -> i32 {
 }
 
 /// Prints a value as pretty JSON on standard output, for machines (`--json`).
+/// "1 position", "4 positions".
+pub(super) fn counted(n: usize, thing: &str) -> String {
+    if n == 1 {
+        format!("1 {thing}")
+    } else {
+        format!("{n} {thing}s")
+    }
+}
+
 pub(super) fn print_json<T: serde::Serialize>(value: &T) {
     println!(
         "{}",

@@ -449,9 +449,9 @@ pub(super) fn station_bench(
         && s.len() != station.positions.len()
     {
         return Err(CliError::Usage(format!(
-            "the station has {} positions but {} serial numbers were given",
-            station.positions.len(),
-            s.len()
+            "the station has {} but {} were given",
+            counted(station.positions.len(), "position"),
+            counted(s.len(), "serial number")
         )));
     }
     let needs_operator = matches!(station.source, station::SourceSpec::Manual)

@@ -19,8 +19,8 @@ pub(super) fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
         let (position, f) = parse_fault(text).map_err(|e| CliError::Usage(e.to_string()))?;
         let slot = faults.get_mut(position - 1).ok_or_else(|| {
             CliError::Usage(format!(
-                "--fault {text}: there are only {} positions",
-                args.positions
+                "--fault {text}: there are only {}",
+                counted(args.positions, "position")
             ))
         })?;
         merge_faults(slot, f);
@@ -155,5 +155,12 @@ mod tests {
         assert!(!lines[2].contains('\u{1b}'), "{:?}", lines[2]);
         assert!(lines[3].starts_with("/dev/ttyS0") && lines[3].ends_with("other"));
         assert!(ports_text(&[]).starts_with("no serial ports found"));
+    }
+
+    #[test]
+    fn counts_are_said_in_the_singular_or_the_plural() {
+        assert_eq!(counted(1, "position"), "1 position");
+        assert_eq!(counted(4, "position"), "4 positions");
+        assert_eq!(counted(0, "serial number"), "0 serial numbers");
     }
 }
