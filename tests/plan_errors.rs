@@ -436,3 +436,22 @@ fn the_class_is_needed_only_where_it_is_used() {
     let plan = Plan::from_text("p.yaml", &explicit).expect("valid without a class");
     assert!(plan.ratings.class.is_empty());
 }
+
+/// A class table the class has none in is refused where it is written, naming the tables there
+/// are.
+#[test]
+fn an_unknown_class_table_is_refused_with_the_ones_there_are() {
+    let text = GOOD.replace(
+        "  class: \"1\"          # IEC 62053-21 class 1: active power and energy limits come from the class table\n",
+        "  class: \"1\"\n  class_table: Directive 2014/32/EU\n",
+    );
+    assert!(text.contains("class_table"));
+    let e = errors(&text).to_string();
+    assert!(
+        e.contains("ratings.class_table")
+            && e.contains(
+                "class 1 has no table from \"Directive 2014/32/EU\"; write one of: IEC 62053-21"
+            ),
+        "{e}"
+    );
+}

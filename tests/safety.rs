@@ -357,6 +357,16 @@ fn check_refuses_stations_that_cannot_work() {
             "station: S\nsimulation: { time_scale: 1e12 }\n",
             "simulation.time_scale: expected a number greater than zero and at most 1000",
         ),
+        (
+            "station: S\n",
+            "station: S\nambient_temperature: 23 K\n",
+            "ambient_temperature: \"K\" in \"23 K\" is not a unit meterproof knows",
+        ),
+        (
+            "station: S\n",
+            "station: S\nambient_temperature: 230 °C\n",
+            "ambient_temperature: 230 °C is not a bench's temperature",
+        ),
     ];
     let good = dir.join("good.yaml");
     std::fs::write(&good, STATION).unwrap();
