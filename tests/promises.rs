@@ -92,6 +92,13 @@ fn rejected_and_incomplete_units_exit_3_and_a_failure_before_a_dead_link_stands(
         .output()
         .unwrap();
     assert_eq!(o.status.code(), Some(3), "{}", text_of(&o));
+    // The last line names the positions to take off the bench, and why.
+    assert!(
+        String::from_utf8_lossy(&o.stdout)
+            .contains("2 accepted, 1 rejected (position 2), 1 incomplete (position 3)"),
+        "{}",
+        text_of(&o)
+    );
     let records = records_in(&out);
     assert_eq!(records.len(), 4);
     let statuses: Vec<UnitStatus> = records.iter().map(|r| r.verdict.status).collect();

@@ -44,13 +44,33 @@ pub(super) fn print_summary(records: &[UnitRecord], written: &Option<Vec<Written
             println!("       {}", terminal_safe(reason));
         }
     }
+    println!("{}", closing_line(records));
+}
+
+/// The run's last line: the counts, and which positions to take off the bench for what, so
+/// that the operator need not read back through the table.
+fn closing_line(records: &[UnitRecord]) -> String {
     let count = |s: UnitStatus| records.iter().filter(|r| r.verdict.status == s).count();
-    println!(
-        "{} accepted, {} rejected, {} incomplete",
+    let positions = |s: UnitStatus| {
+        let p: Vec<String> = records
+            .iter()
+            .filter(|r| r.verdict.status == s)
+            .map(|r| r.position.to_string())
+            .collect();
+        match p.len() {
+            0 => String::new(),
+            1 => format!(" (position {})", p[0]),
+            _ => format!(" (positions {})", p.join(", ")),
+        }
+    };
+    format!(
+        "{} accepted, {} rejected{}, {} incomplete{}",
         count(UnitStatus::Accepted),
         count(UnitStatus::Rejected),
-        count(UnitStatus::Incomplete)
-    );
+        positions(UnitStatus::Rejected),
+        count(UnitStatus::Incomplete),
+        positions(UnitStatus::Incomplete)
+    )
 }
 
 /// 3 when any unit is incomplete (the run did not complete for it), else 1 when any is
