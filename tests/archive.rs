@@ -213,7 +213,13 @@ fn a_run_killed_mid_way_resumes_with_no_reading_lost() {
     let archive = dir.join("archive.sqlite");
     let out = dir.join("out");
     let mut run = bin()
-        .args(["run", "test-plans/demo-serial.yaml", "--quiet", "--bench"])
+        .args([
+            "run",
+            "test-plans/demo-serial.yaml",
+            "--quiet",
+            "--unattended",
+            "--bench",
+        ])
         .arg(&station)
         .arg("--out")
         .arg(&out)
@@ -286,7 +292,7 @@ fn a_run_killed_mid_way_resumes_with_no_reading_lost() {
     );
 
     let o = bin()
-        .args(["resume", &run_id, "--quiet", "--out"])
+        .args(["resume", &run_id, "--quiet", "--unattended", "--out"])
         .arg(&out)
         .arg("--archive")
         .arg(&archive)

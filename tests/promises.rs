@@ -86,7 +86,7 @@ fn rejected_and_incomplete_units_exit_3_and_a_failure_before_a_dead_link_stands(
     let o = bin()
         .args(["run", "--quiet", "--out"])
         .arg(&out)
-        .arg("--bench")
+        .args(["--unattended", "--bench"])
         .arg(&served.station)
         .arg(&plan)
         .output()

@@ -65,7 +65,12 @@ fn stop_mid_run(signal: &str) {
     let served: Served = serve_at(&dir, "4", &[]);
     let out = dir.join("out");
     let mut child = bin()
-        .args(["run", "test-plans/demo-serial.yaml", "--bench"])
+        .args([
+            "run",
+            "test-plans/demo-serial.yaml",
+            "--unattended",
+            "--bench",
+        ])
         .arg(&served.station)
         .arg("--out")
         .arg(&out)
@@ -150,7 +155,7 @@ fn stop_mid_run(signal: &str) {
         .unwrap();
     assert_eq!(row.state, "interrupted");
     let o = bin()
-        .args(["resume", &run_id, "--quiet", "--archive"])
+        .args(["resume", &run_id, "--quiet", "--unattended", "--archive"])
         .arg(&archive)
         .arg("--out")
         .arg(&out)
@@ -502,7 +507,13 @@ fn run_on_edited_station(dir: &Path, from: &str, to: &str) -> (Served, std::proc
     let station = dir.join("edited.yaml");
     std::fs::write(&station, text.replace(from, to)).unwrap();
     let o = bin()
-        .args(["run", "test-plans/demo-serial.yaml", "--quiet", "--bench"])
+        .args([
+            "run",
+            "test-plans/demo-serial.yaml",
+            "--quiet",
+            "--unattended",
+            "--bench",
+        ])
         .arg(&station)
         .arg("--out")
         .arg(dir.join("out"))
@@ -806,7 +817,12 @@ fn a_second_stop_signal_quits_at_once_with_the_output_off() {
     let dir = temp_dir("signal-twice");
     let served: Served = serve_at(&dir, "1", &[]);
     let mut child = bin()
-        .args(["run", "test-plans/demo-serial.yaml", "--bench"])
+        .args([
+            "run",
+            "test-plans/demo-serial.yaml",
+            "--unattended",
+            "--bench",
+        ])
         .arg(&served.station)
         .arg("--out")
         .arg(dir.join("out"))
@@ -841,6 +857,69 @@ fn a_second_stop_signal_quits_at_once_with_the_output_off() {
     assert_eq!(code, Some(130), "{seen:#?}");
     let port = source_port(&served.station);
     assert_eq!(ask(&port, "OUTP?"), "0", "the output is off");
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// Before a programmable source first puts mains on the positions, the operator confirms that
+/// the bench is closed: no answer, or anything but yes, energises nothing (the source's output
+/// stays off and no unit is tested); "yes" runs; `--unattended` skips the question and says so
+/// in every record.
+#[test]
+fn a_programmable_source_is_energised_only_on_a_bench_confirmed_closed() {
+    let dir = temp_dir("bench-closed");
+    let served: Served = serve_at(&dir, "25", &[]);
+    let run = |out: &str, extra: &[&str], input: &[u8]| {
+        let mut child = bin()
+            .args(["run", "test-plans/demo-serial.yaml", "--quiet", "--bench"])
+            .arg(&served.station)
+            .arg("--out")
+            .arg(dir.join(out))
+            .args(extra)
+            .stdin(Stdio::piped())
+            .stdout(Stdio::piped())
+            .stderr(Stdio::piped())
+            .spawn()
+            .unwrap();
+        child.stdin.take().unwrap().write_all(input).unwrap();
+        let o = child.wait_with_output().unwrap();
+        (
+            o.status.code(),
+            String::from_utf8_lossy(&o.stderr).to_string(),
+        )
+    };
+    let records = |out: &str| {
+        if dir.join(out).exists() {
+            common::records_in(&dir.join(out))
+        } else {
+            Vec::new()
+        }
+    };
+    for (out, input) in [("none", &b""[..]), ("no", &b"no\n"[..])] {
+        let (code, err) = run(out, &[], input);
+        assert_eq!(code, Some(2), "{err}");
+        assert!(err.contains("Is the bench closed"), "{err}");
+        assert!(err.contains("nothing was energised"), "{err}");
+        assert!(records(out).is_empty(), "no unit tested");
+    }
+    let port = source_port(&served.station);
+    assert_eq!(ask(&port, "OUTP?"), "0", "never switched on");
+    let (code, err) = run("yes", &[], b"yes\n");
+    assert_eq!(code, Some(1), "{err}");
+    assert_eq!(records("yes").len(), 4);
+    let (code, err) = run("unattended", &["--unattended"], b"");
+    assert_eq!(code, Some(1), "{err}");
+    assert!(!err.contains("Is the bench closed"), "{err}");
+    let unattended = records("unattended");
+    assert_eq!(unattended.len(), 4);
+    assert!(
+        unattended[0]
+            .notes
+            .iter()
+            .any(|n| n.contains("run unattended")),
+        "{:?}",
+        unattended[0].notes
+    );
     drop(served);
     std::fs::remove_dir_all(&dir).unwrap();
 }

@@ -15,7 +15,7 @@ fn serve(dir: &Path, extra: &[&str]) -> Served {
 
 fn run(plan: &str, station: &Path, out: &Path, extra: &[&str]) -> (i32, String, Vec<UnitRecord>) {
     let output = bin()
-        .args(["run", plan, "--quiet", "--bench"])
+        .args(["run", plan, "--quiet", "--unattended", "--bench"])
         .arg(station)
         .arg("--out")
         .arg(out)
@@ -340,7 +340,7 @@ fn a_station_with_typed_references_gets_the_builtin_verdicts() {
     let mut child = bin()
         .arg("run")
         .arg(&plan_file)
-        .args(["--quiet", "--bench"])
+        .args(["--quiet", "--unattended", "--bench"])
         .arg(&station)
         .arg("--out")
         .arg(dir.join("out"))

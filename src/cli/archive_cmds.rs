@@ -30,6 +30,9 @@ pub(super) struct ResumeArgs {
     #[arg(long, value_name = "REASON")]
     allow_overdue_reference: Option<String>,
     /// As for `run`.
+    #[arg(long)]
+    unattended: bool,
+    /// As for `run`.
     #[arg(long, value_name = "DIR")]
     fallback: Option<PathBuf>,
 }
@@ -40,6 +43,9 @@ impl BenchOptions for ResumeArgs {
     }
     fn allow_overdue_reference(&self) -> Option<&str> {
         self.allow_overdue_reference.as_deref()
+    }
+    fn unattended(&self) -> bool {
+        self.unattended
     }
 }
 

@@ -162,6 +162,10 @@ struct RunArgs {
     /// recorded with every unit.
     #[arg(long, value_name = "REASON")]
     allow_overdue_reference: Option<String>,
+    /// Energise a station's programmable source without the operator confirming that the bench
+    /// is closed: only for a bench whose interlocks make it safe with nobody watching.
+    #[arg(long)]
+    unattended: bool,
     /// The archive database (default: archive.sqlite in the --out folder).
     #[arg(long)]
     archive: Option<PathBuf>,

@@ -309,6 +309,9 @@ pub(super) trait BenchOptions {
     fn ask(&self) -> bool {
         false
     }
+    /// Whether a programmable source may be energised without the operator confirming that
+    /// the bench is closed.
+    fn unattended(&self) -> bool;
 }
 
 impl BenchOptions for RunArgs {
@@ -320,6 +323,9 @@ impl BenchOptions for RunArgs {
     }
     fn allow_overdue_reference(&self) -> Option<&str> {
         self.allow_overdue_reference.as_deref()
+    }
+    fn unattended(&self) -> bool {
+        self.unattended
     }
 }
 
@@ -475,6 +481,25 @@ pub(super) fn station_bench(
     guard_source(&bench);
     if !options.quiet() {
         eprintln!("{MAINS_CAUTION}");
+    }
+    // A programmable source puts mains on the positions by itself: before its first load the
+    // operator confirms that the bench is closed, unless the bench is declared unattended.
+    if matches!(station.source, station::SourceSpec::Scpi { .. }) {
+        if options.unattended() {
+            notes.push("run unattended: the bench-closed confirmation was not asked".into());
+        } else {
+            eprintln!("{MAINS_CAUTION}");
+            // No answer (the input ended) is no confirmation.
+            let answer = ask(
+                "The source will put mains voltage on the positions. Is the bench closed, with nobody touching a position? Type yes to energise: ",
+            )
+            .unwrap_or_default();
+            if !answer.eq_ignore_ascii_case("yes") {
+                return Err(CliError::Usage(
+                    "the bench was not confirmed closed: nothing was energised (give --unattended only for a bench interlocked to run with nobody watching)".into(),
+                ));
+            }
+        }
     }
     Ok((bench, notes))
 }
