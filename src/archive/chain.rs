@@ -21,6 +21,11 @@
 //! the chain cannot see is a rewrite of its own newest part, hashes and all: the chain head
 //! written into each run's folder and onto its reports (the anchor) is kept outside the
 //! database for that, and `verify --anchor` checks the chain still holds it.
+//!
+//! Why one file of this length: what is sealed and what `verify` recomputes must come from the
+//! same functions (each kind's content, the reassembled unit record), side by side where a
+//! change to one is seen beside the other. Split, they could drift apart without a test noticing
+//! at once.
 
 use super::ArchiveError;
 use crate::plan::Quantity;

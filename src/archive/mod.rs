@@ -14,6 +14,10 @@
 //!
 //! The public methods are the archive's whole interface; a shared server database would
 //! implement the same operations.
+//!
+//! Why one file of this length: the queries and the resume state read the same tables with the
+//! same rule for a position's newest record; they move out together when the archive's behaviour
+//! goes behind a backend trait (the step before a second backend).
 
 use crate::exec::{ReadingKey, Recorder};
 use crate::plan::Plan;

@@ -1,5 +1,8 @@
 //! Station files: how one bench is wired. The plan says what to test; the station says which
 //! port each position is on, which source drives the load and which reference says what flowed.
+//!
+//! Why this length: a station file's every key is read and checked here, each with its path, as
+//! the plan's are; the bench built from it is the last function.
 
 use super::operator::{ManualSource, SharedConsole, TypedReference};
 use super::scpi::{ScpiReference, ScpiSource, SourceCommands};

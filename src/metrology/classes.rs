@@ -2,6 +2,9 @@
 //!
 //! The tables are data, not code: each carries the standard, edition and table it restates and
 //! whether its numbers were read in the published text or are from memory.
+//!
+//! Why this length: more than a third of the file is the tests of every table's cells against
+//! the published (or remembered) values.
 
 use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;

@@ -13,6 +13,10 @@
 //!
 //! The same seed gives the same numbers, bit for bit: every random stream is a ChaCha8 stream
 //! derived from the seed and the part it drives.
+//!
+//! Why one file of this length: the source, the reference and the meters share one `World` (one
+//! clock, one load, one lock); its physics reads best in one place. The served devices and
+//! instruments are the sibling modules.
 
 pub mod device;
 pub mod instruments;
