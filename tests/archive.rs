@@ -510,20 +510,23 @@ fn explain_prints_a_computation_that_can_be_redone_by_hand() {
             .parse()
             .unwrap()
     };
-    let values: Vec<f64> = text
-        .lines()
-        .filter(|l| l.contains("value = "))
-        .map(|l| {
-            l.split("value = ")
-                .nth(1)
-                .unwrap()
-                .split_whitespace()
-                .next()
-                .unwrap()
-                .parse()
-                .unwrap()
-        })
-        .collect();
+    // The number after `marker` on every line `keep` picks.
+    let numbers = |keep: &dyn Fn(&str) -> bool, marker: &str| -> Vec<f64> {
+        text.lines()
+            .filter(|l| keep(l))
+            .map(|l| {
+                l.split(marker)
+                    .nth(1)
+                    .unwrap()
+                    .split_whitespace()
+                    .next()
+                    .unwrap()
+                    .parse()
+                    .unwrap()
+            })
+            .collect()
+    };
+    let values = numbers(&|l| l.contains("value = "), "value = ");
     assert_eq!(values.len(), 8);
     let mean = values.iter().sum::<f64>() / 8.0;
     assert!((after("mean =", "/ n = ") - mean).abs() < 1e-9);
@@ -534,20 +537,7 @@ fn explain_prints_a_computation_that_can_be_redone_by_hand() {
         .unwrap();
     let r: f64 = ref_line.split_whitespace().next().unwrap().parse().unwrap();
     assert!((e - (mean - r) / r * 100.0).abs() < 1e-9, "{e}");
-    let us: Vec<f64> = text
-        .lines()
-        .filter(|l| l.trim_start().starts_with("Type "))
-        .map(|l| {
-            l.split("u = ")
-                .nth(1)
-                .unwrap()
-                .split_whitespace()
-                .next()
-                .unwrap()
-                .parse()
-                .unwrap()
-        })
-        .collect();
+    let us = numbers(&|l| l.trim_start().starts_with("Type "), "u = ");
     let uc = after("u_c =", "= ");
     assert!((uc - us.iter().map(|u| u * u).sum::<f64>().sqrt()).abs() < 1e-12);
     let k = after("k = Student", "= ");

@@ -137,12 +137,11 @@ impl LoadSource for ManualSource {
             self.cautioned = true;
         }
         let interrupted = |e: Interrupted| BenchError::Aborted(e.to_string());
-        let mut answer = console
-            .ask(&format!(
-                "Set the load to {}. Press Enter when it is set (or type: skip REASON / abort REASON): ",
-                load.describe()
-            ))
-            .map_err(interrupted)?;
+        let load_prompt = format!(
+            "Set the load to {}. Press Enter when it is set (or type: skip REASON / abort REASON): ",
+            load.describe()
+        );
+        let mut answer = console.ask(&load_prompt).map_err(interrupted)?;
         // A skip or an abort goes into the records with its reason: one is asked for until
         // given, and an abort, which ends the run, is confirmed.
         loop {
@@ -170,12 +169,7 @@ impl LoadSource for ManualSource {
                     if sure.eq_ignore_ascii_case("yes") {
                         return Err(BenchError::Aborted(reason));
                     }
-                    answer = console
-                        .ask(&format!(
-                            "Set the load to {}. Press Enter when it is set (or type: skip REASON / abort REASON): ",
-                            load.describe()
-                        ))
-                        .map_err(interrupted)?;
+                    answer = console.ask(&load_prompt).map_err(interrupted)?;
                 }
                 Err(BenchError::Skipped(reason)) => {
                     console.say(&format!(

@@ -168,18 +168,13 @@ pub(super) fn run_step(
         }
         // An instrument is read over the window sampled so far each time; a person once, at
         // the minimum (a register's reference is then scaled to the span, with a budget term).
-        if reference.reads_again_freely() {
+        if early_references.is_none() || reference.reads_again_freely() {
             early_references = Some((
                 take_references(step, calibration, reference.as_mut(), window),
                 window,
             ));
         }
-        let (refs, reference_window) = early_references.get_or_insert_with(|| {
-            (
-                take_references(step, calibration, reference.as_mut(), window),
-                window,
-            )
-        });
+        let (refs, reference_window) = early_references.as_ref().expect("just taken");
         let partial = decide::Partial {
             step,
             blank: &blank,
