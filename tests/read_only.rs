@@ -155,10 +155,14 @@ fn reading_commands_work_on_a_read_only_archive_and_change_nothing() {
         "the archive is unchanged"
     );
     assert_eq!(listing(&store), files_before, "no file was added beside it");
-    // A run into it is refused before any step.
+    // A run into it is refused before any step. The plan is copied where the reader can read
+    // it (a checkout may sit in a folder only its owner can enter).
+    let plan = dir.join("demo.yaml");
+    std::fs::copy("test-plans/demo.yaml", &plan).unwrap();
+    set_mode(&plan, 0o644);
     let refused = as_reader(&[
         "run",
-        "test-plans/demo.yaml",
+        plan.to_str().unwrap(),
         "--quiet",
         "--archive",
         a,
