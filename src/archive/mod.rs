@@ -1,49 +1,33 @@
-//! The archive: the system of record, an SQLite database (WAL, `synchronous=FULL`).
+//! The archive: the system of record, what every command that takes `--archive` reads and
+//! writes.
 //!
 //! Every reading is committed as it is taken, each step's record as it finishes, and each unit's
 //! record when the run ends, so a crash, a power cut or `kill -9` loses at most the reading in
-//! flight and an interrupted run can be resumed. `synchronous=FULL` costs an fsync per commit
-//! (about half a millisecond here), which is small next to the hundreds of milliseconds between
-//! samples; `NORMAL` would survive a crash of the process but not of the machine.
+//! flight and an interrupted run can be resumed. Each unit record carries the SHA-256 of its
+//! canonical JSON (with samples), and every row a command reads is sealed in a chain (see
+//! `seal`), so an edited, deleted or reordered record, or a changed reading, is found by
+//! [`Archive::verify`].
 //!
-//! Unit records are stored without their samples (those are the `readings` rows) and put back
-//! together on the way out. Each carries the SHA-256 of its canonical JSON (with samples) and the
-//! hash of the unit record before it: a chain, so an edited, deleted or reordered record, or a
-//! changed reading, is found by [`Archive::verify`]. The plan text of every run is stored once,
-//! by its SHA-256.
-//!
-//! The public methods are the archive's whole interface; a shared server database would
-//! implement the same operations.
-//!
-//! Why one file of this length: the queries and the resume state read the same tables with the
-//! same rule for a position's newest record; they move out together when the archive's behaviour
-//! goes behind a backend trait (the step before a second backend).
+//! This module owns what the archive does, the same for every backend: the rows it hands out,
+//! its errors, the recorder that groups readings into commits. What is stored where is a
+//! [`Backend`]'s business; SQLite (`sqlite`) is the embedded default. Nothing here writes SQL.
+//! May use exec (for the recorder and resume types), record and plan; nothing above it.
 
-use crate::exec::{ReadingKey, Recorder};
+use crate::exec::Resume;
 use crate::plan::Plan;
-use crate::record::{Sample, StepRecord, StepStatus, UnitRecord};
-use rusqlite::{Connection, OptionalExtension, params};
+use crate::record::UnitRecord;
 use std::path::Path;
 use std::sync::Mutex;
 
-mod chain;
+mod backend;
 mod recorder;
-mod schema;
+pub mod seal;
+mod sqlite;
 
-pub use chain::{Failure, GENESIS, Verification};
+pub use backend::Backend;
 pub use recorder::RunRecorder;
-pub use schema::SCHEMA_VERSION;
-use schema::*;
-
-fn is_busy(e: &ArchiveError) -> bool {
-    let ArchiveError::Sql(e) = e else {
-        return false;
-    };
-    matches!(
-        e.sqlite_error_code(),
-        Some(rusqlite::ErrorCode::DatabaseBusy | rusqlite::ErrorCode::DatabaseLocked)
-    )
-}
+pub use seal::{Failure, GENESIS, Verification};
+pub use sqlite::{SCHEMA_VERSION, Sqlite};
 
 #[derive(Debug, thiserror::Error)]
 pub enum ArchiveError {
@@ -121,600 +105,10 @@ pub struct RunFilter {
     pub verdict: Option<String>,
 }
 
-/// Selects, of the records of one run and position, the newest: an interrupted run's record
-/// stays in the archive (and in the unit's history), its resumption's record counts.
-const NEWEST: &str = "u.seq = (SELECT MAX(n.seq) FROM units n WHERE n.run_id = u.run_id AND n.position = u.position)";
-
-/// The archive database.
+/// The archive: one backend behind it, and the first write that failed during a run.
 pub struct Archive {
-    conn: Mutex<Connection>,
+    backend: Mutex<Box<dyn Backend>>,
     first_error: Mutex<Option<String>>,
-}
-
-fn status_word(s: StepStatus) -> &'static str {
-    match s {
-        StepStatus::Done => "done",
-        StepStatus::Incomplete => "incomplete",
-        StepStatus::NotRun => "not_run",
-    }
-}
-
-/// Refuses a file that exists but is no SQLite database (an empty file is one only when it is
-/// to be created).
-fn refuse_other_files(path: &Path, reading: bool) -> Result<(), ArchiveError> {
-    let not_archive = |why: &str| ArchiveError::NotAnArchive {
-        path: path.display().to_string(),
-        why: why.to_string(),
-    };
-    if path.is_dir() {
-        return Err(not_archive("it is a folder"));
-    }
-    let mut header = [0u8; 16];
-    let read = std::fs::File::open(path)
-        .and_then(|mut f| std::io::Read::read(&mut f, &mut header))
-        .map_err(|e| ArchiveError::Open {
-            path: path.display().to_string(),
-            why: e.to_string(),
-        })?;
-    if read == 0 {
-        return if reading {
-            Err(not_archive("the file is empty"))
-        } else {
-            Ok(())
-        };
-    }
-    if read < 16 || &header != b"SQLite format 3\0" {
-        return Err(not_archive("it is not an SQLite database"));
-    }
-    Ok(())
-}
-
-/// The record without its samples, which the archive keeps as readings.
-fn stripped(record: &UnitRecord) -> UnitRecord {
-    let mut r = record.clone();
-    for s in &mut r.steps {
-        for c in &mut s.checks {
-            c.samples.clear();
-        }
-        if let Some(p) = &mut s.calibration_point {
-            p.samples.clear();
-        }
-    }
-    r
-}
-
-impl Archive {
-    /// Opens (or creates) the archive at `path` and proves it writable, so that a read-only file
-    /// or a full disk is found before any load is applied.
-    pub fn open(path: &Path) -> Result<Archive, ArchiveError> {
-        let open_err = |why: String| ArchiveError::Open {
-            path: path.display().to_string(),
-            why,
-        };
-        if path.exists() {
-            refuse_other_files(path, false)?;
-        }
-        if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty()) {
-            std::fs::create_dir_all(dir).map_err(|e| open_err(e.to_string()))?;
-        }
-        let conn = Connection::open(path).map_err(|e| open_err(e.to_string()))?;
-        conn.busy_timeout(std::time::Duration::from_secs(30))
-            .map_err(|e| open_err(e.to_string()))?;
-        // Switching to WAL and creating the schema take the database's exclusive lock, which a
-        // second process opening the same new file at the same moment may hold: retry briefly.
-        let mut attempt = 0;
-        loop {
-            match set_up(&conn) {
-                Ok(()) => break,
-                Err(e) if is_busy(&e) && attempt < 200 => {
-                    attempt += 1;
-                    std::thread::sleep(std::time::Duration::from_millis(50));
-                }
-                Err(e @ ArchiveError::Newer(_)) => return Err(e),
-                Err(e) => {
-                    return Err(open_err(format!(
-                        "cannot set up the archive (not writable?): {e}"
-                    )));
-                }
-            }
-        }
-        Ok(Archive {
-            conn: Mutex::new(conn),
-            first_error: Mutex::new(None),
-        })
-    }
-
-    /// Opens an existing archive for reading only: never creates, migrates or changes
-    /// anything, and works on a file or folder that is read-only. A file that is not an
-    /// archive is named as such.
-    pub fn open_read_only(path: &Path) -> Result<Archive, ArchiveError> {
-        let open_err = |why: String| ArchiveError::Open {
-            path: path.display().to_string(),
-            why,
-        };
-        if !path.exists() {
-            return Err(ArchiveError::NotFound(format!(
-                "no archive at {}",
-                path.display()
-            )));
-        }
-        refuse_other_files(path, true)?;
-        let flags = rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY
-            | rusqlite::OpenFlags::SQLITE_OPEN_URI
-            | rusqlite::OpenFlags::SQLITE_OPEN_NO_MUTEX;
-        let plain = Connection::open_with_flags(path, flags).and_then(|c| {
-            // Reading a WAL database needs its shared-memory file; where the folder is
-            // read-only and none exists, SQLite cannot make one.
-            c.query_row("SELECT COUNT(*) FROM sqlite_master", [], |r| {
-                r.get::<_, i64>(0)
-            })?;
-            Ok(c)
-        });
-        let conn = match plain {
-            Ok(c) => c,
-            Err(_) => {
-                // Nobody can be writing to a file in a read-only folder: read it as it is.
-                let uri = format!(
-                    "file:{}?immutable=1",
-                    path.display()
-                        .to_string()
-                        .replace('?', "%3f")
-                        .replace('#', "%23")
-                );
-                Connection::open_with_flags(uri, flags).map_err(|e| open_err(e.to_string()))?
-            }
-        };
-        conn.busy_timeout(std::time::Duration::from_secs(30))
-            .map_err(|e| open_err(e.to_string()))?;
-        let not_archive = |why: &str| ArchiveError::NotAnArchive {
-            path: path.display().to_string(),
-            why: why.to_string(),
-        };
-        match stored_version(&conn) {
-            Err(e) => return Err(not_archive(&e.to_string())),
-            Ok(Some(v)) if v > SCHEMA_VERSION => return Err(ArchiveError::Newer(v)),
-            Ok(_) => {}
-        }
-        for table in ["meta", "runs", "units", "readings", "plans"] {
-            if !has_table(&conn, table).map_err(|e| not_archive(&e.to_string()))? {
-                return Err(not_archive(&format!("it has no {table} table")));
-            }
-        }
-        // An archive from before readings kept their duration is read as it is: a temporary
-        // view (in the connection's own memory, never the file) shows the column empty.
-        let has_durations = conn
-            .prepare("SELECT 1 FROM pragma_table_info('readings') WHERE name = 'took_s'")?
-            .exists([])?;
-        if !has_durations {
-            conn.execute_batch(
-                "CREATE TEMP VIEW readings AS SELECT *, NULL AS took_s FROM main.readings",
-            )?;
-        }
-        Ok(Archive {
-            conn: Mutex::new(conn),
-            first_error: Mutex::new(None),
-        })
-    }
-
-    /// The anchor of a run: its newest sealed end, `SEQ:SHA256`.
-    pub fn run_anchor(&self, run_id: &str) -> Result<Option<String>, ArchiveError> {
-        Ok(self
-            .conn()
-            .query_row(
-                "SELECT seq, sha256 FROM chain WHERE run_id = ?1 AND kind = 'end' ORDER BY seq DESC LIMIT 1",
-                [run_id],
-                |r| Ok(format!("{}:{}", r.get::<_, i64>(0)?, r.get::<_, String>(1)?)),
-            )
-            .optional()?)
-    }
-
-    /// The chain head now, `SEQ:SHA256`: what a run's folder and reports keep as its anchor.
-    pub fn chain_head(&self) -> Result<Option<String>, ArchiveError> {
-        Ok(chain::head(&self.conn())?)
-    }
-
-    fn conn(&self) -> std::sync::MutexGuard<'_, Connection> {
-        self.conn.lock().unwrap_or_else(|p| p.into_inner())
-    }
-
-    /// The connection's durability settings as SQLite reports them: the journal mode ("wal")
-    /// and the synchronous level (2 is FULL: an fsync at every commit).
-    pub fn durability(&self) -> Result<(String, i64), ArchiveError> {
-        let conn = self.conn();
-        let mode: String = conn.pragma_query_value(None, "journal_mode", |r| r.get(0))?;
-        let sync: i64 = conn.pragma_query_value(None, "synchronous", |r| r.get(0))?;
-        Ok((mode, sync))
-    }
-
-    /// The first write that failed during a run, if one did.
-    pub fn failure(&self) -> Option<String> {
-        self.first_error
-            .lock()
-            .unwrap_or_else(|p| p.into_inner())
-            .clone()
-    }
-
-    fn note_error(&self, what: &str, e: impl std::fmt::Display) {
-        let mut slot = self.first_error.lock().unwrap_or_else(|p| p.into_inner());
-        if slot.is_none() {
-            *slot = Some(format!("{what}: {e}"));
-        }
-    }
-
-    /// Stores the plan text (once per SHA-256) and the run, in state "running", and seals the
-    /// run's opening in the chain.
-    pub fn begin_run(&self, plan: &Plan, run: &RunRow) -> Result<(), ArchiveError> {
-        let conn = self.conn();
-        let tx = immediate(&conn)?;
-        tx.execute(
-            "INSERT OR IGNORE INTO plans (sha256, plan_id, revision, file, text) VALUES (?1, ?2, ?3, ?4, ?5)",
-            params![plan.source.sha256, plan.id, plan.revision, plan.source.file, plan.source.text],
-        )?;
-        tx.execute(
-            "INSERT INTO runs (run_id, plan_sha256, lot, station, operator, bench, tool_version, started_at, state)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, 'running')",
-            params![
-                run.run_id,
-                run.plan_sha256,
-                run.lot,
-                run.station,
-                run.operator,
-                run.bench,
-                run.tool_version,
-                run.started_at
-            ],
-        )?;
-        let content = chain::run_content(&tx, &run.run_id)?.expect("the run was just written");
-        chain::append(
-            &tx,
-            &chain::Entry::Run {
-                run_id: &run.run_id,
-            },
-            &content,
-        )?;
-        tx.commit()?;
-        Ok(())
-    }
-
-    /// Ends a run: `finished`, or `interrupted` (stopped by a signal or the operator, to be
-    /// resumed); the end is sealed in the chain. Returns the chain head after it: the anchor.
-    pub fn finish_run(
-        &self,
-        run_id: &str,
-        finished_at: &str,
-        state: RunState,
-    ) -> Result<String, ArchiveError> {
-        let conn = self.conn();
-        let tx = immediate(&conn)?;
-        tx.execute(
-            "UPDATE runs SET state = ?3, finished_at = ?2 WHERE run_id = ?1",
-            params![run_id, finished_at, state.word()],
-        )?;
-        chain::append(
-            &tx,
-            &chain::Entry::End { run_id },
-            &chain::end_content(run_id, state.word(), Some(finished_at)),
-        )?;
-        let head = chain::head(&tx)?.expect("an entry was just appended");
-        tx.commit()?;
-        Ok(head)
-    }
-
-    /// A run's row.
-    pub fn run(&self, run_id: &str) -> Result<RunRow, ArchiveError> {
-        self.conn()
-            .query_row(
-                "SELECT r.run_id, r.plan_sha256, p.plan_id, p.revision, r.lot, r.station, r.operator,
-                        r.bench, r.tool_version, r.started_at, r.finished_at, r.state
-                 FROM runs r JOIN plans p ON p.sha256 = r.plan_sha256 WHERE r.run_id = ?1",
-                [run_id],
-                |row| {
-                    Ok(RunRow {
-                        run_id: row.get(0)?,
-                        plan_sha256: row.get(1)?,
-                        plan_id: row.get(2)?,
-                        revision: row.get(3)?,
-                        lot: row.get(4)?,
-                        station: row.get(5)?,
-                        operator: row.get(6)?,
-                        bench: row.get(7)?,
-                        tool_version: row.get(8)?,
-                        started_at: row.get(9)?,
-                        finished_at: row.get(10)?,
-                        state: row.get(11)?,
-                    })
-                },
-            )
-            .optional()?
-            .ok_or_else(|| ArchiveError::NotFound(format!("no run {run_id}")))
-    }
-
-    /// The plan text stored under `sha256`, with the file name it came from.
-    pub fn plan_text(&self, sha256: &str) -> Result<(String, String), ArchiveError> {
-        self.conn()
-            .query_row(
-                "SELECT file, text FROM plans WHERE sha256 = ?1",
-                [sha256],
-                |row| Ok((row.get(0)?, row.get(1)?)),
-            )
-            .optional()?
-            .ok_or_else(|| ArchiveError::NotFound(format!("no plan with SHA-256 {sha256}")))
-    }
-
-    /// What an interrupted run had finished.
-    pub fn resume_state(&self, run_id: &str) -> Result<crate::exec::Resume, ArchiveError> {
-        let run = self.run(run_id)?;
-        let conn = self.conn();
-        let mut resume = crate::exec::Resume {
-            first_started_at: run.started_at,
-            ..Default::default()
-        };
-        // The newest unit seen in each position (a unit swapped in at an earlier resume).
-        let mut stmt = conn
-            .prepare("SELECT position, serial FROM run_units WHERE run_id = ?1 ORDER BY rowid")?;
-        for row in stmt.query_map([run_id], |r| Ok((r.get::<_, i64>(0)?, r.get(1)?)))? {
-            let (p, serial) = row?;
-            resume.serials.insert(p as usize, serial);
-        }
-        let mut stmt = conn.prepare("SELECT DISTINCT position FROM units WHERE run_id = ?1")?;
-        for row in stmt.query_map([run_id], |r| r.get::<_, i64>(0))? {
-            resume.sealed.insert(row? as usize);
-        }
-        // An attempt that was cut short left readings but no step record: the next attempt of
-        // that step must have a number of its own, or their readings would mix.
-        let mut stmt = conn.prepare(
-            "SELECT position, step_index, MAX(attempt) FROM readings WHERE run_id = ?1
-             GROUP BY position, step_index",
-        )?;
-        let rows = stmt.query_map([run_id], |r| {
-            Ok((
-                r.get::<_, i64>(0)? as usize,
-                r.get::<_, i64>(1)? as usize,
-                r.get::<_, i64>(2)? as u32,
-            ))
-        })?;
-        for row in rows {
-            let (position, index, attempt) = row?;
-            resume.attempts.insert((position, index), attempt);
-        }
-        let mut stmt = conn.prepare(
-            "SELECT position, step_index, attempt, status, record FROM steps WHERE run_id = ?1
-             ORDER BY position, step_index, attempt",
-        )?;
-        let rows = stmt.query_map([run_id], |r| {
-            Ok((
-                r.get::<_, i64>(0)? as usize,
-                r.get::<_, i64>(1)? as usize,
-                r.get::<_, i64>(2)? as u32,
-                r.get::<_, String>(3)?,
-                r.get::<_, String>(4)?,
-            ))
-        })?;
-        for row in rows {
-            let (position, index, attempt, status, text) = row?;
-            let entry = resume.attempts.entry((position, index)).or_insert(0);
-            *entry = (*entry).max(attempt);
-            if status == "done" {
-                let corrupt = |e: serde_json::Error| ArchiveError::Corrupt(e.to_string());
-                let mut json: serde_json::Value = serde_json::from_str(&text).map_err(corrupt)?;
-                chain::fill_step_json(&conn, run_id, position as i64, index as i64, &mut json)?;
-                let record: StepRecord = serde_json::from_value(json).map_err(corrupt)?;
-                resume
-                    .done
-                    .entry(position)
-                    .or_default()
-                    .insert(index, record);
-            }
-        }
-        Ok(resume)
-    }
-
-    /// Unit records of a run, whole (with samples), by position: the newest of each position
-    /// (a resumed run's, not the interrupted one's).
-    pub fn unit_records(&self, run_id: &str) -> Result<Vec<UnitRecord>, ArchiveError> {
-        self.records_where(&format!("u.run_id = ?1 AND {NEWEST}"), run_id)
-    }
-
-    /// Every unit record of a serial number, newest first.
-    pub fn serial_records(&self, serial: &str) -> Result<Vec<UnitRecord>, ArchiveError> {
-        self.records_where("u.serial = ?1", serial)
-    }
-
-    /// Unit records selected by `key=value` (`run`, `lot` or `firmware`), optionally of one plan.
-    pub fn select(
-        &self,
-        key: &str,
-        value: &str,
-        plan_id: Option<&str>,
-    ) -> Result<Vec<UnitRecord>, ArchiveError> {
-        let column = match key {
-            "run" => "u.run_id",
-            "lot" => "r.lot",
-            "firmware" => "u.firmware",
-            other => {
-                return Err(ArchiveError::NotFound(format!(
-                    "cannot select by \"{other}\": use run, lot or firmware"
-                )));
-            }
-        };
-        let conn = self.conn();
-        let mut stmt = conn.prepare(&format!(
-            "SELECT u.record FROM units u JOIN runs r ON r.run_id = u.run_id
-             JOIN plans p ON p.sha256 = r.plan_sha256
-             WHERE {column} = ?1 AND (?2 IS NULL OR p.plan_id = ?2) AND {NEWEST} ORDER BY u.seq"
-        ))?;
-        let texts: Vec<String> = stmt
-            .query_map(params![value, plan_id], |r| r.get(0))?
-            .collect::<Result<_, _>>()?;
-        texts.iter().map(|t| reassemble(&conn, t)).collect()
-    }
-
-    fn records_where(&self, condition: &str, value: &str) -> Result<Vec<UnitRecord>, ArchiveError> {
-        let conn = self.conn();
-        let mut stmt = conn.prepare(&format!(
-            "SELECT u.record FROM units u WHERE {condition} ORDER BY u.finished_at DESC, u.position"
-        ))?;
-        let texts: Vec<String> = stmt
-            .query_map([value], |r| r.get(0))?
-            .collect::<Result<_, _>>()?;
-        texts.iter().map(|t| reassemble(&conn, t)).collect()
-    }
-
-    /// Every run of a unit, newest first.
-    pub fn history(&self, serial: &str) -> Result<Vec<HistoryRow>, ArchiveError> {
-        let conn = self.conn();
-        let mut stmt = conn.prepare(
-            "SELECT u.finished_at, u.run_id, p.plan_id, p.revision, u.firmware, r.station, r.operator, u.status
-             FROM units u JOIN runs r ON r.run_id = u.run_id JOIN plans p ON p.sha256 = r.plan_sha256
-             WHERE u.serial = ?1 ORDER BY u.finished_at DESC",
-        )?;
-        let rows = stmt.query_map([serial], |r| {
-            Ok(HistoryRow {
-                finished_at: r.get(0)?,
-                run_id: r.get(1)?,
-                plan_id: r.get(2)?,
-                revision: r.get(3)?,
-                firmware: r.get(4)?,
-                station: r.get(5)?,
-                operator: r.get(6)?,
-                status: r.get(7)?,
-            })
-        })?;
-        Ok(rows.collect::<Result<_, _>>()?)
-    }
-
-    /// Runs with their counts of accepted, rejected and incomplete units, newest first.
-    pub fn runs(&self, filter: &RunFilter) -> Result<Vec<RunSummary>, ArchiveError> {
-        let conn = self.conn();
-        let mut stmt = conn.prepare(&format!(
-            "SELECT r.run_id, r.started_at, p.plan_id, p.revision, r.lot, r.station, r.state,
-                    COALESCE(SUM(u.status = 'accepted'), 0), COALESCE(SUM(u.status = 'rejected'), 0),
-                    COALESCE(SUM(u.status = 'incomplete'), 0)
-             FROM runs r JOIN plans p ON p.sha256 = r.plan_sha256
-             LEFT JOIN units u ON u.run_id = r.run_id AND {NEWEST}
-             WHERE (?1 IS NULL OR r.lot = ?1) AND (?2 IS NULL OR p.plan_id = ?2)
-               AND (?3 IS NULL OR r.started_at >= ?3)
-             GROUP BY r.run_id
-             HAVING ?4 IS NULL OR SUM(u.status = ?4) > 0
-             ORDER BY r.started_at DESC"
-        ))?;
-        let rows = stmt.query_map(
-            params![filter.lot, filter.plan, filter.since, filter.verdict],
-            |r| {
-                Ok(RunSummary {
-                    run_id: r.get(0)?,
-                    started_at: r.get(1)?,
-                    plan_id: r.get(2)?,
-                    revision: r.get(3)?,
-                    lot: r.get(4)?,
-                    station: r.get(5)?,
-                    state: r.get(6)?,
-                    accepted: r.get::<_, i64>(7)? as u64,
-                    rejected: r.get::<_, i64>(8)? as u64,
-                    incomplete: r.get::<_, i64>(9)? as u64,
-                })
-            },
-        )?;
-        Ok(rows.collect::<Result<_, _>>()?)
-    }
-
-    /// Checks the whole archive against its chain (see the `chain` module for what that
-    /// covers), and the chain against `anchor` (`SEQ:SHA256`, as a run's folder keeps it)
-    /// where one is given.
-    pub fn verify(&self, anchor: Option<&str>) -> Result<Verification, ArchiveError> {
-        let conn = self.conn();
-        let legacy_upto: i64 = conn
-            .query_row(
-                "SELECT value FROM meta WHERE key = 'legacy_units_upto'",
-                [],
-                |r| r.get::<_, String>(0),
-            )
-            .optional()?
-            .and_then(|v| v.parse().ok())
-            .unwrap_or(0);
-        let legacy_runs = chain::legacy_runs(&conn)?;
-        if !has_table(&conn, "chain")? {
-            // A version-1 archive opened read-only: it has only its records' own chain.
-            return Err(ArchiveError::Open {
-                path: String::new(),
-                why: "this archive was written by an earlier meterproof (schema 1): open it \
-                      once for writing (any run or resume with --archive) to bring it up to date"
-                    .into(),
-            });
-        }
-        chain::verify(&conn, legacy_upto, &legacy_runs, anchor)
-    }
-
-    /// Appends unit records, sealing each in the chain, in one transaction (one commit for a
-    /// whole run). A record that says nothing new about its position (a resumed run's unit
-    /// that had finished before the interruption) is not stored twice.
-    pub fn append_units(&self, records: &[UnitRecord]) -> Result<(), ArchiveError> {
-        let conn = self.conn();
-        let tx = immediate(&conn)?;
-        for record in records {
-            let newest: Option<String> = tx
-                .query_row(
-                    "SELECT record FROM units WHERE run_id = ?1 AND position = ?2 ORDER BY seq DESC LIMIT 1",
-                    params![record.run_id, record.position as i64],
-                    |r| r.get(0),
-                )
-                .optional()?;
-            let same = newest
-                .and_then(|t| serde_json::from_str::<UnitRecord>(&t).ok())
-                .is_some_and(|old| {
-                    old.serial == record.serial && old.steps == stripped(record).steps
-                });
-            if !same {
-                insert_unit_row(&tx, record)?;
-            }
-        }
-        tx.commit()?;
-        Ok(())
-    }
-
-    /// Stores finished unit records whole, readings and chain, in one transaction: the path
-    /// for imports and for generating large archives, where a transaction per reading would only
-    /// measure the disk's fsync.
-    pub fn import_units(&self, records: &[UnitRecord]) -> Result<(), ArchiveError> {
-        let conn = self.conn();
-        let tx = immediate(&conn)?;
-        for r in records {
-            insert_readings_of(&tx, r)?;
-            insert_unit_row(&tx, r)?;
-        }
-        tx.commit()?;
-        Ok(())
-    }
-
-    /// Records which unit is in which position, once it has identified itself, sealed in the
-    /// chain (a resume checks the unit against it).
-    pub fn note_unit(&self, record: &UnitRecord) -> Result<(), ArchiveError> {
-        let conn = self.conn();
-        let tx = immediate(&conn)?;
-        let added = tx.execute(
-            "INSERT OR IGNORE INTO run_units (run_id, position, serial) VALUES (?1, ?2, ?3)",
-            params![record.run_id, record.position as i64, record.serial],
-        )?;
-        if added == 1 {
-            chain::append(
-                &tx,
-                &chain::Entry::Seen {
-                    run_id: &record.run_id,
-                    position: record.position,
-                    serial: &record.serial,
-                },
-                &chain::seen_content(&record.run_id, record.position, &record.serial),
-            )?;
-        }
-        tx.commit()?;
-        Ok(())
-    }
-}
-
-/// A write transaction that takes the write lock at once: every write appends to the chain,
-/// which reads the newest entry first, so a deferred transaction could find it moved.
-fn immediate(conn: &Connection) -> rusqlite::Result<rusqlite::Transaction<'_>> {
-    rusqlite::Transaction::new_unchecked(conn, rusqlite::TransactionBehavior::Immediate)
 }
 
 /// How a run ended.
@@ -734,84 +128,172 @@ impl RunState {
     }
 }
 
-/// Writes every sample of a finished record as reading rows (checks sharing a reading share
-/// its rows).
-fn insert_readings_of(conn: &Connection, r: &UnitRecord) -> rusqlite::Result<()> {
-    let mut reading = conn.prepare_cached(INSERT_READING)?;
-    for (index, step) in r.steps.iter().enumerate() {
-        let series = step
-            .checks
-            .iter()
-            .map(|c| (c.quantity, &c.channel, false, &c.samples))
-            .chain(
-                step.calibration_point
-                    .iter()
-                    .map(|p| (p.quantity, &p.channel, true, &p.samples)),
-            );
-        let mut seen = Vec::new();
-        for (q, ch, raw, samples) in series {
-            if seen.contains(&(q, ch, raw)) {
-                continue;
-            }
-            seen.push((q, ch, raw));
-            for s in samples {
-                reading.execute(params![
-                    r.run_id,
-                    r.position as i64,
-                    index as i64,
-                    step.attempt as i64,
-                    q.name(),
-                    ch,
-                    raw,
-                    s.t_s,
-                    s.value,
-                    s.took_s
-                ])?;
-            }
+impl Archive {
+    /// An archive over the given backend.
+    pub fn with(backend: Box<dyn Backend>) -> Archive {
+        Archive {
+            backend: Mutex::new(backend),
+            first_error: Mutex::new(None),
         }
     }
-    Ok(())
+
+    /// Opens (or creates) the SQLite archive at `path` and proves it writable, so that a
+    /// read-only file or a full disk is found before any load is applied.
+    pub fn open(path: &Path) -> Result<Archive, ArchiveError> {
+        Ok(Archive::with(Box::new(Sqlite::open(path)?)))
+    }
+
+    /// Opens an existing SQLite archive for reading only: never creates, migrates or changes
+    /// anything, and works on a file or folder that is read-only.
+    pub fn open_read_only(path: &Path) -> Result<Archive, ArchiveError> {
+        Ok(Archive::with(Box::new(Sqlite::open_read_only(path)?)))
+    }
+
+    /// The backend, for one operation (operations on one archive are serialised).
+    fn backend(&self) -> std::sync::MutexGuard<'_, Box<dyn Backend>> {
+        self.backend.lock().unwrap_or_else(|p| p.into_inner())
+    }
+
+    /// The first write that failed during a run, if one did.
+    pub fn failure(&self) -> Option<String> {
+        self.first_error
+            .lock()
+            .unwrap_or_else(|p| p.into_inner())
+            .clone()
+    }
+
+    /// Keeps the first failed write, as the storage said it (the operator's message already
+    /// says it is the archive's).
+    fn note_error(&self, what: &str, e: ArchiveError) {
+        let said = match e {
+            ArchiveError::Sql(inner) => inner.to_string(),
+            other => other.to_string(),
+        };
+        let mut slot = self.first_error.lock().unwrap_or_else(|p| p.into_inner());
+        if slot.is_none() {
+            *slot = Some(format!("{what}: {said}"));
+        }
+    }
+
+    /// The anchor of a run: its newest sealed end, `SEQ:SHA256`.
+    pub fn run_anchor(&self, run_id: &str) -> Result<Option<String>, ArchiveError> {
+        self.backend().run_anchor(run_id)
+    }
+
+    /// The chain head now, `SEQ:SHA256`: what a run's folder and reports keep as its anchor.
+    pub fn chain_head(&self) -> Result<Option<String>, ArchiveError> {
+        self.backend().chain_head()
+    }
+
+    /// The storage's durability settings as the backend reports them (SQLite: the journal
+    /// mode, "wal", and the synchronous level, 2 for FULL: an fsync at every commit).
+    pub fn durability(&self) -> Result<(String, i64), ArchiveError> {
+        self.backend().durability()
+    }
+
+    /// Stores the plan text (once per SHA-256) and the run, in state "running", and seals the
+    /// run's opening in the chain.
+    pub fn begin_run(&self, plan: &Plan, run: &RunRow) -> Result<(), ArchiveError> {
+        self.backend().begin_run(plan, run)
+    }
+
+    /// Ends a run: `finished`, or `interrupted` (stopped by a signal or the operator, to be
+    /// resumed); the end is sealed in the chain. Returns the chain head after it: the anchor.
+    pub fn finish_run(
+        &self,
+        run_id: &str,
+        finished_at: &str,
+        state: RunState,
+    ) -> Result<String, ArchiveError> {
+        self.backend().finish_run(run_id, finished_at, state)
+    }
+
+    /// A run's row.
+    pub fn run(&self, run_id: &str) -> Result<RunRow, ArchiveError> {
+        self.backend().run(run_id)
+    }
+
+    /// The plan text stored under `sha256`, with the file name it came from.
+    pub fn plan_text(&self, sha256: &str) -> Result<(String, String), ArchiveError> {
+        self.backend().plan_text(sha256)
+    }
+
+    /// What an interrupted run had finished.
+    pub fn resume_state(&self, run_id: &str) -> Result<Resume, ArchiveError> {
+        self.backend().resume_state(run_id)
+    }
+
+    /// Unit records of a run, whole (with samples), by position: the newest of each position
+    /// (a resumed run's, not the interrupted one's).
+    pub fn unit_records(&self, run_id: &str) -> Result<Vec<UnitRecord>, ArchiveError> {
+        self.backend().unit_records(run_id)
+    }
+
+    /// Every unit record of a serial number, newest first.
+    pub fn serial_records(&self, serial: &str) -> Result<Vec<UnitRecord>, ArchiveError> {
+        self.backend().serial_records(serial)
+    }
+
+    /// Unit records selected by `key=value` (`run`, `lot` or `firmware`), optionally of one plan.
+    pub fn select(
+        &self,
+        key: &str,
+        value: &str,
+        plan_id: Option<&str>,
+    ) -> Result<Vec<UnitRecord>, ArchiveError> {
+        let key = match key {
+            "run" => SelectBy::Run,
+            "lot" => SelectBy::Lot,
+            "firmware" => SelectBy::Firmware,
+            other => {
+                return Err(ArchiveError::NotFound(format!(
+                    "cannot select by \"{other}\": use run, lot or firmware"
+                )));
+            }
+        };
+        self.backend().select(key, value, plan_id)
+    }
+
+    /// Every run of a unit, newest first.
+    pub fn history(&self, serial: &str) -> Result<Vec<HistoryRow>, ArchiveError> {
+        self.backend().history(serial)
+    }
+
+    /// Runs with their counts of accepted, rejected and incomplete units, newest first.
+    pub fn runs(&self, filter: &RunFilter) -> Result<Vec<RunSummary>, ArchiveError> {
+        self.backend().runs(filter)
+    }
+
+    /// Checks the whole archive against its chain, and the chain against `anchor`
+    /// (`SEQ:SHA256`, as a run's folder keeps it) where one is given.
+    pub fn verify(&self, anchor: Option<&str>) -> Result<Verification, ArchiveError> {
+        self.backend().verify(anchor)
+    }
+
+    /// Appends unit records, sealing each in the chain, in one transaction (one commit for a
+    /// whole run). A record that says nothing new about its position (a resumed run's unit
+    /// that had finished before the interruption) is not stored twice.
+    pub fn append_units(&self, records: &[UnitRecord]) -> Result<(), ArchiveError> {
+        self.backend().append_units(records)
+    }
+
+    /// Stores finished unit records whole, readings and chain, in one transaction: the path
+    /// for imports and for generating large archives.
+    pub fn import_units(&self, records: &[UnitRecord]) -> Result<(), ArchiveError> {
+        self.backend().import_units(records)
+    }
+
+    /// Records which unit is in which position, once it has identified itself, sealed in the
+    /// chain (a resume checks the unit against it).
+    pub fn note_unit(&self, record: &UnitRecord) -> Result<(), ArchiveError> {
+        self.backend().note_unit(record)
+    }
 }
 
-/// Inserts a unit record (without samples) and seals it in the chain.
-fn insert_unit_row(conn: &Connection, r: &UnitRecord) -> rusqlite::Result<()> {
-    let hash = crate::record::record_hash(r);
-    let text = serde_json::to_string(&stripped(r)).expect("a record serialises");
-    // Kept filled for the schema-1 column; the chain entry below is what links the record.
-    let prev = chain::newest(conn)?.1;
-    conn.prepare_cached(
-        "INSERT INTO units (run_id, position, serial, firmware, status, finished_at, record, record_sha256, prev_sha256)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9)",
-    )?
-    .execute(params![
-        r.run_id,
-        r.position as i64,
-        r.serial,
-        r.identity.as_ref().map(|i| i.firmware.clone()),
-        format!("{:?}", r.verdict.status).to_lowercase(),
-        r.finished_at,
-        text,
-        hash,
-        prev
-    ])?;
-    let unit_seq = conn.last_insert_rowid();
-    chain::append(
-        conn,
-        &chain::Entry::Unit {
-            run_id: &r.run_id,
-            position: r.position,
-            unit_seq,
-        },
-        &hash,
-    )
-}
-
-const INSERT_READING: &str = "INSERT INTO readings (run_id, position, step_index, attempt, quantity, channel, raw, t_s, value, took_s)
-     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10)";
-
-/// A stored (stripped) unit record with its samples put back from the readings: the same
-/// reassembly `verify` hashes (`chain::unit_json`), read into the record type.
-fn reassemble(conn: &Connection, text: &str) -> Result<UnitRecord, ArchiveError> {
-    serde_json::from_value(chain::unit_json(conn, text)?)
-        .map_err(|e| ArchiveError::Corrupt(e.to_string()))
+/// What `select` selects unit records by.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum SelectBy {
+    Run,
+    Lot,
+    Firmware,
 }

@@ -2,7 +2,10 @@
 //! (readings that arrive together committed together), each step's records in one transaction,
 //! the unit records at the end, each sealed in the chain.
 
-use super::*;
+use super::Archive;
+use crate::exec::{ReadingKey, Recorder};
+use crate::record::{Sample, StepRecord, UnitRecord};
+use std::sync::Mutex;
 
 /// The archive, recording one run.
 ///
@@ -50,50 +53,6 @@ impl<'a> RunRecorder<'a> {
     }
 }
 
-/// Writes one position's record of one step, without its samples (those are the readings),
-/// and seals it, samples and all, in the chain. A step row is never replaced: a step run again
-/// has an attempt number of its own.
-pub(super) fn insert_step(
-    conn: &Connection,
-    run_id: &str,
-    position: usize,
-    step_index: usize,
-    record: &StepRecord,
-) -> rusqlite::Result<()> {
-    let mut r = record.clone();
-    for c in &mut r.checks {
-        c.samples.clear();
-    }
-    if let Some(p) = &mut r.calibration_point {
-        p.samples.clear();
-    }
-    let text = serde_json::to_string(&r).expect("a step record serialises");
-    let status = status_word(record.status);
-    conn.execute(
-        "INSERT INTO steps (run_id, position, step_index, attempt, status, record)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
-        params![
-            run_id,
-            position as i64,
-            step_index as i64,
-            record.attempt as i64,
-            status,
-            text
-        ],
-    )?;
-    let full = serde_json::to_value(record).expect("a step record serialises");
-    chain::append(
-        conn,
-        &chain::Entry::Step {
-            run_id,
-            position,
-            step_index,
-            attempt: record.attempt,
-        },
-        &chain::step_content(status, &full),
-    )
-}
-
 impl Recorder for RunRecorder<'_> {
     fn reading(&self, key: &ReadingKey, sample: Sample) {
         let ticket = {
@@ -102,54 +61,30 @@ impl Recorder for RunRecorder<'_> {
             p.handed += 1;
             p.handed
         };
-        let conn = self.archive.conn();
+        let backend = self.archive.backend();
         let (rows, upto) = {
             let mut p = self.pending();
             if p.committed >= ticket {
-                // Committed by the thread that held the connection meanwhile.
+                // Committed by the thread that held the backend meanwhile.
                 return;
             }
             (std::mem::take(&mut p.rows), p.handed)
         };
-        let result = conn.unchecked_transaction().and_then(|tx| {
-            {
-                let mut stmt = tx.prepare_cached(INSERT_READING)?;
-                for (key, sample) in &rows {
-                    stmt.execute(params![
-                        &self.run_id,
-                        key.position as i64,
-                        key.step_index as i64,
-                        key.attempt as i64,
-                        key.quantity.name(),
-                        key.channel,
-                        key.raw,
-                        sample.t_s,
-                        sample.value,
-                        sample.took_s
-                    ])?;
-                }
-            }
-            tx.commit()
-        });
+        let result = backend.add_readings(&self.run_id, &rows);
         self.reading_commits
             .fetch_add(1, std::sync::atomic::Ordering::SeqCst);
         self.pending().committed = upto;
-        drop(conn);
+        drop(backend);
         if let Err(e) = result {
             self.archive.note_error("writing a reading", e);
         }
     }
 
     fn step_finished(&self, step_index: usize, records: &[(usize, &StepRecord)]) {
-        let conn = self.archive.conn();
-        // One transaction for all positions: one commit (one fsync) per step, not one per unit.
-        let result = immediate(&conn).and_then(|tx| {
-            for (position, record) in records {
-                insert_step(&tx, &self.run_id, *position, step_index, record)?;
-            }
-            tx.commit()
-        });
-        drop(conn);
+        let result = self
+            .archive
+            .backend()
+            .add_steps(&self.run_id, step_index, records);
         if let Err(e) = result {
             self.archive.note_error("writing a step record", e);
         }

@@ -110,11 +110,11 @@ pub(super) fn migrate_from_1(conn: &Connection) -> rusqlite::Result<()> {
         put("legacy_runs_upto", runs_upto.to_string())?;
         put(
             "legacy_chain_head",
-            head.unwrap_or_else(|| format!("0:{GENESIS}")),
+            head.unwrap_or_else(|| format!("0:{}", seal::GENESIS)),
         )?;
         conn.execute("DELETE FROM meta WHERE key = 'chain_head'", [])?;
         let content = chain::legacy_content(conn)?.expect("the markers were just written");
-        chain::append(conn, &chain::Entry::Legacy, &content)?;
+        chain::append(conn, &seal::Entry::Legacy, &content)?;
     }
     Ok(())
 }

@@ -27,16 +27,13 @@
 //! change to one is seen beside the other. Split, they could drift apart without a test noticing
 //! at once.
 
-use super::ArchiveError;
+use crate::archive::ArchiveError;
+use crate::archive::seal::*;
 use crate::plan::Quantity;
 use crate::plan::sha256_hex;
-use crate::record::canonical_bytes;
 use rusqlite::{Connection, OptionalExtension, params};
 use serde_json::{Value, json};
 use std::collections::{BTreeMap, BTreeSet};
-
-/// The hash the first entry of a chain points back to.
-pub const GENESIS: &str = "0000000000000000000000000000000000000000000000000000000000000000";
 
 pub(super) const SCHEMA: &str = "
 CREATE TABLE IF NOT EXISTS chain (
@@ -45,56 +42,6 @@ CREATE TABLE IF NOT EXISTS chain (
     content_sha256 TEXT NOT NULL, sha256 TEXT NOT NULL, prev_sha256 TEXT NOT NULL);
 CREATE INDEX IF NOT EXISTS chain_run ON chain(run_id, kind);
 ";
-
-/// What one entry seals.
-#[derive(Debug, Clone, PartialEq)]
-pub(super) enum Entry<'a> {
-    Run {
-        run_id: &'a str,
-    },
-    Seen {
-        run_id: &'a str,
-        position: usize,
-        serial: &'a str,
-    },
-    Step {
-        run_id: &'a str,
-        position: usize,
-        step_index: usize,
-        attempt: u32,
-    },
-    Unit {
-        run_id: &'a str,
-        position: usize,
-        unit_seq: i64,
-    },
-    End {
-        run_id: &'a str,
-    },
-    /// What an archive held before it had the chain (written once, by the migration).
-    Legacy,
-}
-
-impl Entry<'_> {
-    fn kind(&self) -> &'static str {
-        match self {
-            Entry::Run { .. } => "run",
-            Entry::Seen { .. } => "seen",
-            Entry::Step { .. } => "step",
-            Entry::Unit { .. } => "unit",
-            Entry::End { .. } => "end",
-            Entry::Legacy => "legacy",
-        }
-    }
-}
-
-fn link(prev: &str, kind: &str, content: &str) -> String {
-    sha256_hex(format!("{prev}\n{kind}\n{content}").as_bytes())
-}
-
-fn hash_of(value: &Value) -> String {
-    sha256_hex(&canonical_bytes(value))
-}
 
 /// The newest entry's hash, which the next one links to.
 pub(super) fn newest(conn: &Connection) -> rusqlite::Result<(i64, String)> {
@@ -189,19 +136,6 @@ pub(super) fn run_content(conn: &Connection, run_id: &str) -> rusqlite::Result<O
     .map(|v| v.map(|v| hash_of(&v)))
 }
 
-pub(super) fn seen_content(run_id: &str, position: usize, serial: &str) -> String {
-    hash_of(&json!({"run_id": run_id, "position": position, "serial": serial}))
-}
-
-/// A step row's content from a record with its samples (what the writer has in memory).
-pub(super) fn step_content(status: &str, record: &Value) -> String {
-    hash_of(&json!({"status": status, "record": record}))
-}
-
-pub(super) fn end_content(run_id: &str, state: &str, finished_at: Option<&str>) -> String {
-    hash_of(&json!({"run_id": run_id, "state": state, "finished_at": finished_at}))
-}
-
 /// The readings of one attempt, by (quantity, channel, raw), as sample values.
 fn readings_of(
     conn: &Connection,
@@ -294,29 +228,6 @@ pub(super) fn unit_json(conn: &Connection, text: &str) -> Result<Value, ArchiveE
 
 // ---- Verification ----
 
-/// One thing `verify` found wrong, and where.
-#[derive(Debug, Clone, PartialEq)]
-pub struct Failure {
-    /// The entry or row concerned: "unit record 12 (run R, serial S, position 2)".
-    pub what: String,
-    pub why: String,
-}
-
-/// What `verify` checked and found.
-#[derive(Debug, Clone, Default, PartialEq)]
-pub struct Verification {
-    /// Chain entries checked.
-    pub entries: u64,
-    /// Unit records among them (and legacy ones).
-    pub unit_records: u64,
-    /// Records written before the archive had its chain (schema 1), checked by their own
-    /// record chain only.
-    pub legacy_records: u64,
-    pub failures: Vec<Failure>,
-    /// The chain head now, `SEQ:SHA256`.
-    pub head: Option<String>,
-}
-
 /// Rows of the run, unit and step tables that the chain must cover, with what to call them.
 #[derive(Default)]
 struct Covered {
@@ -326,10 +237,6 @@ struct Covered {
     units: BTreeSet<i64>,
     /// The newest `end` entry of each run: (state, finished_at) content hash.
     ends: BTreeMap<String, String>,
-}
-
-fn unit_name(seq: i64, run_id: &str, serial: &str, position: i64) -> String {
-    format!("unit record {seq} (run {run_id}, serial {serial}, position {position})")
 }
 
 /// Checks the whole archive. `legacy_upto` is the last unit sequence number written before
@@ -692,47 +599,6 @@ fn check_unit_row(
     Ok(Some((content, name)))
 }
 
-struct UnitRow {
-    run_id: String,
-    position: i64,
-    serial: String,
-    firmware: Option<String>,
-    status: String,
-    finished_at: String,
-    record: String,
-    sha256: String,
-}
-
-/// The first indexed column that says something other than the record it indexes.
-fn column_disagreement(row: &UnitRow, record: &Value) -> Option<&'static str> {
-    let text = |k: &str| record.get(k).and_then(Value::as_str).map(str::to_string);
-    let firmware = record
-        .get("identity")
-        .and_then(|i| i.get("firmware"))
-        .and_then(Value::as_str)
-        .map(str::to_string);
-    let status = record
-        .get("verdict")
-        .and_then(|v| v.get("status"))
-        .and_then(Value::as_str)
-        .map(str::to_string);
-    if text("run_id").as_deref() != Some(row.run_id.as_str()) {
-        Some("run")
-    } else if record.get("position").and_then(Value::as_i64) != Some(row.position) {
-        Some("position")
-    } else if text("serial").as_deref() != Some(row.serial.as_str()) {
-        Some("serial")
-    } else if firmware != row.firmware {
-        Some("firmware")
-    } else if status.as_deref() != Some(row.status.as_str()) {
-        Some("status")
-    } else if text("finished_at").as_deref() != Some(row.finished_at.as_str()) {
-        Some("finished_at")
-    } else {
-        None
-    }
-}
-
 /// Records from before the chain: each record's hash over its struct-ordered JSON, and the
 /// records' own chain through `prev_sha256`.
 fn verify_legacy(
@@ -810,32 +676,6 @@ fn verify_legacy(
         });
     }
     Ok(())
-}
-
-/// An anchor `SEQ:SHA256` (as a run's folder keeps it) must still be in the chain.
-fn check_anchor(anchor: &str, by_seq: &BTreeMap<i64, String>, v: &mut Verification) {
-    let parsed = anchor
-        .trim()
-        .split_once(':')
-        .and_then(|(s, h)| Some((s.parse::<i64>().ok()?, h.to_string())));
-    let Some((seq, hash)) = parsed else {
-        v.failures.push(Failure {
-            what: format!("the anchor {anchor:?}"),
-            why: "it is not of the form SEQUENCE:SHA256".into(),
-        });
-        return;
-    };
-    match by_seq.get(&seq) {
-        Some(h) if *h == hash => {}
-        Some(_) => v.failures.push(Failure {
-            what: format!("the anchor {seq}:{hash}"),
-            why: format!("chain entry {seq} is no longer the one the anchor sealed: the chain was rewritten from there on"),
-        }),
-        None => v.failures.push(Failure {
-            what: format!("the anchor {seq}:{hash}"),
-            why: format!("the chain has no entry {seq} any more: entries up to it were removed"),
-        }),
-    }
 }
 
 /// The markers of what was written before the chain (kept in `meta`), sealed by the chain's
