@@ -78,7 +78,8 @@ pub(super) fn readings_of(
     out
 }
 
-/// Samples every active unit, takes the reference readings and evaluates the checks.
+/// Samples every active unit, takes the reference readings and evaluates the checks: the
+/// phases of a step under load, each a function below.
 pub(super) fn run_step(
     step: &Step,
     sc: &StepContext,
@@ -86,120 +87,23 @@ pub(super) fn run_step(
     units: &mut [Unit],
     judge: &decide::Judge,
 ) -> StepOutcome {
-    let attempt_of = |position: usize| {
-        sc.attempts
-            .and_then(|a| a.get(&(position, sc.index)))
-            .copied()
-            .unwrap_or(0)
-            + 1
-    };
     let calibration = judge.calibration.filter(|c| c.points.contains(&step.id));
     let wanted = readings_of(step, calibration);
-    let numbers: Vec<usize> = bench.positions.iter().map(|p| p.number).collect();
-    let resolutions: Vec<Vec<Option<f64>>> = bench
-        .positions
-        .iter()
-        .zip(units.iter())
-        .map(|(p, u)| {
-            step.checks
-                .iter()
-                .map(|c| {
-                    calibrated_resolution(
-                        p.link.resolution(c.quantity),
-                        u.record.calibration.as_ref(),
-                        c,
-                    )
-                })
-                .collect()
-        })
-        .collect();
-    let blank = empty_step(step, None);
-    let slots: Vec<sampling::Slot> = bench
-        .positions
-        .iter_mut()
-        .zip(sc.to_run)
-        .map(|(p, run)| run.then_some(&mut p.link))
-        .collect();
-    let on_reading = |slot: usize, w: usize, sample: Sample| {
-        let want = &wanted[w];
-        let key = ReadingKey {
-            position: numbers[slot],
-            step_index: sc.index,
-            attempt: attempt_of(numbers[slot]),
-            quantity: want.quantity,
-            channel: want.channel.clone(),
-            raw: want.raw,
-        };
-        sc.recorder.reading(&key, sample);
-    };
-    // An energy the reference infers from power stands on its power at both ends of the window.
-    let energy_window = step
-        .checks
-        .iter()
-        .any(|c| c.quantity.is_register() && c.tolerance.needs_reference());
-    let start_problem = if energy_window {
-        bench
-            .reference
-            .window_starts(bench.clock.now_s())
-            .err()
-            .map(|e| e.to_string())
-    } else {
-        None
-    };
-    let interrupt = bench.interrupt.clone();
-    let sampler = sampling::Sampler {
+    let resolutions = resolutions_of(step, bench, units);
+    let start_problem = open_energy_window(step, bench);
+    let plan = SamplePlan {
         step,
+        calibration,
         wanted: &wanted,
-        clock: bench.clock.as_ref(),
-        on_reading: &on_reading,
-        interrupt: &interrupt,
+        resolutions: &resolutions,
+        judge,
     };
-    // Sampling until decided reads the references once the minimum is taken (over the window so
-    // far, which a register's reference is then scaled from), and stops as soon as no decision
-    // of any unit can change any more.
-    let mut early_references: Option<(References, (f64, f64))> = None;
-    let reference = &mut bench.reference;
-    let mut stop_rule = |n: u32, all: &[sampling::Series], window: (f64, f64)| -> bool {
-        let Some(rule) = step.sequential else {
-            return false;
-        };
-        if n < rule.min {
-            return false;
-        }
-        // An instrument is read over the window sampled so far each time; a person once, at
-        // the minimum (a register's reference is then scaled to the span, with a budget term).
-        if early_references.is_none() || reference.reads_again_freely() {
-            early_references = Some((
-                take_references(step, calibration, reference.as_mut(), window),
-                window,
-            ));
-        }
-        let (refs, reference_window) = early_references.as_ref().expect("just taken");
-        let partial = decide::Partial {
-            step,
-            blank: &blank,
-            wanted: &wanted,
-            references: refs,
-            reference_window: *reference_window,
-            resolutions: &resolutions,
-        };
-        partial.all_settled(all, n, judge)
-    };
-    let stop: Option<sampling::StopRule> = if step.sequential.is_some() {
-        Some(&mut stop_rule)
-    } else {
-        None
-    };
-    let (mut series, window) = sampling::sample_step(sampler, slots, bench.parallel, stop);
-    // A step sampled until decided is evaluated on the samples it took.
-    let mut evaluated_step = step.clone();
-    if step.sequential.is_some() {
-        evaluated_step.samples = series
-            .iter()
-            .map(|s| s.samples.first().map_or(0, Vec::len))
-            .max()
-            .unwrap_or(0) as u32;
-    }
+    let Sampled {
+        mut series,
+        window,
+        early,
+    } = sample(&plan, sc, bench);
+    let evaluated_step = as_sampled(step, &series);
     let restarted = restarted_during(bench, sc);
     // A stop signal after the last sample: the output is already off, so no reference may be
     // read for this step and none of its samples decide anything.
@@ -211,20 +115,7 @@ pub(super) fn run_step(
             }
         }
     }
-    let (references, reference_window) = match early_references.take() {
-        // Sampled on past the early references: an instrument (or a file) is read again over
-        // the window finally sampled, rather than scaling a register's reference up to it.
-        Some((_, early)) if early != window && bench.reference.reads_again_freely() => (
-            take_references(step, calibration, bench.reference.as_mut(), window),
-            window,
-        ),
-        Some(taken) => taken,
-        None if stopped => (Vec::new(), window),
-        None => (
-            take_references(step, calibration, bench.reference.as_mut(), window),
-            window,
-        ),
-    };
+    let (references, reference_window) = final_references(&plan, bench, early, window, stopped);
     // The load as the reference saw it, before anybody is judged on it.
     let (load_references, load_problem) = if stopped {
         (Vec::new(), None)
@@ -252,7 +143,7 @@ pub(super) fn run_step(
         if !sc.to_run[u] {
             continue;
         }
-        let attempt = attempt_of(unit.record.position);
+        let attempt = attempt_of(sc, unit.record.position);
         let record = unit_step_record(
             step,
             sc,
@@ -267,7 +158,199 @@ pub(super) fn run_step(
     let set_aside = load_problem
         .clone()
         .or_else(|| suspect_reference(units, sc));
-    // One write for the whole step: a single commit for all positions.
+    commit_step(sc, units);
+    StepOutcome {
+        stop: stop_reason(&references, bench),
+        set_aside,
+    }
+}
+
+/// The attempt number a position's records of this step get: one past the highest that left
+/// readings or a record before (after a resume), else 1.
+fn attempt_of(sc: &StepContext, position: usize) -> u32 {
+    sc.attempts
+        .and_then(|a| a.get(&(position, sc.index)))
+        .copied()
+        .unwrap_or(0)
+        + 1
+}
+
+/// Each position's resolution of each check's reading (after calibration, where the unit was
+/// calibrated), for the budget.
+fn resolutions_of(step: &Step, bench: &Bench, units: &[Unit]) -> Vec<Vec<Option<f64>>> {
+    bench
+        .positions
+        .iter()
+        .zip(units.iter())
+        .map(|(p, u)| {
+            step.checks
+                .iter()
+                .map(|c| {
+                    calibrated_resolution(
+                        p.link.resolution(c.quantity),
+                        u.record.calibration.as_ref(),
+                        c,
+                    )
+                })
+                .collect()
+        })
+        .collect()
+}
+
+/// Opens the reference's energy window where a check compares an energy register with a
+/// reference that infers energy from power (it stands on its power at both ends of the
+/// window). What went wrong, if anything.
+fn open_energy_window(step: &Step, bench: &mut Bench) -> Option<String> {
+    let energy_window = step
+        .checks
+        .iter()
+        .any(|c| c.quantity.is_register() && c.tolerance.needs_reference());
+    if !energy_window {
+        return None;
+    }
+    bench
+        .reference
+        .window_starts(bench.clock.now_s())
+        .err()
+        .map(|e| e.to_string())
+}
+
+/// What a step samples and how it is judged, for the sampling and reference phases.
+struct SamplePlan<'a> {
+    step: &'a Step,
+    calibration: Option<&'a CalibrationSpec>,
+    wanted: &'a [sampling::Wanted],
+    resolutions: &'a [Vec<Option<f64>>],
+    judge: &'a decide::Judge<'a>,
+}
+
+/// What sampling gave: each position's series, the window sampled, and the references read
+/// early (by a step sampled until decided) with the window they stand for.
+struct Sampled {
+    series: Vec<sampling::Series>,
+    window: (f64, f64),
+    early: Option<(References, (f64, f64))>,
+}
+
+/// Samples every active position, handing each reading to the recorder as it is taken. A step
+/// sampled until decided reads the references once the minimum is taken (over the window so
+/// far, which a register's reference is then scaled from), and stops as soon as no decision of
+/// any unit can change any more.
+fn sample(plan: &SamplePlan, sc: &StepContext, bench: &mut Bench) -> Sampled {
+    let step = plan.step;
+    let numbers: Vec<usize> = bench.positions.iter().map(|p| p.number).collect();
+    let blank = empty_step(step, None);
+    let slots: Vec<sampling::Slot> = bench
+        .positions
+        .iter_mut()
+        .zip(sc.to_run)
+        .map(|(p, run)| run.then_some(&mut p.link))
+        .collect();
+    let on_reading = |slot: usize, w: usize, sample: Sample| {
+        let want = &plan.wanted[w];
+        let key = ReadingKey {
+            position: numbers[slot],
+            step_index: sc.index,
+            attempt: attempt_of(sc, numbers[slot]),
+            quantity: want.quantity,
+            channel: want.channel.clone(),
+            raw: want.raw,
+        };
+        sc.recorder.reading(&key, sample);
+    };
+    let interrupt = bench.interrupt.clone();
+    let sampler = sampling::Sampler {
+        step,
+        wanted: plan.wanted,
+        clock: bench.clock.as_ref(),
+        on_reading: &on_reading,
+        interrupt: &interrupt,
+    };
+    let mut early: Option<(References, (f64, f64))> = None;
+    let reference = &mut bench.reference;
+    let mut stop_rule = |n: u32, all: &[sampling::Series], window: (f64, f64)| -> bool {
+        let Some(rule) = step.sequential else {
+            return false;
+        };
+        if n < rule.min {
+            return false;
+        }
+        // An instrument is read over the window sampled so far each time; a person once, at
+        // the minimum (a register's reference is then scaled to the span, with a budget term).
+        if early.is_none() || reference.reads_again_freely() {
+            early = Some((
+                take_references(step, plan.calibration, reference.as_mut(), window),
+                window,
+            ));
+        }
+        let (refs, reference_window) = early.as_ref().expect("just taken");
+        let partial = decide::Partial {
+            step,
+            blank: &blank,
+            wanted: plan.wanted,
+            references: refs,
+            reference_window: *reference_window,
+            resolutions: plan.resolutions,
+        };
+        partial.all_settled(all, n, plan.judge)
+    };
+    let stop: Option<sampling::StopRule> = if step.sequential.is_some() {
+        Some(&mut stop_rule)
+    } else {
+        None
+    };
+    let (series, window) = sampling::sample_step(sampler, slots, bench.parallel, stop);
+    Sampled {
+        series,
+        window,
+        early,
+    }
+}
+
+/// The step as it was sampled: a step sampled until decided is evaluated on the samples it
+/// took.
+fn as_sampled(step: &Step, series: &[sampling::Series]) -> Step {
+    let mut evaluated = step.clone();
+    if step.sequential.is_some() {
+        evaluated.samples = series
+            .iter()
+            .map(|s| s.samples.first().map_or(0, Vec::len))
+            .max()
+            .unwrap_or(0) as u32;
+    }
+    evaluated
+}
+
+/// The references the step is judged against, and the window they stand for.
+fn final_references(
+    plan: &SamplePlan,
+    bench: &mut Bench,
+    early: Option<(References, (f64, f64))>,
+    window: (f64, f64),
+    stopped: bool,
+) -> (References, (f64, f64)) {
+    let read = |bench: &mut Bench| {
+        take_references(
+            plan.step,
+            plan.calibration,
+            bench.reference.as_mut(),
+            window,
+        )
+    };
+    match early {
+        // Sampled on past the early references: an instrument (or a file) is read again over
+        // the window finally sampled, rather than scaling a register's reference up to it.
+        Some((_, at)) if at != window && bench.reference.reads_again_freely() => {
+            (read(bench), window)
+        }
+        Some(taken) => taken,
+        None if stopped => (Vec::new(), window),
+        None => (read(bench), window),
+    }
+}
+
+/// One write for the whole step: a single commit for all positions.
+fn commit_step(sc: &StepContext, units: &[Unit]) {
     let finished: Vec<(usize, &StepRecord)> = units
         .iter()
         .zip(sc.to_run)
@@ -275,10 +358,6 @@ pub(super) fn run_step(
         .filter_map(|(u, _)| Some((u.record.position, u.record.steps.last()?)))
         .collect();
     sc.recorder.step_finished(sc.index, &finished);
-    StepOutcome {
-        stop: stop_reason(&references, bench),
-        set_aside,
-    }
 }
 
 /// What a step took beyond each unit's own series: the readings wanted, the references and
