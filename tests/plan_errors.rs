@@ -455,3 +455,82 @@ fn an_unknown_class_table_is_refused_with_the_ones_there_are() {
         "{e}"
     );
 }
+
+const MODBUS: &str = include_str!("../test-plans/demo-modbus.yaml");
+
+/// The `modbus` link's section: each mistake with its path and line, all in one pass.
+#[test]
+fn modbus_link_mistakes_are_refused_with_their_place() {
+    assert!(Plan::from_text("m.yaml", MODBUS).is_ok());
+    let text = MODBUS
+        .replace("address: 1 ", "address: 300 ")
+        .replace(
+            "{ register: 0x0000, type: f32, unit: V,",
+            "{ register: 0x0000, type: f16, unit: V,",
+        )
+        .replace(
+            "{ register: 0x0004, type: f32, unit: W,",
+            "{ register: 0x0004, type: f32, unit: kWh,",
+        )
+        .replace(
+            "{ register: 0x1010, type: ascii, words: 4 }",
+            "{ register: 0x1010, type: ascii }",
+        )
+        .replace(
+            "{ register: 0x000C, type: f32,",
+            "{ register: 70000, type: f32,",
+        )
+        .replace(
+            "{ register: 0x200C, type: f64, function: holding }",
+            "{ register: 0x200C, type: f64, function: input }",
+        )
+        .replace("word_order: high_first", "word_order: middle_first");
+    let e = errors(&text);
+    let found = |path: &str, words: &str| {
+        let hit =
+            e.0.iter()
+                .find(|x| x.path == path)
+                .unwrap_or_else(|| panic!("no error at {path}: {e}"));
+        assert!(hit.message.contains(words), "{path}: {}", hit.message);
+        hit.position.map(|p| p.line)
+    };
+    assert_eq!(
+        found("link.address", "from 1 to 247"),
+        Some(line_of(&text, "address: 300"))
+    );
+    assert_eq!(
+        found("link.quantities.voltage.type", "\"f16\" is not one of"),
+        Some(line_of(&text, "type: f16"))
+    );
+    found("link.quantities.active_power.unit", "kWh");
+    found(
+        "link.identity.firmware.words",
+        "needs its number of registers",
+    );
+    found("link.quantities.frequency.register", "from 0 to 65535");
+    found(
+        "link.writes.offset_current.function",
+        "input registers cannot be written",
+    );
+    found(
+        "link.word_order",
+        "\"middle_first\" is not one of high_first, low_first",
+    );
+    // A ascii register read as a quantity, and a key a register does not take.
+    let text = MODBUS.replace(
+        "power_factor:   { register: 0x000A, type: f32,",
+        "power_factor:   { register: 0x000A, type: ascii, words: 2, format: 'x{value}',",
+    );
+    let e = errors(&text);
+    assert!(
+        e.0.iter()
+            .any(|x| x.path == "link.quantities.power_factor.type"
+                && x.message.contains("only be an identity field")),
+        "{e}"
+    );
+    assert!(
+        e.0.iter()
+            .any(|x| x.path == "link.quantities.power_factor.format"),
+        "{e}"
+    );
+}

@@ -7,7 +7,9 @@
 use super::operator::{ManualSource, SharedConsole, TypedReference};
 use super::scpi::{ScpiReference, ScpiSource, SourceCommands};
 use super::{Bench, InstrumentInfo, LoadSource, Position, RealClock, ReferenceMeter, StationInfo};
+use crate::link::DutLink;
 use crate::link::line::{LineSettings, open_port};
+use crate::link::modbus::{Bus, ModbusLink, SharedBus};
 use crate::link::{Unreachable, text};
 use crate::plan::text_link::{LineEnding, PortSettings};
 use crate::plan::units::Dimension;
@@ -36,6 +38,9 @@ pub struct Station {
 pub struct StationPosition {
     pub number: usize,
     pub port: String,
+    /// The unit's address on a bus (Modbus): positions may share a port only with addresses
+    /// of their own.
+    pub address: Option<u8>,
 }
 
 /// A serial instrument's port and framing.
@@ -100,6 +105,8 @@ struct RawSimulation {
 struct RawStationPosition {
     position: Text,
     port: Text,
+    #[serde(default)]
+    address: Option<Text>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -248,7 +255,20 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
             }
         };
         let port = doc.non_empty(&format!("{path}.port"), &p.port);
-        if let (Some(number), Some(port)) = (number, port) {
+        let address = match &p.address {
+            None => Some(None),
+            Some(t) => match t.0.trim().parse::<u8>() {
+                Ok(a) if (1..=247).contains(&a) => Some(Some(a)),
+                _ => {
+                    doc.error(
+                        &format!("{path}.address"),
+                        format!("\"{}\" is not a unit address (1 to 247)", t.0),
+                    );
+                    None
+                }
+            },
+        };
+        if let (Some(number), Some(port), Some(address)) = (number, port, address) {
             if positions
                 .iter()
                 .any(|q: &StationPosition| q.number == number)
@@ -258,13 +278,30 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
                     format!("position {number} is listed twice"),
                 );
             }
-            if positions.iter().any(|q: &StationPosition| q.port == port) {
-                doc.error(
-                    &format!("{path}.port"),
-                    format!("port {port} is given to two positions"),
-                );
+            // One port, one unit; or one bus with a unit address each.
+            for q in positions
+                .iter()
+                .filter(|q: &&StationPosition| q.port == port)
+            {
+                match (q.address, address) {
+                    (Some(a), Some(b)) if a == b => doc.error(
+                        &format!("{path}.address"),
+                        format!("address {b} on {port} is position {}'s already", q.number),
+                    ),
+                    (Some(_), Some(_)) => {}
+                    _ => doc.error(
+                        &format!("{path}.port"),
+                        format!(
+                            "port {port} is given to two positions: units sharing a bus each need an address"
+                        ),
+                    ),
+                }
             }
-            positions.push(StationPosition { number, port });
+            positions.push(StationPosition {
+                number,
+                port,
+                address,
+            });
         }
     }
     if raw.positions.is_empty() {
@@ -547,9 +584,13 @@ pub const ACCURACY_UNKNOWN: &str = "unknown";
 #[derive(Debug, thiserror::Error)]
 pub enum StationError {
     #[error(
-        "the plan's link is `{0}`: a station drives units over serial ports, so the plan needs a `text` link"
+        "the plan's link is `{0}`: a station drives units over serial ports, so the plan needs a `text` or `modbus` link"
     )]
     NotSerial(&'static str),
+    #[error(
+        "positions {0} share the port {1}: only units on a bus (a `modbus` link) can share a port"
+    )]
+    SharedPort(String, String),
     #[error("{what}: {why}")]
     Instrument { what: String, why: String },
 }
@@ -562,10 +603,7 @@ pub fn build_bench(
     plan: &Plan,
     console: Option<SharedConsole>,
 ) -> Result<Bench, StationError> {
-    let LinkSpec::Text(spec) = &plan.link else {
-        return Err(StationError::NotSerial(plan.link.kind()));
-    };
-    let spec = Arc::new((**spec).clone());
+    let open_links = links(station, &plan.link)?;
     let instrument = |what: &str, port: &InstrumentPort| {
         open_port(&port.path, port.settings).map_err(|e| StationError::Instrument {
             what: what.to_string(),
@@ -608,10 +646,10 @@ pub fn build_bench(
     let positions = station
         .positions
         .iter()
-        .map(|p| Position {
+        .zip(open_links)
+        .map(|(p, link)| Position {
             number: p.number,
-            link: text::open(&p.port, spec.clone())
-                .unwrap_or_else(|e| Box::new(Unreachable::new(&p.port, e))),
+            link,
             expected_serial: None,
         })
         .collect();
@@ -630,6 +668,55 @@ pub fn build_bench(
         parallel: true,
         interrupt: Default::default(),
     })
+}
+
+/// Opens each position's link as the plan describes it: a port of its own for a `text` link;
+/// for a `modbus` link, one bus per port, shared by the positions on it, each at its address.
+fn links(station: &Station, link: &LinkSpec) -> Result<Vec<Box<dyn DutLink>>, StationError> {
+    match link {
+        LinkSpec::Text(spec) => {
+            let spec = Arc::new((**spec).clone());
+            let mut seen: Vec<(&str, usize)> = Vec::new();
+            for p in &station.positions {
+                if let Some((_, first)) = seen.iter().find(|(port, _)| *port == p.port) {
+                    return Err(StationError::SharedPort(
+                        format!("{first} and {}", p.number),
+                        p.port.clone(),
+                    ));
+                }
+                seen.push((&p.port, p.number));
+            }
+            Ok(station
+                .positions
+                .iter()
+                .map(|p| {
+                    text::open(&p.port, spec.clone())
+                        .unwrap_or_else(|e| Box::new(Unreachable::new(&p.port, e)))
+                })
+                .collect())
+        }
+        LinkSpec::Modbus(spec) => {
+            let spec = Arc::new((**spec).clone());
+            let mut buses: Vec<(String, Result<SharedBus, crate::link::LinkError>)> = Vec::new();
+            let mut out: Vec<Box<dyn DutLink>> = Vec::new();
+            for p in &station.positions {
+                if !buses.iter().any(|(port, _)| *port == p.port) {
+                    buses.push((p.port.clone(), Bus::open(&p.port, &spec)));
+                }
+                let (_, bus) = buses
+                    .iter()
+                    .find(|(port, _)| *port == p.port)
+                    .expect("just added");
+                let address = p.address.unwrap_or(spec.address);
+                out.push(match bus {
+                    Ok(bus) => Box::new(ModbusLink::new(bus.clone(), address, spec.clone())),
+                    Err(e) => Box::new(Unreachable::new(&p.port, e.clone())),
+                });
+            }
+            Ok(out)
+        }
+        other => Err(StationError::NotSerial(other.kind())),
+    }
 }
 
 #[cfg(test)]

@@ -107,8 +107,16 @@ struct SimMeterArgs {
     /// Write the station file that wires the simulated bench here.
     #[arg(long)]
     station: Option<PathBuf>,
+    /// What the meters speak: text (a port each) or modbus (RTU, several on a bus).
+    #[arg(long, default_value = "text", value_parser = ["text", "modbus"])]
+    protocol: String,
+    /// With --protocol modbus: how many buses (ports) the meters are spread over, in position
+    /// order; each meter's address is its position number.
+    #[arg(long, default_value_t = 1)]
+    buses: usize,
     /// A fault to inject, as POSITION:KIND[=VALUE] (drop-every=N, garble-every=N, slow=TIME,
-    /// reboot-after=N, firmware=VERSION, die-after=N, echo). May be repeated.
+    /// reboot-after=N, firmware=VERSION, die-after=N, echo, ignore-writes; on Modbus also
+    /// busy-every=N and bad-crc-every=N). May be repeated.
     #[arg(long = "fault", value_name = "POSITION:KIND[=VALUE]")]
     faults: Vec<String>,
     /// Stop serving after this long (default: until killed).

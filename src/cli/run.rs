@@ -468,7 +468,9 @@ pub(super) fn station_bench(
     };
     let mut bench = station::build_bench(&station, plan, needs_operator.then(console)).map_err(
         |e| match e {
-            station::StationError::NotSerial(_) => CliError::Usage(e.to_string()),
+            station::StationError::NotSerial(_) | station::StationError::SharedPort(..) => {
+                CliError::Usage(e.to_string())
+            }
             station::StationError::Instrument { .. } => CliError::Run(e.to_string()),
         },
     )?;

@@ -5,7 +5,7 @@ use super::*;
 
 pub(super) fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
     use crate::bench::sim::device::Faults;
-    use crate::bench::sim::served::{SimStation, merge_faults, parse_fault};
+    use crate::bench::sim::served::{Protocol, SimStation, merge_faults, parse_fault};
     if args.positions == 0 {
         return Err(CliError::Usage("--positions must be at least 1".into()));
     }
@@ -34,14 +34,25 @@ pub(super) fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
     };
     let mut config = SimConfig::new(args.seed, args.positions);
     config.plant_defect = !args.no_defect;
-    let station = SimStation::serve(&config, args.time_scale, &faults)
+    let protocol = match args.protocol.as_str() {
+        "modbus" => Protocol::Modbus { buses: args.buses },
+        _ => Protocol::Text,
+    };
+    if args.buses == 0 || args.buses > args.positions {
+        return Err(CliError::Usage(format!(
+            "--buses must be from 1 to the number of positions ({})",
+            args.positions
+        )));
+    }
+    let station = SimStation::serve_speaking(&config, args.time_scale, &faults, protocol)
         .map_err(|e| CliError::Run(format!("cannot create pseudo-terminals: {e}")))?;
     println!(
         "simulated bench, seed {}, {} meters, time scale {}",
         args.seed, args.positions, args.time_scale
     );
-    for (i, (m, serial)) in station.meters.iter().zip(&station.serials).enumerate() {
-        println!("  position {}: {}  serial {serial}", i + 1, m.path);
+    for (i, ((port, address), serial)) in station.ports.iter().zip(&station.serials).enumerate() {
+        let address = address.map(|a| format!(" address {a}")).unwrap_or_default();
+        println!("  position {}: {port}{address}  serial {serial}", i + 1);
     }
     println!("  source:     {}  (SCPI)", station.source.path);
     println!("  reference:  {}  (SCPI)", station.reference.path);

@@ -8,7 +8,7 @@
 //! acceptance limit is TL − w·U; when w times the floor reaches TL, no result can be accepted.
 
 use crate::metrology::accuracy::Accuracy;
-use crate::plan::{DecisionRule, LinkSpec, Plan, Tolerance};
+use crate::plan::{DecisionRule, Plan, Tolerance};
 use std::collections::BTreeMap;
 
 /// The reference a plan would be run against.
@@ -80,9 +80,7 @@ pub fn narrow_zones(plan: &Plan, reference: &ExpectedReference) -> Vec<NarrowZon
                     variance += (a / nominal.abs() * 100.0 / 3f64.sqrt()).powi(2);
                 }
             }
-            if let LinkSpec::Text(t) = &plan.link
-                && let Some(d) = t.request_for(check.quantity).and_then(|q| q.resolution)
-            {
+            if let Some(d) = plan.link.resolution(check.quantity) {
                 let readings = if check.quantity.is_register() {
                     2.0
                 } else {

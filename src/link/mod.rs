@@ -5,6 +5,7 @@
 //! a [`LinkError`] that says what was asked and what went wrong, never by panicking.
 
 pub mod line;
+pub mod modbus;
 pub mod text;
 
 use crate::plan::Quantity;
@@ -34,6 +35,16 @@ pub struct LinkHealth {
     /// Times the port was lost and opened again (a unit reseated, a cable pulled).
     #[serde(default)]
     pub reconnects: u64,
+    /// Exception replies (a refused or busy request), on links that have them.
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub exceptions: u64,
+    /// Frames whose checksum did not match (CRC, BCC), on links that check one.
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub crc_errors: u64,
+}
+
+fn is_zero(n: &u64) -> bool {
+    *n == 0
 }
 
 /// A failure on the link to one unit.
@@ -51,6 +62,8 @@ pub enum LinkError {
         reply: String,
         why: String,
     },
+    #[error("the unit refused {request}: {why}")]
+    Refused { request: String, why: String },
     #[error("the link is gone: {0}")]
     Disconnected(String),
     #[error("the unit cannot do {quantity} on channel {channel}")]

@@ -220,6 +220,7 @@ impl<W: Wire> DutLink for TextLink<W> {
             not_understood: s.not_understood,
             restarts: s.restarts,
             reconnects: self.reconnects,
+            ..Default::default()
         })
     }
 }

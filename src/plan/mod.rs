@@ -6,6 +6,7 @@
 
 mod document;
 mod locate;
+pub mod modbus_link;
 mod raw;
 pub mod text_link;
 pub mod units;
@@ -134,6 +135,8 @@ pub enum LinkSpec {
     Sim { channels: Vec<String> },
     /// A line protocol over a serial port.
     Text(Box<text_link::TextLinkSpec>),
+    /// Modbus RTU over a serial line.
+    Modbus(Box<modbus_link::ModbusLinkSpec>),
 }
 
 impl LinkSpec {
@@ -141,6 +144,31 @@ impl LinkSpec {
         match self {
             LinkSpec::Sim { channels } => channels,
             LinkSpec::Text(t) => &t.channels,
+            LinkSpec::Modbus(m) => &m.channels,
+        }
+    }
+
+    /// The smallest step of the unit's reading of `quantity`, where the plan says it.
+    pub fn resolution(&self, quantity: Quantity) -> Option<f64> {
+        match self {
+            LinkSpec::Sim { .. } => None,
+            LinkSpec::Text(t) => t.request_for(quantity).and_then(|q| q.resolution),
+            LinkSpec::Modbus(m) => m.register_for(quantity).and_then(|q| q.resolution),
+        }
+    }
+
+    /// The constants the link can write, each with whether it can be read back; `None` where
+    /// the link takes any (the simulator).
+    pub fn writes(&self) -> Option<Vec<(&str, bool)>> {
+        match self {
+            LinkSpec::Sim { .. } => None,
+            LinkSpec::Text(t) => Some(
+                t.writes
+                    .iter()
+                    .map(|w| (w.name.as_str(), w.readback.is_some()))
+                    .collect(),
+            ),
+            LinkSpec::Modbus(m) => Some(m.writes.iter().map(|w| (w.name.as_str(), true)).collect()),
         }
     }
 
@@ -149,6 +177,7 @@ impl LinkSpec {
         match self {
             LinkSpec::Sim { .. } => true,
             LinkSpec::Text(t) => t.request_for(quantity).is_some(),
+            LinkSpec::Modbus(m) => m.register_for(quantity).is_some(),
         }
     }
 
@@ -156,6 +185,7 @@ impl LinkSpec {
         match self {
             LinkSpec::Sim { .. } => "sim",
             LinkSpec::Text(_) => "text",
+            LinkSpec::Modbus(_) => "modbus",
         }
     }
 }

@@ -247,6 +247,72 @@ pub enum RawLink {
     },
     /// A line protocol over a serial port.
     Text(Box<RawTextLink>),
+    /// Modbus RTU over a serial line.
+    Modbus(Box<RawModbusLink>),
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawModbusLink {
+    #[serde(default)]
+    pub port: RawPort,
+    #[serde(default)]
+    pub address: Option<Text>,
+    /// The register table quantities are read from unless a register says otherwise.
+    #[serde(default)]
+    pub function: Option<Text>,
+    #[serde(default)]
+    pub word_order: Option<Text>,
+    #[serde(default)]
+    pub timeout: Option<Text>,
+    #[serde(default)]
+    pub retries: Option<Text>,
+    #[serde(default)]
+    pub turnaround: Option<Text>,
+    #[serde(default)]
+    pub channels: Option<Vec<Text>>,
+    #[serde(default)]
+    pub channel_stride: Option<Text>,
+    pub identity: RawModbusIdentity,
+    pub quantities: std::collections::BTreeMap<String, RawRegister>,
+    #[serde(default)]
+    pub writes: std::collections::BTreeMap<String, RawRegister>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawModbusIdentity {
+    pub model: RawRegister,
+    pub serial: RawRegister,
+    pub firmware: RawRegister,
+}
+
+/// A value in a unit's registers, as a plan writes it.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawRegister {
+    pub register: Text,
+    #[serde(rename = "type")]
+    pub data_type: Text,
+    /// Registers of an `ascii` value.
+    #[serde(default)]
+    pub words: Option<Text>,
+    #[serde(default)]
+    pub function: Option<Text>,
+    #[serde(default)]
+    pub word_order: Option<Text>,
+    #[serde(default)]
+    pub scale: Option<Text>,
+    #[serde(default)]
+    pub unit: Option<Text>,
+    #[serde(default)]
+    pub resolution: Option<Text>,
+    /// An identity field's text, `{value}` standing for the register's content.
+    #[serde(default)]
+    pub format: Option<Text>,
+    /// The front end's counts, for calibration.
+    #[serde(default)]
+    pub raw: Option<Box<RawRegister>>,
 }
 
 #[derive(Debug, Deserialize)]

@@ -32,6 +32,8 @@ pub struct Faults {
     pub echo: bool,
     /// Acknowledge constant writes without storing them (a firmware bug, or write protection).
     pub ignore_writes: bool,
+    /// Answer every Nth request "busy" (a protocol with exception replies: Modbus 06).
+    pub busy_every: Option<u64>,
 }
 
 /// The protocol's quantity codes.
@@ -198,6 +200,16 @@ pub struct PtyDevice {
 impl PtyDevice {
     /// Creates a pseudo-terminal pair and serves `device` on its master side.
     pub fn spawn(mut device: impl LineDevice) -> io::Result<PtyDevice> {
+        PtyDevice::spawn_serving(move |port, stop, requests| {
+            serve(port, &mut device, stop, requests)
+        })
+    }
+
+    /// Creates a pseudo-terminal pair and runs `serve` on its master side until told to stop:
+    /// for devices that are not line-based.
+    pub fn spawn_serving(
+        serve: impl FnOnce(serialport::TTYPort, &AtomicBool, &AtomicU64) + Send + 'static,
+    ) -> io::Result<PtyDevice> {
         let (master, slave) = serialport::TTYPort::pair().map_err(io::Error::other)?;
         let path = serialport::SerialPort::name(&slave)
             .ok_or_else(|| io::Error::other("the pseudo-terminal has no name"))?;
@@ -208,7 +220,7 @@ impl PtyDevice {
             let requests = requests.clone();
             std::thread::Builder::new()
                 .name(format!("sim-device {path}"))
-                .spawn(move || serve(master, &mut device, &stop, &requests))?
+                .spawn(move || serve(master, &stop, &requests))?
         };
         Ok(PtyDevice {
             path,

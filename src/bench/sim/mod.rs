@@ -20,6 +20,7 @@
 
 pub mod device;
 pub mod instruments;
+pub mod modbus_device;
 pub mod served;
 
 use super::{

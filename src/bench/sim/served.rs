@@ -5,15 +5,29 @@
 
 use super::device::{Device, Faults, PtyDevice};
 use super::instruments::{REFERENCE_QUERIES, ScpiReferenceDevice, ScpiSourceDevice};
+use super::modbus_device::{self, BusUnit, ModbusBus};
 use super::{SimBench, SimConfig};
 use crate::bench::RealClock;
 use std::io;
 use std::sync::Arc;
 use std::time::Duration;
 
+/// What the simulated meters speak.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Protocol {
+    /// The TM-16 text protocol, a port per meter.
+    Text,
+    /// Modbus RTU, the meters spread over this many buses (ports), in position order, each at
+    /// its position number as address.
+    Modbus { buses: usize },
+}
+
 /// The served station; dropping it stops every device.
 pub struct SimStation {
+    /// The devices on pseudo-terminals: a meter each, or a bus each.
     pub meters: Vec<PtyDevice>,
+    /// Each position's port and address on it.
+    pub ports: Vec<(String, Option<u8>)>,
     pub serials: Vec<String>,
     pub source: PtyDevice,
     pub reference: PtyDevice,
@@ -25,18 +39,54 @@ impl SimStation {
     /// Serves `config`'s meters, with `faults[i]` injected into meter i, on a clock running
     /// `time_scale` bench seconds per real second.
     pub fn serve(config: &SimConfig, time_scale: f64, faults: &[Faults]) -> io::Result<SimStation> {
+        SimStation::serve_speaking(config, time_scale, faults, Protocol::Text)
+    }
+
+    /// As [`SimStation::serve`], the meters speaking `protocol`.
+    pub fn serve_speaking(
+        config: &SimConfig,
+        time_scale: f64,
+        faults: &[Faults],
+        protocol: Protocol,
+    ) -> io::Result<SimStation> {
         let sim = SimBench::with_clock(config, Arc::new(RealClock::scaled(time_scale)));
         let mut meters = Vec::new();
+        let mut ports = Vec::new();
         let mut serials = Vec::new();
-        for i in 0..sim.positions() {
-            let handle = sim.meter(i);
-            serials.push(handle.identity().serial);
-            let f = faults.get(i).cloned().unwrap_or_default();
-            meters.push(PtyDevice::spawn(Device::new(handle, f))?);
+        let n = sim.positions();
+        let fault = |i: usize| faults.get(i).cloned().unwrap_or_default();
+        match protocol {
+            Protocol::Text => {
+                for i in 0..n {
+                    let handle = sim.meter(i);
+                    serials.push(handle.identity().serial);
+                    let device = PtyDevice::spawn(Device::new(handle, fault(i)))?;
+                    ports.push((device.path.clone(), None));
+                    meters.push(device);
+                }
+            }
+            Protocol::Modbus { buses } => {
+                let buses = buses.clamp(1, n.max(1));
+                let per_bus = n.div_ceil(buses);
+                for bus in 0..buses {
+                    let range = bus * per_bus..((bus + 1) * per_bus).min(n);
+                    let units = range
+                        .clone()
+                        .map(|i| BusUnit::new((i + 1) as u8, sim.meter(i), fault(i)))
+                        .collect();
+                    let device = modbus_device::spawn(ModbusBus { units })?;
+                    for i in range {
+                        serials.push(sim.meter(i).identity().serial);
+                        ports.push((device.path.clone(), Some((i + 1) as u8)));
+                    }
+                    meters.push(device);
+                }
+            }
         }
         let (source, reference) = sim.instruments();
         Ok(SimStation {
             meters,
+            ports,
             serials,
             source: PtyDevice::spawn(ScpiSourceDevice::new(source))?,
             reference: PtyDevice::spawn(ScpiReferenceDevice::new(reference))?,
@@ -54,14 +104,16 @@ impl SimStation {
              simulation: {{ time_scale: {} }}\n\
              positions:\n",
             self.seed,
-            self.meters.len(),
+            self.ports.len(),
             self.time_scale
         );
-        for (i, m) in self.meters.iter().enumerate() {
+        for (i, (port, address)) in self.ports.iter().enumerate() {
+            let address = address
+                .map(|a| format!(", address: {a}"))
+                .unwrap_or_default();
             s.push_str(&format!(
-                "  - {{ position: {}, port: {} }}\n",
+                "  - {{ position: {}, port: {port}{address} }}\n",
                 i + 1,
-                m.path
             ));
         }
         s.push_str(&format!(
@@ -92,7 +144,7 @@ pub struct FaultError(String);
 
 fn parse_fault_text(text: &str) -> Result<(usize, Faults), String> {
     let help = "write a fault as POSITION:KIND[=VALUE], KIND one of drop-every, garble-every, \
-                slow, reboot-after, firmware, die-after, echo, ignore-writes";
+                slow, reboot-after, firmware, die-after, echo, ignore-writes, busy-every, bad-crc-every";
     let (position, rest) = text
         .split_once(':')
         .ok_or_else(|| format!("\"{text}\": {help}"))?;
@@ -114,7 +166,9 @@ fn parse_fault_text(text: &str) -> Result<(usize, Faults), String> {
     let mut f = Faults::default();
     match kind {
         "drop-every" => f.drop_every = Some(count()?),
-        "garble-every" => f.garble_every = Some(count()?),
+        // A line device garbles its reply; a framed one sends it with a wrong checksum.
+        "garble-every" | "bad-crc-every" => f.garble_every = Some(count()?),
+        "busy-every" => f.busy_every = Some(count()?),
         "reboot-after" => f.reboot_after = Some(count()?),
         "die-after" => f.die_after = Some(count()?),
         "slow" => {
@@ -135,6 +189,7 @@ fn parse_fault_text(text: &str) -> Result<(usize, Faults), String> {
 pub fn merge_faults(into: &mut Faults, f: Faults) {
     into.drop_every = f.drop_every.or(into.drop_every);
     into.garble_every = f.garble_every.or(into.garble_every);
+    into.busy_every = f.busy_every.or(into.busy_every);
     into.reboot_after = f.reboot_after.or(into.reboot_after);
     into.die_after = f.die_after.or(into.die_after);
     into.firmware = f.firmware.or(into.firmware.take());

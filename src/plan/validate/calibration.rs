@@ -99,14 +99,14 @@ pub(super) fn calibration(
                 "the unit's constants are an offset and a gain: write-back needs fit: line",
             );
         }
-        if let LinkSpec::Text(t) = link {
+        if let Some(writes) = link.writes() {
             for (key, name) in [("offset", offset), ("gain", gain)] {
-                match t.writes.iter().find(|w| &w.name == name) {
+                match writes.iter().find(|(w, _)| w == name) {
                     None => ctx.error(
                         &format!("calibration.write.{key}"),
                         format!("the link has no write named \"{name}\" (link.writes)"),
                     ),
-                    Some(w) if w.readback.is_none() => ctx.error(
+                    Some((_, false)) => ctx.error(
                         &format!("calibration.write.{key}"),
                         format!("the link's write \"{name}\" has no readback: a written constant must be read back"),
                     ),

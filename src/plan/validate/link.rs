@@ -92,7 +92,7 @@ fn template(ctx: &mut Ctx, path: &str, text: &Text, allowed: &[&str]) -> Option<
     Some(t.clone())
 }
 
-fn number(ctx: &mut Ctx, path: &str, text: Option<&Text>, default: f64) -> Option<f64> {
+pub(super) fn number(ctx: &mut Ctx, path: &str, text: Option<&Text>, default: f64) -> Option<f64> {
     match text {
         None => Some(default),
         Some(t) => match t.0.trim().parse::<f64>() {
@@ -105,7 +105,7 @@ fn number(ctx: &mut Ctx, path: &str, text: Option<&Text>, default: f64) -> Optio
     }
 }
 
-fn choice<T: Copy>(
+pub(super) fn choice<T: Copy>(
     ctx: &mut Ctx,
     path: &str,
     text: Option<&Text>,
@@ -382,7 +382,7 @@ pub(super) fn text_link(ctx: &mut Ctx, raw: RawTextLink) -> Option<TextLinkSpec>
 }
 
 /// The factor from a unit such as "mA" to the base unit of `dim`.
-fn unit_factor(ctx: &mut Ctx, path: &str, unit: &Text, dim: Dimension) -> Option<f64> {
+pub(super) fn unit_factor(ctx: &mut Ctx, path: &str, unit: &Text, dim: Dimension) -> Option<f64> {
     match units::parse(&format!("1 {}", unit.0.trim()), dim) {
         Ok(f) => Some(f),
         Err(e) => {

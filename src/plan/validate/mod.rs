@@ -3,6 +3,7 @@
 mod calibration;
 mod checks;
 pub(super) mod link;
+mod modbus;
 pub(super) mod ratings;
 mod steps;
 
@@ -253,5 +254,8 @@ fn link(ctx: &mut Ctx, raw: RawLink) -> Option<LinkSpec> {
             Some(LinkSpec::Sim { channels })
         }
         RawLink::Text(raw) => link::text_link(ctx, *raw).map(|t| LinkSpec::Text(Box::new(t))),
+        RawLink::Modbus(raw) => {
+            modbus::modbus_link(ctx, *raw).map(|m| LinkSpec::Modbus(Box::new(m)))
+        }
     }
 }

@@ -1,0 +1,263 @@
+//! The real binary reading simulated meters over Modbus RTU on pseudo-terminals (several units
+//! on one bus), served by `meterproof sim-meter --protocol modbus`: the same verdicts as the
+//! built-in simulator, protocol faults retried and counted, exceptions named, a silent unit
+//! not stalling its bus.
+
+mod common;
+use common::{bin, records_in, serve_at, temp_dir};
+
+use meterproof::record::{CheckVerdict, UnitRecord, UnitStatus};
+use std::path::Path;
+
+fn run(plan: &str, station: Option<&Path>, out: &Path) -> (i32, String, Vec<UnitRecord>) {
+    let mut cmd = bin();
+    cmd.args(["run", plan, "--quiet", "--unattended", "--out"])
+        .arg(out);
+    if let Some(station) = station {
+        cmd.arg("--bench").arg(station);
+    }
+    let output = cmd.output().unwrap();
+    let text = format!(
+        "{}{}",
+        String::from_utf8_lossy(&output.stdout),
+        String::from_utf8_lossy(&output.stderr)
+    );
+    let mut records = if out.exists() {
+        records_in(out)
+    } else {
+        Vec::new()
+    };
+    records.sort_by_key(|r| r.position);
+    (output.status.code().unwrap(), text, records)
+}
+
+/// A check's verdict, by step and quantity.
+type CheckVerdicts = Vec<(String, String, CheckVerdict)>;
+
+/// Each position's verdict and every check's verdict, step by step.
+fn verdicts(records: &[UnitRecord]) -> Vec<(UnitStatus, CheckVerdicts)> {
+    records
+        .iter()
+        .map(|r| {
+            let checks = r
+                .steps
+                .iter()
+                .flat_map(|s| {
+                    s.checks
+                        .iter()
+                        .map(|c| (s.id.clone(), c.quantity.name().to_string(), c.verdict))
+                })
+                .collect();
+            (r.verdict.status, checks)
+        })
+        .collect()
+}
+
+#[test]
+fn units_on_two_buses_get_the_builtin_verdicts() {
+    let dir = temp_dir("modbus-same");
+    let served = serve_at(&dir, "25", &["--protocol", "modbus", "--buses", "2"]);
+    let station = std::fs::read_to_string(&served.station).unwrap();
+    assert!(station.contains("address: 2"), "{station}");
+    let (code, text, over_modbus) = run(
+        "test-plans/demo-modbus.yaml",
+        Some(&served.station),
+        &dir.join("m"),
+    );
+    assert_eq!(code, 1, "{text}");
+    // The built-in simulator, same seed and positions: the same meters.
+    let (_, text_b, builtin) = run("test-plans/demo.yaml", None, &dir.join("b"));
+    assert_eq!(builtin.len(), 4, "{text_b}");
+    assert_eq!(verdicts(&over_modbus), verdicts(&builtin));
+    assert_eq!(over_modbus[1].verdict.status, UnitStatus::Rejected);
+    for r in &over_modbus {
+        assert!(r.link.contains("Modbus RTU"), "{}", r.link);
+        assert!(
+            r.link.contains(&format!("address {}", r.position)),
+            "{}",
+            r.link
+        );
+        let h = r
+            .link_health
+            .expect("a Modbus link counts its transactions");
+        assert_eq!((h.retries, h.exceptions, h.crc_errors), (0, 0, 0));
+    }
+    // Two positions a bus: positions 1 and 2 share a port, 3 and 4 another.
+    let port = |r: &UnitRecord| r.link.split(' ').next().unwrap().to_string();
+    assert_eq!(port(&over_modbus[0]), port(&over_modbus[1]));
+    assert_ne!(port(&over_modbus[1]), port(&over_modbus[2]));
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn busy_units_and_bad_checksums_are_retried_counted_and_shown() {
+    let dir = temp_dir("modbus-faults");
+    let served = serve_at(
+        &dir,
+        "25",
+        &[
+            "--protocol",
+            "modbus",
+            "--fault",
+            "3:busy-every=7",
+            "--fault",
+            "4:bad-crc-every=5",
+        ],
+    );
+    let (code, text, records) = run(
+        "test-plans/demo-modbus.yaml",
+        Some(&served.station),
+        &dir.join("out"),
+    );
+    assert_eq!(code, 1, "{text}");
+    let statuses: Vec<UnitStatus> = records.iter().map(|r| r.verdict.status).collect();
+    assert_eq!(
+        statuses,
+        [
+            UnitStatus::Accepted,
+            UnitStatus::Rejected,
+            UnitStatus::Accepted,
+            UnitStatus::Accepted
+        ]
+    );
+    let h3 = records[2].link_health.unwrap();
+    assert!(h3.exceptions > 0 && h3.retries == h3.exceptions, "{h3:?}");
+    assert_eq!(h3.crc_errors, 0);
+    let h4 = records[3].link_health.unwrap();
+    assert!(h4.crc_errors > 0 && h4.retries == h4.crc_errors, "{h4:?}");
+    // The report says so beside the unit's link.
+    let html = std::fs::read_dir(dir.join("out"))
+        .unwrap()
+        .map(|d| d.unwrap().path())
+        .filter(|d| d.is_dir())
+        .flat_map(|d| std::fs::read_dir(d).unwrap())
+        .map(|f| f.unwrap().path())
+        .find(|p| p.to_string_lossy().ends_with("-p4.html"))
+        .unwrap();
+    let html = std::fs::read_to_string(html).unwrap();
+    assert!(
+        html.contains(&format!("{} frames failing the checksum", h4.crc_errors)),
+        "report lacks the CRC count"
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn a_register_the_unit_does_not_have_is_named_with_its_exception() {
+    let dir = temp_dir("modbus-illegal");
+    let served = serve_at(&dir, "25", &["--protocol", "modbus"]);
+    let plan = std::fs::read_to_string("test-plans/demo-modbus.yaml")
+        .unwrap()
+        .replace(
+            "voltage:        { register: 0x0000",
+            "voltage:        { register: 0x0040",
+        );
+    let plan_path = dir.join("wrong-register.yaml");
+    std::fs::write(&plan_path, plan).unwrap();
+    let (code, text, records) = run(
+        plan_path.to_str().unwrap(),
+        Some(&served.station),
+        &dir.join("out"),
+    );
+    assert_ne!(code, 0, "{text}");
+    // Voltage is checked at basic-Ib only: that step cannot be finished, so no unit is accepted.
+    for r in &records {
+        assert_ne!(r.verdict.status, UnitStatus::Accepted);
+        let step = r.steps.iter().find(|s| s.id == "basic-Ib").unwrap();
+        let reason = step.reason.clone().unwrap_or_default();
+        assert!(
+            reason.contains("refused read voltage")
+                && reason.contains("exception 02 (Illegal data address)"),
+            "{reason}"
+        );
+        // Not retried: the answer would not change.
+        assert_eq!(r.link_health.unwrap().retries, 0);
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn a_silent_unit_does_not_stall_the_others_on_its_bus() {
+    let dir = temp_dir("modbus-silent");
+    // All four on one bus; the unit at address 1 stops answering after identifying itself.
+    let served = serve_at(
+        &dir,
+        "25",
+        &["--protocol", "modbus", "--fault", "1:die-after=3"],
+    );
+    let (code, text, records) = run(
+        "test-plans/demo-modbus.yaml",
+        Some(&served.station),
+        &dir.join("out"),
+    );
+    assert_ne!(code, 0, "{text}");
+    let statuses: Vec<UnitStatus> = records.iter().map(|r| r.verdict.status).collect();
+    assert_eq!(
+        statuses,
+        [
+            UnitStatus::Incomplete,
+            UnitStatus::Rejected,
+            UnitStatus::Accepted,
+            UnitStatus::Accepted
+        ],
+        "{text}"
+    );
+    let reason = records[0]
+        .steps
+        .iter()
+        .find_map(|s| s.reason.clone())
+        .unwrap_or_default();
+    assert!(
+        reason.contains("no reply") && reason.contains("200 ms"),
+        "{reason}"
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+#[test]
+fn a_shared_port_needs_an_address_per_unit_and_a_bus_link() {
+    let dir = temp_dir("modbus-station");
+    let served = serve_at(&dir, "25", &["--protocol", "modbus"]);
+    let station = std::fs::read_to_string(&served.station).unwrap();
+    // The text link cannot share a port.
+    let (code, text, _) = run(
+        "test-plans/demo-serial.yaml",
+        Some(&served.station),
+        &dir.join("t"),
+    );
+    assert_eq!(code, 2, "{text}");
+    assert!(
+        text.contains("only units on a bus (a `modbus` link) can share a port"),
+        "{text}"
+    );
+    // Two units at one address, or one without an address, on one port.
+    let same = station.replace("address: 2", "address: 1");
+    std::fs::write(dir.join("same.yaml"), same).unwrap();
+    let o = bin()
+        .args(["run", "test-plans/demo-modbus.yaml", "--out"])
+        .arg(dir.join("o"))
+        .arg("--bench")
+        .arg(dir.join("same.yaml"))
+        .output()
+        .unwrap();
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        e.contains("positions[2].address") && e.contains("is position 1's already"),
+        "{e}"
+    );
+    let none = station.replace(", address: 3", "");
+    std::fs::write(dir.join("none.yaml"), none).unwrap();
+    let o = bin()
+        .args(["run", "test-plans/demo-modbus.yaml", "--out"])
+        .arg(dir.join("o"))
+        .arg("--bench")
+        .arg(dir.join("none.yaml"))
+        .output()
+        .unwrap();
+    let e = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        e.contains("positions[3].port") && e.contains("each need an address"),
+        "{e}"
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
