@@ -534,3 +534,37 @@ fn modbus_link_mistakes_are_refused_with_their_place() {
         "{e}"
     );
 }
+
+const READOUT: &str = include_str!("../test-plans/demo-readout.yaml");
+
+/// The `iec62056_21` link's section: OBIS codes, identity sources, units, each with its place.
+#[test]
+fn readout_link_mistakes_are_refused_with_their_place() {
+    assert!(Plan::from_text("r.yaml", READOUT).is_ok());
+    let text = READOUT
+        .replace("{ obis: 31.7.0, unit: A,", "{ obis: 31.7, unit: A,")
+        .replace("{ obis: 32.7.0, unit: V,", "{ obis: 32.7.0, unit: kWh,")
+        .replace("serial: C.1.0", "serial: the nameplate")
+        .replace("read: readout", "read: register")
+        .replace("max_bytes: 8192", "max_bytes: 10");
+    let e = errors(&text);
+    let found = |path: &str, words: &str| {
+        let hit =
+            e.0.iter()
+                .find(|x| x.path == path)
+                .unwrap_or_else(|| panic!("no error at {path}: {e}"));
+        assert!(hit.message.contains(words), "{path}: {}", hit.message);
+        hit.position.map(|p| p.line)
+    };
+    assert_eq!(
+        found("link.quantities.current.obis", "not an OBIS code"),
+        Some(line_of(&text, "obis: 31.7,"))
+    );
+    found("link.quantities.voltage.unit", "kWh");
+    found(
+        "link.identity.serial",
+        "neither `identification` nor an OBIS code",
+    );
+    found("link.read", "\"register\" is not one of readout");
+    found("link.max_bytes", "from 64 to");
+}

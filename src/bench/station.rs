@@ -10,6 +10,7 @@ use super::{Bench, InstrumentInfo, LoadSource, Position, RealClock, ReferenceMet
 use crate::link::DutLink;
 use crate::link::line::{LineSettings, open_port};
 use crate::link::modbus::{Bus, ModbusLink, SharedBus};
+use crate::link::readout::ReadoutLink;
 use crate::link::{Unreachable, text};
 use crate::plan::text_link::{LineEnding, PortSettings};
 use crate::plan::units::Dimension;
@@ -584,7 +585,7 @@ pub const ACCURACY_UNKNOWN: &str = "unknown";
 #[derive(Debug, thiserror::Error)]
 pub enum StationError {
     #[error(
-        "the plan's link is `{0}`: a station drives units over serial ports, so the plan needs a `text` or `modbus` link"
+        "the plan's link is `{0}`: a station drives units over serial ports, so the plan needs a `text`, `modbus` or `iec62056_21` link"
     )]
     NotSerial(&'static str),
     #[error(
@@ -670,22 +671,28 @@ pub fn build_bench(
     })
 }
 
+/// Refuses a port given to two positions, for a link with no addresses.
+fn no_shared_ports(station: &Station) -> Result<(), StationError> {
+    let mut seen: Vec<(&str, usize)> = Vec::new();
+    for p in &station.positions {
+        if let Some((_, first)) = seen.iter().find(|(port, _)| *port == p.port) {
+            return Err(StationError::SharedPort(
+                format!("{first} and {}", p.number),
+                p.port.clone(),
+            ));
+        }
+        seen.push((&p.port, p.number));
+    }
+    Ok(())
+}
+
 /// Opens each position's link as the plan describes it: a port of its own for a `text` link;
 /// for a `modbus` link, one bus per port, shared by the positions on it, each at its address.
 fn links(station: &Station, link: &LinkSpec) -> Result<Vec<Box<dyn DutLink>>, StationError> {
     match link {
         LinkSpec::Text(spec) => {
             let spec = Arc::new((**spec).clone());
-            let mut seen: Vec<(&str, usize)> = Vec::new();
-            for p in &station.positions {
-                if let Some((_, first)) = seen.iter().find(|(port, _)| *port == p.port) {
-                    return Err(StationError::SharedPort(
-                        format!("{first} and {}", p.number),
-                        p.port.clone(),
-                    ));
-                }
-                seen.push((&p.port, p.number));
-            }
+            no_shared_ports(station)?;
             Ok(station
                 .positions
                 .iter()
@@ -714,6 +721,18 @@ fn links(station: &Station, link: &LinkSpec) -> Result<Vec<Box<dyn DutLink>>, St
                 });
             }
             Ok(out)
+        }
+        LinkSpec::Readout(spec) => {
+            let spec = Arc::new((**spec).clone());
+            no_shared_ports(station)?;
+            Ok(station
+                .positions
+                .iter()
+                .map(|p| match ReadoutLink::open(&p.port, spec.clone()) {
+                    Ok(link) => Box::new(link) as Box<dyn DutLink>,
+                    Err(e) => Box::new(Unreachable::new(&p.port, e)),
+                })
+                .collect())
         }
         other => Err(StationError::NotSerial(other.kind())),
     }

@@ -107,8 +107,9 @@ struct SimMeterArgs {
     /// Write the station file that wires the simulated bench here.
     #[arg(long)]
     station: Option<PathBuf>,
-    /// What the meters speak: text (a port each) or modbus (RTU, several on a bus).
-    #[arg(long, default_value = "text", value_parser = ["text", "modbus"])]
+    /// What the meters speak: text (a port each), modbus (RTU, several on a bus) or
+    /// iec62056_21 (the optical readout, a port each).
+    #[arg(long, default_value = "text", value_parser = ["text", "modbus", "iec62056_21"])]
     protocol: String,
     /// With --protocol modbus: how many buses (ports) the meters are spread over, in position
     /// order; each meter's address is its position number.

@@ -36,6 +36,7 @@ pub(super) fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
     config.plant_defect = !args.no_defect;
     let protocol = match args.protocol.as_str() {
         "modbus" => Protocol::Modbus { buses: args.buses },
+        "iec62056_21" => Protocol::Readout,
         _ => Protocol::Text,
     };
     if args.buses == 0 || args.buses > args.positions {

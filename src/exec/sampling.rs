@@ -115,6 +115,7 @@ fn read_once(
     k: u32,
     series: &mut Series,
 ) -> Option<String> {
+    link.begin_sample();
     for (w, want) in s.wanted.iter().enumerate() {
         let asked = s.clock.now_s();
         let reading = if want.raw {

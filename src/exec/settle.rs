@@ -106,7 +106,10 @@ fn read_round(
     waiting: &[bool],
     concurrent: bool,
 ) -> Vec<(usize, Option<f64>)> {
-    let read = |p: &mut Position| p.link.read(rule.quantity, &rule.channel).ok();
+    let read = |p: &mut Position| {
+        p.link.begin_sample();
+        p.link.read(rule.quantity, &rule.channel).ok()
+    };
     let due = positions
         .iter_mut()
         .enumerate()

@@ -6,6 +6,7 @@
 
 pub mod line;
 pub mod modbus;
+pub mod readout;
 pub mod text;
 
 use crate::plan::Quantity;
@@ -80,6 +81,12 @@ pub trait DutLink: Send {
     /// Reads one quantity on one channel, in the quantity's base unit. For register quantities
     /// (energy) this is the register's current content.
     fn read(&mut self, quantity: Quantity, channel: &str) -> Result<f64, LinkError>;
+
+    /// A new sample starts: the readings that follow must be taken now. A link that reads
+    /// several quantities in one exchange (a whole readout) keeps that exchange only within
+    /// one sample, and forgets it here, so no reading of an earlier sample, step or load is
+    /// ever handed out again.
+    fn begin_sample(&mut self) {}
 
     /// Reads one quantity as the front end counts it, before any conversion (for calibration).
     fn read_raw(&mut self, quantity: Quantity, channel: &str) -> Result<f64, LinkError> {

@@ -447,11 +447,8 @@ impl ModbusLink {
     }
 
     fn identity_field(&mut self, what: &str, field: &IdentityField) -> Result<String, LinkError> {
-        let text = match self.read_register(what, &field.register, 0)? {
-            Content::Text(t) => t,
-            Content::Number(n) => format!("{}", n as u64),
-        };
-        Ok(field.format.replace("{value}", &text))
+        let content = self.read_register(what, &field.register, 0)?;
+        Ok(identity_text(&field.format, &content))
     }
 
     /// The register offset of `channel`.
@@ -467,6 +464,16 @@ impl ModbusLink {
             })?;
         Ok(self.spec.channel_stride.saturating_mul(index as u16))
     }
+}
+
+/// An identity field as the plan's format writes it: `{value}` is the text, or the whole
+/// number in decimal.
+pub fn identity_text(format: &str, content: &Content) -> String {
+    let value = match content {
+        Content::Text(t) => t.clone(),
+        Content::Number(n) => format!("{}", *n as i64),
+    };
+    format.replace("{value}", &value)
 }
 
 /// Why a reply frame (CRC checked) is not the answer.
@@ -654,6 +661,14 @@ mod tests {
             decode(DataType::I16, WordOrder::HighFirst, &[0xFFFE]),
             Ok(Content::Number(-2.0))
         );
+    }
+
+    #[test]
+    fn a_number_becomes_a_serial_as_the_plan_writes_it() {
+        let n = decode(DataType::U32, WordOrder::HighFirst, &[0x0004, 0xEC32]).unwrap();
+        assert_eq!(identity_text("TM16-{value}", &n), "TM16-322610");
+        let t = Content::Text("2.1.4".into());
+        assert_eq!(identity_text("{value}", &t), "2.1.4");
     }
 
     #[test]

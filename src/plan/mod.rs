@@ -8,6 +8,7 @@ mod document;
 mod locate;
 pub mod modbus_link;
 mod raw;
+pub mod readout_link;
 pub mod text_link;
 pub mod units;
 mod validate;
@@ -137,6 +138,9 @@ pub enum LinkSpec {
     Text(Box<text_link::TextLinkSpec>),
     /// Modbus RTU over a serial line.
     Modbus(Box<modbus_link::ModbusLinkSpec>),
+    /// The IEC 62056-21 readout.
+    #[serde(rename = "iec62056_21")]
+    Readout(Box<readout_link::ReadoutLinkSpec>),
 }
 
 impl LinkSpec {
@@ -145,6 +149,7 @@ impl LinkSpec {
             LinkSpec::Sim { channels } => channels,
             LinkSpec::Text(t) => &t.channels,
             LinkSpec::Modbus(m) => &m.channels,
+            LinkSpec::Readout(r) => &r.channels,
         }
     }
 
@@ -154,6 +159,7 @@ impl LinkSpec {
             LinkSpec::Sim { .. } => None,
             LinkSpec::Text(t) => t.request_for(quantity).and_then(|q| q.resolution),
             LinkSpec::Modbus(m) => m.register_for(quantity).and_then(|q| q.resolution),
+            LinkSpec::Readout(r) => r.obis_for(quantity).and_then(|q| q.resolution),
         }
     }
 
@@ -169,6 +175,8 @@ impl LinkSpec {
                     .collect(),
             ),
             LinkSpec::Modbus(m) => Some(m.writes.iter().map(|w| (w.name.as_str(), true)).collect()),
+            // Reading only: the programming mode that writes is not used.
+            LinkSpec::Readout(_) => Some(Vec::new()),
         }
     }
 
@@ -178,6 +186,7 @@ impl LinkSpec {
             LinkSpec::Sim { .. } => true,
             LinkSpec::Text(t) => t.request_for(quantity).is_some(),
             LinkSpec::Modbus(m) => m.register_for(quantity).is_some(),
+            LinkSpec::Readout(r) => r.obis_for(quantity).is_some(),
         }
     }
 
@@ -186,6 +195,7 @@ impl LinkSpec {
             LinkSpec::Sim { .. } => "sim",
             LinkSpec::Text(_) => "text",
             LinkSpec::Modbus(_) => "modbus",
+            LinkSpec::Readout(_) => "iec62056_21",
         }
     }
 }

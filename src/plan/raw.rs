@@ -249,6 +249,51 @@ pub enum RawLink {
     Text(Box<RawTextLink>),
     /// Modbus RTU over a serial line.
     Modbus(Box<RawModbusLink>),
+    /// The IEC 62056-21 readout (mode C), optical or serial.
+    #[serde(rename = "iec62056_21")]
+    Readout(Box<RawReadoutLink>),
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawReadoutLink {
+    #[serde(default)]
+    pub port: RawPort,
+    #[serde(default)]
+    pub device_address: Option<Text>,
+    #[serde(default)]
+    pub baud_switch: Option<Text>,
+    #[serde(default)]
+    pub timeout: Option<Text>,
+    #[serde(default)]
+    pub retries: Option<Text>,
+    #[serde(default)]
+    pub max_bytes: Option<Text>,
+    #[serde(default)]
+    pub channels: Option<Vec<Text>>,
+    pub identity: RawReadoutIdentity,
+    #[serde(default)]
+    pub read: Option<Text>,
+    pub quantities: std::collections::BTreeMap<String, RawObis>,
+}
+
+/// Each field `identification` or an OBIS code.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawReadoutIdentity {
+    pub model: Text,
+    pub serial: Text,
+    pub firmware: Text,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawObis {
+    pub obis: Text,
+    #[serde(default)]
+    pub unit: Option<Text>,
+    #[serde(default)]
+    pub resolution: Option<Text>,
 }
 
 #[derive(Debug, Deserialize)]

@@ -21,6 +21,7 @@
 pub mod device;
 pub mod instruments;
 pub mod modbus_device;
+pub mod readout_device;
 pub mod served;
 
 use super::{

@@ -6,6 +6,7 @@
 use super::device::{Device, Faults, PtyDevice};
 use super::instruments::{REFERENCE_QUERIES, ScpiReferenceDevice, ScpiSourceDevice};
 use super::modbus_device::{self, BusUnit, ModbusBus};
+use super::readout_device::{self, ReadoutMeter};
 use super::{SimBench, SimConfig};
 use crate::bench::RealClock;
 use std::io;
@@ -20,6 +21,8 @@ pub enum Protocol {
     /// Modbus RTU, the meters spread over this many buses (ports), in position order, each at
     /// its position number as address.
     Modbus { buses: usize },
+    /// The IEC 62056-21 readout, a port (an optical probe) per meter.
+    Readout,
 }
 
 /// The served station; dropping it stops every device.
@@ -61,6 +64,15 @@ impl SimStation {
                     let handle = sim.meter(i);
                     serials.push(handle.identity().serial);
                     let device = PtyDevice::spawn(Device::new(handle, fault(i)))?;
+                    ports.push((device.path.clone(), None));
+                    meters.push(device);
+                }
+            }
+            Protocol::Readout => {
+                for i in 0..n {
+                    let handle = sim.meter(i);
+                    serials.push(handle.identity().serial);
+                    let device = readout_device::spawn(ReadoutMeter::new(handle, fault(i)))?;
                     ports.push((device.path.clone(), None));
                     meters.push(device);
                 }

@@ -5,6 +5,7 @@ mod checks;
 pub(super) mod link;
 mod modbus;
 pub(super) mod ratings;
+mod readout;
 mod steps;
 
 use super::document::{Ctx, Document, PlanErrors, channel_names};
@@ -256,6 +257,9 @@ fn link(ctx: &mut Ctx, raw: RawLink) -> Option<LinkSpec> {
         RawLink::Text(raw) => link::text_link(ctx, *raw).map(|t| LinkSpec::Text(Box::new(t))),
         RawLink::Modbus(raw) => {
             modbus::modbus_link(ctx, *raw).map(|m| LinkSpec::Modbus(Box::new(m)))
+        }
+        RawLink::Readout(raw) => {
+            readout::readout_link(ctx, *raw).map(|r| LinkSpec::Readout(Box::new(r)))
         }
     }
 }

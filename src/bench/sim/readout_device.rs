@@ -1,0 +1,146 @@
+//! A simulated meter answering the IEC 62056-21 readout (mode C) on a pseudo-terminal, from the
+//! same simulated world as every other simulated meter.
+//!
+//! Its identification is `/TMQ5TM-16` (TMQ: an invented manufacturer's letters; 5: it offers
+//! 9600 baud) and its readout the data lines of DEVELOPERS.md, "The TM-16 readout"; the plan
+//! `test-plans/demo-readout.yaml` describes it. The baud switch is followed but has no effect
+//! on a pseudo-terminal.
+
+use super::SimMeterHandle;
+use super::device::{Faults, PtyDevice};
+use crate::link::readout::{ACK, ETX, STX, bcc};
+use crate::plan::Quantity;
+use std::io::{self, Read, Write};
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::time::Duration;
+
+/// The data lines of the readout: OBIS code, quantity, unit and the factor from the base unit.
+pub const LINES: [(&str, Quantity, &str, f64); 8] = [
+    ("32.7.0", Quantity::Voltage, "V", 1.0),
+    ("31.7.0", Quantity::Current, "A", 1.0),
+    ("21.7.0", Quantity::ActivePower, "kW", 0.001),
+    ("23.7.0", Quantity::ReactivePower, "kvar", 0.001),
+    ("29.7.0", Quantity::ApparentPower, "kVA", 0.001),
+    ("33.7.0", Quantity::PowerFactor, "", 1.0),
+    ("14.7.0", Quantity::Frequency, "Hz", 1.0),
+    ("1.8.0", Quantity::ActiveEnergy, "kWh", 0.001),
+];
+
+/// The meter's side of the protocol, apart from any port.
+pub struct ReadoutMeter {
+    meter: SimMeterHandle,
+    faults: Faults,
+    requests: u64,
+    dead: bool,
+}
+
+impl ReadoutMeter {
+    pub fn new(meter: SimMeterHandle, faults: Faults) -> ReadoutMeter {
+        ReadoutMeter {
+            meter,
+            faults,
+            requests: 0,
+            dead: false,
+        }
+    }
+
+    /// The identification message, CR LF included.
+    fn identification(&self) -> Vec<u8> {
+        format!("/TMQ5{}\r\n", self.meter.identity().model).into_bytes()
+    }
+
+    /// The data message: STX, the data lines, `!`, ETX and the BCC.
+    pub fn message(&self) -> Vec<u8> {
+        let id = self.meter.identity();
+        let firmware = self.faults.firmware.clone().unwrap_or(id.firmware);
+        let mut block = format!(
+            "0.0.0({serial})\r\nC.1.0({serial})\r\n0.2.0({firmware})\r\n",
+            serial = id.serial
+        );
+        for (obis, q, unit, factor) in LINES {
+            let v = self.meter.read_value(q) * factor;
+            if unit.is_empty() {
+                block.push_str(&format!("{obis}({v:.6})\r\n"));
+            } else {
+                block.push_str(&format!("{obis}({v:.6}*{unit})\r\n"));
+            }
+        }
+        block.push_str("!\r\n");
+        let mut m = vec![STX];
+        m.extend_from_slice(block.as_bytes());
+        m.push(ETX);
+        let check = bcc(&m[1..]);
+        m.push(check);
+        m
+    }
+
+    /// Answers what `pending` holds once it is a whole request: the sign-on (the
+    /// identification) or the acknowledgement (the data message). `None` while incomplete.
+    fn take(&mut self, pending: &mut Vec<u8>) -> Option<Vec<u8>> {
+        let end = pending.windows(2).position(|w| w == b"\r\n")? + 2;
+        let request: Vec<u8> = pending.drain(..end).collect();
+        if request.first() == Some(&b'/') {
+            self.requests += 1;
+            let n = self.requests;
+            let every = |k: Option<u64>| k.is_some_and(|k| k > 0 && n.is_multiple_of(k));
+            if self.dead || self.faults.die_after.is_some_and(|d| n > d) {
+                self.dead = true;
+                return Some(Vec::new());
+            }
+            if every(self.faults.drop_every) || self.faults.reboot_after == Some(n) {
+                return Some(Vec::new());
+            }
+            return Some(self.identification());
+        }
+        if request.first() == Some(&ACK) && !self.dead {
+            let mut m = self.message();
+            let n = self.requests;
+            if self
+                .faults
+                .garble_every
+                .is_some_and(|k| k > 0 && n.is_multiple_of(k))
+            {
+                // A wrong block check: the message arrives whole, its check fails.
+                let last = m.len() - 1;
+                m[last] ^= 0x21;
+            }
+            return Some(m);
+        }
+        Some(Vec::new())
+    }
+}
+
+/// Serves the meter on a pseudo-terminal until dropped.
+pub fn spawn(mut meter: ReadoutMeter) -> io::Result<PtyDevice> {
+    PtyDevice::spawn_serving(move |port, stop, requests| serve(port, &mut meter, stop, requests))
+}
+
+fn serve(
+    mut port: serialport::TTYPort,
+    meter: &mut ReadoutMeter,
+    stop: &AtomicBool,
+    requests: &AtomicU64,
+) {
+    let _ = serialport::SerialPort::set_timeout(&mut port, Duration::from_millis(10));
+    let mut pending: Vec<u8> = Vec::new();
+    let mut buf = [0u8; 256];
+    while !stop.load(Ordering::SeqCst) {
+        match port.read(&mut buf) {
+            Ok(0) => std::thread::sleep(Duration::from_millis(1)),
+            Ok(n) => pending.extend_from_slice(&buf[..n]),
+            Err(e) if e.kind() == io::ErrorKind::TimedOut => {}
+            Err(_) => std::thread::sleep(Duration::from_millis(5)),
+        }
+        while let Some(reply) = meter.take(&mut pending) {
+            requests.fetch_add(1, Ordering::Relaxed);
+            if reply.is_empty() {
+                continue;
+            }
+            if !meter.faults.slow.is_zero() {
+                std::thread::sleep(meter.faults.slow);
+            }
+            let _ = port.write_all(&reply);
+            let _ = port.flush();
+        }
+    }
+}
