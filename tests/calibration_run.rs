@@ -194,6 +194,69 @@ fn calibration_over_serial_writes_reads_back_and_refuses_constants_that_did_not_
     }
 }
 
+/// The calibration plan over one simulated Modbus bus, every unit at its position number.
+fn modbus_run(faults: &[Faults]) -> Vec<UnitRecord> {
+    use meterproof::bench::sim::modbus_device::{self, BusUnit, ModbusBus};
+    use meterproof::link::modbus::{Bus, ModbusLink};
+    let p = plan("calibrate-modbus.yaml");
+    let LinkSpec::Modbus(spec) = &p.link else {
+        panic!()
+    };
+    let spec = Arc::new((**spec).clone());
+    let sim = SimBench::new(&config());
+    let units = (0..sim.positions())
+        .map(|i| {
+            let f = faults.get(i).cloned().unwrap_or_default();
+            BusUnit::new((i + 1) as u8, sim.meter(i), f)
+        })
+        .collect();
+    let device = modbus_device::spawn(ModbusBus { units }).unwrap();
+    let bus = Bus::open(&device.path, &spec).unwrap();
+    let mut bench = sim.into_bench();
+    for (i, pos) in bench.positions.iter_mut().enumerate() {
+        pos.link = Box::new(ModbusLink::new(bus.clone(), (i + 1) as u8, spec.clone()));
+    }
+    bench.parallel = true;
+    exec::run(&p, &mut bench, &ctx(), &mut Silent)
+}
+
+/// Constants go to holding registers as f64 with function 16 and come back from them
+/// bit for bit; a unit that acknowledges a write but keeps its old constants is caught by the
+/// read-back, on a bus as over a console.
+#[test]
+fn calibration_over_modbus_writes_registers_and_reads_them_back() {
+    let faults = [
+        Faults::default(),
+        Faults {
+            ignore_writes: true,
+            ..Faults::default()
+        },
+    ];
+    let over_bus = modbus_run(&faults);
+    let over_console = serial_run(&faults);
+    for (b, c) in over_bus.iter().zip(&over_console) {
+        assert_eq!(
+            b.verdict.status, c.verdict.status,
+            "{}: {:?} {:?}",
+            b.serial, b.verdict, b.calibration
+        );
+        let (cb, cc) = (
+            b.calibration.as_ref().unwrap(),
+            c.calibration.as_ref().unwrap(),
+        );
+        assert_eq!(cb.status, cc.status, "{}", b.serial);
+    }
+    let good = over_bus[0].calibration.as_ref().unwrap();
+    assert_eq!(good.status, CalibrationStatus::Written);
+    assert_eq!(
+        good.read_back, good.written,
+        "an f64 register reads back exactly"
+    );
+    let stubborn = over_bus[1].calibration.as_ref().unwrap();
+    assert_eq!(stubborn.status, CalibrationStatus::Mismatch);
+    assert_eq!(stubborn.read_back, Some((128.0, 2240.0)));
+}
+
 #[test]
 fn calibration_mistakes_in_a_plan_are_refused() {
     let text = std::fs::read_to_string("test-plans/calibrate-serial.yaml").unwrap();

@@ -96,7 +96,7 @@ fn units_on_two_buses_get_the_builtin_verdicts() {
 }
 
 #[test]
-fn busy_units_and_bad_checksums_are_retried_counted_and_shown() {
+fn silent_and_busy_units_and_bad_checksums_are_retried_counted_and_shown() {
     let dir = temp_dir("modbus-faults");
     let served = serve_at(
         &dir,
@@ -104,6 +104,8 @@ fn busy_units_and_bad_checksums_are_retried_counted_and_shown() {
         &[
             "--protocol",
             "modbus",
+            "--fault",
+            "1:drop-every=6",
             "--fault",
             "3:busy-every=7",
             "--fault",
@@ -125,6 +127,12 @@ fn busy_units_and_bad_checksums_are_retried_counted_and_shown() {
             UnitStatus::Accepted,
             UnitStatus::Accepted
         ]
+    );
+    // A request that got no reply is sent again (after the timeout).
+    let h1 = records[0].link_health.unwrap();
+    assert!(
+        h1.retries > 0 && h1.exceptions == 0 && h1.crc_errors == 0,
+        "{h1:?}"
     );
     let h3 = records[2].link_health.unwrap();
     assert!(h3.exceptions > 0 && h3.retries == h3.exceptions, "{h3:?}");

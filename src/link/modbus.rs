@@ -575,7 +575,8 @@ impl DutLink for ModbusLink {
             request: format!("write {name} = {value}"),
             why,
         })?;
-        let mut payload = [0u8; 250];
+        // Exactly the registers' bytes: the crate writes the whole buffer it is given.
+        let mut payload = vec![0u8; words.len() * 2];
         let request = if words.len() == 1 {
             Request::WriteSingleRegister(address, words[0])
         } else {
