@@ -374,3 +374,49 @@ fn a_value_in_another_unit_than_the_plan_says_names_its_line() {
     }
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// The sign-on goes at 300 baud and the data come at the rate the meter offered, once
+/// acknowledged: the simulated meter checks the rate the link set on the pseudo-terminal and
+/// sends noise to a reader at another rate, as a real line would deliver it.
+#[test]
+fn the_baud_rate_switch_is_followed_and_a_wrong_rate_gets_noise() {
+    let dir = temp_dir("readout-baud");
+    let served = serve_at(&dir, SCALE, &["--protocol", "iec62056_21"]);
+    let text = std::fs::read_to_string("test-plans/demo-readout.yaml").unwrap();
+    // Staying at 300 baud (acknowledging with rate character 0) works too, only slower.
+    let stay = dir.join("stay.yaml");
+    std::fs::write(
+        &stay,
+        text.replace("baud_switch: true", "baud_switch: false"),
+    )
+    .unwrap();
+    let (code, out, records) = run(
+        stay.to_str().unwrap(),
+        Some(&served.station),
+        &dir.join("s"),
+    );
+    assert_eq!(code, 1, "{out}");
+    assert_eq!(records[0].verdict.status, UnitStatus::Accepted, "{out}");
+    // A sign-on at 9600 baud is noise to a meter listening at 300.
+    let fast = dir.join("fast.yaml");
+    std::fs::write(
+        &fast,
+        text.replace("port: { baud: 300,", "port: { baud: 9600,"),
+    )
+    .unwrap();
+    let (code, out, records) = run(
+        fast.to_str().unwrap(),
+        Some(&served.station),
+        &dir.join("f"),
+    );
+    assert_ne!(code, 0, "{out}");
+    for r in &records {
+        assert_eq!(r.verdict.status, UnitStatus::Incomplete);
+        let why = r.verdict.reasons.join(" ");
+        assert!(
+            why.contains("could not identify the unit") && why.contains("stopped after 5 bytes"),
+            "{why}"
+        );
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -3,12 +3,14 @@
 //!
 //! Its identification is `/TMQ5TM-16` (TMQ: an invented manufacturer's letters; 5: it offers
 //! 9600 baud) and its readout the data lines of DEVELOPERS.md, "The TM-16 readout"; the plan
-//! `test-plans/demo-readout.yaml` describes it. The baud switch is followed but has no effect
-//! on a pseudo-terminal.
+//! `test-plans/demo-readout.yaml` describes it. The baud switch has no effect
+//! on the bytes of a pseudo-terminal, but its settings show it: the meter answers the sign-on
+//! only at 300 baud and sends its data at the rate it offered, and a reader at another rate
+//! gets noise, as on a real line.
 
 use super::SimMeterHandle;
 use super::device::{Faults, PtyDevice};
-use crate::link::readout::{ACK, ETX, STX, bcc};
+use crate::link::readout::{ACK, ETX, STX, baud_of, bcc};
 use crate::plan::Quantity;
 use std::io::{self, Read, Write};
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
@@ -75,8 +77,9 @@ impl ReadoutMeter {
     }
 
     /// Answers what `pending` holds once it is a whole request: the sign-on (the
-    /// identification) or the acknowledgement (the data message). `None` while incomplete.
-    fn take(&mut self, pending: &mut Vec<u8>) -> Option<Vec<u8>> {
+    /// identification) or the acknowledgement (the data message, with the baud rate it is to
+    /// be sent at). `None` while incomplete.
+    fn take(&mut self, pending: &mut Vec<u8>) -> Option<(Vec<u8>, u32)> {
         let end = pending.windows(2).position(|w| w == b"\r\n")? + 2;
         let request: Vec<u8> = pending.drain(..end).collect();
         if request.first() == Some(&b'/') {
@@ -85,14 +88,20 @@ impl ReadoutMeter {
             let every = |k: Option<u64>| k.is_some_and(|k| k > 0 && n.is_multiple_of(k));
             if self.dead || self.faults.die_after.is_some_and(|d| n > d) {
                 self.dead = true;
-                return Some(Vec::new());
+                return Some((Vec::new(), SIGN_ON_BAUD));
             }
             if every(self.faults.drop_every) || self.faults.reboot_after == Some(n) {
-                return Some(Vec::new());
+                return Some((Vec::new(), SIGN_ON_BAUD));
             }
-            return Some(self.identification());
+            return Some((self.identification(), SIGN_ON_BAUD));
         }
         if request.first() == Some(&ACK) && !self.dead {
+            // ACK V Z Y: the data go at the rate Z selects.
+            let rate = request
+                .get(2)
+                .copied()
+                .and_then(baud_of)
+                .unwrap_or(SIGN_ON_BAUD);
             let mut m = self.message();
             let n = self.requests;
             if self
@@ -104,15 +113,30 @@ impl ReadoutMeter {
                 let last = m.len() - 1;
                 m[last] ^= 0x21;
             }
-            return Some(m);
+            return Some((m, rate));
         }
-        Some(Vec::new())
+        Some((Vec::new(), SIGN_ON_BAUD))
     }
 }
 
 /// Serves the meter on a pseudo-terminal until dropped.
 pub fn spawn(mut meter: ReadoutMeter) -> io::Result<PtyDevice> {
     PtyDevice::spawn_serving(move |port, stop, requests| serve(port, &mut meter, stop, requests))
+}
+
+/// The sign-on rate of mode C.
+const SIGN_ON_BAUD: u32 = 300;
+
+/// Whether the other side has its line at `rate`, allowing it a moment to switch (a meter
+/// waits its reaction time before answering).
+fn line_at(port: &serialport::TTYPort, rate: u32) -> bool {
+    for _ in 0..100 {
+        if serialport::SerialPort::baud_rate(port).is_ok_and(|b| b == rate) {
+            return true;
+        }
+        std::thread::sleep(Duration::from_millis(2));
+    }
+    false
 }
 
 fn serve(
@@ -131,7 +155,7 @@ fn serve(
             Err(e) if e.kind() == io::ErrorKind::TimedOut => {}
             Err(_) => std::thread::sleep(Duration::from_millis(5)),
         }
-        while let Some(reply) = meter.take(&mut pending) {
+        while let Some((reply, rate)) = meter.take(&mut pending) {
             requests.fetch_add(1, Ordering::Relaxed);
             if reply.is_empty() {
                 continue;
@@ -139,6 +163,14 @@ fn serve(
             if !meter.faults.slow.is_zero() {
                 std::thread::sleep(meter.faults.slow);
             }
+            // A pseudo-terminal carries bytes at any rate, but its settings show the rate the
+            // other side set: a reader at another rate than the meter sends at would receive
+            // noise on a real line, and receives noise here.
+            let reply = if line_at(&port, rate) {
+                reply
+            } else {
+                vec![0x7F, 0x00, 0x7F, 0x78, 0x00]
+            };
             let _ = port.write_all(&reply);
             let _ = port.flush();
         }
