@@ -252,7 +252,10 @@ fn a_sim_plan_on_a_station_is_refused() {
         &[],
     );
     assert_eq!(code, 2);
-    assert!(out.contains("the plan needs a `text` link"), "{out}");
+    assert!(
+        out.contains("the plan needs a `text`, `modbus` or `iec62056_21` link"),
+        "{out}"
+    );
     std::fs::remove_dir_all(&dir).unwrap();
 }
 
