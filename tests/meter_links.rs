@@ -205,17 +205,29 @@ fn a_silent_unit_does_not_stall_the_others_on_its_bus() {
         &dir.join("out"),
     );
     assert_ne!(code, 0, "{text}");
-    let statuses: Vec<UnitStatus> = records.iter().map(|r| r.verdict.status).collect();
-    assert_eq!(
-        statuses,
-        [
-            UnitStatus::Incomplete,
-            UnitStatus::Rejected,
-            UnitStatus::Accepted,
-            UnitStatus::Accepted
-        ],
-        "{text}"
-    );
+    assert_eq!(records[0].verdict.status, UnitStatus::Incomplete, "{text}");
+    // The others finish every step with every sample: the silent unit held the bus for its
+    // timeouts, not for good. (Their verdicts are not asserted: readings that waited for the
+    // bus are stamped when they were answered, and an energy register's span that no longer
+    // matches the window widens U, which the guarded rule may then refuse.)
+    for r in &records[1..] {
+        assert_ne!(r.verdict.status, UnitStatus::Incomplete, "{text}");
+        for s in &r.steps {
+            for c in &s.checks {
+                let wanted = s.samples_planned as usize;
+                assert_eq!(
+                    c.samples.len(),
+                    wanted,
+                    "{} {} {}",
+                    r.serial,
+                    s.id,
+                    c.quantity.name()
+                );
+            }
+        }
+    }
+    // Position 2's phase defect is still found.
+    assert_eq!(records[1].verdict.status, UnitStatus::Rejected, "{text}");
     let reason = records[0]
         .steps
         .iter()

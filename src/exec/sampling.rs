@@ -139,15 +139,26 @@ fn read_once(
         match reading {
             Ok(value) => {
                 let answered = s.clock.now_s();
-                // After a retry only the attempt that was answered counts; the link knows it
-                // in real seconds.
-                let took = link
-                    .last_answered_in_s()
-                    .map_or(answered - asked, |real| real * s.clock.scale())
-                    .min(answered - asked)
-                    .max(0.0);
+                let scale = s.clock.scale();
+                let (t_s, took) = match link.reading_age_s() {
+                    // Taken in an earlier exchange of this sample: stamped when it was taken.
+                    Some(age) => {
+                        let took = link.last_answered_in_s().map_or(0.0, |real| real * scale);
+                        (answered - age * scale, took.max(0.0))
+                    }
+                    None => {
+                        // After a retry only the attempt that was answered counts; the link
+                        // knows it in real seconds.
+                        let took = link
+                            .last_answered_in_s()
+                            .map_or(answered - asked, |real| real * scale)
+                            .min(answered - asked)
+                            .max(0.0);
+                        (answered - took / 2.0, took)
+                    }
+                };
                 let sample = Sample {
-                    t_s: answered - took / 2.0,
+                    t_s,
                     value,
                     took_s: (took > 0.0).then_some(took),
                 };

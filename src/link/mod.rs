@@ -127,6 +127,14 @@ pub trait DutLink: Send {
         None
     }
 
+    /// Real seconds from the moment the last reading handed out stands for (the middle of the
+    /// exchange that took it) to now, for a link that hands out readings taken in an earlier
+    /// exchange of the same sample (a whole readout); `None` for a link whose every reading is
+    /// its own exchange, stamped from [`DutLink::last_answered_in_s`].
+    fn reading_age_s(&self) -> Option<f64> {
+        None
+    }
+
     /// How the link has fared so far, where the link counts it.
     fn health(&self) -> Option<LinkHealth> {
         None

@@ -320,6 +320,12 @@ impl ModbusLink {
             if attempt > 1 {
                 self.health.retries += 1;
             }
+            if attempt > 1 {
+                // Off the bus for a moment before trying again, so that the units waiting for
+                // it take their turn first (a lock is not a queue): a silent unit holds the
+                // others up by one timeout at a time, not by all its attempts.
+                std::thread::sleep(Duration::from_millis(2));
+            }
             let result = {
                 let mut bus = self.bus.lock().unwrap_or_else(|p| p.into_inner());
                 bus.exchange(&frame, self.address, timeout)

@@ -222,6 +222,8 @@ pub struct ReadoutLink {
     taken: Vec<Quantity>,
     health: LinkHealth,
     last_answered_s: Option<f64>,
+    /// The middle of the newest readout's data message: when its values stand.
+    data_at: Option<Instant>,
 }
 
 /// Why one attempt failed.
@@ -242,6 +244,7 @@ impl ReadoutLink {
             taken: Vec::new(),
             health: LinkHealth::default(),
             last_answered_s: None,
+            data_at: None,
         })
     }
 
@@ -320,7 +323,9 @@ impl ReadoutLink {
                 .is_some_and(|e| b.len() > e + 1)
         })?;
         let sets = parse_message(&message).map_err(Attempt::Bad)?;
-        self.last_answered_s = Some(acknowledged.elapsed().as_secs_f64());
+        let took = acknowledged.elapsed();
+        self.last_answered_s = Some(took.as_secs_f64());
+        self.data_at = Some(acknowledged + took / 2);
         Ok((id, sets))
     }
 
@@ -465,6 +470,10 @@ impl DutLink for ReadoutLink {
 
     fn last_answered_in_s(&self) -> Option<f64> {
         self.last_answered_s
+    }
+
+    fn reading_age_s(&self) -> Option<f64> {
+        self.data_at.map(|t| t.elapsed().as_secs_f64())
     }
 
     fn health(&self) -> Option<LinkHealth> {

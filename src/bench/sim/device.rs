@@ -232,6 +232,43 @@ impl PtyDevice {
     }
 }
 
+/// Serves a device that answers whole requests of bytes (frames, not lines) until told to
+/// stop: `answer` takes one whole request off the bytes received (`None` while there is none)
+/// and gives the bytes to send back, none for no reply. With `frames_end_in_silence`, bytes
+/// left when the line falls silent are dropped, as an RTU receiver drops a partial frame.
+pub fn serve_frames(
+    mut port: serialport::TTYPort,
+    stop: &AtomicBool,
+    requests: &AtomicU64,
+    silence: Duration,
+    frames_end_in_silence: bool,
+    mut answer: impl FnMut(&serialport::TTYPort, &mut Vec<u8>) -> Option<Vec<u8>>,
+) {
+    let _ = serialport::SerialPort::set_timeout(&mut port, silence);
+    let mut pending: Vec<u8> = Vec::new();
+    let mut buf = [0u8; 256];
+    while !stop.load(Ordering::SeqCst) {
+        match port.read(&mut buf) {
+            Ok(0) => std::thread::sleep(Duration::from_millis(1)),
+            Ok(n) => pending.extend_from_slice(&buf[..n]),
+            Err(e) if e.kind() == io::ErrorKind::TimedOut => {
+                if frames_end_in_silence {
+                    pending.clear();
+                }
+            }
+            // No client has the port open right now: wait for one.
+            Err(_) => std::thread::sleep(Duration::from_millis(5)),
+        }
+        while let Some(reply) = answer(&port, &mut pending) {
+            requests.fetch_add(1, Ordering::Relaxed);
+            if !reply.is_empty() {
+                let _ = port.write_all(&reply);
+                let _ = port.flush();
+            }
+        }
+    }
+}
+
 impl Drop for PtyDevice {
     fn drop(&mut self) {
         self.stop.store(true, Ordering::SeqCst);

@@ -7,7 +7,7 @@
 //! here is injected on purpose (a CRC made wrong, a busy unit), never by a second codec.
 
 use super::SimMeterHandle;
-use super::device::{Faults, PtyDevice};
+use super::device::{Faults, PtyDevice, serve_frames};
 use crate::link::modbus::{encode, encode_text};
 use crate::plan::Quantity;
 use crate::plan::modbus_link::{DataType, WordOrder};
@@ -15,8 +15,7 @@ use modbus_core::rtu::{self, Header, RequestAdu, ResponseAdu};
 use modbus_core::{
     Data, Exception, ExceptionResponse, FunctionCode, Request, RequestPdu, Response, ResponsePdu,
 };
-use std::io::{self, Read, Write};
-use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::io;
 use std::time::Duration;
 
 /// The quantities of the map, in register order: input register 2·k holds quantity k as f32,
@@ -288,44 +287,23 @@ fn function_of(request: &Request) -> FunctionCode {
 
 /// Serves the bus on a pseudo-terminal until dropped.
 pub fn spawn(mut bus: ModbusBus) -> io::Result<PtyDevice> {
-    PtyDevice::spawn_serving(move |port, stop, requests| serve(port, &mut bus, stop, requests))
-}
-
-fn serve(
-    mut port: serialport::TTYPort,
-    bus: &mut ModbusBus,
-    stop: &AtomicBool,
-    requests: &AtomicU64,
-) {
-    let _ = serialport::SerialPort::set_timeout(&mut port, Duration::from_millis(5));
-    let mut pending: Vec<u8> = Vec::new();
-    let mut buf = [0u8; 256];
-    while !stop.load(Ordering::SeqCst) {
-        match port.read(&mut buf) {
-            Ok(0) => std::thread::sleep(Duration::from_millis(1)),
-            Ok(n) => pending.extend_from_slice(&buf[..n]),
-            Err(e) if e.kind() == io::ErrorKind::TimedOut => {
-                // A silence: what is left is no frame (a receiver drops a partial frame).
-                pending.clear();
-            }
-            Err(_) => std::thread::sleep(Duration::from_millis(5)),
-        }
-        while let Some((address, reply)) = bus.take(&mut pending) {
-            if address == 0 && reply.is_empty() {
-                continue;
-            }
-            requests.fetch_add(1, Ordering::Relaxed);
-            if reply.is_empty() {
-                continue;
-            }
-            let delay = bus.delay_for(address);
-            if !delay.is_zero() {
-                std::thread::sleep(delay);
-            }
-            let _ = port.write_all(&reply);
-            let _ = port.flush();
-        }
-    }
+    PtyDevice::spawn_serving(move |port, stop, requests| {
+        serve_frames(
+            port,
+            stop,
+            requests,
+            Duration::from_millis(5),
+            true,
+            |_, pending| {
+                let (address, reply) = bus.take(pending)?;
+                let delay = bus.delay_for(address);
+                if !reply.is_empty() && !delay.is_zero() {
+                    std::thread::sleep(delay);
+                }
+                Some(reply)
+            },
+        )
+    })
 }
 
 #[cfg(test)]

@@ -9,11 +9,10 @@
 //! gets noise, as on a real line.
 
 use super::SimMeterHandle;
-use super::device::{Faults, PtyDevice};
+use super::device::{Faults, PtyDevice, serve_frames};
 use crate::link::readout::{ACK, ETX, STX, baud_of, bcc};
 use crate::plan::Quantity;
-use std::io::{self, Read, Write};
-use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::io;
 use std::time::Duration;
 
 /// The data lines of the readout: OBIS code, quantity, unit and the factor from the base unit.
@@ -121,7 +120,32 @@ impl ReadoutMeter {
 
 /// Serves the meter on a pseudo-terminal until dropped.
 pub fn spawn(mut meter: ReadoutMeter) -> io::Result<PtyDevice> {
-    PtyDevice::spawn_serving(move |port, stop, requests| serve(port, &mut meter, stop, requests))
+    PtyDevice::spawn_serving(move |port, stop, requests| {
+        serve_frames(
+            port,
+            stop,
+            requests,
+            Duration::from_millis(10),
+            false,
+            |port, pending| {
+                let (reply, rate) = meter.take(pending)?;
+                if reply.is_empty() {
+                    return Some(reply);
+                }
+                if !meter.faults.slow.is_zero() {
+                    std::thread::sleep(meter.faults.slow);
+                }
+                // A pseudo-terminal carries bytes at any rate, but its settings show the rate the
+                // other side set: a reader at another rate than the meter sends at would receive
+                // noise on a real line, and receives noise here.
+                Some(if line_at(port, rate) {
+                    reply
+                } else {
+                    vec![0x7F, 0x00, 0x7F, 0x78, 0x00]
+                })
+            },
+        )
+    })
 }
 
 /// The sign-on rate of mode C.
@@ -137,42 +161,4 @@ fn line_at(port: &serialport::TTYPort, rate: u32) -> bool {
         std::thread::sleep(Duration::from_millis(2));
     }
     false
-}
-
-fn serve(
-    mut port: serialport::TTYPort,
-    meter: &mut ReadoutMeter,
-    stop: &AtomicBool,
-    requests: &AtomicU64,
-) {
-    let _ = serialport::SerialPort::set_timeout(&mut port, Duration::from_millis(10));
-    let mut pending: Vec<u8> = Vec::new();
-    let mut buf = [0u8; 256];
-    while !stop.load(Ordering::SeqCst) {
-        match port.read(&mut buf) {
-            Ok(0) => std::thread::sleep(Duration::from_millis(1)),
-            Ok(n) => pending.extend_from_slice(&buf[..n]),
-            Err(e) if e.kind() == io::ErrorKind::TimedOut => {}
-            Err(_) => std::thread::sleep(Duration::from_millis(5)),
-        }
-        while let Some((reply, rate)) = meter.take(&mut pending) {
-            requests.fetch_add(1, Ordering::Relaxed);
-            if reply.is_empty() {
-                continue;
-            }
-            if !meter.faults.slow.is_zero() {
-                std::thread::sleep(meter.faults.slow);
-            }
-            // A pseudo-terminal carries bytes at any rate, but its settings show the rate the
-            // other side set: a reader at another rate than the meter sends at would receive
-            // noise on a real line, and receives noise here.
-            let reply = if line_at(&port, rate) {
-                reply
-            } else {
-                vec![0x7F, 0x00, 0x7F, 0x78, 0x00]
-            };
-            let _ = port.write_all(&reply);
-            let _ = port.flush();
-        }
-    }
 }

@@ -128,6 +128,41 @@ pub(super) fn choice<T: Copy>(
     }
 }
 
+/// A link's `timeout` (more than zero, at most 60 s) and `retries` (0 to 20), with the kind's
+/// defaults where the plan gives none.
+pub(super) fn timing(
+    ctx: &mut Ctx,
+    timeout: Option<&Text>,
+    retries: Option<&Text>,
+    defaults: (f64, u32),
+) -> (Option<f64>, Option<u32>) {
+    let timeout_s = ctx
+        .optional_value("link.timeout", timeout, Dimension::Time)
+        .map(|v| v.unwrap_or(defaults.0));
+    if let Some(t) = timeout_s
+        && !(t > 0.0 && t <= 60.0)
+    {
+        ctx.error(
+            "link.timeout",
+            "the timeout must be greater than zero and at most 60 s",
+        );
+    }
+    let retries = match retries {
+        None => Some(defaults.1),
+        Some(t) => match t.0.trim().parse::<u32>() {
+            Ok(n) if n <= 20 => Some(n),
+            _ => {
+                ctx.error(
+                    "link.retries",
+                    format!("expected a whole number from 0 to 20, got \"{}\"", t.0),
+                );
+                None
+            }
+        },
+    };
+    (timeout_s, retries)
+}
+
 /// Port settings under `prefix` (such as `link.port`), with the usual 115200 8N1 defaults.
 pub fn port_settings(
     ctx: &mut Ctx,
@@ -215,30 +250,7 @@ pub(super) fn text_link(ctx: &mut Ctx, raw: RawTextLink) -> Option<TextLinkSpec>
         LineEnding::Lf,
         &ENDINGS,
     );
-    let timeout_s = ctx
-        .optional_value("link.timeout", raw.timeout.as_ref(), Dimension::Time)
-        .map(|v| v.unwrap_or(0.5));
-    if let Some(t) = timeout_s
-        && !(t > 0.0 && t <= 60.0)
-    {
-        ctx.error(
-            "link.timeout",
-            "the timeout must be greater than zero and at most 60 s",
-        );
-    }
-    let retries = match &raw.retries {
-        None => Some(2),
-        Some(t) => match t.0.trim().parse::<u32>() {
-            Ok(n) if n <= 20 => Some(n),
-            _ => {
-                ctx.error(
-                    "link.retries",
-                    format!("expected a whole number from 0 to 20, got \"{}\"", t.0),
-                );
-                None
-            }
-        },
-    };
+    let (timeout_s, retries) = timing(ctx, raw.timeout.as_ref(), raw.retries.as_ref(), (0.5, 2));
     let pause_s = ctx
         .optional_value("link.pause", raw.pause.as_ref(), Dimension::Time)
         .map(|v| v.unwrap_or(0.0));

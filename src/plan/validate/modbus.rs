@@ -1,7 +1,7 @@
 //! Validation of the `modbus` link kind: the unit address, the bus timing, and every register
 //! (address, table, data type, word order, scale and unit), each mistake with its path.
 
-use super::link::{choice, number, port_settings, unit_factor};
+use super::link::{choice, number, port_settings, timing, unit_factor};
 use crate::plan::Quantity;
 use crate::plan::document::{Ctx, channel_names};
 use crate::plan::modbus_link::{
@@ -276,21 +276,7 @@ pub(super) fn modbus_link(ctx: &mut Ctx, raw: RawModbusLink) -> Option<ModbusLin
         WordOrder::HighFirst,
         &ORDERS,
     );
-    let timeout_s = ctx
-        .optional_value("link.timeout", raw.timeout.as_ref(), Dimension::Time)
-        .map(|v| v.unwrap_or(0.5));
-    if let Some(t) = timeout_s
-        && !(t > 0.0 && t <= 60.0)
-    {
-        ctx.error(
-            "link.timeout",
-            "the timeout must be greater than zero and at most 60 s",
-        );
-    }
-    let retries = match &raw.retries {
-        None => Some(2),
-        Some(t) => whole(ctx, "link.retries", t, 0..=20).map(|n| n as u32),
-    };
+    let (timeout_s, retries) = timing(ctx, raw.timeout.as_ref(), raw.retries.as_ref(), (0.5, 2));
     let turnaround_s = ctx
         .optional_value("link.turnaround", raw.turnaround.as_ref(), Dimension::Time)
         .map(|v| v.unwrap_or(0.0));

@@ -1,12 +1,11 @@
 //! Validation of the `iec62056_21` link kind: the sign-on, the identity's sources and each
 //! quantity's OBIS code and unit.
 
-use super::link::{choice, port_settings, unit_factor};
+use super::link::{choice, port_settings, timing, unit_factor};
 use crate::plan::Quantity;
 use crate::plan::document::{Ctx, channel_names};
 use crate::plan::raw::{RawReadoutLink, Text};
 use crate::plan::readout_link::{IdentitySource, ObisQuantity, ReadMode, ReadoutLinkSpec};
-use crate::plan::units::Dimension;
 
 /// An OBIS code as a data line writes it: `C.D.E` (each a number, or a letter for C such as
 /// `C.1.0`), optionally `A-B:` before it and `*F` or `&F` after it.
@@ -80,30 +79,8 @@ pub(super) fn readout_link(ctx: &mut Ctx, raw: RawReadoutLink) -> Option<Readout
         true,
         &[("true", true), ("false", false)],
     );
-    let timeout_s = ctx
-        .optional_value("link.timeout", raw.timeout.as_ref(), Dimension::Time)
-        .map(|v| v.unwrap_or(2.0));
-    if let Some(t) = timeout_s
-        && !(t > 0.0 && t <= 60.0)
-    {
-        ctx.error(
-            "link.timeout",
-            "the timeout must be greater than zero and at most 60 s",
-        );
-    }
-    let retries = match &raw.retries {
-        None => Some(1),
-        Some(t) => match t.0.trim().parse::<u32>() {
-            Ok(n) if n <= 20 => Some(n),
-            _ => {
-                ctx.error(
-                    "link.retries",
-                    format!("expected a whole number from 0 to 20, got \"{}\"", t.0),
-                );
-                None
-            }
-        },
-    };
+    // A readout at 300 baud is slow to start: a longer silence before it is given up.
+    let (timeout_s, retries) = timing(ctx, raw.timeout.as_ref(), raw.retries.as_ref(), (2.0, 1));
     let max_bytes = match &raw.max_bytes {
         None => Some(65_536),
         Some(t) => match t.0.trim().parse::<usize>() {
