@@ -1,4 +1,8 @@
 //! The archive's commands: resume an interrupted run, query, export and verify.
+//!
+//! Why one file of this length: eight small commands that share the archive's opening, its
+//! errors' rendering and the selectors (`run=`, `lot=`, a serial); each command is one
+//! function of its own.
 
 use super::{
     BenchOptions, BenchSpec, CliError, TerminalReporter, build_bench, exit_status, finish_run,

@@ -8,16 +8,18 @@
 //! 2 an invalid plan or invalid arguments; 3 the run could not complete.
 
 mod archive_cmds;
+mod bench_choice;
 mod check;
 mod explain;
 mod run;
 mod terminal;
 mod tools;
 
+use bench_choice::{BenchOptions, BenchSpec, build_bench, plan_at_bench, sim_positions};
 use check::check;
 use run::{
-    BenchOptions, BenchSpec, build_bench, fallback_dir, finish_run, lock_run, plan_at_bench,
-    resume_hint, run, set_aside_earlier_files, write_or_keep, write_outputs,
+    fallback_dir, finish_run, lock_run, resume_hint, run, set_aside_earlier_files, write_or_keep,
+    write_outputs,
 };
 use terminal::{
     TerminalReporter, Written, exit_status, print_summary, terminal_safe, terminal_safe_lines,

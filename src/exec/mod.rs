@@ -5,6 +5,11 @@
 //! events, and hands back one [`UnitRecord`] per position. A fault on one position's link marks
 //! that unit's step incomplete and keeps every reading already taken; the other positions carry
 //! on.
+//!
+//! Why one file of this length: it holds the run's phases in the order they happen (identify,
+//! announce, each step's load, settling and sampling, the final records), each a short function,
+//! so the whole run reads top to bottom in one place; what each phase does at length lives in
+//! the submodules.
 
 mod calibrate;
 mod decide;

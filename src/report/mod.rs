@@ -5,6 +5,10 @@
 //! render from any folder. A template given with `--templates DIR` replaces the embedded one of
 //! the same name. HTML templates are autoescaped (by their `.html` name) and undefined variables
 //! are errors, so a misspelt name in an edited template fails loudly instead of printing nothing.
+//!
+//! Why one file of this length: the text forms of numbers, limits, decisions and risks that
+//! the HTML, the CSV and JUnit all print sit beside the renderers that use them, so a report
+//! and its CSV can never word the same figure two ways.
 
 pub mod describe;
 pub mod explain;
