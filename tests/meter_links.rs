@@ -432,3 +432,58 @@ fn the_baud_rate_switch_is_followed_and_a_wrong_rate_gets_noise() {
     }
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// Register by register (programming mode, read command R1): the same verdicts as the built-in
+/// simulator, a wrong block check asked again, and a register the meter does not have named.
+#[test]
+fn register_by_register_reads_give_the_builtin_verdicts() {
+    let dir = temp_dir("readout-register");
+    let served = serve_at(
+        &dir,
+        SCALE,
+        &["--protocol", "iec62056_21", "--fault", "3:bad-crc-every=7"],
+    );
+    let text = std::fs::read_to_string("test-plans/demo-readout.yaml")
+        .unwrap()
+        .replace("read: readout ", "read: register ");
+    let plan = dir.join("register.yaml");
+    std::fs::write(&plan, &text).unwrap();
+    let (code, out, by_register) = run(
+        plan.to_str().unwrap(),
+        Some(&served.station),
+        &dir.join("r"),
+    );
+    assert_eq!(code, 1, "{out}");
+    let (_, _, builtin) = run("test-plans/demo.yaml", None, &dir.join("b"));
+    assert_eq!(verdicts(&by_register), verdicts(&builtin));
+    assert!(
+        by_register[0].link.contains("register by register"),
+        "{}",
+        by_register[0].link
+    );
+    let h3 = by_register[2].link_health.unwrap();
+    assert!(h3.crc_errors > 0 && h3.retries >= h3.crc_errors, "{h3:?}");
+    // A register the meter does not have: its answer is an error message, named as the
+    // meter's refusal and not asked again.
+    let missing = dir.join("missing.yaml");
+    std::fs::write(&missing, text.replace("{ obis: 32.7.0,", "{ obis: 52.7.0,")).unwrap();
+    let (_, out, records) = run(
+        missing.to_str().unwrap(),
+        Some(&served.station),
+        &dir.join("m"),
+    );
+    let reason = records[0]
+        .steps
+        .iter()
+        .find(|s| s.id == "basic-Ib")
+        .and_then(|s| s.reason.clone())
+        .unwrap_or_default();
+    assert!(
+        reason.contains(
+            "the unit refused read voltage (52.7.0): it answered (ERROR) for register 52.7.0"
+        ),
+        "{reason}\n{out}"
+    );
+    assert_eq!(records[0].link_health.unwrap().exceptions, 1);
+    std::fs::remove_dir_all(&dir).unwrap();
+}

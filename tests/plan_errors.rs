@@ -545,7 +545,7 @@ fn readout_link_mistakes_are_refused_with_their_place() {
         .replace("{ obis: 31.7.0, unit: A,", "{ obis: 31.7, unit: A,")
         .replace("{ obis: 32.7.0, unit: V,", "{ obis: 32.7.0, unit: kWh,")
         .replace("serial: C.1.0", "serial: the nameplate")
-        .replace("read: readout", "read: register")
+        .replace("read: readout", "read: one_by_one")
         .replace("max_bytes: 8192", "max_bytes: 10");
     let e = errors(&text);
     let found = |path: &str, words: &str| {
@@ -565,6 +565,9 @@ fn readout_link_mistakes_are_refused_with_their_place() {
         "link.identity.serial",
         "neither `identification` nor an OBIS code",
     );
-    found("link.read", "\"register\" is not one of readout");
+    found(
+        "link.read",
+        "\"one_by_one\" is not one of readout, register",
+    );
     found("link.max_bytes", "from 64 to");
 }

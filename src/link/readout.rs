@@ -16,14 +16,55 @@
 use super::line::open_port;
 use super::{DutLink, Identity, LinkError, LinkHealth};
 use crate::plan::Quantity;
-use crate::plan::readout_link::{IdentitySource, ReadoutLinkSpec};
+use crate::plan::readout_link::{IdentitySource, ReadMode, ReadoutLinkSpec};
 use std::io::{Read, Write};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
+pub const SOH: u8 = 0x01;
 pub const STX: u8 = 0x02;
 pub const ETX: u8 = 0x03;
 pub const ACK: u8 = 0x06;
+pub const NAK: u8 = 0x15;
+
+/// A programming-mode command: `SOH C D STX data ETX BCC` (or without `STX data` where
+/// `data` is `None`), the BCC over every byte after SOH.
+pub fn command(c: u8, d: u8, data: Option<&str>) -> Vec<u8> {
+    let mut m = vec![SOH, c, d];
+    if let Some(data) = data {
+        m.push(STX);
+        m.extend_from_slice(data.as_bytes());
+    }
+    m.push(ETX);
+    m.push(bcc(&m[1..]));
+    m
+}
+
+/// Reads a programming-mode data message `STX data ETX BCC` (the answer to a read command, or
+/// the operand after `SOH P0`): the data between the brackets, `OBIS(VALUE*UNIT)`.
+pub fn parse_data_message(message: &[u8]) -> Result<String, ReadoutError> {
+    let start = message.iter().position(|b| *b == STX).ok_or_else(|| {
+        ReadoutError::GarbageBeforeStx(message.len(), String::from_utf8_lossy(message).into_owned())
+    })?;
+    let etx = message
+        .iter()
+        .position(|b| *b == ETX)
+        .ok_or(ReadoutError::Unterminated(message.len()))?;
+    let got = *message
+        .get(etx + 1)
+        .ok_or(ReadoutError::Unterminated(message.len()))?;
+    // After SOH where the message has one, else after STX.
+    let from = if message.first() == Some(&SOH) {
+        1
+    } else {
+        start + 1
+    };
+    let want = bcc(&message[from..=etx]);
+    if got != want {
+        return Err(ReadoutError::Bcc { got, want });
+    }
+    Ok(String::from_utf8_lossy(&message[start + 1..etx]).into_owned())
+}
 
 /// The block check character: the exclusive OR of `bytes` (those after STX or SOH, up to and
 /// including ETX).
@@ -224,11 +265,26 @@ pub struct ReadoutLink {
     last_answered_s: Option<f64>,
     /// The middle of the newest readout's data message: when its values stand.
     data_at: Option<Instant>,
+    /// In register mode: the identification of the open programming session, if one is open.
+    session: Option<Identification>,
+}
+
+impl Drop for ReadoutLink {
+    /// Ends an open programming session (`SOH B0 ETX BCC`), so the meter does not wait for its
+    /// inactivity timeout before it can be read again.
+    fn drop(&mut self) {
+        if self.session.is_some() {
+            let _ = self.port.write_all(&command(b'B', b'0', None));
+            let _ = self.port.flush();
+        }
+    }
 }
 
 /// Why one attempt failed.
 enum Attempt {
     NoReply,
+    /// The meter answered with an error message of its own: asking again will not change it.
+    Refused(String),
     Bad(ReadoutError),
     Gone(String),
 }
@@ -245,6 +301,7 @@ impl ReadoutLink {
             health: LinkHealth::default(),
             last_answered_s: None,
             data_at: None,
+            session: None,
         })
     }
 
@@ -288,8 +345,11 @@ impl ReadoutLink {
             .map_err(|e| Attempt::Gone(e.to_string()))
     }
 
-    /// One whole readout.
-    fn readout_once(&mut self) -> Result<(Identification, Vec<DataSet>), Attempt> {
+    /// The sign-on: the request at the sign-on rate, the identification, and the
+    /// acknowledgement selecting `mode` (`b'0'` data readout, `b'1'` programming) at the rate
+    /// the meter offers (or the sign-on rate), switched to. Returns the identification and the
+    /// moment of the acknowledgement.
+    fn sign_on(&mut self, mode: u8) -> Result<(Identification, Instant), Attempt> {
         let sign_on = self.spec.port.baud;
         self.port
             .set_baud_rate(sign_on)
@@ -307,15 +367,31 @@ impl ReadoutLink {
         } else {
             (b'0', sign_on)
         };
-        self.send(&[ACK, b'0', z, b'0', b'\r', b'\n'])?;
-        // The meter takes its values once acknowledged: the readings stand for the time from
-        // here to the end of the message, not for the sign-on before it.
+        self.send(&[ACK, b'0', z, mode, b'\r', b'\n'])?;
         let acknowledged = Instant::now();
         if rate != sign_on {
             self.port
                 .set_baud_rate(rate)
                 .map_err(|e| Attempt::Gone(e.to_string()))?;
         }
+        Ok((id, acknowledged))
+    }
+
+    /// A whole message up to its BCC (ETX and one byte more), or a lone NAK.
+    fn receive_message(&mut self, max: usize) -> Result<Vec<u8>, Attempt> {
+        self.receive(max, |b| {
+            b.first() == Some(&NAK)
+                || b.iter()
+                    .position(|x| *x == ETX)
+                    .is_some_and(|e| b.len() > e + 1)
+        })
+    }
+
+    /// One whole readout.
+    fn readout_once(&mut self) -> Result<(Identification, Vec<DataSet>), Attempt> {
+        // The meter takes its values once acknowledged: the readings stand for the time from
+        // the acknowledgement to the end of the message, not for the sign-on before it.
+        let (id, acknowledged) = self.sign_on(b'0')?;
         let max = self.spec.max_bytes;
         let message = self.receive(max, |b| {
             b.iter()
@@ -344,29 +420,102 @@ impl ReadoutLink {
                     self.taken.clear();
                     return Ok(());
                 }
-                Err(Attempt::NoReply) => {
-                    last = Some(LinkError::Timeout {
-                        request: what.to_string(),
-                        timeout_ms: (self.spec.timeout_s * 1000.0).round() as u64,
-                        attempts,
-                    })
-                }
-                Err(Attempt::Bad(e)) => {
-                    if matches!(e, ReadoutError::Bcc { .. }) {
-                        self.health.crc_errors += 1;
-                    } else {
-                        self.health.not_understood += 1;
-                    }
-                    last = Some(LinkError::Garbled {
-                        request: what.to_string(),
-                        reply: String::new(),
-                        why: e.to_string(),
-                    });
-                }
-                Err(Attempt::Gone(why)) => return Err(LinkError::Disconnected(why)),
+                Err(e) => last = Some(self.failed(e, what)?),
             }
         }
         Err(last.expect("at least one attempt"))
+    }
+
+    /// One register read in programming mode (`R1`), signing on first where no session is
+    /// open: the data set the meter answers.
+    fn register_once(&mut self, obis: &str) -> Result<DataSet, Attempt> {
+        if self.session.is_none() {
+            let (id, _) = self.sign_on(b'1')?;
+            // The meter answers with its operand (`SOH P0 STX (…) ETX BCC`); no password is
+            // sent, so only registers readable without one can be read.
+            let operand = self.receive_message(256)?;
+            parse_data_message(&operand).map_err(Attempt::Bad)?;
+            self.session = Some(id);
+        }
+        let asked = Instant::now();
+        self.send(&command(b'R', b'1', Some(&format!("{obis}()"))))?;
+        let reply = self.receive_message(1024)?;
+        self.last_answered_s = Some(asked.elapsed().as_secs_f64());
+        if reply.first() == Some(&NAK) {
+            return Err(Attempt::Bad(ReadoutError::Line {
+                line: 1,
+                text: format!("{obis}()"),
+                why: "the meter refused the request (NAK)".into(),
+            }));
+        }
+        let data = parse_data_message(&reply).map_err(Attempt::Bad)?;
+        if data.starts_with('(') {
+            return Err(Attempt::Refused(format!(
+                "it answered {data} for register {obis}"
+            )));
+        }
+        let sets = data_sets(1, &data).map_err(Attempt::Bad)?;
+        sets.into_iter()
+            .find(|s| same_obis(&s.obis, obis))
+            .ok_or_else(|| {
+                Attempt::Bad(ReadoutError::Line {
+                    line: 1,
+                    text: data.clone(),
+                    why: format!("the answer is not register {obis} (an error message?)"),
+                })
+            })
+    }
+
+    /// A register read with the link's retries; a failed attempt closes the session, so the
+    /// next signs on afresh.
+    fn register(&mut self, obis: &str, what: &str) -> Result<DataSet, LinkError> {
+        let attempts = self.spec.retries + 1;
+        let mut last = None;
+        for attempt in 1..=attempts {
+            self.health.requests += 1;
+            if attempt > 1 {
+                self.health.retries += 1;
+            }
+            match self.register_once(obis) {
+                Ok(set) => return Ok(set),
+                Err(e) => {
+                    self.session = None;
+                    last = Some(self.failed(e, what)?);
+                }
+            }
+        }
+        Err(last.expect("at least one attempt"))
+    }
+
+    /// What a failed attempt is, counted; `Err` where trying again is no use.
+    fn failed(&mut self, e: Attempt, what: &str) -> Result<LinkError, LinkError> {
+        match e {
+            Attempt::NoReply => Ok(LinkError::Timeout {
+                request: what.to_string(),
+                timeout_ms: (self.spec.timeout_s * 1000.0).round() as u64,
+                attempts: self.spec.retries + 1,
+            }),
+            Attempt::Bad(e) => {
+                if matches!(e, ReadoutError::Bcc { .. }) {
+                    self.health.crc_errors += 1;
+                } else {
+                    self.health.not_understood += 1;
+                }
+                Ok(LinkError::Garbled {
+                    request: what.to_string(),
+                    reply: String::new(),
+                    why: e.to_string(),
+                })
+            }
+            Attempt::Refused(why) => {
+                self.health.exceptions += 1;
+                Err(LinkError::Refused {
+                    request: what.to_string(),
+                    why,
+                })
+            }
+            Attempt::Gone(why) => Err(LinkError::Disconnected(why)),
+        }
     }
 
     fn data_set(&self, obis: &str) -> Option<&DataSet> {
@@ -401,8 +550,36 @@ impl DutLink for ReadoutLink {
     }
 
     fn identify(&mut self) -> Result<Identity, LinkError> {
-        self.readout("the identity (a readout)")?;
         let spec = self.spec.clone();
+        if spec.read == ReadMode::Register {
+            let mut field = |what: &str, source: &IdentitySource| -> Result<String, LinkError> {
+                match source {
+                    IdentitySource::Obis(code) => self
+                        .register(code, &format!("read {what} ({code})"))
+                        .map(|s| s.value.trim().to_string()),
+                    IdentitySource::Identification => {
+                        if self.session.is_none() {
+                            // Any register signs on; the identification comes with it.
+                            let _ = self.register("0.0.0", &format!("read {what}"));
+                        }
+                        self.session
+                            .as_ref()
+                            .map(|id| id.ident.trim().to_string())
+                            .ok_or_else(|| LinkError::Timeout {
+                                request: format!("read {what}"),
+                                timeout_ms: (spec.timeout_s * 1000.0).round() as u64,
+                                attempts: spec.retries + 1,
+                            })
+                    }
+                }
+            };
+            return Ok(Identity {
+                model: field("the model", &spec.model)?,
+                serial: field("the serial number", &spec.serial)?,
+                firmware: field("the firmware version", &spec.firmware)?,
+            });
+        }
+        self.readout("the identity (a readout)")?;
         let identity = Identity {
             model: self.identity_field("the model", &spec.model)?,
             serial: self.identity_field("the serial number", &spec.serial)?,
@@ -422,18 +599,21 @@ impl DutLink for ReadoutLink {
             });
         };
         let what = format!("read {} ({})", quantity.name(), q.obis);
-        if self.last.is_none() || self.taken.contains(&quantity) {
-            self.readout(&what)?;
-        }
-        self.taken.push(quantity);
-        let set = self
-            .data_set(&q.obis)
-            .cloned()
-            .ok_or_else(|| LinkError::Garbled {
-                request: what.clone(),
-                reply: String::new(),
-                why: format!("the readout has no data line {}", q.obis),
-            })?;
+        let set = if spec.read == ReadMode::Register {
+            self.register(&q.obis, &what)?
+        } else {
+            if self.last.is_none() || self.taken.contains(&quantity) {
+                self.readout(&what)?;
+            }
+            self.taken.push(quantity);
+            self.data_set(&q.obis)
+                .cloned()
+                .ok_or_else(|| LinkError::Garbled {
+                    request: what.clone(),
+                    reply: String::new(),
+                    why: format!("the readout has no data line {}", q.obis),
+                })?
+        };
         let line_error = |why: String| LinkError::Garbled {
             request: what.clone(),
             reply: set.text.clone(),
@@ -465,7 +645,10 @@ impl DutLink for ReadoutLink {
     }
 
     fn describe(&self) -> String {
-        format!("{} (IEC 62056-21 readout)", self.path)
+        match self.spec.read {
+            ReadMode::Readout => format!("{} (IEC 62056-21 readout)", self.path),
+            ReadMode::Register => format!("{} (IEC 62056-21, register by register)", self.path),
+        }
     }
 
     fn last_answered_in_s(&self) -> Option<f64> {
@@ -473,7 +656,11 @@ impl DutLink for ReadoutLink {
     }
 
     fn reading_age_s(&self) -> Option<f64> {
-        self.data_at.map(|t| t.elapsed().as_secs_f64())
+        // A register read is its own exchange; a readout's values are all of one moment.
+        match self.spec.read {
+            ReadMode::Register => None,
+            ReadMode::Readout => self.data_at.map(|t| t.elapsed().as_secs_f64()),
+        }
     }
 
     fn health(&self) -> Option<LinkHealth> {
@@ -491,6 +678,16 @@ mod tests {
     fn the_block_check_of_the_published_vector() {
         let after_soh = b"P0\x02(1234567)\x03";
         assert_eq!(bcc(after_soh), 0x50);
+        // The same message as the link builds it, and read back.
+        let m = command(b'P', b'0', Some("(1234567)"));
+        assert_eq!(m, b"\x01P0\x02(1234567)\x03\x50");
+        assert_eq!(parse_data_message(&m).unwrap(), "(1234567)");
+        let mut bad = m.clone();
+        bad[4] = b'9';
+        assert!(matches!(
+            parse_data_message(&bad),
+            Err(ReadoutError::Bcc { .. })
+        ));
     }
 
     /// A data block of two lines and the end line gives BCC 0x43 (computed with the published

@@ -15,6 +15,9 @@ use serde::Serialize;
 pub enum ReadMode {
     /// The whole data readout (mode C, readout mode), once per sample for every quantity.
     Readout,
+    /// One register at a time (mode C, programming mode, read command R1), for meters that
+    /// allow it: fresher values and shorter exchanges than a whole readout.
+    Register,
 }
 
 /// One quantity: its OBIS code and the unit the meter writes.

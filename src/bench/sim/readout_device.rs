@@ -10,7 +10,7 @@
 
 use super::SimMeterHandle;
 use super::device::{Faults, PtyDevice, serve_frames};
-use crate::link::readout::{ACK, ETX, STX, baud_of, bcc};
+use crate::link::readout::{ACK, ETX, NAK, SOH, STX, baud_of, bcc};
 use crate::plan::Quantity;
 use std::io;
 use std::time::Duration;
@@ -33,6 +33,8 @@ pub struct ReadoutMeter {
     faults: Faults,
     requests: u64,
     dead: bool,
+    /// The rate of an open programming session, where one is open.
+    programming: Option<u32>,
 }
 
 impl ReadoutMeter {
@@ -42,6 +44,7 @@ impl ReadoutMeter {
             faults,
             requests: 0,
             dead: false,
+            programming: None,
         }
     }
 
@@ -50,38 +53,99 @@ impl ReadoutMeter {
         format!("/TMQ5{}\r\n", self.meter.identity().model).into_bytes()
     }
 
-    /// The data message: STX, the data lines, `!`, ETX and the BCC.
-    pub fn message(&self) -> Vec<u8> {
+    /// The data sets, `OBIS(VALUE*UNIT)`, in readout order.
+    fn data_sets(&self) -> Vec<String> {
         let id = self.meter.identity();
         let firmware = self.faults.firmware.clone().unwrap_or(id.firmware);
-        let mut block = format!(
-            "0.0.0({serial})\r\nC.1.0({serial})\r\n0.2.0({firmware})\r\n",
-            serial = id.serial
-        );
+        let mut sets = vec![
+            format!("0.0.0({})", id.serial),
+            format!("C.1.0({})", id.serial),
+            format!("0.2.0({firmware})"),
+        ];
         for (obis, q, unit, factor) in LINES {
             let v = self.meter.read_value(q) * factor;
-            if unit.is_empty() {
-                block.push_str(&format!("{obis}({v:.6})\r\n"));
+            sets.push(if unit.is_empty() {
+                format!("{obis}({v:.6})")
             } else {
-                block.push_str(&format!("{obis}({v:.6}*{unit})\r\n"));
-            }
+                format!("{obis}({v:.6}*{unit})")
+            });
         }
+        sets
+    }
+
+    /// The data message: STX, the data lines, `!`, ETX and the BCC.
+    pub fn message(&self) -> Vec<u8> {
+        let mut block: String = self
+            .data_sets()
+            .iter()
+            .map(|l| format!("{l}\r\n"))
+            .collect();
         block.push_str("!\r\n");
-        let mut m = vec![STX];
-        m.extend_from_slice(block.as_bytes());
-        m.push(ETX);
-        let check = bcc(&m[1..]);
-        m.push(check);
-        m
+        framed(&block)
+    }
+
+    /// Whether this request's reply gets a wrong block check.
+    fn garbles(&self) -> bool {
+        let n = self.requests;
+        self.faults
+            .garble_every
+            .is_some_and(|k| k > 0 && n.is_multiple_of(k))
+    }
+
+    /// A programming-mode command `SOH C D [STX data] ETX BCC`: a read (`R1`) answered with
+    /// its register, the break (`B0`) closing the session; a bad BCC answered NAK.
+    fn command(&mut self, request: &[u8]) -> Vec<u8> {
+        let etx = request.len() - 2;
+        if bcc(&request[1..=etx]) != request[etx + 1] {
+            return vec![NAK];
+        }
+        match (request.get(1), request.get(2)) {
+            (Some(b'B'), Some(b'0')) => {
+                self.programming = None;
+                Vec::new()
+            }
+            (Some(b'R'), Some(b'1')) if request.get(3) == Some(&STX) => {
+                self.requests += 1;
+                let asked = String::from_utf8_lossy(&request[4..etx]).into_owned();
+                let address = asked.trim_end_matches("()");
+                let answer = self
+                    .data_sets()
+                    .into_iter()
+                    .find(|set| set.split('(').next() == Some(address))
+                    .unwrap_or_else(|| "(ERROR)".into());
+                let mut m = framed(&answer);
+                if self.garbles() {
+                    let last = m.len() - 1;
+                    m[last] ^= 0x21;
+                }
+                m
+            }
+            _ => vec![NAK],
+        }
     }
 
     /// Answers what `pending` holds once it is a whole request: the sign-on (the
     /// identification) or the acknowledgement (the data message, with the baud rate it is to
     /// be sent at). `None` while incomplete.
     fn take(&mut self, pending: &mut Vec<u8>) -> Option<(Vec<u8>, u32)> {
+        if pending.first() == Some(&SOH) {
+            // A command ends one byte after its ETX.
+            let end = pending.iter().position(|b| *b == ETX)? + 2;
+            if pending.len() < end {
+                return None;
+            }
+            let request: Vec<u8> = pending.drain(..end).collect();
+            let rate = self.programming.unwrap_or(SIGN_ON_BAUD);
+            if self.dead || self.programming.is_none() {
+                return Some((Vec::new(), rate));
+            }
+            return Some((self.command(&request), rate));
+        }
         let end = pending.windows(2).position(|w| w == b"\r\n")? + 2;
         let request: Vec<u8> = pending.drain(..end).collect();
         if request.first() == Some(&b'/') {
+            // A sign-on ends any session.
+            self.programming = None;
             self.requests += 1;
             let n = self.requests;
             let every = |k: Option<u64>| k.is_some_and(|k| k > 0 && n.is_multiple_of(k));
@@ -101,13 +165,16 @@ impl ReadoutMeter {
                 .copied()
                 .and_then(baud_of)
                 .unwrap_or(SIGN_ON_BAUD);
+            // ACK V Z 1: programming mode, the operand (the serial) first.
+            if request.get(3) == Some(&b'1') {
+                self.programming = Some(rate);
+                let operand =
+                    command_message(b'P', b'0', &format!("({})", self.meter.identity().serial));
+                return Some((operand, rate));
+            }
+            self.programming = None;
             let mut m = self.message();
-            let n = self.requests;
-            if self
-                .faults
-                .garble_every
-                .is_some_and(|k| k > 0 && n.is_multiple_of(k))
-            {
+            if self.garbles() {
                 // A wrong block check: the message arrives whole, its check fails.
                 let last = m.len() - 1;
                 m[last] ^= 0x21;
@@ -116,6 +183,21 @@ impl ReadoutMeter {
         }
         Some((Vec::new(), SIGN_ON_BAUD))
     }
+}
+
+/// `STX text ETX BCC`.
+fn framed(text: &str) -> Vec<u8> {
+    let mut m = vec![STX];
+    m.extend_from_slice(text.as_bytes());
+    m.push(ETX);
+    let check = bcc(&m[1..]);
+    m.push(check);
+    m
+}
+
+/// `SOH C D STX text ETX BCC`, the check over every byte after SOH.
+fn command_message(c: u8, d: u8, text: &str) -> Vec<u8> {
+    crate::link::readout::command(c, d, Some(text))
 }
 
 /// Serves the meter on a pseudo-terminal until dropped.

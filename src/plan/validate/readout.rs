@@ -112,7 +112,10 @@ pub(super) fn readout_link(ctx: &mut Ctx, raw: RawReadoutLink) -> Option<Readout
         "link.read",
         raw.read.as_ref(),
         ReadMode::Readout,
-        &[("readout", ReadMode::Readout)],
+        &[
+            ("readout", ReadMode::Readout),
+            ("register", ReadMode::Register),
+        ],
     );
     let mut quantities = Vec::new();
     let mut ok = true;
