@@ -413,6 +413,22 @@ fn the_baud_rate_switch_is_followed_and_a_wrong_rate_gets_noise() {
     );
     assert_eq!(code, 1, "{out}");
     assert_eq!(records[0].verdict.status, UnitStatus::Accepted, "{out}");
+    // A sign-on with a device address reaches only the meter of that address (the simulated
+    // meters' address is their serial).
+    let other = dir.join("other.yaml");
+    std::fs::write(
+        &other,
+        text.replace("device_address: ''", "device_address: 'TM16-999999'"),
+    )
+    .unwrap();
+    let (code, out, records) = run(
+        other.to_str().unwrap(),
+        Some(&served.station),
+        &dir.join("o"),
+    );
+    assert_ne!(code, 0, "{out}");
+    let why = records[0].verdict.reasons.join(" ");
+    assert!(why.contains("no reply"), "{why}");
     // A sign-on at 9600 baud is noise to a meter listening at 300.
     let fast = dir.join("fast.yaml");
     std::fs::write(

@@ -156,6 +156,17 @@ impl ReadoutMeter {
             if every(self.faults.drop_every) || self.faults.reboot_after == Some(n) {
                 return Some((Vec::new(), SIGN_ON_BAUD));
             }
+            // `/?!` for whichever meter is there, `/?ADDRESS!` for this one only: its device
+            // address is its serial number.
+            let asked = String::from_utf8_lossy(&request).into_owned();
+            let address = asked
+                .trim_end()
+                .strip_prefix("/?")
+                .and_then(|a| a.strip_suffix('!'))
+                .unwrap_or("");
+            if !address.is_empty() && address != self.meter.identity().serial {
+                return Some((Vec::new(), SIGN_ON_BAUD));
+            }
             return Some((self.identification(), SIGN_ON_BAUD));
         }
         if request.first() == Some(&ACK) && !self.dead {

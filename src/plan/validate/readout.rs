@@ -61,12 +61,15 @@ pub(super) fn readout_link(ctx: &mut Ctx, raw: RawReadoutLink) -> Option<Readout
         None => Some(String::new()),
         Some(t) => {
             let a = t.0.trim();
-            if a.len() <= 32 && a.chars().all(|c| c.is_ascii_alphanumeric() || c == ' ') {
+            if a.len() <= 32
+                && a.chars()
+                    .all(|c| c.is_ascii_alphanumeric() || c == ' ' || c == '-')
+            {
                 Some(a.to_string())
             } else {
                 ctx.error(
                     "link.device_address",
-                    "a device address is at most 32 letters, digits and spaces",
+                    "a device address is at most 32 letters, digits, spaces and hyphens",
                 );
                 None
             }
