@@ -380,3 +380,44 @@ fn a_coarse_register_keeps_sampling() {
         "coarse ones go on: {coarse:?}"
     );
 }
+
+/// A unit that answers, but later than the link's timeout: each late reply arrives while a
+/// later request waits. It is set aside and counted as late, never read as the answer to the
+/// later request nor reported as "not understood"; the unit is INCOMPLETE with a reason that
+/// says its replies come after the timeout.
+#[test]
+fn replies_later_than_the_timeout_are_named_as_such() {
+    let serial_plan = plan("demo-serial.yaml");
+    let mut config = SimConfig::new(1, 2);
+    config.plant_defect = false;
+    let faults = [
+        // 400 ms a reply against the plan's 250 ms timeout.
+        Faults {
+            slow: Duration::from_millis(400),
+            ..Faults::default()
+        },
+        Faults::default(),
+    ];
+    let (mut bench, _devices) = serial_bench(&serial_plan, &config, &faults);
+    let records = run(&serial_plan, &mut bench);
+    let late = &records[0];
+    assert_eq!(late.verdict.status, UnitStatus::Incomplete);
+    let reasons: Vec<&String> = late
+        .steps
+        .iter()
+        .filter_map(|s| s.reason.as_ref())
+        .collect();
+    assert!(!reasons.is_empty());
+    for r in &reasons {
+        assert!(
+            r.contains("within 250 ms")
+                && r.contains("the unit answers more slowly than the link's timeout allows"),
+            "{r}"
+        );
+        assert!(!r.contains("not understood"), "{r}");
+    }
+    let h = late.link_health.unwrap();
+    assert!(h.late_replies > 0 && h.not_understood == 0, "{h:?}");
+    // The punctual unit beside it is untouched.
+    assert_eq!(records[1].verdict.status, UnitStatus::Accepted);
+}

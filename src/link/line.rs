@@ -93,8 +93,11 @@ pub struct LinkStats {
     pub transactions: u64,
     pub retries: u64,
     pub skipped_lines: u64,
-    /// Lines that matched no reply pattern (garbled, or late replies to earlier requests).
+    /// Lines that matched no reply pattern (garbled).
     pub not_understood: u64,
+    /// Replies that came after their request's timeout (recognised by the reply pattern of a
+    /// request that had timed out), set aside.
+    pub late_replies: u64,
     /// Restart lines seen: the device restarted this many times.
     pub restarts: u64,
 }
@@ -111,6 +114,9 @@ pub struct LineChannel<W: Wire> {
     last_answered_in: Option<Duration>,
     /// Whether the device has answered anything yet.
     answered_once: bool,
+    /// Replies still owed to attempts that timed out: the reply pattern, until when a line
+    /// matching it is taken as that late reply.
+    owed: Vec<(regex::Regex, Instant)>,
     pub stats: LinkStats,
 }
 
@@ -132,6 +138,7 @@ impl<W: Wire> LineChannel<W> {
             last_transaction_end: None,
             last_answered_in: None,
             answered_once: false,
+            owed: Vec::new(),
             stats: LinkStats::default(),
         }
     }
@@ -156,9 +163,17 @@ impl<W: Wire> LineChannel<W> {
     }
 
     /// Sends `request` and returns the first line that matches `reply`.
+    ///
+    /// A reply that comes after its attempt's timeout is still on its way when the next
+    /// request goes out. Each attempt that timed out leaves a reply owed; a line that matches
+    /// no reply pattern of this request but the pattern of an owed one is that late reply, set
+    /// aside and counted as late, never read as an answer to something else nor reported as
+    /// not understood. (Within a retry of the same request a late reply cannot be told from the
+    /// retry's own: it answers the same question and is taken.)
     pub fn transact(&mut self, request: &str, reply: &regex::Regex) -> Result<String, LinkError> {
         let attempts = 1 + self.settings.retries;
         let mut last_garbled: Option<String> = None;
+        let mut late = 0u64;
         self.stats.transactions += 1;
         for attempt in 1..=attempts {
             if attempt > 1 {
@@ -168,7 +183,8 @@ impl<W: Wire> LineChannel<W> {
             self.discard_stale()?;
             let sent = Instant::now();
             self.send(request)?;
-            let deadline = sent + Duration::from_secs_f64(self.settings.timeout_s);
+            let timeout = Duration::from_secs_f64(self.settings.timeout_s);
+            let deadline = sent + timeout;
             while let Some(line) = self.next_line(deadline)? {
                 if self.is_noise(request, &line) {
                     continue;
@@ -180,26 +196,55 @@ impl<W: Wire> LineChannel<W> {
                     self.answered_once = true;
                     return Ok(line);
                 }
-                // A stale reply to an earlier request may come before the one to this request:
-                // keep listening until the deadline.
+                if self.is_late(&line) {
+                    self.stats.late_replies += 1;
+                    late += 1;
+                    continue;
+                }
+                // Keep listening until the deadline: the reply may still come.
                 self.stats.not_understood += 1;
                 last_garbled = Some(line);
             }
+            // This attempt's reply, if it ever comes, comes late. It is looked out for while
+            // a unit could plausibly still send it.
+            self.owed
+                .push((reply.clone(), Instant::now() + timeout * 20));
         }
         self.last_transaction_end = Some(Instant::now());
         self.last_answered_in = None;
+        let timeout_ms = (self.settings.timeout_s * 1000.0).round() as u64;
         Err(match last_garbled {
             Some(line) => LinkError::Garbled {
                 request: request.to_string(),
                 reply: line,
                 why: "it does not match the reply pattern".into(),
             },
+            None if late > 0 => LinkError::TooSlow {
+                request: request.to_string(),
+                timeout_ms,
+                attempts,
+                late,
+            },
             None => LinkError::Timeout {
                 request: request.to_string(),
-                timeout_ms: (self.settings.timeout_s * 1000.0).round() as u64,
+                timeout_ms,
                 attempts,
             },
         })
+    }
+
+    /// Whether `line` is a reply owed to an attempt that timed out (and takes it off the
+    /// owed list).
+    fn is_late(&mut self, line: &str) -> bool {
+        let now = Instant::now();
+        self.owed.retain(|(_, until)| *until > now);
+        match self.owed.iter().position(|(r, _)| r.is_match(line)) {
+            Some(i) => {
+                self.owed.remove(i);
+                true
+            }
+            None => false,
+        }
     }
 
     fn is_noise(&mut self, request: &str, line: &str) -> bool {

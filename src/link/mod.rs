@@ -42,6 +42,9 @@ pub struct LinkHealth {
     /// Frames whose checksum did not match (CRC, BCC), on links that check one.
     #[serde(default, skip_serializing_if = "is_zero")]
     pub crc_errors: u64,
+    /// Replies that came after their request's timeout, set aside.
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub late_replies: u64,
 }
 
 fn is_zero(n: &u64) -> bool {
@@ -56,6 +59,15 @@ pub enum LinkError {
         request: String,
         timeout_ms: u64,
         attempts: u32,
+    },
+    #[error(
+        "no reply to {request} within {timeout_ms} ms (after {attempts} attempts), and replies arriving after their timeout ({late}): the unit answers more slowly than the link's timeout allows"
+    )]
+    TooSlow {
+        request: String,
+        timeout_ms: u64,
+        attempts: u32,
+        late: u64,
     },
     #[error("reply to {request} not understood: {reply:?} ({why})")]
     Garbled {

@@ -220,6 +220,7 @@ impl<W: Wire> DutLink for TextLink<W> {
             not_understood: s.not_understood,
             restarts: s.restarts,
             reconnects: self.reconnects,
+            late_replies: s.late_replies,
             ..Default::default()
         })
     }
