@@ -28,10 +28,19 @@ pub enum Interrupted {
     EndOfInput,
 }
 
+/// What else a front end draws on the operator's screen (a progress bar). It steps aside
+/// while the console shows a line or waits for an answer, so that no prompt is ever hidden or
+/// drawn over.
+pub trait Screen: Send + Sync {
+    /// Runs `f` with the screen's own drawing cleared and paused, and draws it again after.
+    fn aside(&self, f: &mut dyn FnMut());
+}
+
 /// Prompts on standard error; answers from standard input (or any line source, for tests).
 pub struct Console {
     lines: Receiver<String>,
     interrupt: Arc<AtomicBool>,
+    screen: Option<Arc<dyn Screen>>,
 }
 
 impl Console {
@@ -50,11 +59,35 @@ impl Console {
         Console {
             lines: rx,
             interrupt,
+            screen: None,
         }
+    }
+
+    /// Has `screen` step aside whenever the console prints or waits.
+    pub fn set_screen(&mut self, screen: Arc<dyn Screen>) {
+        self.screen = Some(screen);
+    }
+
+    fn with_screen_aside<T>(&self, f: impl FnOnce() -> T) -> T {
+        let Some(screen) = &self.screen else {
+            return f();
+        };
+        let mut f = Some(f);
+        let mut out = None;
+        screen.aside(&mut || {
+            if let Some(f) = f.take() {
+                out = Some(f());
+            }
+        });
+        out.expect("the screen ran the prompt")
     }
 
     /// Prints `prompt` and waits for one line.
     pub fn ask(&self, prompt: &str) -> Result<String, Interrupted> {
+        self.with_screen_aside(|| self.ask_now(prompt))
+    }
+
+    fn ask_now(&self, prompt: &str) -> Result<String, Interrupted> {
         eprint!("{prompt}");
         let _ = std::io::stderr().flush();
         loop {
@@ -75,7 +108,7 @@ impl Console {
 
     /// Prints a line for the operator.
     pub fn say(&self, text: &str) {
-        eprintln!("{text}");
+        self.with_screen_aside(|| eprintln!("{text}"));
     }
 }
 
@@ -351,6 +384,7 @@ mod tests {
         let console = Arc::new(Mutex::new(Console {
             lines: rx,
             interrupt: Arc::new(AtomicBool::new(false)),
+            screen: None,
         }));
         let mut reference = TypedReference::new(console, 0.10);
         let load = crate::plan::Load {

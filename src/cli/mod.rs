@@ -318,7 +318,11 @@ static INTERRUPT: std::sync::LazyLock<Arc<AtomicBool>> =
 fn console() -> SharedConsole {
     static CONSOLE: std::sync::OnceLock<SharedConsole> = std::sync::OnceLock::new();
     CONSOLE
-        .get_or_init(|| Arc::new(Mutex::new(Console::stdin(INTERRUPT.clone()))))
+        .get_or_init(|| {
+            let mut c = Console::stdin(INTERRUPT.clone());
+            c.set_screen(terminal::bar_slot());
+            Arc::new(Mutex::new(c))
+        })
         .clone()
 }
 

@@ -86,16 +86,45 @@ pub(super) fn exit_status(records: &[UnitRecord]) -> i32 {
     }
 }
 
+/// The progress bar on screen now, if any, for the console to put aside while it prompts.
+#[derive(Default)]
+pub(super) struct BarSlot(Mutex<Option<indicatif::ProgressBar>>);
+
+impl crate::bench::operator::Screen for BarSlot {
+    fn aside(&self, f: &mut dyn FnMut()) {
+        let bar = self.0.lock().unwrap_or_else(|p| p.into_inner()).clone();
+        match bar {
+            // Cleared and held still until `f` returns: the bar's ticker waits meanwhile.
+            Some(bar) => bar.suspend(f),
+            None => f(),
+        }
+    }
+}
+
+/// The one progress-bar slot of this process: the terminal reporter puts its bar there, the
+/// operator's console puts it aside.
+pub(super) fn bar_slot() -> Arc<BarSlot> {
+    static SLOT: std::sync::OnceLock<Arc<BarSlot>> = std::sync::OnceLock::new();
+    SLOT.get_or_init(Default::default).clone()
+}
+
 /// Progress on standard error, one line per step.
 pub(super) struct TerminalReporter {
     quiet: bool,
     /// The bar of the step being measured, and the flag that stops its ticker.
     bar: Option<(indicatif::ProgressBar, Arc<AtomicBool>)>,
+    slot: Arc<BarSlot>,
 }
 
 impl TerminalReporter {
+    /// A reporter whose bar steps aside for the operator's console (both share
+    /// [`bar_slot`]).
     pub(super) fn new(quiet: bool) -> TerminalReporter {
-        TerminalReporter { quiet, bar: None }
+        TerminalReporter {
+            quiet,
+            bar: None,
+            slot: bar_slot(),
+        }
     }
 
     /// A bar with the time left while a step settles and samples; indicatif draws nothing
@@ -124,10 +153,12 @@ impl TerminalReporter {
             }
             b.finish_and_clear();
         });
+        *self.slot.0.lock().unwrap_or_else(|p| p.into_inner()) = Some(bar.clone());
         self.bar = Some((bar, stop));
     }
 
     fn stop_bar(&mut self) {
+        *self.slot.0.lock().unwrap_or_else(|p| p.into_inner()) = None;
         if let Some((bar, stop)) = self.bar.take() {
             stop.store(true, Ordering::SeqCst);
             bar.finish_and_clear();
