@@ -579,3 +579,74 @@ fn an_energy_inferred_from_power_keeps_both_ends_and_their_drift() {
     drop(served);
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// A serial mistyped at the scan is not fatal: before the first load the operator is asked to
+/// scan that unit again; a scan that matches lets it take part (the first scan kept in its
+/// notes), Enter leaves it out as before.
+#[test]
+fn a_mistyped_serial_may_be_scanned_again_before_the_first_load() {
+    use std::io::Write;
+    let dir = temp_dir("rescan");
+    let served = serve(&dir, &[]);
+    let scan = |answer: &str, out: &str| {
+        let mut child = common::bin()
+            .args([
+                "run",
+                "test-plans/demo-serial.yaml",
+                "--ask",
+                "--unattended",
+                "--bench",
+            ])
+            .arg(&served.station)
+            .arg("--out")
+            .arg(dir.join(out))
+            .stdin(Stdio::piped())
+            .stdout(Stdio::piped())
+            .stderr(Stdio::piped())
+            .spawn()
+            .unwrap();
+        let input =
+            format!("op-3\nLOT-5\nTM16-322610\nTM16-32261l\nTM16-322612\nTM16-322613\n{answer}\n");
+        child
+            .stdin
+            .take()
+            .unwrap()
+            .write_all(input.as_bytes())
+            .unwrap();
+        let o = child.wait_with_output().unwrap();
+        let stderr = String::from_utf8_lossy(&o.stderr).into_owned();
+        let mut records = common::records_in(&dir.join(out));
+        records.sort_by_key(|r| r.position);
+        (stderr, records)
+    };
+    let (stderr, records) = scan("TM16-322611", "again");
+    assert!(
+        stderr.contains("Position 2: TM16-32261l was scanned, but the unit there reports TM16-322611. Scan it again"),
+        "{stderr}"
+    );
+    // Tested like the others: the simulator's defect in position 2 is found.
+    assert_eq!(records[1].verdict.status, UnitStatus::Rejected, "{stderr}");
+    assert!(
+        records[1]
+            .notes
+            .iter()
+            .any(|n| n.contains("first scanned as TM16-32261l")),
+        "{:?}",
+        records[1].notes
+    );
+    // Enter: the unit sits out, with the reason it always had.
+    let (stderr, records) = scan("", "out");
+    assert_eq!(
+        records[1].verdict.status,
+        UnitStatus::Incomplete,
+        "{stderr}"
+    );
+    assert!(
+        records[1].verdict.reasons[0]
+            .contains("was given serial TM16-32261l, but the unit reports TM16-322611"),
+        "{:?}",
+        records[1].verdict
+    );
+    assert_eq!(records[0].verdict.status, UnitStatus::Accepted, "{stderr}");
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -308,6 +308,9 @@ pub struct Bench {
     pub parallel: bool,
     /// Set by Ctrl-C: the run stops at the next reading, keeps what it took, and ends.
     pub interrupt: Arc<std::sync::atomic::AtomicBool>,
+    /// Who to ask when a unit reports another serial than the one scanned for its position
+    /// (before any load): the operator, who may scan it again. None: the unit sits out.
+    pub rescan: Option<Box<dyn operator::Rescan>>,
 }
 
 #[cfg(test)]

@@ -115,6 +115,27 @@ impl Console {
 /// A console shared by the parts of the bench that talk to the operator.
 pub type SharedConsole = Arc<Mutex<Console>>;
 
+/// Asked, before any load, when a unit reports another serial than the one scanned for its
+/// position: the serial scanned again, or `None` to leave the unit out of the run.
+pub trait Rescan: Send {
+    fn rescan(&mut self, position: usize, scanned: &str, reported: &str) -> Option<String>;
+}
+
+/// The operator, asked at the console to scan a unit again.
+pub struct ConsoleRescan(pub SharedConsole);
+
+impl Rescan for ConsoleRescan {
+    fn rescan(&mut self, position: usize, scanned: &str, reported: &str) -> Option<String> {
+        let console = lock(&self.0);
+        let answer = console
+            .ask(&format!(
+                "Position {position}: {scanned} was scanned, but the unit there reports {reported}. Scan it again (Enter leaves it out of the run): "
+            ))
+            .ok()?;
+        (!answer.is_empty()).then_some(answer)
+    }
+}
+
 fn lock(c: &SharedConsole) -> std::sync::MutexGuard<'_, Console> {
     c.lock().unwrap_or_else(|p| p.into_inner())
 }

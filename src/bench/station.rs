@@ -668,6 +668,7 @@ pub fn build_bench(
         positions,
         parallel: true,
         interrupt: Default::default(),
+        rescan: None,
     })
 }
 

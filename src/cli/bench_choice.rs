@@ -157,9 +157,9 @@ pub(super) fn station_bench(
     }
     let needs_operator = matches!(station.source, station::SourceSpec::Manual)
         || matches!(station.reference.read, station::ReferenceRead::Operator);
-    let serials = match serials {
-        None if options.ask() => Some(ask_serials(station.positions.len())?),
-        other => other,
+    let (serials, scanned_here) = match serials {
+        None if options.ask() => (Some(ask_serials(station.positions.len())?), true),
+        other => (other, false),
     };
     let mut bench = station::build_bench(&station, plan, needs_operator.then(console)).map_err(
         |e| match e {
@@ -173,6 +173,10 @@ pub(super) fn station_bench(
         for (p, s) in bench.positions.iter_mut().zip(serials) {
             p.expected_serial = Some(s);
         }
+    }
+    // Serials scanned at this console may be scanned again when a unit reports another.
+    if scanned_here {
+        bench.rescan = Some(Box::new(ConsoleRescan(console())));
     }
     bench.interrupt = INTERRUPT.clone();
     guard_source(&bench);

@@ -28,7 +28,7 @@ use tools::{export_templates, ports, sim_meter};
 
 use crate::archive::{Archive, RunRecorder, RunRow, RunState};
 use crate::bench::Bench;
-use crate::bench::operator::{Console, ManualSource, SharedConsole, TypedReference};
+use crate::bench::operator::{Console, ConsoleRescan, ManualSource, SharedConsole, TypedReference};
 use crate::bench::reference_file::FileReference;
 use crate::bench::sim::{SimBench, SimConfig};
 use crate::bench::station::{self, Station};

@@ -20,6 +20,7 @@ pub(super) fn identify_all(
         .iter_mut()
         .map(|p| identify(plan, p, ctx, &bench.station, started_at))
         .collect();
+    rescan_mismatches(plan, bench, &mut units);
     refuse_shared_serials(&mut units);
     let mut replaced: Vec<UnitRecord> = Vec::new();
     if let Some(r) = resume {
@@ -222,6 +223,49 @@ pub(super) fn replaced_record(
     }
     r.verdict = verdict;
     r
+}
+
+/// A unit whose serial is not the one scanned for its position may be scanned again, up to
+/// three times, before any load: a scan that now matches lets it take part (the first scan is
+/// kept in its notes), anything else leaves it out as before.
+fn rescan_mismatches(plan: &Plan, bench: &mut Bench, units: &mut [Unit]) {
+    let Some(rescan) = bench.rescan.as_mut() else {
+        return;
+    };
+    for (unit, position) in units.iter_mut().zip(bench.positions.iter_mut()) {
+        let (Some(identity), Some(scanned)) =
+            (&unit.record.identity, position.expected_serial.clone())
+        else {
+            continue;
+        };
+        if unit.active || identity.serial == scanned {
+            continue;
+        }
+        let mut last = scanned.clone();
+        for _ in 0..3 {
+            let Some(again) = rescan.rescan(position.number, &last, &identity.serial) else {
+                break;
+            };
+            if again == identity.serial {
+                position.expected_serial = Some(again);
+                match refusal_reason(plan, position, identity) {
+                    None => {
+                        unit.active = true;
+                        unit.record.verdict.reasons.clear();
+                    }
+                    Some((status, reason)) => {
+                        unit.record.verdict.status = status;
+                        unit.record.verdict.reasons = vec![reason];
+                    }
+                }
+                unit.record.notes.push(format!(
+                    "serial scanned again before the first load: first scanned as {scanned}"
+                ));
+                break;
+            }
+            last = again;
+        }
+    }
 }
 
 /// Why a unit that answered must not be tested, if it must not.

@@ -521,6 +521,7 @@ impl SimBench {
             positions,
             parallel: false,
             interrupt: Default::default(),
+            rescan: None,
         }
     }
 }
