@@ -86,6 +86,14 @@ fn a_typed_session_with_mistakes_gets_the_right_verdicts() {
         stderr.contains("refused: expected a current such as \"5 A\", but \"500 mV\" is a voltage"),
         "{stderr}"
     );
+    // The energy window's start is cued, once for the one step with an energy check.
+    assert_eq!(
+        stderr
+            .matches("The energy window starts now: note the reference meter's energy counter.")
+            .count(),
+        1,
+        "{stderr}"
+    );
     // The caution once per run, not at every prompt, and no line of it wider than 80 columns.
     assert_eq!(
         stderr.matches("CAUTION: mains voltage").count(),

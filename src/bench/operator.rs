@@ -290,7 +290,34 @@ fn now() -> String {
     chrono::Local::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, false)
 }
 
+/// An energy typed as the reference counter's two readings, `START to END` (each with its
+/// unit): the energy of the window between them.
+fn counter_span(text: &str, q: crate::plan::Quantity) -> Result<f64, String> {
+    let (start, end) = text.split_once(" to ").expect("checked by the caller");
+    let read = |t: &str| {
+        units::parse_with(t, q.dimension(), DecimalSeparator::PointOrComma)
+            .map_err(|e| e.to_string())
+    };
+    let (start, end) = (read(start)?, read(end)?);
+    if end < start {
+        return Err(format!(
+            "the counter went backwards (from {} to {}): type both readings again",
+            units::Display(start, q.dimension()),
+            units::Display(end, q.dimension())
+        ));
+    }
+    Ok(end - start)
+}
+
 impl ReferenceMeter for TypedReference {
+    /// The cue to note the reference's energy counter: the window starts as this returns.
+    fn window_starts(&mut self, _at_s: f64) -> Result<(), BenchError> {
+        let console = lock(&self.console);
+        console.say("  The energy window starts now: note the reference meter's energy counter.");
+        console.say("  At the end type its two readings, as 1000 Wh to 1010.2 Wh, or the energy.");
+        Ok(())
+    }
+
     fn read(&mut self, request: &ReferenceRequest) -> Result<ReferenceReading, BenchError> {
         let q = request.quantity;
         let nominal = request.load.nominal(q, request.window.1 - request.window.0);
@@ -330,7 +357,13 @@ impl ReferenceMeter for TypedReference {
                 }
                 continue;
             }
-            match units::parse_with(&text, q.dimension(), DecimalSeparator::PointOrComma) {
+            let parsed = if q.is_register() && text.contains(" to ") {
+                counter_span(&text, q)
+            } else {
+                units::parse_with(&text, q.dimension(), DecimalSeparator::PointOrComma)
+                    .map_err(|e| e.to_string())
+            };
+            match parsed {
                 Err(e) => {
                     console.say(&format!("  refused: {e}"));
                     entries.push(TypedEntry {
@@ -422,6 +455,57 @@ mod tests {
                 window: (0.0, 4.0),
             })
             .unwrap()
+    }
+
+    /// A typed energy over a 10 s window at 16 A, 230 V (nominal 10.222 Wh), through a console
+    /// fed `lines`.
+    fn typed_energy(lines: &[&str]) -> ReferenceReading {
+        let (tx, rx) = channel();
+        for l in lines {
+            tx.send(l.to_string()).unwrap();
+        }
+        drop(tx);
+        let console = Arc::new(Mutex::new(Console {
+            lines: rx,
+            interrupt: Arc::new(AtomicBool::new(false)),
+            screen: None,
+        }));
+        let mut reference = TypedReference::new(console, 0.10);
+        let load = crate::plan::Load {
+            voltage: 230.0,
+            current: 16.0,
+            phase_deg: 0.0,
+            frequency: 50.0,
+        };
+        reference.window_starts(0.0).unwrap();
+        reference
+            .read(&ReferenceRequest {
+                step_id: "max-Imax",
+                quantity: crate::plan::Quantity::ActiveEnergy,
+                load: &load,
+                window: (0.0, 10.0),
+            })
+            .unwrap()
+    }
+
+    /// The counter's two readings give the window's energy (the energy itself is still taken
+    /// as before); a counter that went backwards is refused and both are asked again.
+    #[test]
+    fn a_typed_energy_from_the_counter_readings() {
+        let span = typed_energy(&["1000 Wh to 1010.2 Wh", ""]);
+        assert!((span.value - 10.2).abs() < 1e-9, "{}", span.value);
+        assert_eq!(span.as_given.as_deref(), Some("1000 Wh to 1010.2 Wh"));
+        let kwh = typed_energy(&["1,000 kWh to 1,0102 kWh", ""]);
+        assert!((kwh.value - 10.2).abs() < 1e-9, "{}", kwh.value);
+        let direct = typed_energy(&["10.2 Wh", ""]);
+        assert!((direct.value - 10.2).abs() < 1e-12);
+        let backwards = typed_energy(&["1010.2 Wh to 1000 Wh", "1000 Wh to 1010.2 Wh", ""]);
+        assert!((backwards.value - 10.2).abs() < 1e-9);
+        assert!(
+            backwards.entries[0].outcome.contains("went backwards"),
+            "{:?}",
+            backwards.entries
+        );
     }
 
     /// The plausibility limit at its edge (the plan's `reference_plausibility`, 10 % by
