@@ -244,7 +244,11 @@ fn check_accepts_every_shipped_plan() {
         "{}",
         String::from_utf8_lossy(&output.stderr)
     );
-    let stdout = String::from_utf8_lossy(&output.stdout);
+    // Lines are wrapped at 80 columns: read the text with its breaks as spaces.
+    let stdout = String::from_utf8_lossy(&output.stdout)
+        .split_whitespace()
+        .collect::<Vec<_>>()
+        .join(" ");
     assert!(
         stdout.contains("5 steps, 13 checks, scheduled bench time 40.5 s"),
         "{stdout}"
@@ -268,4 +272,80 @@ fn check_accepts_every_shipped_plan() {
     ] {
         assert!(stdout.contains(shown), "{shown}\n{stdout}");
     }
+}
+
+/// What the commands print fits 80 columns (the run's table, `check` of every shipped plan,
+/// `history`, `runs`), and carries no colour codes when it is not a terminal or NO_COLOR is
+/// set; forced colour marks the verdict words, which read the same without it.
+#[test]
+fn terminal_output_fits_80_columns_and_colour_is_never_alone() {
+    let dir = temp_dir("columns");
+    let out = dir.join("out");
+    let run = |env: &[(&str, &str)]| {
+        let mut c = bin();
+        c.args([
+            "run",
+            "test-plans/demo.yaml",
+            "--quiet",
+            "--lot",
+            "LOT-80",
+            "--out",
+        ])
+        .arg(&out);
+        c.env_remove("NO_COLOR");
+        for (k, v) in env {
+            c.env(k, v);
+        }
+        c.output().unwrap()
+    };
+    let plain = run(&[]);
+    let archive = out.join("archive.sqlite");
+    let coloured = run(&[("CLICOLOR_FORCE", "1")]);
+    let no_colour = run(&[("CLICOLOR_FORCE", "1"), ("NO_COLOR", "1")]);
+    let text = |o: &std::process::Output| String::from_utf8_lossy(&o.stdout).into_owned();
+    let mut outputs = vec![text(&plain)];
+    for args in [
+        vec!["history", "TM16-322611", "--archive"],
+        vec!["runs", "--archive"],
+    ] {
+        let o = bin().args(&args).arg(&archive).output().unwrap();
+        outputs.push(text(&o));
+    }
+    let plans: Vec<String> = std::fs::read_dir("test-plans")
+        .unwrap()
+        .map(|e| e.unwrap().path().display().to_string())
+        .filter(|p| p.ends_with(".yaml"))
+        .collect();
+    let o = bin().arg("check").args(&plans).output().unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    outputs.push(text(&o));
+    for output in &outputs {
+        for line in output.lines() {
+            assert!(
+                line.chars().count() <= 80,
+                "{} columns: {line}",
+                line.chars().count()
+            );
+        }
+        assert!(
+            !output.contains('\u{1b}'),
+            "colour codes in piped output: {output}"
+        );
+    }
+    assert!(outputs[2].contains("yield 75.0 %"), "{}", outputs[2]);
+    assert!(
+        outputs[1].lines().nth(1).unwrap().contains(" 2 "),
+        "the position: {}",
+        outputs[1]
+    );
+    // Forced colour: the verdict words are coloured, and still there as words and symbols.
+    let c = text(&coloured);
+    assert!(c.contains("\u{1b}[31m\u{1b}[1m✘ REJECTED"), "{c}");
+    assert!(c.contains("\u{1b}[32m✔ ACCEPTED"), "{c}");
+    let n = text(&no_colour);
+    assert!(
+        !n.contains('\u{1b}'),
+        "NO_COLOR wins over CLICOLOR_FORCE: {n:?}"
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
 }

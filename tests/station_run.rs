@@ -588,11 +588,16 @@ fn a_mistyped_serial_may_be_scanned_again_before_the_first_load() {
     use std::io::Write;
     let dir = temp_dir("rescan");
     let served = serve(&dir, &[]);
+    // The first step alone: what matters here happens before it.
+    let text = std::fs::read_to_string("test-plans/demo-serial.yaml").unwrap();
+    let cut = text.find("  - id: low-0.1Ib").unwrap();
+    let plan = dir.join("first-step.yaml");
+    std::fs::write(&plan, &text[..cut]).unwrap();
     let scan = |answer: &str, out: &str| {
         let mut child = common::bin()
             .args([
                 "run",
-                "test-plans/demo-serial.yaml",
+                plan.to_str().unwrap(),
                 "--ask",
                 "--unattended",
                 "--bench",
@@ -624,8 +629,9 @@ fn a_mistyped_serial_may_be_scanned_again_before_the_first_load() {
         stderr.contains("Position 2: TM16-32261l was scanned, but the unit there reports TM16-322611. Scan it again"),
         "{stderr}"
     );
-    // Tested like the others: the simulator's defect in position 2 is found.
-    assert_eq!(records[1].verdict.status, UnitStatus::Rejected, "{stderr}");
+    // Tested like the others.
+    assert_eq!(records[1].verdict.status, UnitStatus::Accepted, "{stderr}");
+    assert_eq!(records[1].steps.len(), 1);
     assert!(
         records[1]
             .notes

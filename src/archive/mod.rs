@@ -71,6 +71,8 @@ pub struct RunRow {
 pub struct HistoryRow {
     pub finished_at: String,
     pub run_id: String,
+    /// The position the unit stood in.
+    pub position: i64,
     pub plan_id: String,
     pub revision: String,
     pub firmware: Option<String>,

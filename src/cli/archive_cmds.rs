@@ -5,13 +5,15 @@
 //! function of its own.
 
 use super::{
-    BenchOptions, BenchSpec, CliError, TerminalReporter, build_bench, exit_status, finish_run,
-    plan_at_bench, print_json, print_summary, write_file, write_outputs,
+    BenchOptions, BenchSpec, CliError, TerminalReporter, build_bench, counted, exit_status,
+    finish_run, fitted, plan_at_bench, print_json, print_summary, verdict_mark, wrapped,
+    write_file, write_outputs,
 };
 use crate::archive::{Archive, RunFilter, RunRecorder};
 use crate::exec::{self, RunContext};
 use crate::plan::Plan;
 use crate::record;
+use crate::record::UnitStatus;
 use crate::report::Templates;
 use std::path::{Path, PathBuf};
 
@@ -203,23 +205,41 @@ pub(super) fn history(args: &HistoryArgs) -> Result<i32, CliError> {
         println!("no runs of serial {}", args.serial);
         return Ok(0);
     }
+    // 80 columns: station and operator are in --json.
     println!(
-        "{:<30} {:<28} {:<16} {:<10} {:<12} {:<12} verdict",
-        "finished", "run", "plan", "firmware", "station", "operator"
+        "{:<16} {:>3} {:<25} {:<12} {:<8} verdict",
+        "finished", "pos", "run", "plan", "firmware"
     );
     for r in rows {
+        let status = match r.status.as_str() {
+            "accepted" => Some(UnitStatus::Accepted),
+            "rejected" => Some(UnitStatus::Rejected),
+            "incomplete" => Some(UnitStatus::Incomplete),
+            _ => None,
+        };
         println!(
-            "{:<30} {:<28} {:<16} {:<10} {:<12} {:<12} {}",
-            super::terminal_safe(&r.finished_at),
-            super::terminal_safe(&r.run_id),
-            super::terminal_safe(&format!("{} rev {}", r.plan_id, r.revision)),
-            super::terminal_safe(&r.firmware.unwrap_or_default()),
-            super::terminal_safe(&r.station),
-            super::terminal_safe(&r.operator),
-            r.status.to_uppercase()
+            "{:<16} {:>3} {:<25} {:<12} {:<8} {}",
+            minutes(&r.finished_at),
+            r.position,
+            fitted(&super::terminal_safe(&r.run_id), 25),
+            fitted(
+                &super::terminal_safe(&format!("{} {}", r.plan_id, r.revision)),
+                12
+            ),
+            fitted(&super::terminal_safe(&r.firmware.unwrap_or_default()), 8),
+            status.map_or_else(|| r.status.to_uppercase(), |s| verdict_mark(s, 0, false)),
         );
     }
     Ok(0)
+}
+
+/// A stored time to the minute, as `YYYY-MM-DD HH:MM`.
+fn minutes(at: &str) -> String {
+    super::terminal_safe(at)
+        .chars()
+        .take(16)
+        .collect::<String>()
+        .replacen('T', " ", 1)
 }
 
 #[derive(clap::Args)]
@@ -268,23 +288,49 @@ pub(super) fn runs(args: &RunsArgs) -> Result<i32, CliError> {
         print_json(&rows);
         return Ok(0);
     }
+    // 80 columns: the run id says when it started; --json has every column.
     println!(
-        "{:<28} {:<30} {:<16} {:<10} {:<10} {:>8} {:>8} {:>10}",
-        "run", "started", "plan", "lot", "state", "accepted", "rejected", "incomplete"
+        "{:<25} {:<12} {:<10} {:<11} {:>5} {:>5} {:>5}",
+        "run", "plan", "lot", "state", "acc", "rej", "inc"
     );
+    let (mut accepted, mut rejected, mut incomplete) = (0, 0, 0);
+    let count = rows.len();
     for r in rows {
         println!(
-            "{:<28} {:<30} {:<16} {:<10} {:<10} {:>8} {:>8} {:>10}",
-            super::terminal_safe(&r.run_id),
-            super::terminal_safe(&r.started_at),
-            super::terminal_safe(&format!("{} rev {}", r.plan_id, r.revision)),
-            super::terminal_safe(&r.lot.unwrap_or_default()),
-            super::terminal_safe(&r.state),
+            "{:<25} {:<12} {:<10} {:<11} {:>5} {:>5} {:>5}",
+            fitted(&super::terminal_safe(&r.run_id), 25),
+            fitted(
+                &super::terminal_safe(&format!("{} {}", r.plan_id, r.revision)),
+                12
+            ),
+            fitted(&super::terminal_safe(&r.lot.unwrap_or_default()), 10),
+            fitted(&super::terminal_safe(&r.state), 11),
             r.accepted,
             r.rejected,
             r.incomplete
         );
+        accepted += r.accepted;
+        rejected += r.rejected;
+        incomplete += r.incomplete;
     }
+    let units = accepted + rejected + incomplete;
+    // Yield over the unit records listed: a unit tested again counts once a run.
+    let yield_text = if units == 0 {
+        String::new()
+    } else {
+        format!("; yield {:.1} %", accepted as f64 / units as f64 * 100.0)
+    };
+    println!(
+        "{}",
+        wrapped(
+            &format!(
+                "{}, {}: {accepted} accepted, {rejected} rejected, {incomplete} incomplete{yield_text}",
+                counted(count, "run"),
+                counted(units as usize, "unit record")
+            ),
+            0
+        )
+    );
     Ok(0)
 }
 

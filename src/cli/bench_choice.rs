@@ -180,8 +180,10 @@ pub(super) fn station_bench(
     }
     bench.interrupt = INTERRUPT.clone();
     guard_source(&bench);
+    // The caution once per run, before anything is energised; the bench-closed question
+    // below follows it.
     if !options.quiet() {
-        eprintln!("{MAINS_CAUTION}");
+        eprintln!("{}", wrapped(MAINS_CAUTION, 0));
     }
     // A programmable source puts mains on the positions by itself: before its first load the
     // operator confirms that the bench is closed, unless the bench is declared unattended.
@@ -189,7 +191,9 @@ pub(super) fn station_bench(
         if options.unattended() {
             notes.push("run unattended: the bench-closed confirmation was not asked".into());
         } else {
-            eprintln!("{MAINS_CAUTION}");
+            if options.quiet() {
+                eprintln!("{}", wrapped(MAINS_CAUTION, 0));
+            }
             // No answer (the input ended) is no confirmation.
             let answer = ask(
                 "The source will put mains voltage on the positions. Is the bench closed, with nobody touching a position? Type yes to energise: ",

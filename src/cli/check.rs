@@ -23,7 +23,9 @@ pub(super) fn check(paths: &[PathBuf]) -> Result<i32, CliError> {
         };
         match summary {
             Ok(text) => {
-                let _ = write!(out, "{text}");
+                for line in text.lines() {
+                    let _ = writeln!(out, "{}", fitted_line(line));
+                }
             }
             Err(errors) => {
                 invalid += 1;
@@ -38,6 +40,36 @@ pub(super) fn check(paths: &[PathBuf]) -> Result<i32, CliError> {
         )));
     }
     Ok(0)
+}
+
+/// A line of the description wrapped to 80 columns, its continuation lines under its second
+/// column (after its first word: the step id, "warning:", "decision").
+fn fitted_line(line: &str) -> String {
+    if line.chars().count() <= terminal::WIDTH {
+        return line.to_string();
+    }
+    let lead = line.len() - line.trim_start().len();
+    let after_word = line[lead..].find(' ').map_or(lead, |i| lead + i);
+    let second = after_word + (line.len() - after_word - line[after_word..].trim_start().len());
+    let indent = if lead <= 2 && second < 40 {
+        second
+    } else {
+        lead + 2
+    };
+    let pad = " ".repeat(indent);
+    // A value and its unit stay on one line ("500 ms", "1 %"): joined by a no-break space
+    // while the line is filled.
+    static VALUE_UNIT: std::sync::OnceLock<regex::Regex> = std::sync::OnceLock::new();
+    let value_unit = VALUE_UNIT
+        .get_or_init(|| regex::Regex::new(r"(\d) ([A-Za-zµΩ%°])").expect("a valid pattern"));
+    let joined = value_unit.replace_all(line.trim_start(), "$1\u{a0}$2");
+    textwrap::fill(
+        &joined,
+        textwrap::Options::new(terminal::WIDTH)
+            .initial_indent(&line[..lead])
+            .subsequent_indent(&pad),
+    )
+    .replace('\u{a0}', " ")
 }
 
 /// Warnings for the plan's checks whose acceptance zone the reference and the unit's

@@ -22,7 +22,8 @@ use run::{
     write_outputs,
 };
 use terminal::{
-    TerminalReporter, Written, exit_status, print_summary, terminal_safe, terminal_safe_lines,
+    TerminalReporter, Written, exit_status, fitted, print_summary, terminal_safe,
+    terminal_safe_lines, verdict_mark, wrapped,
 };
 use tools::{export_templates, ports, sim_meter};
 

@@ -147,7 +147,7 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
         };
     }
     print_summary(&records, &written);
-    println!(
+    let last = format!(
         "bench time {} ({}), wall time {:.2} s; records and reports {}",
         report::duration_text(records.first().map_or(0.0, |r| r.bench_time_s)),
         if bench.clock.is_virtual() {
@@ -164,6 +164,7 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
             "NOT written (see above for where the records are)".to_string()
         }
     );
+    println!("{}", super::wrapped(&last, 0));
     if let Some(h) = &resume_hint {
         println!("{h}");
     }

@@ -26,25 +26,71 @@ pub(super) struct Written {
 
 pub(super) fn print_summary(records: &[UnitRecord], written: &Option<Vec<Written>>) {
     println!();
-    println!("{:<4} {:<20} {:<14} report", "pos", "serial", "verdict");
+    println!("{:<4} {:<20} {:<12} report", "pos", "serial", "verdict");
     for (i, r) in records.iter().enumerate() {
+        // The file's name: the folder is said once, on the run's last line.
         let report = match written.as_ref().and_then(|w| w.get(i)) {
-            Some(w) => terminal_safe(&w.html.display().to_string()),
+            Some(w) => terminal_safe(&w.html.file_name().map_or_else(
+                || w.html.display().to_string(),
+                |f| f.to_string_lossy().into_owned(),
+            )),
             None => "(not written)".to_string(),
         };
         println!(
-            "{:<4} {:<20} {} {:<12} {}",
+            "{:<4} {:<20} {} {}",
             r.position,
             terminal_safe(&r.serial),
-            r.verdict.status.symbol(),
-            r.verdict.status.word(),
+            verdict_mark(r.verdict.status, 12, false),
             report
         );
         for reason in &r.verdict.reasons {
-            println!("       {}", terminal_safe(reason));
+            println!("{}", wrapped(&terminal_safe(reason), 7));
         }
     }
-    println!("{}", closing_line(records));
+    println!("{}", wrapped(&closing_line(records), 0));
+}
+
+/// Columns the terminal output is laid out for: nothing printed wraps at 80.
+pub(super) const WIDTH: usize = 80;
+
+/// `text` wrapped at word boundaries to [`WIDTH`], every line indented by `indent` spaces.
+pub(super) fn wrapped(text: &str, indent: usize) -> String {
+    let pad = " ".repeat(indent);
+    textwrap::fill(
+        text,
+        textwrap::Options::new(WIDTH)
+            .initial_indent(&pad)
+            .subsequent_indent(&pad),
+    )
+}
+
+/// `text` cut to `width` characters, with … where something was cut.
+pub(super) fn fitted(text: &str, width: usize) -> String {
+    if text.chars().count() <= width {
+        return text.to_string();
+    }
+    let mut cut: String = text.chars().take(width.saturating_sub(1)).collect();
+    cut.push('…');
+    cut
+}
+
+/// A verdict as its symbol and word, padded to `width`, in colour where the terminal shows
+/// colour (not when NO_COLOR is set or the output is not a terminal); the symbol and the word
+/// say it without the colour.
+pub(super) fn verdict_mark(status: UnitStatus, width: usize, on_stderr: bool) -> String {
+    let text = format!("{} {}", status.symbol(), status.word());
+    let padded = format!("{text:<width$}");
+    // NO_COLOR (no-color.org) wins over everything, CLICOLOR_FORCE included.
+    if std::env::var_os("NO_COLOR").is_some_and(|v| !v.is_empty()) {
+        return padded;
+    }
+    let style = match status {
+        UnitStatus::Accepted => console::Style::new().green(),
+        UnitStatus::Rejected => console::Style::new().red().bold(),
+        UnitStatus::Incomplete => console::Style::new().yellow().bold(),
+    };
+    let style = if on_stderr { style.for_stderr() } else { style };
+    style.apply_to(padded).to_string()
 }
 
 /// The run's last line: the counts, and which positions to take off the bench for what, so

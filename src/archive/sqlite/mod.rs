@@ -630,7 +630,8 @@ impl Backend for Sqlite {
     fn history(&self, serial: &str) -> Result<Vec<HistoryRow>, ArchiveError> {
         let conn = &self.conn;
         let mut stmt = conn.prepare(
-            "SELECT u.finished_at, u.run_id, p.plan_id, p.revision, u.firmware, r.station, r.operator, u.status
+            "SELECT u.finished_at, u.run_id, p.plan_id, p.revision, u.firmware, r.station, r.operator, u.status,
+                    u.position
              FROM units u JOIN runs r ON r.run_id = u.run_id JOIN plans p ON p.sha256 = r.plan_sha256
              WHERE u.serial = ?1 ORDER BY u.finished_at DESC",
         )?;
@@ -644,6 +645,7 @@ impl Backend for Sqlite {
                 station: r.get(5)?,
                 operator: r.get(6)?,
                 status: r.get(7)?,
+                position: r.get(8)?,
             })
         })?;
         Ok(rows.collect::<Result<_, _>>()?)
