@@ -107,14 +107,7 @@ fn nominal_in(prompt: &str) -> Option<String> {
 fn reference_prompts_stay_on_screen_while_the_bar_runs() {
     let dir = temp_dir("screen");
     let served = serve_at(&dir, "4", &[]);
-    let text = std::fs::read_to_string(&served.station).unwrap();
-    let cut = text.find("  read:\n").expect("a read block");
-    let station = dir.join("typed.yaml");
-    std::fs::write(
-        &station,
-        format!("{}  read: {{ kind: operator }}\n", &text[..cut]),
-    )
-    .unwrap();
+    let station = common::typed_station(&dir, &served.station);
     let out = dir.join("out");
     let mut term = Terminal::start(&[
         "run",

@@ -428,8 +428,14 @@ impl ReferenceMeter for TypedReference {
 mod tests {
     use super::*;
 
-    /// A typed current at 5 A nominal, read through a console fed `lines`.
-    fn typed(lines: &[&str]) -> ReferenceReading {
+    /// A reading typed through a console fed `lines`, for `quantity` at `current` (230 V,
+    /// power factor 1) over a window of `window_s`, the window's start announced first.
+    fn typed_at(
+        lines: &[&str],
+        quantity: crate::plan::Quantity,
+        current: f64,
+        window_s: f64,
+    ) -> ReferenceReading {
         let (tx, rx) = channel();
         for l in lines {
             tx.send(l.to_string()).unwrap();
@@ -443,49 +449,29 @@ mod tests {
         let mut reference = TypedReference::new(console, 0.10);
         let load = crate::plan::Load {
             voltage: 230.0,
-            current: 5.0,
-            phase_deg: 0.0,
-            frequency: 50.0,
-        };
-        reference
-            .read(&ReferenceRequest {
-                step_id: "basic-Ib",
-                quantity: crate::plan::Quantity::Current,
-                load: &load,
-                window: (0.0, 4.0),
-            })
-            .unwrap()
-    }
-
-    /// A typed energy over a 10 s window at 16 A, 230 V (nominal 10.222 Wh), through a console
-    /// fed `lines`.
-    fn typed_energy(lines: &[&str]) -> ReferenceReading {
-        let (tx, rx) = channel();
-        for l in lines {
-            tx.send(l.to_string()).unwrap();
-        }
-        drop(tx);
-        let console = Arc::new(Mutex::new(Console {
-            lines: rx,
-            interrupt: Arc::new(AtomicBool::new(false)),
-            screen: None,
-        }));
-        let mut reference = TypedReference::new(console, 0.10);
-        let load = crate::plan::Load {
-            voltage: 230.0,
-            current: 16.0,
+            current,
             phase_deg: 0.0,
             frequency: 50.0,
         };
         reference.window_starts(0.0).unwrap();
         reference
             .read(&ReferenceRequest {
-                step_id: "max-Imax",
-                quantity: crate::plan::Quantity::ActiveEnergy,
+                step_id: "a-step",
+                quantity,
                 load: &load,
-                window: (0.0, 10.0),
+                window: (0.0, window_s),
             })
             .unwrap()
+    }
+
+    /// A typed current at 5 A nominal.
+    fn typed(lines: &[&str]) -> ReferenceReading {
+        typed_at(lines, crate::plan::Quantity::Current, 5.0, 4.0)
+    }
+
+    /// A typed energy over a 10 s window at 16 A, 230 V (nominal 10.222 Wh).
+    fn typed_energy(lines: &[&str]) -> ReferenceReading {
+        typed_at(lines, crate::plan::Quantity::ActiveEnergy, 16.0, 10.0)
     }
 
     /// The counter's two readings give the window's energy (the energy itself is still taken

@@ -124,3 +124,17 @@ pub fn serve_at(dir: &Path, time_scale: &str, extra: &[&str]) -> Served {
     }
     Served { child, station }
 }
+
+/// The served station with its reference read by the operator (`read: { kind: operator }`),
+/// written beside it as `typed.yaml`.
+pub fn typed_station(dir: &Path, station: &Path) -> PathBuf {
+    let text = std::fs::read_to_string(station).unwrap();
+    let cut = text.find("  read:\n").expect("a read block");
+    let typed = dir.join("typed.yaml");
+    std::fs::write(
+        &typed,
+        format!("{}  read: {{ kind: operator }}\n", &text[..cut]),
+    )
+    .unwrap();
+    typed
+}

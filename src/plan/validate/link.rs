@@ -128,6 +128,22 @@ pub(super) fn choice<T: Copy>(
     }
 }
 
+/// A quantity a link section names, or an error at `path` listing the names it may use.
+pub(super) fn link_quantity(ctx: &mut Ctx, path: &str, name: &str) -> Option<Quantity> {
+    let q = Quantity::from_name(name);
+    if q.is_none() {
+        let names: Vec<&str> = Quantity::ALL.iter().map(|q| q.name()).collect();
+        ctx.error(
+            path,
+            format!(
+                "unknown quantity \"{name}\", expected one of {}",
+                names.join(", ")
+            ),
+        );
+    }
+    q
+}
+
 /// A link's `timeout` (more than zero, at most 60 s) and `retries` (0 to 20), with the kind's
 /// defaults where the plan gives none.
 pub(super) fn timing(
@@ -286,15 +302,7 @@ pub(super) fn text_link(ctx: &mut Ctx, raw: RawTextLink) -> Option<TextLinkSpec>
     let mut quantities_ok = true;
     for (name, q) in &raw.quantities {
         let path = format!("link.quantities.{name}");
-        let Some(quantity) = Quantity::from_name(name) else {
-            let names: Vec<&str> = Quantity::ALL.iter().map(|q| q.name()).collect();
-            ctx.error(
-                &path,
-                format!(
-                    "unknown quantity \"{name}\", expected one of {}",
-                    names.join(", ")
-                ),
-            );
+        let Some(quantity) = link_quantity(ctx, &path, name) else {
             quantities_ok = false;
             continue;
         };

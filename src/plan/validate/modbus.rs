@@ -1,8 +1,7 @@
 //! Validation of the `modbus` link kind: the unit address, the bus timing, and every register
 //! (address, table, data type, word order, scale and unit), each mistake with its path.
 
-use super::link::{choice, number, port_settings, timing, unit_factor};
-use crate::plan::Quantity;
+use super::link::{choice, link_quantity, number, port_settings, timing, unit_factor};
 use crate::plan::document::{Ctx, channel_names};
 use crate::plan::modbus_link::{
     DataType, IdentityField, ModbusLinkSpec, QuantityRegister, Register, RegisterWrite, Table,
@@ -351,15 +350,7 @@ fn quantities(
     let mut ok = true;
     for (name, q) in raw {
         let path = format!("link.quantities.{name}");
-        let Some(quantity) = Quantity::from_name(name) else {
-            let names: Vec<&str> = Quantity::ALL.iter().map(|q| q.name()).collect();
-            ctx.error(
-                &path,
-                format!(
-                    "unknown quantity \"{name}\", expected one of {}",
-                    names.join(", ")
-                ),
-            );
+        let Some(quantity) = link_quantity(ctx, &path, name) else {
             ok = false;
             continue;
         };

@@ -1,8 +1,7 @@
 //! Validation of the `iec62056_21` link kind: the sign-on, the identity's sources and each
 //! quantity's OBIS code and unit.
 
-use super::link::{choice, port_settings, timing, unit_factor};
-use crate::plan::Quantity;
+use super::link::{choice, link_quantity, port_settings, timing, unit_factor};
 use crate::plan::document::{Ctx, channel_names};
 use crate::plan::raw::{RawReadoutLink, Text};
 use crate::plan::readout_link::{IdentitySource, ObisQuantity, ReadMode, ReadoutLinkSpec};
@@ -124,15 +123,7 @@ pub(super) fn readout_link(ctx: &mut Ctx, raw: RawReadoutLink) -> Option<Readout
     let mut ok = true;
     for (name, q) in &raw.quantities {
         let path = format!("link.quantities.{name}");
-        let Some(quantity) = Quantity::from_name(name) else {
-            let names: Vec<&str> = Quantity::ALL.iter().map(|q| q.name()).collect();
-            ctx.error(
-                &path,
-                format!(
-                    "unknown quantity \"{name}\", expected one of {}",
-                    names.join(", ")
-                ),
-            );
+        let Some(quantity) = link_quantity(ctx, &path, name) else {
             ok = false;
             continue;
         };
