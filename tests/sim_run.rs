@@ -275,7 +275,7 @@ fn check_accepts_every_shipped_plan() {
 }
 
 /// What the commands print fits 80 columns (the run's table, `check` of every shipped plan,
-/// `history`, `runs`), and carries no colour codes when it is not a terminal or NO_COLOR is
+/// `history`, `runs`, `compare`), and carries no colour codes when it is not a terminal or NO_COLOR is
 /// set; forced colour marks the verdict words, which read the same without it.
 #[test]
 fn terminal_output_fits_80_columns_and_colour_is_never_alone() {
@@ -311,6 +311,31 @@ fn terminal_output_fits_80_columns_and_colour_is_never_alone() {
         let o = bin().args(&args).arg(&archive).output().unwrap();
         outputs.push(text(&o));
     }
+    let runs = bin()
+        .args(["runs", "--json", "--archive"])
+        .arg(&archive)
+        .output()
+        .unwrap();
+    let runs: serde_json::Value = serde_json::from_slice(&runs.stdout).unwrap();
+    let first = format!("run={}", runs[0]["run_id"].as_str().unwrap());
+    let o = bin()
+        .args([
+            "compare",
+            "--baseline",
+            "lot=LOT-80",
+            "--candidate",
+            &first,
+            "--archive",
+        ])
+        .arg(&archive)
+        .output()
+        .unwrap();
+    assert!(
+        text(&o).contains("verdict"),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    outputs.push(text(&o));
     let plans: Vec<String> = std::fs::read_dir("test-plans")
         .unwrap()
         .map(|e| e.unwrap().path().display().to_string())

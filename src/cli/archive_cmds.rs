@@ -546,7 +546,7 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
     if args.json {
         print_json(&result);
     } else {
-        println!(
+        let head = format!(
             "{} against {}: {} checks, {} units paired by serial number, allowance {} % of each limit",
             args.candidate,
             args.baseline,
@@ -554,22 +554,35 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
             result.paired_units.len(),
             allowance * 100.0
         );
+        println!("{}", wrapped(&head, 0));
+        // 80 columns: a verdict that does not fit beside its numbers goes on the next line.
         println!(
-            "{:<14} {:<16} {:>10} {:>10} {:>10} {:>9} {:>9}  verdict",
+            "{:<11} {:<14} {:>8} {:>9} {:>8} {:>7} {:>6} verdict",
             "step", "quantity", "baseline", "candidate", "shift", "allowed", "p"
         );
         for c in &result.checks {
-            println!(
-                "{:<14} {:<16} {:>10.4} {:>10.4} {:>+10.4} {:>9.4} {:>9.2e}  {}",
-                c.step,
+            let p = match c.test.map(|t| t.p) {
+                Some(p) if p.is_finite() => format!("{p:.1e}"),
+                // No test (too few pairs) or no spread to test (identical readings).
+                _ => "-".to_string(),
+            };
+            let row = format!(
+                "{:<11} {:<14} {:>8.4} {:>9.4} {:>+8.4} {:>7.4} {:>6}",
+                fitted(&c.step, 11),
                 c.quantity.name(),
                 c.baseline_mean,
                 c.candidate_mean,
                 c.shift,
                 c.allowance,
-                c.test.map_or(f64::NAN, |t| t.p),
-                c.movement.words()
+                p
             );
+            let words = c.movement.words();
+            if row.chars().count() + 1 + words.chars().count() <= super::terminal::WIDTH {
+                println!("{row} {words}");
+            } else {
+                println!("{row}");
+                println!("{}", wrapped(words, 6));
+            }
         }
     }
     Ok(if result.gates() { 1 } else { 0 })
