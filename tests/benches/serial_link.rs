@@ -117,13 +117,7 @@ fn run_timed(
 ) -> (f64, Vec<meterproof::record::UnitRecord>) {
     let (mut bench, _devices) = bench(config, plan, faults);
     bench.parallel = parallel;
-    let ctx = RunContext {
-        run_id: "bench".into(),
-        operator: "bench".into(),
-        lot: None,
-        tool_version: meterproof::VERSION.into(),
-        notes: Vec::new(),
-    };
+    let ctx = bench_context();
     let start = Instant::now();
     let records = exec::run(plan, &mut bench, &ctx, &mut Silent);
     (start.elapsed().as_secs_f64(), records)
@@ -211,13 +205,7 @@ fn modbus_step_time(buses: usize, baud: u32) -> f64 {
         ),
     );
     let (mut bench, _devices) = modbus_bench(16, buses, &plan);
-    let ctx = RunContext {
-        run_id: "bench".into(),
-        operator: "bench".into(),
-        lot: None,
-        tool_version: meterproof::VERSION.into(),
-        notes: Vec::new(),
-    };
+    let ctx = bench_context();
     let start = Instant::now();
     let records = exec::run(&plan, &mut bench, &ctx, &mut Silent);
     let elapsed = start.elapsed().as_secs_f64();
@@ -262,6 +250,17 @@ fn modbus_figures(smoke: bool) {
                     .unwrap_or_default()
             );
         }
+    }
+}
+
+/// The run context of a benchmark run.
+fn bench_context() -> RunContext {
+    RunContext {
+        run_id: "bench".into(),
+        operator: "bench".into(),
+        lot: None,
+        tool_version: meterproof::VERSION.into(),
+        notes: Vec::new(),
     }
 }
 
