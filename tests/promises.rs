@@ -275,3 +275,28 @@ fn no_reference_and_calibration_not_possible_are_incomplete() {
         );
     }
 }
+
+/// Output piped into a reader that stopped reading (`meterproof ports | head -1`) ends quietly:
+/// no panic message, the command's own exit status (common practice for command-line tools, no
+/// published source).
+#[test]
+fn output_into_a_closed_pipe_ends_quietly() {
+    use std::process::Stdio;
+    for args in [&["ports"][..], &["check", "test-plans/demo.yaml"]] {
+        let mut child = bin()
+            .args(args)
+            .stdout(Stdio::piped())
+            .stderr(Stdio::piped())
+            .spawn()
+            .unwrap();
+        // The reading end is closed before the command prints anything.
+        drop(child.stdout.take());
+        let out = child.wait_with_output().unwrap();
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert!(
+            !err.contains("panicked") && !err.contains("Broken pipe"),
+            "{args:?}: {err}"
+        );
+        assert_eq!(out.status.code(), Some(0), "{args:?}: {err}");
+    }
+}

@@ -176,7 +176,7 @@ pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
     );
     print_summary(&records, &written);
     if let Some(h) = hint {
-        println!("{h}");
+        out!("{h}");
     }
     if let Some(e) = not_written {
         return Err(e);
@@ -202,13 +202,17 @@ pub(super) fn history(args: &HistoryArgs) -> Result<i32, CliError> {
         return Ok(0);
     }
     if rows.is_empty() {
-        println!("no runs of serial {}", args.serial);
+        out!("no runs of serial {}", args.serial);
         return Ok(0);
     }
     // 80 columns: station and operator are in --json.
-    println!(
+    out!(
         "{:<16} {:>3} {:<25} {:<12} {:<8} verdict",
-        "finished", "pos", "run", "plan", "firmware"
+        "finished",
+        "pos",
+        "run",
+        "plan",
+        "firmware"
     );
     for r in rows {
         let status = match r.status.as_str() {
@@ -217,7 +221,7 @@ pub(super) fn history(args: &HistoryArgs) -> Result<i32, CliError> {
             "incomplete" => Some(UnitStatus::Incomplete),
             _ => None,
         };
-        println!(
+        out!(
             "{:<16} {:>3} {:<25} {:<12} {:<8} {}",
             minutes(&r.finished_at),
             r.position,
@@ -289,14 +293,20 @@ pub(super) fn runs(args: &RunsArgs) -> Result<i32, CliError> {
         return Ok(0);
     }
     // 80 columns: the run id says when it started; --json has every column.
-    println!(
+    out!(
         "{:<25} {:<12} {:<10} {:<11} {:>5} {:>5} {:>5}",
-        "run", "plan", "lot", "state", "acc", "rej", "inc"
+        "run",
+        "plan",
+        "lot",
+        "state",
+        "acc",
+        "rej",
+        "inc"
     );
     let (mut accepted, mut rejected, mut incomplete) = (0, 0, 0);
     let count = rows.len();
     for r in rows {
-        println!(
+        out!(
             "{:<25} {:<12} {:<10} {:<11} {:>5} {:>5} {:>5}",
             fitted(&super::terminal_safe(&r.run_id), 25),
             fitted(
@@ -320,7 +330,7 @@ pub(super) fn runs(args: &RunsArgs) -> Result<i32, CliError> {
     } else {
         format!("; yield {:.1} %", accepted as f64 / units as f64 * 100.0)
     };
-    println!(
+    out!(
         "{}",
         wrapped(
             &format!(
@@ -387,7 +397,7 @@ pub(super) fn export(args: &ExportArgs) -> Result<i32, CliError> {
             plans.push(r.plan.sha256.clone());
         }
     }
-    println!(
+    out!(
         "{} records and {} plan texts written to {}",
         records.len(),
         plans.len(),
@@ -423,27 +433,27 @@ pub(super) fn verify(args: &VerifyArgs) -> Result<i32, CliError> {
     let archive = open_to_read(&args.archive)?;
     let v = archive.verify(anchor.as_deref()).map_err(db)?;
     for f in &v.failures {
-        println!(
+        out!(
             "{}: {}",
             super::terminal_safe(&f.what),
             super::terminal_safe(&f.why)
         );
     }
     if v.legacy_records > 0 {
-        println!(
+        out!(
             "{} unit records from before the chain (schema 1) were checked by their own record chain; their run rows are not covered",
             v.legacy_records
         );
     }
     if let Some(h) = &v.head {
-        println!("chain head {h}");
+        out!("chain head {h}");
     }
     if let Some(a) = &anchor
         && v.failures.iter().all(|f| !f.what.starts_with("the anchor"))
     {
-        println!("anchor {a} is in the chain");
+        out!("anchor {a} is in the chain");
     }
-    println!(
+    out!(
         "{} chain entries and {} unit records checked, {} failed",
         v.entries,
         v.unit_records,
@@ -554,11 +564,17 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
             result.paired_units.len(),
             allowance * 100.0
         );
-        println!("{}", wrapped(&head, 0));
+        out!("{}", wrapped(&head, 0));
         // 80 columns: a verdict that does not fit beside its numbers goes on the next line.
-        println!(
+        out!(
             "{:<11} {:<14} {:>8} {:>9} {:>8} {:>7} {:>6} verdict",
-            "step", "quantity", "baseline", "candidate", "shift", "allowed", "p"
+            "step",
+            "quantity",
+            "baseline",
+            "candidate",
+            "shift",
+            "allowed",
+            "p"
         );
         for c in &result.checks {
             let p = match c.test.map(|t| t.p) {
@@ -578,10 +594,10 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
             );
             let words = c.movement.words();
             if row.chars().count() + 1 + words.chars().count() <= super::terminal::WIDTH {
-                println!("{row} {words}");
+                out!("{row} {words}");
             } else {
-                println!("{row}");
-                println!("{}", wrapped(words, 6));
+                out!("{row}");
+                out!("{}", wrapped(words, 6));
             }
         }
     }
@@ -658,7 +674,7 @@ pub(super) fn summary(args: &SummaryArgs) -> Result<i32, CliError> {
     if args.json {
         print_json(&summary);
     } else {
-        println!(
+        out!(
             "{}: yield {:.1} % ({} of {} accepted, {} rejected, {} incomplete); {}",
             summary.title,
             summary.yield_percent,

@@ -5,8 +5,6 @@ use super::*;
 
 pub(super) fn check(paths: &[PathBuf]) -> Result<i32, CliError> {
     let mut invalid = 0;
-    let stdout = std::io::stdout();
-    let mut out = stdout.lock();
     // A plan is checked against the reference of the first station given with it, else against
     // the simulated bench's.
     let station = paths
@@ -24,7 +22,7 @@ pub(super) fn check(paths: &[PathBuf]) -> Result<i32, CliError> {
         match summary {
             Ok(text) => {
                 for line in text.lines() {
-                    let _ = writeln!(out, "{}", fitted_line(line));
+                    out!("{}", fitted_line(line));
                 }
             }
             Err(errors) => {

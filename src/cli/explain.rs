@@ -49,6 +49,6 @@ pub(super) fn explain(args: &ExplainArgs) -> Result<i32, CliError> {
         args.channel.as_deref(),
     )
     .map_err(|e| CliError::Usage(e.to_string()))?;
-    print!("{}", super::terminal_safe_lines(&text));
+    out_part!("{}", super::terminal_safe_lines(&text));
     Ok(0)
 }

@@ -7,6 +7,25 @@
 //! Exit status: 0 every unit accepted (or every plan valid); 1 at least one unit rejected;
 //! 2 an invalid plan or invalid arguments; 3 the run could not complete.
 
+/// Prints a line on standard output. A reader that went away (`meterproof runs | head`) ends
+/// nothing: what is left to say is dropped quietly, and a run goes on with its load and its
+/// archive. Any other failure to write is said once on standard error.
+macro_rules! out {
+    () => {
+        $crate::cli::write_out(format_args!("\n"))
+    };
+    ($($arg:tt)*) => {
+        $crate::cli::write_out(format_args!("{}\n", format_args!($($arg)*)))
+    };
+}
+
+/// As [`out!`], without the line ending.
+macro_rules! out_part {
+    ($($arg:tt)*) => {
+        $crate::cli::write_out(format_args!($($arg)*))
+    };
+}
+
 mod archive_cmds;
 mod bench_choice;
 mod check;
@@ -260,6 +279,26 @@ pub fn main() -> i32 {
     }
 }
 
+/// Writes to standard output for [`out!`]: a closed pipe silences the rest of the output, any
+/// other write failure is reported once.
+pub(crate) fn write_out(args: std::fmt::Arguments) {
+    use std::io::Write;
+    use std::sync::atomic::{AtomicBool, Ordering};
+    static SILENT: AtomicBool = AtomicBool::new(false);
+    if SILENT.load(Ordering::Relaxed) {
+        return;
+    }
+    let mut stdout = std::io::stdout().lock();
+    if let Err(e) = stdout.write_fmt(args).and_then(|_| stdout.flush()) {
+        SILENT.store(true, Ordering::Relaxed);
+        if e.kind() != std::io::ErrorKind::BrokenPipe {
+            eprintln!(
+                "meterproof: writing to standard output failed ({e}); nothing more is printed there"
+            );
+        }
+    }
+}
+
 /// Prints a value as pretty JSON on standard output, for machines (`--json`).
 /// "1 position", "4 positions".
 pub(super) fn counted(n: usize, thing: &str) -> String {
@@ -271,7 +310,7 @@ pub(super) fn counted(n: usize, thing: &str) -> String {
 }
 
 pub(super) fn print_json<T: serde::Serialize>(value: &T) {
-    println!(
+    out!(
         "{}",
         serde_json::to_string_pretty(value).expect("records, rows and summaries serialise")
     );

@@ -164,9 +164,9 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
             "NOT written (see above for where the records are)".to_string()
         }
     );
-    println!("{}", super::wrapped(&last, 0));
+    out!("{}", super::wrapped(&last, 0));
     if let Some(h) = &resume_hint {
-        println!("{h}");
+        out!("{h}");
     }
     // Where the records are is the last word when they are not where they should be.
     match (archived, not_written) {
@@ -239,7 +239,7 @@ pub(super) fn write_or_keep(
                 "FALLBACK: {} cannot take them either ({why})",
                 dir.display()
             );
-            println!(
+            out!(
                 "{}",
                 serde_json::to_string(records).expect("records serialise")
             );

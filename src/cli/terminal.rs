@@ -25,8 +25,8 @@ pub(super) struct Written {
 }
 
 pub(super) fn print_summary(records: &[UnitRecord], written: &Option<Vec<Written>>) {
-    println!();
-    println!("{:<4} {:<20} {:<12} report", "pos", "serial", "verdict");
+    out!();
+    out!("{:<4} {:<20} {:<12} report", "pos", "serial", "verdict");
     for (i, r) in records.iter().enumerate() {
         // The file's name: the folder is said once, on the run's last line.
         let report = match written.as_ref().and_then(|w| w.get(i)) {
@@ -36,7 +36,7 @@ pub(super) fn print_summary(records: &[UnitRecord], written: &Option<Vec<Written
             )),
             None => "(not written)".to_string(),
         };
-        println!(
+        out!(
             "{:<4} {:<20} {} {}",
             r.position,
             terminal_safe(&r.serial),
@@ -44,10 +44,10 @@ pub(super) fn print_summary(records: &[UnitRecord], written: &Option<Vec<Written
             report
         );
         for reason in &r.verdict.reasons {
-            println!("{}", wrapped(&terminal_safe(reason), 7));
+            out!("{}", wrapped(&terminal_safe(reason), 7));
         }
     }
-    println!("{}", wrapped(&closing_line(records), 0));
+    out!("{}", wrapped(&closing_line(records), 0));
 }
 
 /// Columns the terminal output is laid out for: nothing printed wraps at 80.

@@ -47,16 +47,18 @@ pub(super) fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
     }
     let station = SimStation::serve_speaking(&config, args.time_scale, &faults, protocol)
         .map_err(|e| CliError::Run(format!("cannot create pseudo-terminals: {e}")))?;
-    println!(
+    out!(
         "simulated bench, seed {}, {} meters, time scale {}",
-        args.seed, args.positions, args.time_scale
+        args.seed,
+        args.positions,
+        args.time_scale
     );
     for (i, ((port, address), serial)) in station.ports.iter().zip(&station.serials).enumerate() {
         let address = address.map(|a| format!(" address {a}")).unwrap_or_default();
-        println!("  position {}: {port}{address}  serial {serial}", i + 1);
+        out!("  position {}: {port}{address}  serial {serial}", i + 1);
     }
-    println!("  source:     {}  (SCPI)", station.source.path);
-    println!("  reference:  {}  (SCPI)", station.reference.path);
+    out!("  source:     {}  (SCPI)", station.source.path);
+    out!("  reference:  {}  (SCPI)", station.reference.path);
     if let Some(path) = &args.station {
         let dir = path
             .parent()
@@ -70,9 +72,9 @@ pub(super) fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
         let _ = std::fs::remove_file(path);
         record::write_new_file(dir, &name, station.station_yaml().as_bytes())
             .map_err(|e| CliError::Run(e.to_string()))?;
-        println!("station file: {}", path.display());
+        out!("station file: {}", path.display());
     }
-    println!("serving until stopped");
+    out!("serving until stopped");
     let _ = std::io::stdout().flush();
     let started = Instant::now();
     loop {
@@ -89,7 +91,7 @@ pub(super) fn export_templates(dir: &Path) -> Result<i32, CliError> {
     for (name, text) in report::DEFAULT_TEMPLATES {
         record::write_new_file(dir, name, text.as_bytes())
             .map_err(|e| CliError::Run(format!("{e} (templates already there are kept)")))?;
-        println!("{}", dir.join(name).display());
+        out!("{}", dir.join(name).display());
     }
     Ok(0)
 }
@@ -97,7 +99,7 @@ pub(super) fn export_templates(dir: &Path) -> Result<i32, CliError> {
 pub(super) fn ports() -> Result<i32, CliError> {
     let ports = serialport::available_ports()
         .map_err(|e| CliError::Run(format!("cannot list serial ports: {e}")))?;
-    print!("{}", ports_text(&ports));
+    out_part!("{}", ports_text(&ports));
     Ok(0)
 }
 
