@@ -44,6 +44,7 @@ fn gain_step() -> FirmwareChange {
         version: Some("2.2.0".into()),
         gain_step_above: Some((10.0, 0.003)),
         extra_noise: 0.0,
+        ..FirmwareChange::default()
     }
 }
 
@@ -53,6 +54,7 @@ fn more_noise() -> FirmwareChange {
         version: Some("2.2.1".into()),
         gain_step_above: None,
         extra_noise: 0.0005,
+        ..FirmwareChange::default()
     }
 }
 
@@ -380,6 +382,7 @@ fn every_movement_verdict_is_reached() {
         version: Some(version.into()),
         gain_step_above: Some((10.0, size)),
         extra_noise: 0.0,
+        ..FirmwareChange::default()
     };
     // A 0.05 % step above 10 A on the same eight units, allowed 50 % of the 0.5 % limit:
     // a significant shift, shown within ±0.25 %: "moved, within allowance".
@@ -485,5 +488,77 @@ fn compare_selects_lots_and_plans_and_speaks_json() {
     let o = compare("NO-SUCH-PLAN");
     assert_eq!(o.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&o.stderr).contains("the baseline selects no unit records"));
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// `run --sim-firmware` changes what the simulated meters measure, not only the version they
+/// report: the same four meters tested before and after a firmware whose phase compensation
+/// moved by +0.3° and whose current gain moved by +0.2 % at and above 10 A. Expected shifts by
+/// hand: at power factor 0.5 (60°), P = U·I·cos φ (IEC 60050-131-11-42, active power of a
+/// sinusoidal circuit) moves by cos 60.3° / cos 60° − 1 = −0.908 %; at unity by
+/// cos 0.3° − 1 = −0.0014 %; the current at Imax by +0.2 %, below 10 A not at all.
+#[test]
+fn a_simulated_firmware_change_moves_the_errors_it_should() {
+    let dir = temp_dir("sim-firmware");
+    let archive = dir.join("a.sqlite");
+    let run_with = |extra: &[&str]| {
+        let o = bin()
+            .args(["run", "test-plans/demo.yaml", "--quiet", "--serials"])
+            .arg("G1,G2,G3,G4")
+            .arg("--out")
+            .arg(dir.join("out"))
+            .arg("--archive")
+            .arg(&archive)
+            .args(extra)
+            .output()
+            .unwrap();
+        assert!(
+            matches!(o.status.code(), Some(0 | 1)),
+            "{}",
+            String::from_utf8_lossy(&o.stderr)
+        );
+    };
+    run_with(&[]);
+    run_with(&["--sim-firmware", "2.1.5,phase=+0.3deg,current=+0.2%@10A"]);
+    let o = bin()
+        .args(["compare", "--baseline", "firmware=2.1.4"])
+        .args(["--candidate", "firmware=2.1.5", "--json", "--archive"])
+        .arg(&archive)
+        .output()
+        .unwrap();
+    let json: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    let shift = |step: &str, quantity: &str| {
+        json["checks"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|c| c["step"] == step && c["quantity"] == quantity)
+            .unwrap_or_else(|| panic!("{step} {quantity}"))["shift"]
+            .as_f64()
+            .unwrap()
+    };
+    let at_half = (60.3f64.to_radians().cos() / 60f64.to_radians().cos() - 1.0) * 100.0;
+    let at_unity = (0.3f64.to_radians().cos() - 1.0) * 100.0;
+    // The meters' noise differs between the runs only through timing: a few thousandths of %.
+    assert!((shift("basic-pf0.5", "active_power") - at_half).abs() < 0.01);
+    assert!((shift("basic-Ib", "active_power") - at_unity).abs() < 0.01);
+    assert!((shift("max-Imax", "current") - 0.2).abs() < 0.01);
+    assert!(shift("basic-Ib", "current").abs() < 0.01);
+    // A description the simulator cannot read is refused before anything runs.
+    let bad = bin()
+        .args(["run", "test-plans/demo.yaml", "--quiet", "--sim-firmware"])
+        .arg("2.2,gain=1%")
+        .arg("--out")
+        .arg(dir.join("bad"))
+        .output()
+        .unwrap();
+    assert_eq!(bad.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&bad.stderr).contains("no key \"gain\""));
+    let bad = bin()
+        .args(["sim-meter", "--firmware", "2.2,phase=9rad", "--for", "1 s"])
+        .output()
+        .unwrap();
+    assert_eq!(bad.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&bad.stderr).contains("not an angle"));
     std::fs::remove_dir_all(&dir).unwrap();
 }

@@ -4,6 +4,7 @@
 //! ambient temperature. `run` and `resume` build it the same way.
 
 use super::*;
+use crate::bench::sim::FirmwareChange;
 
 /// How a run's bench was made, kept in the archive so that a resume can make it again.
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
@@ -16,6 +17,9 @@ pub(super) enum BenchSpec {
         /// The operator confirms loads and types references, as at a hand-switched bench.
         #[serde(default)]
         ask: bool,
+        /// A simulated firmware change (`--sim-firmware`), as written.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        firmware: Option<String>,
     },
     Station {
         path: String,
@@ -78,9 +82,14 @@ pub(super) fn build_bench(
             positions,
             serials,
             ask,
+            firmware,
         } => {
             let mut config = SimConfig::new(*seed, *positions);
             config.serials = serials.clone();
+            if let Some(text) = firmware {
+                config.firmware = FirmwareChange::parse(text)
+                    .map_err(|e| CliError::Usage(format!("--sim-firmware: {e}")))?;
+            }
             let mut bench = SimBench::new(&config).into_bench();
             if *ask {
                 // The operator confirms each load; the simulator then really applies it.

@@ -138,7 +138,7 @@ struct SimMeterArgs {
     #[arg(long, default_value_t = 1)]
     buses: usize,
     /// A fault to inject, as POSITION:KIND[=VALUE] (drop-every=N, garble-every=N, slow=TIME,
-    /// reboot-after=N, firmware=VERSION, die-after=N, echo, ignore-writes; on Modbus also
+    /// reboot-after=N, firmware=VERSION (the version reported, nothing else), die-after=N, echo, ignore-writes; on Modbus also
     /// busy-every=N and bad-crc-every=N). May be repeated.
     #[arg(long = "fault", value_name = "POSITION:KIND[=VALUE]")]
     faults: Vec<String>,
@@ -148,6 +148,11 @@ struct SimMeterArgs {
     /// Do not plant the simulator's phase defect on one meter.
     #[arg(long)]
     no_defect: bool,
+    /// A firmware change for every meter, to rehearse a regression comparison:
+    /// VERSION[,current=±X%[@AMPS]][,voltage=±X%][,phase=±Xdeg][,noise=X%]. (A fault
+    /// P:firmware=VERSION changes only the version one meter reports.)
+    #[arg(long, value_name = "SPEC")]
+    firmware: Option<String>,
 }
 
 #[derive(clap::Args)]
@@ -169,6 +174,10 @@ struct RunArgs {
     /// Number of positions on the simulated bench.
     #[arg(long)]
     positions: Option<usize>,
+    /// A firmware change for the simulated bench's meters, to rehearse a regression
+    /// comparison: VERSION[,current=±X%[@AMPS]][,voltage=±X%][,phase=±Xdeg][,noise=X%].
+    #[arg(long, value_name = "SPEC")]
+    sim_firmware: Option<String>,
     /// Lot (batch) id recorded with every unit.
     #[arg(long)]
     lot: Option<String>,

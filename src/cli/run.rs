@@ -39,6 +39,11 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
         (None, true) => Some(ask_non_empty("Lot id: ")?),
         (None, false) => None,
     };
+    if args.sim_firmware.is_some() && args.bench != "sim" {
+        return Err(CliError::Usage(
+            "--sim-firmware is for the simulated bench (--bench sim); a station's meters have their own firmware".into(),
+        ));
+    }
     let spec = if args.bench == "sim" {
         let positions = sim_positions(&serials, args.positions)?;
         if serials.is_none() && args.ask {
@@ -49,6 +54,7 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
             positions,
             serials,
             ask: args.ask,
+            firmware: args.sim_firmware.clone(),
         }
     } else {
         BenchSpec::Station {

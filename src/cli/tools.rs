@@ -34,6 +34,10 @@ pub(super) fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
     };
     let mut config = SimConfig::new(args.seed, args.positions);
     config.plant_defect = !args.no_defect;
+    if let Some(text) = &args.firmware {
+        config.firmware = crate::bench::sim::FirmwareChange::parse(text)
+            .map_err(|e| CliError::Usage(format!("--firmware: {e}")))?;
+    }
     let protocol = match args.protocol.as_str() {
         "modbus" => Protocol::Modbus { buses: args.buses },
         "iec62056_21" => Protocol::Readout,

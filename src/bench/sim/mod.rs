@@ -19,10 +19,13 @@
 //! instruments are the sibling modules.
 
 pub mod device;
+pub mod firmware;
 pub mod instruments;
 pub mod modbus_device;
 pub mod readout_device;
 pub mod served;
+
+pub use firmware::FirmwareChange;
 
 use super::{
     Bench, BenchError, Clock, InstrumentInfo, LoadSource, Position, ReferenceMeter,
@@ -136,16 +139,6 @@ pub struct SimConfig {
     pub noise_stream_offset: u64,
 }
 
-/// What a simulated firmware does differently from the factory one.
-#[derive(Debug, Clone, Default, PartialEq)]
-pub struct FirmwareChange {
-    pub version: Option<String>,
-    /// (threshold A, relative gain step) applied to currents at or above the threshold.
-    pub gain_step_above: Option<(f64, f64)>,
-    /// Relative noise added to every rms reading.
-    pub extra_noise: f64,
-}
-
 impl SimConfig {
     pub fn new(seed: u64, positions: usize) -> SimConfig {
         SimConfig {
@@ -182,6 +175,8 @@ struct MeterModel {
     tau_s: f64,
     /// (threshold A, relative gain step) of a simulated firmware change.
     gain_step_above: Option<(f64, f64)>,
+    /// Relative gain step of the voltage channel, of a simulated firmware change.
+    voltage_gain_step: f64,
     /// Below this current the firmware reports no power and its register stands still.
     no_load_threshold_a: f64,
 }
@@ -261,7 +256,10 @@ impl World {
             return 0.0;
         }
         let phi = (self.actual.phase_deg + meter.model.phase_error_deg).to_radians();
-        v * (1.0 + meter.model.gain_voltage) * i_meas * phi.cos()
+        v * (1.0 + meter.model.gain_voltage)
+            * (1.0 + meter.model.voltage_gain_step)
+            * i_meas
+            * phi.cos()
     }
 
     /// Integrates meter `index`'s register up to bench time `t`: midpoint steps while the
@@ -314,7 +312,7 @@ impl World {
         let mut jitter = || 1.0 + noise.sample(&mut meter.noise);
         let step = m.gain_step(i);
         let i_meas = (i * (1.0 + m.gain_current) * step + m.offset_current_a) * jitter();
-        let v_meas = v * (1.0 + m.gain_voltage) * jitter();
+        let v_meas = v * (1.0 + m.gain_voltage) * (1.0 + m.voltage_gain_step) * jitter();
         let phi = (actual.phase_deg + m.phase_error_deg).to_radians();
         let live = i_meas.abs() >= m.no_load_threshold_a && i_meas != 0.0;
         let value = match quantity {
@@ -545,12 +543,13 @@ fn meter_model(config: &SimConfig, index: usize, serial: &str) -> MeterModel {
         gain_current: normal(0.0012).sample(&mut rng),
         gain_voltage: normal(0.0008).sample(&mut rng),
         offset_current_a: normal(0.0015).sample(&mut rng),
-        phase_error_deg: normal(0.05).sample(&mut rng),
+        phase_error_deg: normal(0.05).sample(&mut rng) + config.firmware.phase_shift_deg,
         tau_s: uniform(&mut rng, config.tau_range_s.0, config.tau_range_s.1),
         // Drawn after the others, so that the same seed keeps its gains, offsets and phases.
         noise_relative: uniform(&mut rng, 0.0003, 0.0008) + config.firmware.extra_noise,
         no_load_threshold_a: NO_LOAD_THRESHOLD_A,
         gain_step_above: config.firmware.gain_step_above,
+        voltage_gain_step: config.firmware.voltage_gain_step,
     }
 }
 
