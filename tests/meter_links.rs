@@ -504,3 +504,63 @@ fn register_by_register_reads_give_the_builtin_verdicts() {
     assert_eq!(records[0].link_health.unwrap().exceptions, 1);
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// A meter on an interactive console (characters echoed, CRLF, a "> " prompt with no line
+/// ending, log lines until `log off`): the link waits for the prompt, takes it off the echo
+/// glued to it, sends its init sequence, and gets the built-in simulator's verdicts with no
+/// reply misunderstood (the console's behaviour is common practice, no published source).
+#[test]
+fn units_on_an_interactive_console_get_the_builtin_verdicts() {
+    let dir = temp_dir("console-same");
+    let served = serve_at(&dir, SCALE, &["--console"]);
+    let (code, text, on_console) = run(
+        "test-plans/demo-console.yaml",
+        Some(&served.station),
+        &dir.join("c"),
+    );
+    assert_eq!(code, 1, "{text}");
+    assert_builtin_statuses(&on_console, &text);
+    let (_, _, builtin) = run("test-plans/demo.yaml", None, &dir.join("b"));
+    assert_eq!(verdicts(&on_console), verdicts(&builtin));
+    for r in &on_console {
+        let h = r.link_health.expect("a text link counts its lines");
+        assert_eq!((h.not_understood, h.retries), (0, 0), "{}", r.serial);
+        // Every request's echo is skipped, besides banner lines.
+        assert!(h.lines_skipped >= h.requests, "{h:?}");
+    }
+    // The same console read with a link that knows nothing of it: the prompt glued to each
+    // echo and the log lines are lines not understood, counted in the record.
+    let naive = dir.join("naive.yaml");
+    let plan = std::fs::read_to_string("test-plans/demo-console.yaml").unwrap();
+    let start = plan.find("  echo: true").unwrap();
+    let end = plan.find("  restart:").unwrap();
+    std::fs::write(
+        &naive,
+        format!("{}  skip: '^#'\n{}", &plan[..start], &plan[end..]),
+    )
+    .unwrap();
+    let (_, text, records) = run(
+        naive.to_str().unwrap(),
+        Some(&served.station),
+        &dir.join("n"),
+    );
+    assert!(!records.is_empty(), "{text}");
+    let h = records[0].link_health.unwrap();
+    assert!(h.not_understood >= h.requests, "{h:?}");
+    // A prompt that never comes: the unit is INCOMPLETE, and the reason says so.
+    let wrong = dir.join("wrong-prompt.yaml");
+    std::fs::write(&wrong, plan.replace("prompt: \"> \"", "prompt: \"$ \"")).unwrap();
+    let (code, text, records) = run(
+        wrong.to_str().unwrap(),
+        Some(&served.station),
+        &dir.join("w"),
+    );
+    assert_eq!(code, 3, "{text}");
+    assert!(
+        records
+            .iter()
+            .all(|r| r.verdict.status == UnitStatus::Incomplete)
+    );
+    assert!(text.contains("no prompt \"$ \" within 250 ms"), "{text}");
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -466,6 +466,7 @@ fn instrument_port(doc: &mut Document, prefix: &str, raw: &PortFields) -> Option
             echo: false,
             skip: None,
             restart: None,
+            prompt: None,
         },
     })
 }

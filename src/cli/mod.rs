@@ -138,8 +138,9 @@ struct SimMeterArgs {
     #[arg(long, default_value_t = 1)]
     buses: usize,
     /// A fault to inject, as POSITION:KIND[=VALUE] (drop-every=N, garble-every=N, slow=TIME,
-    /// reboot-after=N, firmware=VERSION (the version reported, nothing else), die-after=N, echo, ignore-writes; on Modbus also
-    /// busy-every=N and bad-crc-every=N). May be repeated.
+    /// reboot-after=N, firmware=VERSION (the version reported, nothing else), die-after=N,
+    /// echo, ignore-writes, console; on Modbus also busy-every=N and bad-crc-every=N). May be
+    /// repeated.
     #[arg(long = "fault", value_name = "POSITION:KIND[=VALUE]")]
     faults: Vec<String>,
     /// Stop serving after this long (default: until killed).
@@ -153,6 +154,10 @@ struct SimMeterArgs {
     /// P:firmware=VERSION changes only the version one meter reports.)
     #[arg(long, value_name = "SPEC")]
     firmware: Option<String>,
+    /// Every text meter behaves as an interactive console: characters echoed, CRLF line
+    /// endings, a "> " prompt, log lines until `log off` (the fault P:console for one meter).
+    #[arg(long)]
+    console: bool,
 }
 
 #[derive(clap::Args)]

@@ -14,7 +14,13 @@ pub(super) fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
             "--time-scale must be greater than zero and at most 1000".into(),
         ));
     }
-    let mut faults = vec![Faults::default(); args.positions];
+    let mut faults = vec![
+        Faults {
+            console: args.console,
+            ..Faults::default()
+        };
+        args.positions
+    ];
     for text in &args.faults {
         let (position, f) = parse_fault(text).map_err(|e| CliError::Usage(e.to_string()))?;
         let slot = faults.get_mut(position - 1).ok_or_else(|| {

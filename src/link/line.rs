@@ -1,6 +1,10 @@
 //! A line-oriented request/reply channel over a byte stream: the transport under the `text`
 //! link and the SCPI instruments.
 //!
+//! Where the device shows a prompt (a console's "> ", with no line ending), each request waits
+//! for it first: the prompt is taken off the front of whatever follows it (an echo glued to
+//! it), and a console that shows none within the timeout is woken by an empty line once.
+//!
 //! Each transaction sends one line and waits, up to the channel's timeout, for a line that
 //! matches the reply pattern. On the way it ignores the device's echo of the request (when told
 //! it echoes), lines matching the `skip` pattern (boot banners, log lines) and empty lines, and
@@ -85,6 +89,8 @@ pub struct LineSettings {
     pub skip: Option<regex::Regex>,
     /// A line that shows the device restarted: counted (and ignored).
     pub restart: Option<regex::Regex>,
+    /// The text the device shows when it is ready for a request, without a line ending.
+    pub prompt: Option<String>,
 }
 
 /// What happened on a channel so far.
@@ -117,7 +123,18 @@ pub struct LineChannel<W: Wire> {
     /// Replies still owed to attempts that timed out: the reply pattern, until when a line
     /// matching it is taken as that late reply.
     owed: Vec<(regex::Regex, Instant)>,
+    /// Whether the device's prompt has come since the last request was sent.
+    prompt_seen: bool,
     pub stats: LinkStats,
+}
+
+/// What the channel read next.
+enum Next {
+    Line(String),
+    /// The device's prompt (only when waiting for it).
+    Prompt,
+    /// The deadline passed.
+    Deadline,
 }
 
 impl<W: Wire> LineChannel<W> {
@@ -127,6 +144,7 @@ impl<W: Wire> LineChannel<W> {
         self.wire = wire;
         self.pending.clear();
         self.last_transaction_end = None;
+        self.prompt_seen = false;
     }
 
     pub fn new(settings: LineSettings, wire: W, name: &str) -> LineChannel<W> {
@@ -139,6 +157,7 @@ impl<W: Wire> LineChannel<W> {
             last_answered_in: None,
             answered_once: false,
             owed: Vec::new(),
+            prompt_seen: false,
             stats: LinkStats::default(),
         }
     }
@@ -157,6 +176,7 @@ impl<W: Wire> LineChannel<W> {
     /// Sends a line that has no reply.
     pub fn send_only(&mut self, request: &str) -> Result<(), LinkError> {
         self.wait_out_pause();
+        self.wait_for_prompt()?;
         self.send(request)?;
         self.last_transaction_end = Some(Instant::now());
         Ok(())
@@ -180,12 +200,18 @@ impl<W: Wire> LineChannel<W> {
                 self.stats.retries += 1;
             }
             self.wait_out_pause();
-            self.discard_stale()?;
+            if self.settings.prompt.is_some() {
+                // Whatever came before the prompt was read while waiting for it; discarding
+                // input now would throw the prompt away.
+                self.wait_for_prompt()?;
+            } else {
+                self.discard_stale()?;
+            }
             let sent = Instant::now();
             self.send(request)?;
             let timeout = Duration::from_secs_f64(self.settings.timeout_s);
             let deadline = sent + timeout;
-            while let Some(line) = self.next_line(deadline)? {
+            while let Next::Line(line) = self.next(deadline, false)? {
                 if self.is_noise(request, &line) {
                     continue;
                 }
@@ -231,6 +257,63 @@ impl<W: Wire> LineChannel<W> {
                 attempts,
             },
         })
+    }
+
+    /// Waits until the device shows its prompt (when it has one): lines before it are
+    /// unsolicited (log lines, late replies) and counted as skipped or late. A device that
+    /// shows no prompt within the timeout is sent an empty line, as a person at a console
+    /// presses Enter, and waited for once more.
+    fn wait_for_prompt(&mut self) -> Result<(), LinkError> {
+        let Some(prompt) = self.settings.prompt.clone() else {
+            return Ok(());
+        };
+        let timeout = Duration::from_secs_f64(self.settings.timeout_s);
+        for attempt in 0..2 {
+            if attempt == 1 {
+                self.send("")?;
+            }
+            let deadline = Instant::now() + timeout;
+            loop {
+                if self.prompt_seen {
+                    return Ok(());
+                }
+                match self.next(deadline, true)? {
+                    Next::Prompt => return Ok(()),
+                    Next::Deadline => break,
+                    Next::Line(line) => {
+                        if self.is_noise("", &line) {
+                            continue;
+                        }
+                        if self.is_late(&line) {
+                            self.stats.late_replies += 1;
+                        } else {
+                            self.stats.skipped_lines += 1;
+                        }
+                    }
+                }
+            }
+        }
+        Err(LinkError::NoPrompt {
+            prompt,
+            timeout_ms: (self.settings.timeout_s * 1000.0).round() as u64,
+        })
+    }
+
+    /// Takes the prompt off the front of the input, as often as it is there.
+    fn take_prompt(&mut self) -> bool {
+        let Some(prompt) = self.settings.prompt.as_deref() else {
+            return false;
+        };
+        let prompt = prompt.as_bytes();
+        let mut taken = false;
+        while !prompt.is_empty() && self.pending.starts_with(prompt) {
+            self.pending.drain(..prompt.len());
+            taken = true;
+        }
+        if taken {
+            self.prompt_seen = true;
+        }
+        taken
     }
 
     /// Whether `line` is a reply owed to an attempt that timed out (and takes it off the
@@ -313,6 +396,7 @@ impl<W: Wire> LineChannel<W> {
     }
 
     fn send(&mut self, request: &str) -> Result<(), LinkError> {
+        self.prompt_seen = false;
         let mut bytes = request.as_bytes().to_vec();
         bytes.extend_from_slice(self.settings.send_ending.bytes());
         self.wire
@@ -321,16 +405,20 @@ impl<W: Wire> LineChannel<W> {
             .map_err(|e| LinkError::Disconnected(format!("{}: writing: {e}", self.name)))
     }
 
-    /// The next complete line, or `None` once `deadline` has passed.
-    fn next_line(&mut self, deadline: Instant) -> Result<Option<String>, LinkError> {
+    /// The next complete line, the prompt (when `to_prompt`: it is otherwise taken off
+    /// silently), or the deadline passing.
+    fn next(&mut self, deadline: Instant, to_prompt: bool) -> Result<Next, LinkError> {
         let mut buf = [0u8; 512];
         loop {
+            if self.take_prompt() && to_prompt {
+                return Ok(Next::Prompt);
+            }
             if let Some(line) = take_line(&mut self.pending, self.settings.receive_ending) {
-                return Ok(Some(line));
+                return Ok(Next::Line(line));
             }
             let now = Instant::now();
             if now >= deadline {
-                return Ok(None);
+                return Ok(Next::Deadline);
             }
             let wait = (deadline - now).min(Duration::from_millis(50));
             let _ = self

@@ -69,6 +69,10 @@ pub enum LinkError {
         attempts: u32,
         late: u64,
     },
+    #[error(
+        "no prompt {prompt:?} within {timeout_ms} ms (an empty line sent to wake the unit brought none either)"
+    )]
+    NoPrompt { prompt: String, timeout_ms: u64 },
     #[error("reply to {request} not understood: {reply:?} ({why})")]
     Garbled {
         request: String,

@@ -31,6 +31,7 @@ pub fn line_settings(spec: &TextLinkSpec) -> LineSettings {
         echo: spec.echo,
         skip: spec.skip.as_ref().map(|p| p.regex.clone()),
         restart: spec.restart.as_ref().map(|p| p.regex.clone()),
+        prompt: spec.prompt.clone(),
     }
 }
 
@@ -56,6 +57,8 @@ pub struct TextLink<W: Wire> {
     /// The serial the unit gave when identified: a reopened port must answer with it.
     serial: Option<String>,
     reconnects: u64,
+    /// Whether the plan's init sequence has been sent on the port as it is now open.
+    initialised: bool,
 }
 
 impl<W: Wire> TextLink<W> {
@@ -67,6 +70,7 @@ impl<W: Wire> TextLink<W> {
             reopen: None,
             serial: None,
             reconnects: 0,
+            initialised: false,
         }
     }
 
@@ -82,7 +86,7 @@ impl<W: Wire> TextLink<W> {
         &mut self,
         f: impl Fn(&mut Self) -> Result<T, LinkError>,
     ) -> Result<T, LinkError> {
-        let lost = match f(self) {
+        let lost = match self.init().and_then(|_| f(self)) {
             Err(LinkError::Disconnected(why)) => why,
             other => return other,
         };
@@ -92,6 +96,8 @@ impl<W: Wire> TextLink<W> {
         let wire = reopen().map_err(|_| LinkError::Disconnected(lost.clone()))?;
         self.channel.replace_wire(wire);
         self.reconnects += 1;
+        self.initialised = false;
+        self.init()?;
         if let Some(expected) = self.serial.clone() {
             let now = self.identify_once()?;
             if now.serial != expected {
@@ -102,6 +108,24 @@ impl<W: Wire> TextLink<W> {
             }
         }
         f(self)
+    }
+
+    /// Sends the plan's init sequence once per opening of the port.
+    fn init(&mut self) -> Result<(), LinkError> {
+        if self.initialised {
+            return Ok(());
+        }
+        let spec = self.spec.clone();
+        for line in &spec.init {
+            match &line.reply {
+                None => self.channel.send_only(&line.send)?,
+                Some(reply) => {
+                    self.channel.transact(&line.send, &reply.regex)?;
+                }
+            }
+        }
+        self.initialised = true;
+        Ok(())
     }
 
     fn identify_once(&mut self) -> Result<Identity, LinkError> {

@@ -381,6 +381,12 @@ pub struct RawTextLink {
     /// restarted.
     #[serde(default)]
     pub restart: Option<Text>,
+    /// What the unit shows when ready for a request, without a line ending ("> ").
+    #[serde(default)]
+    pub prompt: Option<Text>,
+    /// Lines sent after the port opens: each a line, or `{ send: LINE, reply: PATTERN }`.
+    #[serde(default)]
+    pub init: Option<Vec<serde_yaml::Value>>,
     #[serde(default)]
     pub channels: Option<Vec<Text>>,
     pub identity: RawIdentity,

@@ -83,6 +83,13 @@ impl Default for PortSettings {
     }
 }
 
+/// A line of the link's init sequence, with the reply it waits for (none: sent and left).
+#[derive(Debug, Clone, Serialize)]
+pub struct InitLine {
+    pub send: String,
+    pub reply: Option<Pattern>,
+}
+
 /// How to ask a unit who it is.
 #[derive(Debug, Clone, Serialize)]
 pub struct IdentityRequest {
@@ -152,6 +159,12 @@ pub struct TextLinkSpec {
     /// A line that shows the unit restarted (its boot banner): counted, and readings taken
     /// across it are not used.
     pub restart: Option<Pattern>,
+    /// What the unit shows when it is ready for a request (a console's "> "), without a line
+    /// ending: each request waits for it, and it is taken off an echo glued to it.
+    pub prompt: Option<String>,
+    /// Lines sent after the port opens (and opens again), before anything else: a console
+    /// put into the mode the link expects.
+    pub init: Vec<InitLine>,
     pub channels: Vec<String>,
     pub identity: IdentityRequest,
     pub quantities: Vec<QuantityRequest>,

@@ -34,7 +34,14 @@ pub struct Faults {
     pub ignore_writes: bool,
     /// Answer every Nth request "busy" (a protocol with exception replies: Modbus 06).
     pub busy_every: Option<u64>,
+    /// Behave as an interactive console: echo each character as it arrives, end lines with
+    /// CRLF, show a "> " prompt (no line ending) when ready, and print a log line every third
+    /// request until told `log off`.
+    pub console: bool,
 }
+
+/// The prompt the simulated console shows.
+pub const CONSOLE_PROMPT: &str = "> ";
 
 /// The protocol's quantity codes.
 pub fn quantity_code(q: Quantity) -> &'static str {
@@ -70,6 +77,10 @@ pub trait LineDevice: Send + 'static {
     fn reply_delay(&self) -> Duration {
         Duration::ZERO
     }
+    /// Whether the device behaves as an interactive console (see [`Faults::console`]).
+    fn console(&self) -> bool {
+        false
+    }
 }
 
 /// The protocol logic, apart from any port: one request line in, reply lines out.
@@ -78,11 +89,14 @@ pub struct Device {
     faults: Faults,
     requests: u64,
     dead: bool,
+    /// A console prints log lines until told `log off`.
+    logging: bool,
 }
 
 impl Device {
     pub fn new(meter: SimMeterHandle, faults: Faults) -> Device {
         Device {
+            logging: faults.console,
             meter,
             faults,
             requests: 0,
@@ -104,6 +118,10 @@ impl LineDevice for Device {
         self.faults.slow
     }
 
+    fn console(&self) -> bool {
+        self.faults.console
+    }
+
     fn handle(&mut self, request: &str) -> Vec<String> {
         self.requests += 1;
         let n = self.requests;
@@ -115,6 +133,22 @@ impl LineDevice for Device {
         let mut out = Vec::new();
         if self.faults.echo {
             out.push(request.to_string());
+        }
+        if self.faults.console {
+            match request.trim() {
+                "log off" => {
+                    self.logging = false;
+                    return vec!["logging stopped".into()];
+                }
+                "log on" => {
+                    self.logging = true;
+                    return vec!["logging started".into()];
+                }
+                _ => {}
+            }
+            if self.logging && n.is_multiple_of(3) {
+                out.push(format!("[log] uptime {} s, core 31.5 C", 40 + n));
+            }
         }
         if self.faults.reboot_after == Some(n) {
             out.extend(Device::boot_lines());
@@ -285,11 +319,15 @@ fn serve(
     requests: &AtomicU64,
 ) {
     let _ = serialport::SerialPort::set_timeout(&mut port, Duration::from_millis(20));
+    let console = device.console();
     let send = |port: &mut serialport::TTYPort, lines: &[String]| {
         let mut bytes = Vec::new();
         for l in lines {
             bytes.extend_from_slice(l.as_bytes());
-            bytes.push(b'\n');
+            bytes.extend_from_slice(if console { b"\r\n" } else { b"\n" });
+        }
+        if console {
+            bytes.extend_from_slice(CONSOLE_PROMPT.as_bytes());
         }
         let _ = port.write_all(&bytes);
         let _ = port.flush();
@@ -300,7 +338,20 @@ fn serve(
     while !stop.load(Ordering::SeqCst) {
         match port.read(&mut buf) {
             Ok(0) => std::thread::sleep(Duration::from_millis(2)),
-            Ok(n) => pending.extend_from_slice(&buf[..n]),
+            Ok(n) => {
+                if console {
+                    // Each character echoed as it arrives, a line's end as CRLF.
+                    let echo: Vec<u8> = buf[..n]
+                        .iter()
+                        .flat_map(|&b| match b {
+                            b'\r' | b'\n' => b"\r\n".to_vec(),
+                            b => vec![b],
+                        })
+                        .collect();
+                    let _ = port.write_all(&echo);
+                }
+                pending.extend_from_slice(&buf[..n])
+            }
             Err(e) if e.kind() == io::ErrorKind::TimedOut => {}
             // No client has the port open right now: wait for one.
             Err(_) => std::thread::sleep(Duration::from_millis(5)),
@@ -309,6 +360,10 @@ fn serve(
             let line: Vec<u8> = pending.drain(..=end).collect();
             let text = String::from_utf8_lossy(&line[..line.len() - 1]).into_owned();
             if text.trim().is_empty() {
+                if console {
+                    // Enter on an empty line: the prompt again.
+                    send(&mut port, &[]);
+                }
                 continue;
             }
             requests.fetch_add(1, Ordering::Relaxed);

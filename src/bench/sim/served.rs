@@ -156,7 +156,8 @@ pub struct FaultError(String);
 
 fn parse_fault_text(text: &str) -> Result<(usize, Faults), String> {
     let help = "write a fault as POSITION:KIND[=VALUE], KIND one of drop-every, garble-every, \
-                slow, reboot-after, firmware, die-after, echo, ignore-writes, busy-every, bad-crc-every";
+                slow, reboot-after, firmware, die-after, echo, ignore-writes, busy-every, bad-crc-every, \
+                console";
     let (position, rest) = text
         .split_once(':')
         .ok_or_else(|| format!("\"{text}\": {help}"))?;
@@ -191,6 +192,7 @@ fn parse_fault_text(text: &str) -> Result<(usize, Faults), String> {
         }
         "firmware" => f.firmware = Some(value.ok_or("firmware needs a version")?.to_string()),
         "echo" => f.echo = true,
+        "console" => f.console = true,
         "ignore-writes" => f.ignore_writes = true,
         _ => return Err(format!("unknown fault \"{kind}\": {help}")),
     }
@@ -206,6 +208,7 @@ pub fn merge_faults(into: &mut Faults, f: Faults) {
     into.die_after = f.die_after.or(into.die_after);
     into.firmware = f.firmware.or(into.firmware.take());
     into.echo |= f.echo;
+    into.console |= f.console;
     into.ignore_writes |= f.ignore_writes;
     if !f.slow.is_zero() {
         into.slow = f.slow;

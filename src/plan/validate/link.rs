@@ -4,7 +4,7 @@ use crate::plan::Quantity;
 use crate::plan::document::{Ctx, channel_names};
 use crate::plan::raw::{RawTextLink, Text};
 use crate::plan::text_link::{
-    Exchange, FlowControl, IdentityRequest, LineEnding, Parity, Pattern, PortSettings,
+    Exchange, FlowControl, IdentityRequest, InitLine, LineEnding, Parity, Pattern, PortSettings,
     QuantityRequest, TextLinkSpec, WriteRequest,
 };
 use crate::plan::units::{self, Dimension};
@@ -285,6 +285,18 @@ pub(super) fn text_link(ctx: &mut Ctx, raw: RawTextLink) -> Option<TextLinkSpec>
         None => Some(None),
         Some(t) => pattern(ctx, "link.restart", t, &[]).map(Some),
     };
+    let prompt = match &raw.prompt {
+        None => Some(None),
+        Some(t) if t.0.is_empty() => {
+            ctx.error(
+                "link.prompt",
+                "a prompt cannot be empty; leave the key out for none",
+            );
+            None
+        }
+        Some(t) => Some(Some(t.0.clone())),
+    };
+    let init = init_lines(ctx, raw.init.as_deref().unwrap_or_default());
     let channels = channel_names(ctx, raw.channels);
     let identity = {
         let request = template(ctx, "link.identity.request", &raw.identity.request, &[]);
@@ -394,11 +406,74 @@ pub(super) fn text_link(ctx: &mut Ctx, raw: RawTextLink) -> Option<TextLinkSpec>
         echo: echo?,
         skip: skip?,
         restart: restart?,
+        prompt: prompt?,
+        init: init?,
         channels,
         identity: identity?,
         quantities,
         writes,
     })
+}
+
+/// The link's init sequence: each entry a line to send, or `{ send: LINE, reply: PATTERN }`.
+fn init_lines(ctx: &mut Ctx, raw: &[serde_yaml::Value]) -> Option<Vec<InitLine>> {
+    use serde_yaml::Value;
+    let mut lines = Vec::new();
+    let mut ok = true;
+    let scalar = |v: &Value| match v {
+        Value::String(s) => Some(s.clone()),
+        Value::Number(n) => Some(n.to_string()),
+        Value::Bool(b) => Some(b.to_string()),
+        _ => None,
+    };
+    for (i, entry) in raw.iter().enumerate() {
+        let path = format!("link.init[{}]", i + 1);
+        if let Some(send) = scalar(entry) {
+            lines.push(InitLine { send, reply: None });
+            continue;
+        }
+        let Value::Mapping(map) = entry else {
+            ctx.error(
+                &path,
+                "write a line to send, or { send: LINE, reply: PATTERN }",
+            );
+            ok = false;
+            continue;
+        };
+        let mut send = None;
+        let mut reply = None;
+        for (key, value) in map {
+            match (key.as_str(), scalar(value)) {
+                (Some("send"), Some(v)) => send = Some(v),
+                (Some("reply"), Some(v)) => {
+                    reply = pattern(ctx, &format!("{path}.reply"), &Text(v), &[]);
+                    ok &= reply.is_some();
+                }
+                (Some(k @ ("send" | "reply")), None) => {
+                    ctx.error(&format!("{path}.{k}"), "write it as text");
+                    ok = false;
+                }
+                (k, _) => {
+                    ctx.error(
+                        &path,
+                        format!(
+                            "unknown key {}; an init line has send and reply",
+                            k.map_or_else(|| format!("{key:?}"), |k| format!("\"{k}\""))
+                        ),
+                    );
+                    ok = false;
+                }
+            }
+        }
+        match send {
+            Some(send) => lines.push(InitLine { send, reply }),
+            None => {
+                ctx.error(&path, "an init line needs send: the line to send");
+                ok = false;
+            }
+        }
+    }
+    ok.then_some(lines)
 }
 
 /// The factor from a unit such as "mA" to the base unit of `dim`.
