@@ -33,6 +33,7 @@ mod explain;
 mod run;
 mod terminal;
 mod tools;
+mod try_link;
 
 use bench_choice::{BenchOptions, BenchSpec, build_bench, plan_at_bench, sim_positions};
 use check::check;
@@ -87,6 +88,9 @@ enum Command {
     Run(RunArgs),
     /// Serve simulated meters, a SCPI source and a SCPI reference on pseudo-terminals.
     SimMeter(SimMeterArgs),
+    /// Try a plan's link on one unit, with no load: the raw exchange of the init, identity and
+    /// every quantity's request, what each reply pattern caught, and why a line did not match.
+    TryLink(try_link::TryLinkArgs),
     /// List the serial ports this machine has.
     Ports,
     /// Write the embedded report templates to a folder, for editing (use with --templates).
@@ -272,6 +276,7 @@ pub fn main() -> i32 {
         Command::Check { plans } => check(&plans),
         Command::Run(args) => run(&args),
         Command::SimMeter(args) => sim_meter(&args),
+        Command::TryLink(args) => try_link::try_link(&args),
         Command::Ports => ports(),
         Command::Templates { export } => export_templates(&export),
         Command::Resume(args) => archive_cmds::resume(&args),

@@ -7,6 +7,7 @@
 pub mod line;
 pub mod modbus;
 pub mod readout;
+pub mod tap;
 pub mod text;
 
 use crate::plan::Quantity;

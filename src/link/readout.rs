@@ -292,7 +292,16 @@ enum Attempt {
 impl ReadoutLink {
     pub fn open(path: &str, spec: Arc<ReadoutLinkSpec>) -> Result<ReadoutLink, LinkError> {
         let port = open_port(path, spec.port)?;
-        Ok(ReadoutLink {
+        Ok(ReadoutLink::on_port(port, path, spec))
+    }
+
+    /// The link on a port already open (a tapped one, for `try-link`).
+    pub fn on_port(
+        port: Box<dyn serialport::SerialPort>,
+        path: &str,
+        spec: Arc<ReadoutLinkSpec>,
+    ) -> ReadoutLink {
+        ReadoutLink {
             port,
             path: path.to_string(),
             spec,
@@ -302,7 +311,7 @@ impl ReadoutLink {
             last_answered_s: None,
             data_at: None,
             session: None,
-        })
+        }
     }
 
     /// Reads bytes until `done` says the message is whole, no byte arriving for the timeout

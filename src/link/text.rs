@@ -310,3 +310,232 @@ impl<W: Wire> TextLink<W> {
         number(&request, &text)
     }
 }
+
+/// What one line the unit sent was taken for, and for a line not understood, a guess at why:
+/// what `try-link` shows an engineer describing a new meter.
+#[derive(Debug, Clone, PartialEq)]
+pub enum LineRole {
+    /// Nothing but the prompt, or an empty line.
+    Blank,
+    /// The unit's echo of the request.
+    Echo,
+    /// A line the `skip` or `restart` pattern sets aside.
+    Skipped,
+    /// The reply: its named groups and what they caught.
+    Reply(Vec<(String, String)>),
+    /// A line that matches nothing, with a hint where one can be given.
+    NotUnderstood(Option<String>),
+}
+
+/// Says what `line` is to the link while it waits for `reply` to `request`.
+pub fn explain_line(
+    spec: &TextLinkSpec,
+    request: &str,
+    reply: &regex::Regex,
+    line: &str,
+) -> LineRole {
+    let mut line = line;
+    if let Some(prompt) = spec.prompt.as_deref().filter(|p| !p.is_empty()) {
+        while let Some(rest) = line.strip_prefix(prompt) {
+            line = rest;
+        }
+    }
+    if line.trim().is_empty() {
+        return LineRole::Blank;
+    }
+    if spec.echo && line.trim() == request.trim() {
+        return LineRole::Echo;
+    }
+    let sets_aside = |p: &Option<crate::plan::text_link::Pattern>| {
+        p.as_ref().is_some_and(|p| p.regex.is_match(line))
+    };
+    if sets_aside(&spec.skip) || sets_aside(&spec.restart) {
+        return LineRole::Skipped;
+    }
+    if let Some(c) = reply.captures(line) {
+        let groups = reply
+            .capture_names()
+            .flatten()
+            .map(|name| {
+                let caught = c.name(name).map_or("", |m| m.as_str());
+                (name.to_string(), caught.to_string())
+            })
+            .collect();
+        return LineRole::Reply(groups);
+    }
+    LineRole::NotUnderstood(hint(request, reply, line))
+}
+
+/// A guess at why `line` did not match, from the commonest mistakes in describing a console.
+fn hint(request: &str, reply: &regex::Regex, line: &str) -> Option<String> {
+    let request = request.trim();
+    if !request.is_empty() && line.trim() == request {
+        return Some("it is the echo of the request: set echo: true".into());
+    }
+    if !request.is_empty()
+        && let Some(before) = line.strip_suffix(request).or_else(|| {
+            line.trim_end()
+                .strip_suffix(request)
+                .filter(|b| !b.is_empty())
+        })
+        && !before.is_empty()
+        && before.len() <= 16
+    {
+        return Some(format!(
+            "it is the echo of the request after {before:?}, a prompt: set prompt: {before:?} and echo: true"
+        ));
+    }
+    if reply.is_match(line.trim()) {
+        return Some(
+            "it matches once the spaces around it are taken off: allow them in the pattern (\\s*)"
+                .into(),
+        );
+    }
+    let unanchored = reply
+        .as_str()
+        .trim_start_matches('^')
+        .trim_end_matches('$')
+        .to_string();
+    if unanchored != reply.as_str()
+        && regex::Regex::new(&unanchored).is_ok_and(|r| r.is_match(line))
+    {
+        return Some(
+            "the pattern matches part of the line, but not from its start to its end (^ … $)"
+                .into(),
+        );
+    }
+    if line.starts_with('[') || line.to_ascii_lowercase().contains("log") {
+        return Some(
+            "it looks like a log line: set it aside with skip, or turn logging off in init".into(),
+        );
+    }
+    None
+}
+
+/// Why nothing usable came back, judged from the bytes received: nothing at all, or bytes with
+/// no line ending the link waits for.
+pub fn explain_silence(spec: &TextLinkSpec, received: &[u8]) -> String {
+    if received.is_empty() {
+        return format!(
+            "nothing came back: check the port and its settings ({} baud), and the line ending the unit waits for (send: {})",
+            spec.port.baud,
+            ending_name(spec.send_ending)
+        );
+    }
+    let has_lf = received.contains(&b'\n');
+    let has_cr = received.contains(&b'\r');
+    let ending = spec.receive_ending;
+    let ends = match ending {
+        crate::plan::text_link::LineEnding::Cr => has_cr,
+        _ => has_lf,
+    };
+    if !ends {
+        let seen = match (has_cr, has_lf) {
+            (true, true) => "CRLF",
+            (true, false) => "CR",
+            (false, true) => "LF",
+            (false, false) => "no line ending at all",
+        };
+        return format!(
+            "bytes came back, but no line ended with {} (the unit sent {seen}): set line_ending.receive",
+            ending_name(ending)
+        );
+    }
+    if let Some(prompt) = spec.prompt.as_deref() {
+        let text = String::from_utf8_lossy(received);
+        if !text.contains(prompt) {
+            return format!("the prompt {prompt:?} never came: is it the unit's prompt?");
+        }
+    }
+    "no line matched the reply pattern".into()
+}
+
+/// A line ending as the plan writes it.
+pub fn ending_name(ending: crate::plan::text_link::LineEnding) -> &'static str {
+    use crate::plan::text_link::LineEnding;
+    match ending {
+        LineEnding::Cr => "CR",
+        LineEnding::Lf => "LF",
+        LineEnding::CrLf => "CRLF",
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The console demo plan's link: echo, prompt "> ", banner and log lines skipped.
+    fn console() -> TextLinkSpec {
+        let text = include_str!("../../test-plans/demo-console.yaml");
+        match crate::plan::Plan::from_text("demo-console.yaml", text)
+            .unwrap()
+            .link
+        {
+            crate::plan::LinkSpec::Text(t) => *t,
+            other => panic!("{other:?}"),
+        }
+    }
+
+    /// The same link knowing nothing of the console.
+    fn plain() -> TextLinkSpec {
+        TextLinkSpec {
+            echo: false,
+            prompt: None,
+            skip: None,
+            restart: None,
+            ..console()
+        }
+    }
+
+    /// Each role a line can have, and the hints for the commonest mistakes in describing a
+    /// console (common practice at meter consoles, no published source).
+    #[test]
+    fn lines_are_told_apart_and_mistakes_hinted() {
+        let reply = regex::Regex::new(r"^= (?P<value>\d+)$").unwrap();
+        let plain = plain();
+        assert_eq!(
+            explain_line(&plain, "rd I", &reply, "= 12"),
+            LineRole::Reply(vec![("value".into(), "12".into())])
+        );
+        let hint_of = |s: &TextLinkSpec, line: &str| match explain_line(s, "rd I", &reply, line) {
+            LineRole::NotUnderstood(h) => h.unwrap_or_default(),
+            other => panic!("{line}: {other:?}"),
+        };
+        assert!(hint_of(&plain, "rd I").contains("set echo: true"));
+        assert!(hint_of(&plain, "> rd I").contains("set prompt: \"> \""));
+        assert!(hint_of(&plain, " = 12 ").contains("spaces around it"));
+        assert!(hint_of(&plain, "= 12 A").contains("from its start to its end"));
+        assert!(hint_of(&plain, "[log] core 31 C").contains("log line"));
+        assert_eq!(hint_of(&plain, "err busy"), "");
+        let console = console();
+        assert_eq!(
+            explain_line(&console, "rd I", &reply, "> rd I"),
+            LineRole::Echo
+        );
+        assert_eq!(
+            explain_line(&console, "rd I", &reply, "> "),
+            LineRole::Blank
+        );
+        assert_eq!(
+            explain_line(&console, "rd I", &reply, "# boot"),
+            LineRole::Skipped
+        );
+        assert_eq!(
+            explain_line(&console, "rd I", &reply, "> = 7"),
+            LineRole::Reply(vec![("value".into(), "7".into())])
+        );
+    }
+
+    #[test]
+    fn silence_is_explained_from_the_bytes_received() {
+        let s = TextLinkSpec {
+            receive_ending: crate::plan::text_link::LineEnding::Lf,
+            prompt: Some("$ ".into()),
+            ..console()
+        };
+        assert!(explain_silence(&s, b"").contains("send: CR"));
+        assert!(explain_silence(&s, b"= 1\r").contains("the unit sent CR"));
+        assert!(explain_silence(&s, b"= 1\n").contains("prompt \"$ \" never came"));
+        assert!(explain_silence(&s, b"$ = x\n").contains("no line matched"));
+    }
+}

@@ -48,14 +48,22 @@ enum Attempt {
 impl Bus {
     /// Opens the bus at `path` with the link's settings.
     pub fn open(path: &str, spec: &ModbusLinkSpec) -> Result<SharedBus, LinkError> {
-        let port = open_port(path, spec.port)?;
+        Ok(Bus::on_port(open_port(path, spec.port)?, path, spec))
+    }
+
+    /// The bus on a port already open (a tapped one, for `try-link`).
+    pub fn on_port(
+        port: Box<dyn serialport::SerialPort>,
+        path: &str,
+        spec: &ModbusLinkSpec,
+    ) -> SharedBus {
         let gap = Duration::from_secs_f64(spec.frame_silence_s().max(spec.turnaround_s));
-        Ok(Arc::new(Mutex::new(Bus {
+        Arc::new(Mutex::new(Bus {
             port,
             path: path.to_string(),
             gap,
             quiet_since: Instant::now(),
-        })))
+        }))
     }
 
     /// Sends one request frame and waits for the reply frame of `address`, up to `timeout`.
