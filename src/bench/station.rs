@@ -79,7 +79,7 @@ pub enum ReferenceRead {
     Operator,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 struct RawStation {
     station: Text,
@@ -95,13 +95,13 @@ struct RawStation {
     reference: RawReference,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 struct RawSimulation {
     time_scale: Text,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 struct RawStationPosition {
     position: Text,
@@ -110,14 +110,14 @@ struct RawStationPosition {
     address: Option<Text>,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields, tag = "kind", rename_all = "snake_case")]
 enum RawSource {
     Scpi(Box<RawScpiSource>),
     Manual {},
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 struct RawScpiSource {
     port: Text,
@@ -130,7 +130,7 @@ struct RawScpiSource {
     commands: RawSourceCommands,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 struct RawSourceCommands {
     #[serde(default)]
@@ -149,7 +149,7 @@ struct RawSourceCommands {
     error_query: Option<Text>,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 struct RawReference {
     id: Text,
@@ -166,14 +166,14 @@ struct RawReference {
     read: RawReferenceRead,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields, tag = "kind", rename_all = "snake_case")]
 enum RawReferenceRead {
     Scpi(Box<RawScpiRead>),
     Operator {},
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 struct RawScpiRead {
     port: Text,
@@ -583,6 +583,14 @@ fn reference(doc: &mut Document, raw: &RawReference) -> Option<ReferenceSpec> {
 pub const ACCURACY_UNKNOWN: &str = "unknown";
 
 /// Why a station could not be made into a bench.
+/// The JSON Schema of a station file, from the types it is read into.
+pub fn station_schema() -> schemars::Schema {
+    let mut schema = schemars::schema_for!(RawStation);
+    schema.insert("title".into(), "meterproof station".into());
+    schema.insert("description".into(), "A meterproof station: the test positions and their ports, the load source and the reference meter. See the README, section Station keys.".into());
+    schema
+}
+
 #[derive(Debug, thiserror::Error)]
 pub enum StationError {
     #[error(

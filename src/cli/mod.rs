@@ -29,6 +29,7 @@ macro_rules! out_part {
 mod archive_cmds;
 mod bench_choice;
 mod check;
+mod editor;
 mod explain;
 mod run;
 mod terminal;
@@ -93,6 +94,12 @@ enum Command {
     TryLink(try_link::TryLinkArgs),
     /// List the serial ports this machine has.
     Ports,
+    /// Print the JSON Schema of plan or station files, for an editor's YAML language server.
+    Schema(editor::SchemaArgs),
+    /// Print a shell completion script (bash, zsh, fish, elvish, powershell).
+    Completions(editor::CompletionsArgs),
+    /// Print the man page, or write a page per command to a folder.
+    Man(editor::ManArgs),
     /// Write the embedded report templates to a folder, for editing (use with --templates).
     Templates {
         /// The folder to write them to.
@@ -278,6 +285,9 @@ pub fn main() -> i32 {
         Command::SimMeter(args) => sim_meter(&args),
         Command::TryLink(args) => try_link::try_link(&args),
         Command::Ports => ports(),
+        Command::Schema(args) => editor::schema(&args),
+        Command::Completions(args) => editor::completions(&args),
+        Command::Man(args) => editor::man(&args),
         Command::Templates { export } => export_templates(&export),
         Command::Resume(args) => archive_cmds::resume(&args),
         Command::History(args) => archive_cmds::history(&args),

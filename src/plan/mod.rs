@@ -14,7 +14,7 @@ pub mod units;
 mod validate;
 
 pub use locate::Position;
-pub use raw::{RawPort, Text};
+pub use raw::{RawPort, Text, plan_schema};
 // The trade's concepts belong to metrology; the plan reads text into them.
 pub use crate::metrology::decision::DecisionRule;
 pub use crate::metrology::tolerance::Tolerance;

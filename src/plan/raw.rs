@@ -40,9 +40,54 @@ impl<'de> Deserialize<'de> for Text {
     }
 }
 
+impl schemars::JsonSchema for Text {
+    fn schema_name() -> std::borrow::Cow<'static, str> {
+        "Value".into()
+    }
+    fn inline_schema() -> bool {
+        true
+    }
+    fn json_schema(_: &mut schemars::SchemaGenerator) -> schemars::Schema {
+        schemars::json_schema!({
+            "type": ["string", "number", "boolean"],
+            "description": "A value, with its unit where it has one (\"5 A\", \"250 ms\", \"0.5 %\")"
+        })
+    }
+}
+
+impl schemars::JsonSchema for StepSlot {
+    fn schema_name() -> std::borrow::Cow<'static, str> {
+        RawStep::schema_name()
+    }
+    fn json_schema(generator: &mut schemars::SchemaGenerator) -> schemars::Schema {
+        RawStep::json_schema(generator)
+    }
+}
+
+/// An init line as the JSON Schema describes it (the plan reads it from YAML by hand, to say
+/// what is wrong with one in the plan's words).
+#[derive(schemars::JsonSchema)]
+#[serde(untagged)]
+#[allow(dead_code)]
+enum InitLineSchema {
+    /// A line sent, with no reply waited for.
+    Line(String),
+    /// A line sent and the reply waited for.
+    Exchange(InitExchangeSchema),
+}
+
+#[derive(schemars::JsonSchema)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)]
+struct InitExchangeSchema {
+    send: String,
+    /// The pattern of the reply waited for.
+    reply: Option<String>,
+}
+
 /// The top level of a plan. Each step is deserialised on its own ([`StepSlot`]) so that a
 /// mistake in one does not hide the mistakes in the others.
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawPlan {
     pub id: Text,
@@ -51,6 +96,7 @@ pub struct RawPlan {
     pub title: Option<Text>,
     pub product: RawProduct,
     pub ratings: RawRatings,
+    #[schemars(with = "RawLink")]
     pub link: serde_yaml::Value,
     #[serde(default)]
     pub defaults: RawDefaults,
@@ -91,7 +137,7 @@ impl<'de> Deserialize<'de> for StepSlot {
     }
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawCalibration {
     pub quantity: Text,
@@ -107,7 +153,7 @@ pub struct RawCalibration {
 }
 
 /// What a unit's calibration is held to.
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawCalibrationLimits {
     #[serde(default)]
@@ -123,21 +169,21 @@ pub struct RawCalibrationLimits {
 }
 
 /// `{ nominal: 2240, within: 2 % }` or `{ nominal: 128, within: 40 }` (counts).
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawWindow {
     pub nominal: Text,
     pub within: Text,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawCalibrationWrite {
     pub offset: Text,
     pub gain: Text,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawDecision {
     pub rule: Text,
@@ -145,7 +191,7 @@ pub struct RawDecision {
     pub guard_band: Option<Text>,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawProduct {
     #[serde(default)]
@@ -154,7 +200,7 @@ pub struct RawProduct {
     pub firmware: Text,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawRatings {
     pub nominal_voltage: Text,
@@ -184,7 +230,7 @@ pub struct RawRatings {
     pub shunt: Option<Text>,
 }
 
-#[derive(Debug, Default, Deserialize)]
+#[derive(Debug, Default, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawDefaults {
     /// How far the reference may read from the step's nominal load: "5 %".
@@ -204,7 +250,7 @@ pub struct RawDefaults {
 
 /// A repeatability declared from earlier data: a relative standard deviation of one reading,
 /// and where it comes from.
-#[derive(Debug, Clone, Deserialize)]
+#[derive(Debug, Clone, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawRepeatability {
     pub relative: Text,
@@ -212,7 +258,7 @@ pub struct RawRepeatability {
 }
 
 /// Settle until every position's readings are stable.
-#[derive(Debug, Clone, Deserialize)]
+#[derive(Debug, Clone, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawSettleUntil {
     /// "0.05 %" of the readings' mean, or an absolute band in the quantity's unit.
@@ -230,14 +276,14 @@ pub struct RawSettleUntil {
 }
 
 /// Take samples until every decision is settled.
-#[derive(Debug, Clone, Deserialize)]
+#[derive(Debug, Clone, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawSequential {
     pub min: Text,
     pub max: Text,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields, tag = "kind", rename_all = "snake_case")]
 pub enum RawLink {
     /// The built-in simulated meter.
@@ -254,7 +300,7 @@ pub enum RawLink {
     Readout(Box<RawReadoutLink>),
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawReadoutLink {
     #[serde(default)]
@@ -278,7 +324,7 @@ pub struct RawReadoutLink {
 }
 
 /// Each field `identification` or an OBIS code.
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawReadoutIdentity {
     pub model: Text,
@@ -286,7 +332,7 @@ pub struct RawReadoutIdentity {
     pub firmware: Text,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawObis {
     pub obis: Text,
@@ -296,7 +342,7 @@ pub struct RawObis {
     pub resolution: Option<Text>,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawModbusLink {
     #[serde(default)]
@@ -324,7 +370,7 @@ pub struct RawModbusLink {
     pub writes: std::collections::BTreeMap<String, RawRegister>,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawModbusIdentity {
     pub model: RawRegister,
@@ -333,7 +379,7 @@ pub struct RawModbusIdentity {
 }
 
 /// A value in a unit's registers, as a plan writes it.
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawRegister {
     pub register: Text,
@@ -360,7 +406,7 @@ pub struct RawRegister {
     pub raw: Option<Box<RawRegister>>,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawTextLink {
     #[serde(default)]
@@ -386,6 +432,7 @@ pub struct RawTextLink {
     pub prompt: Option<Text>,
     /// Lines sent after the port opens: each a line, or `{ send: LINE, reply: PATTERN }`.
     #[serde(default)]
+    #[schemars(with = "Option<Vec<InitLineSchema>>")]
     pub init: Option<Vec<serde_yaml::Value>>,
     #[serde(default)]
     pub channels: Option<Vec<Text>>,
@@ -395,7 +442,7 @@ pub struct RawTextLink {
     pub writes: std::collections::BTreeMap<String, RawWrite>,
 }
 
-#[derive(Debug, Default, Deserialize)]
+#[derive(Debug, Default, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawPort {
     #[serde(default)]
@@ -410,7 +457,7 @@ pub struct RawPort {
     pub flow_control: Option<Text>,
 }
 
-#[derive(Debug, Default, Deserialize)]
+#[derive(Debug, Default, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawLineEnding {
     #[serde(default)]
@@ -419,14 +466,14 @@ pub struct RawLineEnding {
     pub receive: Option<Text>,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawIdentity {
     pub request: Text,
     pub reply: Text,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawQuantityRequest {
     pub request: Text,
@@ -445,7 +492,7 @@ pub struct RawQuantityRequest {
     pub unit: Option<Text>,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawWrite {
     pub request: Text,
@@ -455,7 +502,7 @@ pub struct RawWrite {
     pub readback: Option<RawIdentity>,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawStep {
     pub id: Text,
@@ -483,7 +530,7 @@ pub struct RawStep {
     pub checks: Vec<RawCheck>,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawLoad {
     #[serde(default)]
@@ -497,7 +544,7 @@ pub struct RawLoad {
     pub frequency: Option<Text>,
 }
 
-#[derive(Debug, Deserialize)]
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawCheck {
     pub quantity: Text,
@@ -507,7 +554,7 @@ pub struct RawCheck {
 }
 
 /// Every tolerance key; the validator checks that they form exactly one kind.
-#[derive(Debug, Default, Deserialize)]
+#[derive(Debug, Default, Deserialize, schemars::JsonSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RawTolerance {
     #[serde(default)]
@@ -524,4 +571,13 @@ pub struct RawTolerance {
     pub at_most: Option<Text>,
     #[serde(default)]
     pub class: Option<Text>,
+}
+
+/// The JSON Schema of a plan file, from the types the plan is read into: a YAML language server
+/// given it completes keys and flags a misspelt one as it is typed.
+pub fn plan_schema() -> schemars::Schema {
+    let mut schema = schemars::schema_for!(RawPlan);
+    schema.insert("title".into(), "meterproof test plan".into());
+    schema.insert("description".into(), "A meterproof test plan: the product, its ratings, how to reach the unit (link), and the steps with their loads and checks. See the README, section Plan keys.".into());
+    schema
 }
