@@ -92,6 +92,10 @@ pub(super) fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
         if duration.is_some_and(|d| started.elapsed().as_secs_f64() >= d) {
             return Ok(0);
         }
+        // A stop signal (Ctrl-C, `kill`) ends serving; the devices stop as they are dropped.
+        if INTERRUPT.load(Ordering::SeqCst) {
+            return Ok(0);
+        }
     }
 }
 

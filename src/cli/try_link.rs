@@ -293,6 +293,10 @@ fn show_text(
                         .collect::<Vec<_>>()
                         .join(", ")
                 ),
+                // Input waiting before the first request is thrown away by the link.
+                LineRole::NotUnderstood(_) if request.is_empty() => {
+                    "before any request (thrown away)".into()
+                }
                 LineRole::NotUnderstood(hint) => {
                     not_understood += 1;
                     match hint {
