@@ -343,6 +343,13 @@ fn terminal_output_fits_80_columns_and_colour_is_never_alone() {
         .collect();
     let o = bin().arg("check").args(&plans).output().unwrap();
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    // Words are never broken at their hyphens: the station's due date stays whole.
+    let joined = text(&o).split_whitespace().collect::<Vec<_>>().join(" ");
+    assert!(
+        joined.contains("calibration due 2027-06-30"),
+        "{}",
+        text(&o)
+    );
     outputs.push(text(&o));
     for output in &outputs {
         for line in output.lines() {

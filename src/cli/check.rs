@@ -63,7 +63,7 @@ fn fitted_line(line: &str) -> String {
     let joined = value_unit.replace_all(line.trim_start(), "$1\u{a0}$2");
     textwrap::fill(
         &joined,
-        textwrap::Options::new(terminal::WIDTH)
+        terminal::wrap_options(terminal::WIDTH)
             .initial_indent(&line[..lead])
             .subsequent_indent(&pad),
     )

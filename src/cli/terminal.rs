@@ -53,12 +53,18 @@ pub(super) fn print_summary(records: &[UnitRecord], written: &Option<Vec<Written
 /// Columns the terminal output is laid out for: nothing printed wraps at 80.
 pub(super) const WIDTH: usize = 80;
 
+/// How every line the terminal shows is wrapped: at spaces only, never inside a word at its
+/// hyphens (a date, a serial number, a file name stays whole).
+pub(super) fn wrap_options(width: usize) -> textwrap::Options<'static> {
+    textwrap::Options::new(width).word_splitter(textwrap::WordSplitter::NoHyphenation)
+}
+
 /// `text` wrapped at word boundaries to [`WIDTH`], every line indented by `indent` spaces.
 pub(super) fn wrapped(text: &str, indent: usize) -> String {
     let pad = " ".repeat(indent);
     textwrap::fill(
         text,
-        textwrap::Options::new(WIDTH)
+        wrap_options(WIDTH)
             .initial_indent(&pad)
             .subsequent_indent(&pad),
     )

@@ -179,7 +179,7 @@ fn try_once(plan: &Plan, port: &str, address: u8, channel: Option<&str>) -> Resu
         ),
         (false, _) => "some requests failed: see the ✘ lines above".to_string(),
     };
-    for line in textwrap::wrap(&verdict, terminal::WIDTH) {
+    for line in textwrap::wrap(&verdict, terminal::wrap_options(terminal::WIDTH)) {
         out!("{line}");
     }
     Ok(answered && not_understood == 0)
@@ -312,7 +312,7 @@ fn show_text(
                 out!("  ← {quoted}  {role}");
             } else {
                 out!("  ← {quoted}");
-                for piece in textwrap::wrap(&role, 72) {
+                for piece in textwrap::wrap(&role, terminal::wrap_options(72)) {
                     out!("      {piece}");
                 }
             }
