@@ -421,3 +421,46 @@ fn replies_later_than_the_timeout_are_named_as_such() {
     // The punctual unit beside it is untouched.
     assert_eq!(records[1].verdict.status, UnitStatus::Accepted);
 }
+
+/// A console unit reseated on its port gets the plan's init sequence again before anything
+/// else: the device served anew counts `log off`, the identity check and the reads, and the
+/// link reads through its prompt with no line misunderstood.
+#[test]
+fn a_reopened_console_gets_its_init_sequence_again() {
+    use meterproof::link::DutLink;
+    use meterproof::link::line::open_port;
+    use meterproof::plan::Quantity;
+    use std::sync::Mutex;
+    use std::sync::atomic::Ordering;
+    let console_plan = plan("demo-console.yaml");
+    let LinkSpec::Text(spec) = &console_plan.link else {
+        panic!("a text link")
+    };
+    assert_eq!(spec.init.len(), 1);
+    let spec = Arc::new((**spec).clone());
+    let sim = SimBench::new(&SimConfig::new(1, 1));
+    let console = || Faults {
+        console: true,
+        ..Faults::default()
+    };
+    let first = PtyDevice::spawn(Device::new(sim.meter(0), console())).unwrap();
+    let now_at = Arc::new(Mutex::new(first.path.clone()));
+    let settings = spec.port;
+    let at = now_at.clone();
+    let mut link = text::TextLink::new(spec.clone(), open_port(&first.path, settings).unwrap(), "p1")
+        .with_reopen(Box::new(move || open_port(&at.lock().unwrap(), settings)));
+    link.identify().unwrap();
+    assert!(link.read(Quantity::Current, "L").is_ok());
+    // init, who, one read.
+    assert_eq!(first.requests.load(Ordering::Relaxed), 3);
+    drop(first);
+    let again = PtyDevice::spawn(Device::new(sim.meter(0), console())).unwrap();
+    *now_at.lock().unwrap() = again.path.clone();
+    for _ in 0..4 {
+        assert!(link.read(Quantity::Voltage, "L").is_ok());
+    }
+    // init again, who (the same unit?), four reads.
+    assert_eq!(again.requests.load(Ordering::Relaxed), 6);
+    let h = link.health().unwrap();
+    assert_eq!((h.reconnects, h.not_understood), (1, 0), "{h:?}");
+}
