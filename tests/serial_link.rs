@@ -447,8 +447,12 @@ fn a_reopened_console_gets_its_init_sequence_again() {
     let now_at = Arc::new(Mutex::new(first.path.clone()));
     let settings = spec.port;
     let at = now_at.clone();
-    let mut link = text::TextLink::new(spec.clone(), open_port(&first.path, settings).unwrap(), "p1")
-        .with_reopen(Box::new(move || open_port(&at.lock().unwrap(), settings)));
+    let mut link = text::TextLink::new(
+        spec.clone(),
+        open_port(&first.path, settings).unwrap(),
+        "p1",
+    )
+    .with_reopen(Box::new(move || open_port(&at.lock().unwrap(), settings)));
     link.identify().unwrap();
     assert!(link.read(Quantity::Current, "L").is_ok());
     // init, who, one read.
