@@ -500,3 +500,114 @@ fn the_lot_summary_gives_the_rule_s_global_risks() {
             .ends_with("global_consumer_risk,global_producer_risk")
     );
 }
+
+/// A unit tested again counts once in the lot summary, by its last test: a lot of four units
+/// and a second run retesting one of them with a new unit beside it is five units in six tests,
+/// with the final and first-pass yields recomputed here from the records (yield as the share
+/// of units accepted: common practice, no published source).
+#[test]
+fn retests_are_not_new_units() {
+    let dir = temp_dir("summary-retests");
+    let run = |extra: &[&str]| {
+        let o = bin()
+            .args([
+                "run",
+                "test-plans/demo.yaml",
+                "--quiet",
+                "--lot",
+                "LOT-R",
+                "--out",
+            ])
+            .arg(&dir)
+            .args(extra)
+            .output()
+            .unwrap();
+        assert!(matches!(o.status.code(), Some(0 | 1)));
+    };
+    run(&["--positions", "4", "--seed", "1"]);
+    let first = records_in(&dir);
+    let rejected = first
+        .iter()
+        .find(|r| r.verdict.status == meterproof::record::UnitStatus::Rejected)
+        .expect("the planted defect rejects one unit")
+        .serial
+        .clone();
+    run(&["--seed", "2", "--serials", &format!("NEW-1,{rejected}")]);
+    let records = records_in(&dir);
+    assert_eq!(records.len(), 6);
+    let o = bin()
+        .args(["summary", "--lot", "LOT-R", "--json", "--out"])
+        .arg(&dir)
+        .arg("--archive")
+        .arg(dir.join("archive.sqlite"))
+        .output()
+        .unwrap();
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let s: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(s["units"], 5);
+    assert_eq!(s["tests"], 6);
+    assert_eq!(s["retests"], 1);
+    assert_eq!(s["units_retested"], 1);
+    // Recomputed: each serial's first and last test by start time.
+    let mut by_serial: std::collections::BTreeMap<&str, Vec<&meterproof::record::UnitRecord>> =
+        Default::default();
+    for r in &records {
+        by_serial.entry(&r.serial).or_default().push(r);
+    }
+    let accepted = |r: &&meterproof::record::UnitRecord| {
+        r.verdict.status == meterproof::record::UnitStatus::Accepted
+    };
+    let (mut last_ok, mut first_ok) = (0, 0);
+    for tests in by_serial.values_mut() {
+        tests.sort_by_key(|r| r.started_at.clone());
+        last_ok += accepted(tests.last().unwrap()) as usize;
+        first_ok += accepted(&tests[0]) as usize;
+    }
+    assert_eq!(s["accepted"].as_u64().unwrap() as usize, last_ok);
+    // A rejection is marginal when every failing check is within U of its limit.
+    let marginal = by_serial
+        .values()
+        .map(|t| *t.last().unwrap())
+        .filter(|r| r.verdict.status == meterproof::record::UnitStatus::Rejected)
+        .filter(|r| {
+            r.steps
+                .iter()
+                .flat_map(|st| &st.checks)
+                .filter(|c| c.verdict == meterproof::record::CheckVerdict::Fail)
+                .all(|c| c.marginal())
+        })
+        .count();
+    assert_eq!(s["rejected_marginal"].as_u64().unwrap() as usize, marginal);
+    assert!((s["yield_percent"].as_f64().unwrap() - last_ok as f64 * 20.0).abs() < 1e-9);
+    assert!(
+        (s["first_pass_yield_percent"].as_f64().unwrap() - first_ok as f64 * 20.0).abs() < 1e-9
+    );
+    // Every check's statistics are of five units, not six.
+    for c in s["checks"].as_array().unwrap() {
+        assert!(c["units"].as_u64().unwrap() <= 5, "{c}");
+    }
+    // The unit list: one line per unit, rejected first; the earlier test listed apart.
+    let lines = s["unit_lines"].as_array().unwrap();
+    assert_eq!(lines.len(), 5);
+    let ranks: Vec<u8> = lines
+        .iter()
+        .map(|l| match l["status"].as_str().unwrap() {
+            "rejected" => 0,
+            "incomplete" => 1,
+            _ => 2,
+        })
+        .collect();
+    assert!(ranks.windows(2).all(|w| w[0] <= w[1]), "{ranks:?}");
+    let earlier = s["earlier_tests"].as_array().unwrap();
+    assert_eq!(earlier.len(), 1);
+    assert_eq!(earlier[0]["serial"], rejected.as_str());
+    let html = std::fs::read_to_string(dir.join("summary-lot-LOT-R.html")).unwrap();
+    assert!(html.contains("1 retest of 1 unit"), "{html}");
+    assert!(html.contains("Earlier tests"), "{html}");
+    std::fs::remove_dir_all(&dir).unwrap();
+}

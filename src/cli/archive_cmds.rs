@@ -674,16 +674,26 @@ pub(super) fn summary(args: &SummaryArgs) -> Result<i32, CliError> {
     if args.json {
         print_json(&summary);
     } else {
-        out!(
-            "{}: yield {:.1} % ({} of {} accepted, {} rejected, {} incomplete); {}",
+        let retests = if summary.retests > 0 {
+            format!(
+                "; {} of {} units retested ({} tests), each counted by its last test",
+                summary.units_retested, summary.units, summary.tests
+            )
+        } else {
+            String::new()
+        };
+        let text = format!(
+            "{}: yield {:.1} % ({} of {} units accepted, {} rejected, {} incomplete), first-pass yield {:.1} %{retests}; {}",
             summary.title,
             summary.yield_percent,
             summary.accepted,
             summary.units,
             summary.rejected,
             summary.incomplete,
+            summary.first_pass_yield_percent,
             html_path.display()
         );
+        out!("{}", wrapped(&text, 0));
     }
     Ok(0)
 }

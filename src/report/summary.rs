@@ -122,21 +122,44 @@ pub struct UnitLine {
     pub symbol: &'static str,
     pub report: String,
     pub reasons: Vec<String>,
+    /// A rejection every failing check of which lies within its expanded uncertainty of its
+    /// limit ("FAIL, marginal"): told apart from a clear failure.
+    pub marginal: bool,
+    /// When the unit was tested (the record's start).
+    pub started_at: String,
 }
 
+/// A lot's summary. A unit tested more than once counts once, by its last test: the counts,
+/// the yield, the rejections and the error statistics are of distinct units; the earlier tests
+/// are listed apart as retests.
 #[derive(Debug, Clone, Serialize)]
 pub struct LotSummary {
     pub title: String,
+    /// Distinct units (serial numbers).
     pub units: usize,
+    /// Unit records: tests, retests included.
+    pub tests: usize,
+    /// Tests beyond each unit's first.
+    pub retests: usize,
+    /// Units tested more than once.
+    pub units_retested: usize,
+    /// Units by their last test.
     pub accepted: usize,
     pub rejected: usize,
+    /// Of the rejected, those whose every failing check was marginal.
+    pub rejected_marginal: usize,
     pub incomplete: usize,
-    /// Accepted / all units, percent.
+    /// Final yield: units accepted at their last test / units, percent.
     pub yield_percent: f64,
+    /// First-pass yield: units accepted at their first test / units, percent.
+    pub first_pass_yield_percent: f64,
     /// (check, units failing it), most frequent first.
     pub rejections: Vec<(String, usize)>,
     pub checks: Vec<CheckStats>,
+    /// Each unit by its last test: rejected first, then incomplete, then accepted.
     pub unit_lines: Vec<UnitLine>,
+    /// Tests a later test of the same unit superseded, oldest first.
+    pub earlier_tests: Vec<UnitLine>,
     /// Bench time per unit: each run's bench time shared among its units, averaged.
     pub bench_time_per_unit_s: Option<f64>,
     /// Steps that settled until stable ran out of time on (a unit, a fixture or a load that is
@@ -202,6 +225,56 @@ fn calibration_stats(records: &[UnitRecord]) -> Vec<CalibrationStats> {
         .collect()
 }
 
+/// Each unit's last and first test, and the tests a later one superseded (oldest first), by
+/// serial number. Tests are ordered by their start (ISO 8601 with offset, so compared as
+/// instants), then run and position.
+fn by_unit(records: &[UnitRecord]) -> (Vec<UnitRecord>, Vec<UnitRecord>, Vec<UnitRecord>) {
+    let instant = |r: &UnitRecord| {
+        chrono::DateTime::parse_from_rfc3339(&r.started_at)
+            .map(|t| t.timestamp_micros())
+            .unwrap_or(i64::MIN)
+    };
+    let mut ordered: Vec<&UnitRecord> = records.iter().collect();
+    ordered.sort_by(|a, b| {
+        (instant(a), &a.run_id, a.position).cmp(&(instant(b), &b.run_id, b.position))
+    });
+    let mut last: BTreeMap<&str, &UnitRecord> = BTreeMap::new();
+    let mut first: BTreeMap<&str, &UnitRecord> = BTreeMap::new();
+    for r in &ordered {
+        last.insert(&r.serial, r);
+        first.entry(&r.serial).or_insert(r);
+    }
+    let earlier = ordered
+        .iter()
+        .filter(|r| !std::ptr::eq(**r, last[r.serial.as_str()]))
+        .map(|r| (*r).clone())
+        .collect();
+    (
+        last.values().map(|r| (*r).clone()).collect(),
+        first.values().map(|r| (*r).clone()).collect(),
+        earlier,
+    )
+}
+
+/// Whether a rejected unit failed only marginally: every failing check within its expanded
+/// uncertainty of its tolerance limit, and no other reason (a calibration out of limits).
+fn marginal_rejection(r: &UnitRecord) -> bool {
+    if r.verdict.status != UnitStatus::Rejected {
+        return false;
+    }
+    let failing: Vec<_> = r
+        .steps
+        .iter()
+        .flat_map(|s| &s.checks)
+        .filter(|c| c.verdict == CheckVerdict::Fail)
+        .collect();
+    let calibration_rejected = r.calibration.as_ref().is_some_and(|c| {
+        c.status != crate::record::CalibrationStatus::Written
+            && c.status != crate::record::CalibrationStatus::Fitted
+    });
+    !failing.is_empty() && !calibration_rejected && failing.iter().all(|c| c.marginal())
+}
+
 /// The mean bench time per unit: a run's bench time is shared by the units it tested together.
 fn bench_time_per_unit(records: &[UnitRecord]) -> Option<f64> {
     let mut units_per_run: BTreeMap<&str, usize> = BTreeMap::new();
@@ -222,6 +295,9 @@ impl LotSummary {
         records: &[UnitRecord],
         report_name: &dyn Fn(&UnitRecord) -> String,
     ) -> LotSummary {
+        let all = records;
+        let (finals, firsts, earlier) = by_unit(all);
+        let records: &[UnitRecord] = &finals;
         let count = |s: UnitStatus| records.iter().filter(|r| r.verdict.status == s).count();
         let mut by_check: BTreeMap<(String, String, String), CheckStats> = BTreeMap::new();
         for r in records {
@@ -342,35 +418,57 @@ impl LotSummary {
                 .map(|c| (format!("calibration {}", c.what), c.outside)),
         );
         rejections.sort_by(|a, b| b.1.cmp(&a.1).then(a.0.cmp(&b.0)));
-        let unit_lines = records
-            .iter()
-            .map(|r| UnitLine {
-                serial: r.serial.clone(),
-                position: r.position,
-                run_id: r.run_id.clone(),
-                status: r.verdict.status,
-                word: r.verdict.status.word(),
-                symbol: r.verdict.status.symbol(),
-                report: report_name(r),
-                reasons: r.verdict.reasons.clone(),
-            })
-            .collect();
+        let line = |r: &UnitRecord| UnitLine {
+            serial: r.serial.clone(),
+            position: r.position,
+            run_id: r.run_id.clone(),
+            status: r.verdict.status,
+            word: r.verdict.status.word(),
+            symbol: r.verdict.status.symbol(),
+            report: report_name(r),
+            reasons: r.verdict.reasons.clone(),
+            marginal: marginal_rejection(r),
+            started_at: r.started_at.clone(),
+        };
+        let mut unit_lines: Vec<UnitLine> = records.iter().map(line).collect();
+        let rank = |s: UnitStatus| match s {
+            UnitStatus::Rejected => 0,
+            UnitStatus::Incomplete => 1,
+            UnitStatus::Accepted => 2,
+        };
+        unit_lines.sort_by(|a, b| (rank(a.status), &a.serial).cmp(&(rank(b.status), &b.serial)));
         let units = records.len();
+        let percent = |n: usize| {
+            if units == 0 {
+                0.0
+            } else {
+                n as f64 / units as f64 * 100.0
+            }
+        };
+        let first_pass = firsts
+            .iter()
+            .filter(|r| r.verdict.status == UnitStatus::Accepted)
+            .count();
         LotSummary {
             title: title.into(),
             units,
+            tests: all.len(),
+            retests: all.len() - units,
+            units_retested: records
+                .iter()
+                .filter(|f| all.iter().filter(|r| r.serial == f.serial).count() > 1)
+                .count(),
             accepted: count(UnitStatus::Accepted),
             rejected: count(UnitStatus::Rejected),
+            rejected_marginal: unit_lines.iter().filter(|l| l.marginal).count(),
             incomplete: count(UnitStatus::Incomplete),
-            yield_percent: if units == 0 {
-                0.0
-            } else {
-                count(UnitStatus::Accepted) as f64 / units as f64 * 100.0
-            },
+            yield_percent: percent(count(UnitStatus::Accepted)),
+            first_pass_yield_percent: percent(first_pass),
+            earlier_tests: earlier.iter().map(line).collect(),
             rejections,
             checks,
             unit_lines,
-            bench_time_per_unit_s: bench_time_per_unit(records),
+            bench_time_per_unit_s: bench_time_per_unit(all),
             unsettled_steps: records
                 .iter()
                 .flat_map(|r| &r.steps)
