@@ -50,12 +50,37 @@ fn the_unit_report_has_a_well_formed_plot_and_the_run_a_junit_file() {
     // The record's hash and the run's anchor tie the paper to `verify`.
     assert!(html.contains(&meterproof::record::record_hash(&records[1])));
     assert!(html.contains("meterproof verify --anchor"));
-    let start = html.find("<svg").expect("an inline plot");
-    let end = html.find("</svg>").unwrap() + "</svg>".len();
-    // The plot parses as XML, with one error bar per percentage check and the limit envelopes.
-    let counts = count_xml(&html[start..end], &["svg", "path", "line"]);
-    assert_eq!(counts[0], 1);
-    assert!(counts[1] >= 4, "two tolerance and two acceptance envelopes");
+    // One plot per quantity with percentage errors, each parsing as XML with its envelopes.
+    let mut rest = html.as_str();
+    let mut panels = 0;
+    while let Some(start) = rest.find("<svg") {
+        let end = rest[start..].find("</svg>").unwrap() + start + "</svg>".len();
+        let counts = count_xml(&rest[start..end], &["svg", "path", "line"]);
+        assert_eq!(counts[0], 1);
+        assert!(counts[1] >= 4, "two tolerance and two acceptance envelopes");
+        panels += 1;
+        rest = &rest[end..];
+    }
+    assert_eq!(panels, 4, "current, active power, voltage, energy");
+    // The planted defect's failing point is ringed and labelled, not only coloured.
+    assert!(html.contains(">FAIL</text>"));
+    // Each panel draws its quantity against its own limits, from the record: at basic-Ib the
+    // current's envelope is its ±0.5 %, the active power's its ±1 % (class 1), never the
+    // tighter of the two for both.
+    for (quantity, chart) in meterproof::report::plot::error_charts(&records[1]) {
+        for (label, limit) in chart.labels.iter().zip(&chart.limits) {
+            let step = records[1].steps.iter().find(|s| &s.id == label).unwrap();
+            let own = step
+                .checks
+                .iter()
+                .filter(|c| c.quantity.name() == quantity)
+                .filter_map(|c| c.decision.as_ref().map(|d| d.tolerance_limit))
+                .fold(f64::INFINITY, f64::min);
+            assert_eq!(limit.unwrap().0, own, "{quantity} at {label}");
+        }
+        // Only the steps where the quantity was evaluated: no empty load points.
+        assert!(chart.labels.iter().all(|l| l != "no-load"), "{quantity}");
+    }
     assert!(
         html.contains("Tested by") && html.contains("Reviewed by"),
         "an approval block"

@@ -214,6 +214,7 @@ fn comparison_plots(result: &crate::regression::Comparison) -> Vec<(String, Stri
                                 x: at(c),
                                 error: c.baseline_mean,
                                 u: 0.0,
+                                failed: false,
                             })
                             .collect(),
                     },
@@ -226,12 +227,14 @@ fn comparison_plots(result: &crate::regression::Comparison) -> Vec<(String, Stri
                                 x: at(c),
                                 error: c.candidate_mean,
                                 u: c.test.map_or(0.0, |t| 2.0 * t.std_error),
+                                failed: false,
                             })
                             .collect(),
                     },
                 ],
                 labels: labels.clone(),
                 unit: "%".into(),
+                y_title: format!("mean error of {}, %", q.name()),
                 aria: format!("Mean error of {} on both sides", q.name()),
             };
             plot::draw(&chart).map(|svg| (q.name().to_string(), svg))
@@ -247,7 +250,7 @@ struct UnitView {
     bench_time: String,
     decision: String,
     /// The error plot as inline SVG, marked safe (it is built here, with its text escaped).
-    plot: Option<minijinja::Value>,
+    plots: Vec<minijinja::Value>,
     steps: Vec<StepView>,
 }
 
@@ -302,7 +305,12 @@ impl UnitView {
             verdict_symbol: record.verdict.status.symbol(),
             bench_time: duration_text(record.bench_time_s),
             decision: decision_text(record.plan.decision),
-            plot: plot::error_plot(record).map(minijinja::Value::from_safe_string),
+            plots: plot::error_plots(record)
+                .into_iter()
+                .map(|(quantity, svg)| {
+                    minijinja::context! { quantity, svg => minijinja::Value::from_safe_string(svg) }
+                })
+                .collect(),
             steps: record.steps.iter().map(StepView::of).collect(),
         }
     }

@@ -1,12 +1,14 @@
-//! An inline SVG plot of a unit's percentage errors against the load points, with the tolerance
-//! envelope, the acceptance limit and the expanded uncertainty as error bars. Series differ by
-//! marker shape and line pattern, not by colour alone, so the plot reads in greyscale.
+//! Inline SVG plots of a unit's percentage errors against the load points: one panel per
+//! quantity, each drawn against its own tolerance and acceptance limits at each point (a
+//! quantity is never drawn against another's tighter envelope), with the expanded uncertainty
+//! as error bars. Series differ by marker shape and line pattern, and a failing point is ringed
+//! and labelled, not coloured: the plots read in greyscale.
 
 use crate::record::UnitRecord;
 use std::fmt::Write;
 
 const WIDTH: f64 = 640.0;
-const HEIGHT: f64 = 300.0;
+const HEIGHT: f64 = 240.0;
 const LEFT: f64 = 60.0;
 const RIGHT: f64 = 150.0;
 const TOP: f64 = 20.0;
@@ -26,6 +28,8 @@ pub struct Point {
     pub x: usize,
     pub error: f64,
     pub u: f64,
+    /// The check failed: the point is ringed and labelled.
+    pub failed: bool,
 }
 
 /// A series of points drawn with one marker.
@@ -43,6 +47,8 @@ pub struct Chart {
     pub limits: Vec<Option<(f64, Option<f64>)>>,
     pub series: Vec<Series>,
     pub unit: String,
+    /// The vertical axis's title, with its unit ("error of active_power, %").
+    pub y_title: String,
     pub aria: String,
 }
 
@@ -84,54 +90,128 @@ fn marker(shape: &str, x: f64, y: f64) -> String {
     }
 }
 
-/// The plot, or `None` when the unit has no percentage errors to show.
-pub fn error_plot(record: &UnitRecord) -> Option<String> {
-    let steps: Vec<&crate::record::StepRecord> = record.steps.iter().collect();
-    if steps.is_empty() {
-        return None;
-    }
-    // The envelope is the tightest percentage tolerance of each step.
-    let mut limits: Vec<Option<(f64, f64)>> = vec![None; steps.len()];
-    let mut series: Vec<Series> = SERIES
-        .iter()
-        .map(|(q, m)| Series {
-            name: q.to_string(),
-            marker: m,
-            points: Vec::new(),
-        })
-        .collect();
-    for (x, s) in steps.iter().enumerate() {
+/// The unit's error plots, one per quantity with percentage errors, in the order the
+/// quantities first appear; each panel has only the load points (steps, in run order) where
+/// that quantity was evaluated. Empty when there is nothing to plot.
+pub fn error_plots(record: &UnitRecord) -> Vec<(String, String)> {
+    error_charts(record)
+        .into_iter()
+        .filter_map(|(q, chart)| draw(&chart).map(|svg| (q, svg)))
+        .collect()
+}
+
+/// The charts [`error_plots`] draws, by quantity.
+pub fn error_charts(record: &UnitRecord) -> Vec<(String, Chart)> {
+    let mut quantities: Vec<crate::plan::Quantity> = Vec::new();
+    for s in &record.steps {
         for c in &s.checks {
-            let (Some(e), Some(d)) = (&c.evaluation, &c.decision) else {
-                continue;
-            };
-            if e.error_unit != "%" {
-                continue;
-            }
-            let u = d.expanded_uncertainty.unwrap_or(0.0);
-            limits[x] = Some(match limits[x] {
-                Some((tl, al)) => (tl.min(d.tolerance_limit), al.min(d.acceptance_limit)),
-                None => (d.tolerance_limit, d.acceptance_limit),
-            });
-            if let Some(entry) = series.iter_mut().find(|s| s.name == c.quantity.name()) {
-                entry.points.push(Point {
-                    x,
-                    error: e.error,
-                    u,
-                });
+            let plotted =
+                c.evaluation.as_ref().is_some_and(|e| e.error_unit == "%") && c.decision.is_some();
+            if plotted && !quantities.contains(&c.quantity) {
+                quantities.push(c.quantity);
             }
         }
     }
-    draw(&Chart {
-        labels: steps.iter().map(|s| s.id.clone()).collect(),
-        limits: limits
-            .into_iter()
-            .map(|l| l.map(|(tl, al)| (tl, Some(al))))
-            .collect(),
-        series,
-        unit: "%".into(),
-        aria: "Error against load point, with tolerance and acceptance limits".into(),
-    })
+    quantities
+        .into_iter()
+        .map(|q| {
+            let mut labels = Vec::new();
+            let mut limits = Vec::new();
+            let mut points = Vec::new();
+            for s in &record.steps {
+                // The quantity's checks at this step (one per channel).
+                let checks: Vec<_> = s
+                    .checks
+                    .iter()
+                    .filter(|c| c.quantity == q)
+                    .filter_map(|c| match (&c.evaluation, &c.decision) {
+                        (Some(e), Some(d)) if e.error_unit == "%" => Some((c, e, d)),
+                        _ => None,
+                    })
+                    .collect();
+                if checks.is_empty() {
+                    continue;
+                }
+                let x = labels.len();
+                labels.push(s.id.clone());
+                let (tl, al) = checks
+                    .iter()
+                    .fold((f64::INFINITY, f64::INFINITY), |(tl, al), (_, _, d)| {
+                        (tl.min(d.tolerance_limit), al.min(d.acceptance_limit))
+                    });
+                limits.push(Some((tl, Some(al))));
+                for (c, e, d) in checks {
+                    points.push(Point {
+                        x,
+                        error: e.error,
+                        u: d.expanded_uncertainty.unwrap_or(0.0),
+                        failed: c.verdict == crate::record::CheckVerdict::Fail,
+                    });
+                }
+            }
+            let (name, marker) = SERIES
+                .iter()
+                .find(|(n, _)| *n == q.name())
+                .copied()
+                .unwrap_or((q.name(), "circle"));
+            let chart = Chart {
+                labels,
+                limits,
+                series: vec![Series {
+                    name: name.to_string(),
+                    marker,
+                    points,
+                }],
+                unit: "%".into(),
+                y_title: format!("error of {}, %", q.name()),
+                aria: format!(
+                    "Error of {} against load point, with its tolerance and acceptance limits",
+                    q.name()
+                ),
+            };
+            (q.name().to_string(), chart)
+        })
+        .collect()
+}
+
+/// A round step for axis ticks: 1, 2, 2.5 or 5 times a power of ten, giving about `count`
+/// steps over `span`.
+pub fn round_step(span: f64, count: f64) -> f64 {
+    let raw = (span / count).abs();
+    if raw == 0.0 || !raw.is_finite() {
+        return 1.0;
+    }
+    let power = 10f64.powf(raw.log10().floor());
+    let scaled = raw / power;
+    let nice = if scaled <= 1.0 {
+        1.0
+    } else if scaled <= 2.0 {
+        2.0
+    } else if scaled <= 2.5 {
+        2.5
+    } else if scaled <= 5.0 {
+        5.0
+    } else {
+        10.0
+    };
+    nice * power
+}
+
+/// A tick value as text with as many decimals as its step has, one minus sign (U+2212).
+fn tick_text(v: f64, step: f64) -> String {
+    let step_text = format!("{step:.6}");
+    let decimals = step_text
+        .trim_end_matches('0')
+        .split_once('.')
+        .map_or(0, |(_, d)| d.len());
+    let text = format!("{:.*}", decimals, v.abs());
+    if v < -step * 1e-9 {
+        format!("\u{2212}{text}")
+    } else if v > step * 1e-9 {
+        format!("+{text}")
+    } else {
+        text
+    }
 }
 
 /// Draws a chart as inline SVG; `None` when it has nothing to show.
@@ -152,7 +232,6 @@ pub fn draw(chart: &Chart) -> Option<String> {
     let plot_w = WIDTH - LEFT - RIGHT;
     let plot_h = HEIGHT - TOP - BOTTOM;
     let n = chart.labels.len().max(1) as f64;
-    let unit = &chart.unit;
     let xpos = |x: usize| LEFT + plot_w * (x as f64 + 0.5) / n;
     let ypos = |e: f64| TOP + plot_h * (1.0 - (e + extent) / (2.0 * extent));
     let mut svg = String::new();
@@ -165,18 +244,33 @@ pub fn draw(chart: &Chart) -> Option<String> {
         svg,
         r##"<rect x="{LEFT}" y="{TOP}" width="{plot_w}" height="{plot_h}" fill="none" stroke="#888"/>"##
     );
-    // Zero line and y ticks.
-    for tick in [-1.0, -0.5, 0.0, 0.5, 1.0] {
-        let v = tick * extent / 1.15;
+    // Round ticks across the range, the zero line among them.
+    let step = round_step(2.0 * extent, 4.0);
+    let mut k = -(extent / step).floor();
+    while k * step <= extent + 1e-12 {
+        let v = k * step;
         let y = ypos(v);
         let _ = write!(
             svg,
-            r##"<line x1="{LEFT}" x2="{:.1}" y1="{y:.1}" y2="{y:.1}" stroke="#ddd"/><text x="{:.1}" y="{:.1}" text-anchor="end">{v:+.2} {unit}</text>"##,
+            r##"<line x1="{LEFT}" x2="{:.1}" y1="{y:.1}" y2="{y:.1}" stroke="{}"/><text x="{:.1}" y="{:.1}" text-anchor="end">{}</text>"##,
             LEFT + plot_w,
+            if k == 0.0 { "#999" } else { "#ddd" },
             LEFT - 4.0,
-            y + 4.0
+            y + 4.0,
+            tick_text(v, step)
         );
+        k += 1.0;
     }
+    // Axis titles, with the unit.
+    let _ = write!(
+        svg,
+        r##"<text x="12" y="{:.1}" text-anchor="middle" transform="rotate(-90 12 {:.1})">{}</text><text x="{:.1}" y="{:.1}" text-anchor="middle">load point</text>"##,
+        TOP + plot_h / 2.0,
+        TOP + plot_h / 2.0,
+        escape(&chart.y_title),
+        LEFT + plot_w / 2.0,
+        HEIGHT - 4.0
+    );
     // Envelopes: tolerance dashed, acceptance dotted, as steps across each load point.
     for (sign, pattern, pick) in [
         (1.0, "6 3", 0),
@@ -214,6 +308,14 @@ pub fn draw(chart: &Chart) -> Option<String> {
                 ypos(p.error - p.u)
             );
             svg.push_str(&marker(s.marker, x, y));
+            if p.failed {
+                let _ = write!(
+                    svg,
+                    r##"<circle cx="{x:.1}" cy="{y:.1}" r="9" fill="none" stroke="#000" stroke-width="2"/><text x="{:.1}" y="{:.1}" font-weight="bold">FAIL</text>"##,
+                    x + 11.0,
+                    y - 6.0
+                );
+            }
         }
     }
     for (x, label) in chart.labels.iter().enumerate() {
@@ -265,6 +367,20 @@ pub fn draw(chart: &Chart) -> Option<String> {
         lx - 6.0,
         ly + 4.0
     );
+    if chart
+        .series
+        .iter()
+        .flat_map(|s| &s.points)
+        .any(|p| p.failed)
+    {
+        ly += 18.0;
+        let _ = write!(
+            svg,
+            r##"<circle cx="{lx:.1}" cy="{ly:.1}" r="7" fill="none" stroke="#000" stroke-width="2"/><text x="{:.1}" y="{:.1}">failed</text>"##,
+            lx + 10.0,
+            ly + 4.0
+        );
+    }
     svg.push_str("</svg>");
     Some(svg)
 }
@@ -279,4 +395,24 @@ fn escape(text: &str) -> String {
         .replace('<', "&lt;")
         .replace('>', "&gt;")
         .replace('"', "&quot;")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Axis steps are 1, 2, 2.5 or 5 times a power of ten (common practice for chart axes, no
+    /// published source); tick labels carry the step's decimals and a true minus sign.
+    #[test]
+    fn ticks_are_round() {
+        assert_eq!(round_step(4.6, 4.0), 2.0);
+        assert_eq!(round_step(1.0, 4.0), 0.25);
+        assert_eq!(round_step(0.3, 4.0), 0.1);
+        assert_eq!(round_step(7.0, 4.0), 2.0);
+        assert_eq!(round_step(9.0, 4.0), 2.5);
+        assert_eq!(round_step(0.0, 4.0), 1.0);
+        assert_eq!(tick_text(-0.5, 0.25), "\u{2212}0.50");
+        assert_eq!(tick_text(2.0, 2.0), "+2");
+        assert_eq!(tick_text(0.0, 0.1), "0.0");
+    }
 }
