@@ -168,7 +168,14 @@ fn templates_are_exported_overridden_and_their_errors_named() {
 fn the_csv_written_by_a_run_is_rendered_again_from_its_record() {
     let dir = temp_dir("bytes");
     bin()
-        .args(["run", "test-plans/demo.yaml", "--quiet", "--out"])
+        .args([
+            "run",
+            "test-plans/demo.yaml",
+            "--quiet",
+            "--lot",
+            "LOT-CSV",
+            "--out",
+        ])
         .arg(&dir)
         .output()
         .unwrap();
@@ -179,6 +186,22 @@ fn the_csv_written_by_a_run_is_rendered_again_from_its_record() {
         let written =
             std::fs::read(run_dir.join(format!("{}-p{}.csv", r.serial, r.position))).unwrap();
         assert_eq!(meterproof::report::unit_csv(r).unwrap(), written);
+        // Every row carries where it came from: run, plan and its hash, lot, firmware, station.
+        let mut reader = csv::Reader::from_reader(written.as_slice());
+        let headers = reader.headers().unwrap().clone();
+        let col = |name: &str| headers.iter().position(|h| h == name).unwrap();
+        let rows: Vec<csv::StringRecord> = reader.records().map(Result::unwrap).collect();
+        assert_eq!(rows.len(), 13);
+        for row in &rows {
+            assert_eq!(&row[col("run_id")], r.run_id);
+            assert_eq!(&row[col("position")], r.position.to_string());
+            assert_eq!(&row[col("plan_id")], r.plan.id);
+            assert_eq!(&row[col("plan_sha256")], r.plan.sha256);
+            assert_eq!(&row[col("lot")], "LOT-CSV");
+            assert_eq!(&row[col("firmware")], r.identity.as_ref().unwrap().firmware);
+            assert_eq!(&row[col("station")], r.station.id);
+            assert_eq!(&row[col("tested_at")], r.started_at);
+        }
     }
     std::fs::remove_dir_all(&dir).unwrap();
 }

@@ -531,69 +531,101 @@ pub fn unit_csv(record: &UnitRecord) -> Result<Vec<u8>, ReportError> {
         "marginal",
         "settle_s",
         "settled",
+        // Where the row came from, on every row, so that rows pasted together from many units
+        // keep their context.
+        "run_id",
+        "position",
+        "plan_id",
+        "plan_revision",
+        "plan_sha256",
+        "lot",
+        "firmware",
+        "station",
+        "reference",
+        "tested_at",
     ])?;
     let plain = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x}"));
+    let context = [
+        spreadsheet_safe(&record.run_id),
+        record.position.to_string(),
+        spreadsheet_safe(&record.plan.id),
+        spreadsheet_safe(&record.plan.revision),
+        record.plan.sha256.clone(),
+        spreadsheet_safe(record.lot.as_deref().unwrap_or_default()),
+        spreadsheet_safe(record.identity.as_ref().map_or("", |i| i.firmware.as_str())),
+        spreadsheet_safe(&record.station.id),
+        spreadsheet_safe(&record.station.reference.id),
+        record.started_at.clone(),
+    ];
     for step in &record.steps {
         for c in &step.checks {
-            w.write_record([
-                spreadsheet_safe(&record.serial),
-                spreadsheet_safe(&step.id),
-                step.load.describe(),
-                c.quantity.name().to_string(),
-                spreadsheet_safe(&c.channel),
-                c.unit.clone(),
-                plain(c.reference),
-                plain(c.measured),
-                plain(c.summary.and_then(|s| s.std_dev)),
-                c.samples.len().to_string(),
-                plain(c.evaluation.as_ref().map(|e| e.error)),
-                c.evaluation
-                    .as_ref()
-                    .map_or(String::new(), |e| e.error_unit.clone()),
-                plain(c.evaluation.as_ref().map(|e| e.limit)),
-                plain(c.decision.as_ref().and_then(|d| d.expanded_uncertainty)),
-                plain(c.uncertainty.as_ref().map(|b| b.k)),
-                plain(c.decision.as_ref().and_then(|d| d.risk)),
-                plain(c.decision.as_ref().map(|d| d.acceptance_limit)),
-                plain(c.decision.as_ref().and_then(|d| d.tur)),
-                c.verdict.word().to_lowercase().replace(' ', "_"),
-                c.marginal().to_string(),
-                plain(step.settle_actual_s.or(Some(step.settle_s))),
-                step.settled.map_or(String::new(), |b| b.to_string()),
-            ])?;
+            w.write_record(
+                [
+                    spreadsheet_safe(&record.serial),
+                    spreadsheet_safe(&step.id),
+                    step.load.describe(),
+                    c.quantity.name().to_string(),
+                    spreadsheet_safe(&c.channel),
+                    c.unit.clone(),
+                    plain(c.reference),
+                    plain(c.measured),
+                    plain(c.summary.and_then(|s| s.std_dev)),
+                    c.samples.len().to_string(),
+                    plain(c.evaluation.as_ref().map(|e| e.error)),
+                    c.evaluation
+                        .as_ref()
+                        .map_or(String::new(), |e| e.error_unit.clone()),
+                    plain(c.evaluation.as_ref().map(|e| e.limit)),
+                    plain(c.decision.as_ref().and_then(|d| d.expanded_uncertainty)),
+                    plain(c.uncertainty.as_ref().map(|b| b.k)),
+                    plain(c.decision.as_ref().and_then(|d| d.risk)),
+                    plain(c.decision.as_ref().map(|d| d.acceptance_limit)),
+                    plain(c.decision.as_ref().and_then(|d| d.tur)),
+                    c.verdict.word().to_lowercase().replace(' ', "_"),
+                    c.marginal().to_string(),
+                    plain(step.settle_actual_s.or(Some(step.settle_s))),
+                    step.settled.map_or(String::new(), |b| b.to_string()),
+                ]
+                .into_iter()
+                .chain(context.iter().cloned()),
+            )?;
         }
     }
     // The calibration's limits, one row each, in the same columns: the fitted value against
     // its nominal (or the largest deviation against its bound).
     if let Some(cal) = &record.calibration {
         for l in &cal.limits {
-            w.write_record([
-                spreadsheet_safe(&record.serial),
-                "calibration".to_string(),
-                String::new(),
-                format!("{} {}", cal.quantity.name(), l.what),
-                spreadsheet_safe(&cal.channel),
-                l.unit.clone(),
-                plain(l.nominal),
-                format!("{}", l.value),
-                String::new(),
-                cal.result
-                    .as_ref()
-                    .map_or(0, |r| r.points.len())
-                    .to_string(),
-                format!("{}", l.deviation),
-                l.unit.clone(),
-                format!("{}", l.limit),
-                String::new(),
-                String::new(),
-                String::new(),
-                String::new(),
-                String::new(),
-                if l.within { "pass" } else { "fail" }.to_string(),
-                String::new(),
-                String::new(),
-                String::new(),
-            ])?;
+            w.write_record(
+                [
+                    spreadsheet_safe(&record.serial),
+                    "calibration".to_string(),
+                    String::new(),
+                    format!("{} {}", cal.quantity.name(), l.what),
+                    spreadsheet_safe(&cal.channel),
+                    l.unit.clone(),
+                    plain(l.nominal),
+                    format!("{}", l.value),
+                    String::new(),
+                    cal.result
+                        .as_ref()
+                        .map_or(0, |r| r.points.len())
+                        .to_string(),
+                    format!("{}", l.deviation),
+                    l.unit.clone(),
+                    format!("{}", l.limit),
+                    String::new(),
+                    String::new(),
+                    String::new(),
+                    String::new(),
+                    String::new(),
+                    if l.within { "pass" } else { "fail" }.to_string(),
+                    String::new(),
+                    String::new(),
+                    String::new(),
+                ]
+                .into_iter()
+                .chain(context.iter().cloned()),
+            )?;
         }
     }
     w.flush().map_err(csv::Error::from)?;
