@@ -659,3 +659,47 @@ fn retests_are_not_new_units() {
     assert!(html.contains("Earlier tests"), "{html}");
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// The lot summary written to another folder than the runs': every unit's link still opens
+/// its report, rendered there from the archive.
+#[test]
+fn the_summary_links_work_wherever_it_is_written() {
+    let dir = temp_dir("summary-elsewhere");
+    let o = bin()
+        .args([
+            "run",
+            "test-plans/demo.yaml",
+            "--quiet",
+            "--lot",
+            "LOT-E",
+            "--out",
+        ])
+        .arg(dir.join("runs"))
+        .output()
+        .unwrap();
+    assert_eq!(o.status.code(), Some(1));
+    let elsewhere = dir.join("for-the-quality-manager");
+    let o = bin()
+        .args(["summary", "--lot", "LOT-E", "--out"])
+        .arg(&elsewhere)
+        .arg("--archive")
+        .arg(dir.join("runs").join("archive.sqlite"))
+        .output()
+        .unwrap();
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    assert!(String::from_utf8_lossy(&o.stdout).contains("4 unit reports not beside the summary"));
+    let html = std::fs::read_to_string(elsewhere.join("summary-lot-LOT-E.html")).unwrap();
+    let mut links = 0;
+    for piece in html.split("<a href=\"").skip(1) {
+        let link = piece[..piece.find('"').unwrap()].replace("&#x2f;", "/");
+        assert!(elsewhere.join(&link).exists(), "{link}");
+        links += 1;
+    }
+    assert_eq!(links, 4);
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -614,7 +614,8 @@ pub(super) struct SummaryArgs {
     /// Or one run.
     #[arg(long)]
     run: Option<String>,
-    /// The folder the runs' reports are in (the runs' --out); the summary is written there.
+    /// The folder the summary is written to; unit reports not already there (under RUN/) are
+    /// rendered there from the archive, so that every link works.
     #[arg(long)]
     out: PathBuf,
     #[arg(long)]
@@ -653,6 +654,29 @@ pub(super) fn summary(args: &SummaryArgs) -> Result<i32, CliError> {
     let summary = LotSummary::of(&format!("{key} {value}"), &records, &report_name);
     let templates =
         Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
+    // Every unit line links to its report: a report not beside the summary (the summary
+    // written elsewhere than the runs' --out, or runs from another bench) is rendered there
+    // from the archive, as `report` would.
+    let missing: Vec<crate::record::UnitRecord> = records
+        .iter()
+        .filter(|r| !args.out.join(report_name(r)).exists())
+        .cloned()
+        .collect();
+    if !missing.is_empty() {
+        let anchors = anchors_of(&archive, &missing)?;
+        for r in &missing {
+            let dir = args.out.join(&r.run_id);
+            std::fs::create_dir_all(&dir)
+                .map_err(|e| CliError::Run(format!("cannot create {}: {e}", dir.display())))?;
+            write_outputs(&dir, std::slice::from_ref(r), &templates, &anchors)?;
+        }
+        if !args.json {
+            out!(
+                "{} not beside the summary: rendered from the archive",
+                counted(missing.len(), "unit report")
+            );
+        }
+    }
     let html = templates
         .lot_html(&summary)
         .map_err(|e| CliError::Run(e.to_string()))?;
