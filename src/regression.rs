@@ -103,6 +103,91 @@ impl Comparison {
     pub fn gates(&self) -> bool {
         self.checks.iter().any(|c| c.movement.gates())
     }
+
+    /// One line that says what the comparison showed, and no more: a failing headline names
+    /// the checks that gate (up to five) and how many; where checks were not shown within their
+    /// allowance, it does not claim that nothing moved.
+    pub fn headline(&self) -> String {
+        let named = |cs: &[&CheckComparison]| {
+            let mut names: Vec<String> = cs.iter().take(5).map(|c| c.name()).collect();
+            if cs.len() > 5 {
+                names.push(format!("and {} more", cs.len() - 5));
+            }
+            names.join(", ")
+        };
+        let gating: Vec<&CheckComparison> =
+            self.checks.iter().filter(|c| c.movement.gates()).collect();
+        if !gating.is_empty() {
+            return format!(
+                "✘ {} of {} check{} moved beyond the allowance or newly fail: {}",
+                gating.len(),
+                self.checks.len(),
+                if self.checks.len() == 1 { "" } else { "s" },
+                named(&gating)
+            );
+        }
+        let open: Vec<&CheckComparison> = self
+            .checks
+            .iter()
+            .filter(|c| c.movement == Movement::NotShownWithinAllowance)
+            .collect();
+        if !open.is_empty() {
+            return format!(
+                "◐ no check moved significantly, but {} of {} {} not shown to lie within the allowance (too little data or too much spread): {}",
+                open.len(),
+                self.checks.len(),
+                if open.len() == 1 { "is" } else { "are" },
+                named(&open)
+            );
+        }
+        let moved = self
+            .checks
+            .iter()
+            .filter(|c| c.movement == Movement::MovedWithinAllowance)
+            .count();
+        format!(
+            "✔ every one of {} checks shown within its allowance{}",
+            self.checks.len(),
+            if moved > 0 {
+                format!(" ({moved} moved significantly, within it)")
+            } else {
+                String::new()
+            }
+        )
+    }
+}
+
+impl CheckComparison {
+    /// "basic-Ib current L".
+    pub fn name(&self) -> String {
+        format!("{} {} {}", self.step, self.quantity.name(), self.channel)
+    }
+
+    /// How the sides were compared, with the sample sizes: "paired, 16 units" or
+    /// "Welch, 16 vs 16"; "no test" where the data allow none.
+    pub fn method(&self) -> String {
+        match &self.test {
+            Some(t) if t.paired => format!("paired, {} units", (t.dof + 1.0).round() as u64),
+            Some(_) => format!("Welch, {} vs {}", self.baseline_units, self.candidate_units),
+            None => format!(
+                "no test, {} vs {} units",
+                self.baseline_units, self.candidate_units
+            ),
+        }
+    }
+
+    /// The shift's p-value to two significant figures, "< 0.001" below that, "–" without a
+    /// test or spread.
+    pub fn p_text(&self) -> String {
+        match self.test.map(|t| t.p) {
+            Some(p) if p.is_finite() && p < 0.001 => "<0.001".into(),
+            Some(p) if p.is_finite() => {
+                let digits = (1 - p.log10().floor() as i32).max(2) as usize;
+                format!("{p:.digits$}")
+            }
+            _ => "-".into(),
+        }
+    }
 }
 
 type Key = (String, Quantity, String);
@@ -293,4 +378,102 @@ pub fn junit(c: &Comparison, name: &str) -> String {
     }
     report.add_test_suite(suite);
     report.to_string().unwrap_or_default()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn check(step: &str, movement: Movement, test: Option<Shift>) -> CheckComparison {
+        CheckComparison {
+            step: step.into(),
+            quantity: Quantity::Current,
+            channel: "L".into(),
+            error_unit: "%".into(),
+            tolerance_limit: 0.5,
+            allowance: 0.1,
+            baseline_mean: 0.0,
+            candidate_mean: 0.0,
+            baseline_units: 16,
+            candidate_units: 12,
+            shift: 0.0,
+            test,
+            equivalence_p: None,
+            newly_failing: Vec::new(),
+            newly_passing: Vec::new(),
+            movement,
+        }
+    }
+
+    fn shift(p: f64, paired: bool, dof: f64) -> Option<Shift> {
+        Some(Shift {
+            shift: 0.0,
+            std_error: 0.01,
+            dof,
+            t: 0.0,
+            p,
+            paired,
+        })
+    }
+
+    /// The headline says what was shown: never "nothing moved" when a check was inconclusive,
+    /// and a failing headline names its checks and counts them.
+    #[test]
+    fn the_headline_claims_no_more_than_was_shown() {
+        let all_shown = Comparison {
+            checks: vec![
+                check("a", Movement::Unchanged, shift(0.4, true, 7.0)),
+                check("b", Movement::MovedWithinAllowance, shift(0.01, true, 7.0)),
+            ],
+            paired_units: Vec::new(),
+            missing_golden: Vec::new(),
+        };
+        assert_eq!(
+            all_shown.headline(),
+            "✔ every one of 2 checks shown within its allowance (1 moved significantly, within it)"
+        );
+        let mut open = all_shown.clone();
+        open.checks[0].movement = Movement::NotShownWithinAllowance;
+        let h = open.headline();
+        assert!(
+            h.starts_with("◐ no check moved significantly, but 1 of 2 is not shown"),
+            "{h}"
+        );
+        assert!(h.ends_with("a current L"), "{h}");
+        let mut gating = open.clone();
+        for (i, m) in [Movement::NewlyFailing, Movement::MovedBeyondAllowance]
+            .into_iter()
+            .enumerate()
+        {
+            gating.checks[i].movement = m;
+        }
+        assert_eq!(
+            gating.headline(),
+            "✘ 2 of 2 checks moved beyond the allowance or newly fail: a current L, b current L"
+        );
+    }
+
+    /// The method with its sample sizes, and p-values to two significant figures (common
+    /// practice in reporting tests, no published source).
+    #[test]
+    fn methods_and_p_values_read_as_people_write_them() {
+        assert_eq!(
+            check("a", Movement::Unchanged, shift(0.5, true, 15.0)).method(),
+            "paired, 16 units"
+        );
+        assert_eq!(
+            check("a", Movement::Unchanged, shift(0.5, false, 20.3)).method(),
+            "Welch, 16 vs 12"
+        );
+        assert_eq!(
+            check("a", Movement::Unchanged, None).method(),
+            "no test, 16 vs 12 units"
+        );
+        let p = |v: f64| check("a", Movement::Unchanged, shift(v, true, 3.0)).p_text();
+        assert_eq!(p(0.254), "0.25");
+        assert_eq!(p(0.0372), "0.037");
+        assert_eq!(p(0.00512), "0.0051");
+        assert_eq!(p(5.7e-8), "<0.001");
+        assert_eq!(p(f64::NAN), "-");
+    }
 }

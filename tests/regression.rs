@@ -211,7 +211,13 @@ fn the_release_gate_fails_for_a_real_regression_and_passes_for_none() {
         .unwrap();
     assert_eq!(h.status.code(), Some(1));
     let html = std::fs::read_to_string(&html_path).unwrap();
-    assert!(html.contains("✘ A check moved beyond its allowance"));
+    // The headline names what gates, and how many of how many.
+    assert!(
+        html.contains("✘ 3 of 13 checks moved beyond the allowance or newly fail: max-Imax"),
+        "{html}"
+    );
+    // Each check says how its sides were compared, with the sample sizes.
+    assert!(html.contains("paired, 8 units"));
     assert_eq!(
         html.matches("<svg").count(),
         4,
@@ -544,6 +550,36 @@ fn a_simulated_firmware_change_moves_the_errors_it_should() {
     assert!((shift("basic-Ib", "active_power") - at_unity).abs() < 0.01);
     assert!((shift("max-Imax", "current") - 0.2).abs() < 0.01);
     assert!(shift("basic-Ib", "current").abs() < 0.01);
+    // The terminal names the units that newly fail, as the JSON lists them.
+    let pf = json["checks"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["step"] == "basic-pf0.5" && c["quantity"] == "active_power")
+        .unwrap();
+    let newly: Vec<&str> = pf["newly_failing"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap())
+        .collect();
+    assert!(!newly.is_empty(), "{pf}");
+    let o = bin()
+        .args(["compare", "--baseline", "firmware=2.1.4"])
+        .args(["--candidate", "firmware=2.1.5", "--archive"])
+        .arg(&archive)
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&o.stdout);
+    let joined = text.split_whitespace().collect::<Vec<_>>().join(" ");
+    assert!(
+        joined.contains(&format!(
+            "basic-pf0.5 active_power L newly failing: {}",
+            newly.join(", ")
+        )),
+        "{text}"
+    );
+    assert!(joined.contains("(paired, 4 units)"), "{text}");
     // A description the simulator cannot read is refused before anything runs.
     let bad = bin()
         .args(["run", "test-plans/demo.yaml", "--quiet", "--sim-firmware"])

@@ -556,41 +556,51 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
     if args.json {
         print_json(&result);
     } else {
+        // The method of the checks that could be tested (a check with identical readings on
+        // both sides, or too few units, has none).
+        let methods: std::collections::BTreeSet<String> = result
+            .checks
+            .iter()
+            .filter(|c| c.test.is_some())
+            .map(|c| c.method())
+            .collect();
+        let method = match methods.len() {
+            0 => "no check could be tested".to_string(),
+            1 => methods.into_iter().next().unwrap_or_default(),
+            _ => "methods by check (--json)".into(),
+        };
         let head = format!(
-            "{} against {}: {} checks, {} units paired by serial number, allowance {} % of each limit",
+            "{} against {}: {} checks ({method}), allowance {} % of each limit",
             args.candidate,
             args.baseline,
             result.checks.len(),
-            result.paired_units.len(),
             allowance * 100.0
         );
         out!("{}", wrapped(&head, 0));
+        out!("{}", wrapped(&result.headline(), 0));
         // 80 columns: a verdict that does not fit beside its numbers goes on the next line.
         out!(
-            "{:<11} {:<14} {:>8} {:>9} {:>8} {:>7} {:>6} verdict",
+            "{:<11} {:<14} {:>8} {:>9} {:>6} {:>7} {:>4} {:>6} verdict",
             "step",
             "quantity",
             "baseline",
             "candidate",
             "shift",
             "allowed",
+            "unit",
             "p"
         );
         for c in &result.checks {
-            let p = match c.test.map(|t| t.p) {
-                Some(p) if p.is_finite() => format!("{p:.1e}"),
-                // No test (too few pairs) or no spread to test (identical readings).
-                _ => "-".to_string(),
-            };
             let row = format!(
-                "{:<11} {:<14} {:>8.4} {:>9.4} {:>+8.4} {:>7.4} {:>6}",
+                "{:<11} {:<14} {:>8.3} {:>9.3} {:>+6.3} {:>7.3} {:>4} {:>6}",
                 fitted(&c.step, 11),
                 c.quantity.name(),
                 c.baseline_mean,
                 c.candidate_mean,
                 c.shift,
                 c.allowance,
-                p
+                fitted(&c.error_unit, 4),
+                c.p_text()
             );
             let words = c.movement.words();
             if row.chars().count() + 1 + words.chars().count() <= super::terminal::WIDTH {
@@ -598,6 +608,18 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
             } else {
                 out!("{row}");
                 out!("{}", wrapped(words, 6));
+            }
+        }
+        // The units behind a verdict that names units.
+        for c in &result.checks {
+            for (what, units) in [
+                ("newly failing", &c.newly_failing),
+                ("newly passing", &c.newly_passing),
+            ] {
+                if !units.is_empty() {
+                    let line = format!("{} {what}: {}", c.name(), units.join(", "));
+                    out!("{}", wrapped(&line, 0));
+                }
             }
         }
     }

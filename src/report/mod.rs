@@ -158,6 +158,8 @@ impl Templates {
             })
             .collect();
         let words: Vec<&str> = result.checks.iter().map(|c| c.movement.words()).collect();
+        let methods: Vec<String> = result.checks.iter().map(|c| c.method()).collect();
+        let p_texts: Vec<String> = result.checks.iter().map(|c| c.p_text()).collect();
         template
             .render(minijinja::context! {
                 title => title,
@@ -166,6 +168,9 @@ impl Templates {
                 allowance_percent => allowance * 100.0,
                 plots => plots,
                 words => words,
+                methods => methods,
+                p_texts => p_texts,
+                headline => result.headline(),
             })
             .map_err(|e| template_error(name, &e))
     }
