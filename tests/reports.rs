@@ -206,6 +206,29 @@ fn the_csv_written_by_a_run_is_rendered_again_from_its_record() {
     std::fs::remove_dir_all(&dir).unwrap();
 }
 
+/// `summary --lot LOT --json` over the runs in `dir` (and their archive), written there.
+fn lot_summary_json(
+    dir: &std::path::Path,
+    lot: &str,
+    extra: &[&std::ffi::OsStr],
+) -> serde_json::Value {
+    let o = bin()
+        .args(["summary", "--lot", lot, "--json", "--out"])
+        .arg(dir)
+        .arg("--archive")
+        .arg(dir.join("archive.sqlite"))
+        .args(extra)
+        .output()
+        .unwrap();
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    serde_json::from_slice(&o.stdout).unwrap()
+}
+
 #[test]
 fn the_lot_summary_counts_the_yield_and_the_rejections() {
     let dir = temp_dir("summary");
@@ -229,22 +252,7 @@ fn the_lot_summary_counts_the_yield_and_the_rejections() {
         assert_eq!(o.status.code(), Some(1));
     }
     let junit = dir.join("lot.xml");
-    let o = bin()
-        .args(["summary", "--lot", "LOT-S", "--json", "--out"])
-        .arg(&dir)
-        .arg("--archive")
-        .arg(dir.join("archive.sqlite"))
-        .arg("--junit")
-        .arg(&junit)
-        .output()
-        .unwrap();
-    assert_eq!(
-        o.status.code(),
-        Some(0),
-        "{}",
-        String::from_utf8_lossy(&o.stderr)
-    );
-    let s: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    let s = lot_summary_json(&dir, "LOT-S", &["--junit".as_ref(), junit.as_os_str()]);
     let records = records_in(&dir);
     let accepted = records
         .iter()
@@ -583,20 +591,7 @@ fn retests_are_not_new_units() {
     run(&["--seed", "2", "--serials", &format!("NEW-1,{rejected}")]);
     let records = records_in(&dir);
     assert_eq!(records.len(), 6);
-    let o = bin()
-        .args(["summary", "--lot", "LOT-R", "--json", "--out"])
-        .arg(&dir)
-        .arg("--archive")
-        .arg(dir.join("archive.sqlite"))
-        .output()
-        .unwrap();
-    assert_eq!(
-        o.status.code(),
-        Some(0),
-        "{}",
-        String::from_utf8_lossy(&o.stderr)
-    );
-    let s: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    let s = lot_summary_json(&dir, "LOT-R", &[]);
     assert_eq!(s["units"], 5);
     assert_eq!(s["tests"], 6);
     assert_eq!(s["retests"], 1);
