@@ -83,3 +83,44 @@ fn completions_and_the_man_page_know_every_command() {
     assert!(dir.join("meterproof-run.1").exists());
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// Every key the schemas know (every property of every object, at any depth) is named in the
+/// README's reference, "Plan, link and station keys", or in "Test plans" for the tolerance
+/// forms: a key added to a plan or station without its line in the reference fails here.
+#[test]
+fn every_key_has_its_line_in_the_readme_reference() {
+    fn keys(value: &serde_json::Value, out: &mut std::collections::BTreeSet<String>) {
+        match value {
+            serde_json::Value::Object(map) => {
+                if let Some(serde_json::Value::Object(props)) = map.get("properties") {
+                    out.extend(props.keys().cloned());
+                }
+                for v in map.values() {
+                    keys(v, out);
+                }
+            }
+            serde_json::Value::Array(items) => items.iter().for_each(|v| keys(v, out)),
+            _ => {}
+        }
+    }
+    let mut all = std::collections::BTreeSet::new();
+    keys(&schema("plan"), &mut all);
+    keys(&schema("station"), &mut all);
+    assert!(all.len() > 100, "{} keys", all.len());
+    let readme = std::fs::read_to_string("README.md").unwrap();
+    let from = readme.find("## Test plans").unwrap();
+    let to = readme.find("## Bench time").unwrap();
+    let reference = &readme[from..to];
+    let missing: Vec<&String> = all
+        .iter()
+        .filter(|k| {
+            !regex::Regex::new(&format!(r"\b{}\b", regex::escape(k)))
+                .unwrap()
+                .is_match(reference)
+        })
+        .collect();
+    assert!(
+        missing.is_empty(),
+        "keys without a line in the README: {missing:?}"
+    );
+}
