@@ -649,8 +649,47 @@ fn retests_are_not_new_units() {
     let earlier = s["earlier_tests"].as_array().unwrap();
     assert_eq!(earlier.len(), 1);
     assert_eq!(earlier[0]["serial"], rejected.as_str());
+    // The context: one plan, two runs with their own counts, firmware of five units, yield
+    // by position of the units' last tests; the checks in the plan's order.
+    let ctx = &s["context"];
+    assert_eq!(ctx["plans"].as_array().unwrap().len(), 1);
+    assert!(
+        ctx["plans"][0]
+            .as_str()
+            .unwrap()
+            .starts_with("TM16-EOL revision A (")
+    );
+    let runs = ctx["runs"].as_array().unwrap();
+    assert_eq!(runs.len(), 2);
+    for run in runs {
+        let id = run[0].as_str().unwrap();
+        let tested: Vec<_> = records.iter().filter(|r| r.run_id == id).collect();
+        assert_eq!(run[1].as_u64().unwrap() as usize, tested.len());
+        assert_eq!(
+            run[2].as_u64().unwrap() as usize,
+            tested.iter().filter(|r| accepted(r)).count()
+        );
+    }
+    assert_eq!(runs[0][1], 4, "the first run first");
+    let firmware: u64 = ctx["firmware"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|f| f[1].as_u64().unwrap())
+        .sum();
+    assert_eq!(firmware, 5);
+    let by_position: u64 = ctx["positions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| p[1].as_u64().unwrap())
+        .sum();
+    assert_eq!(by_position, 5);
+    assert_eq!(s["checks"][0]["step"], "no-load", "plan order");
+    assert_eq!(s["checks"][12]["step"], "basic-pf0.5", "plan order");
     let html = std::fs::read_to_string(dir.join("summary-lot-LOT-R.html")).unwrap();
     assert!(html.contains("1 retest of 1 unit"), "{html}");
+    assert!(html.contains("Yield by position and by run"), "{html}");
     assert!(html.contains("Earlier tests"), "{html}");
     std::fs::remove_dir_all(&dir).unwrap();
 }

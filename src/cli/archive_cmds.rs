@@ -673,7 +673,9 @@ pub(super) fn summary(args: &SummaryArgs) -> Result<i32, CliError> {
             r.position
         )
     };
-    let summary = LotSummary::of(&format!("{key} {value}"), &records, &report_name);
+    let mut summary = LotSummary::of(&format!("{key} {value}"), &records, &report_name);
+    summary.made_at =
+        Some(chrono::Local::now().to_rfc3339_opts(chrono::SecondsFormat::Secs, false));
     let templates =
         Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
     // Every unit line links to its report: a report not beside the summary (the summary

@@ -167,6 +167,27 @@ pub struct LotSummary {
     pub unsettled_steps: usize,
     /// Each calibration limit across the lot.
     pub calibration: Vec<CalibrationStats>,
+    pub context: Context,
+    /// When the summary was made (set by whoever writes it), ISO 8601.
+    pub made_at: Option<String>,
+}
+
+/// What a lot summary stands on: the plans, the time span, the runs, firmware and stations
+/// its units were tested with, and when it was made.
+#[derive(Debug, Clone, Serialize)]
+pub struct Context {
+    /// "ID revision R (sha256 first 12)", each plan once.
+    pub plans: Vec<String>,
+    /// The first test's start and the last test's end, as recorded.
+    pub from: String,
+    pub to: String,
+    /// (run id, units tested, accepted), in time order.
+    pub runs: Vec<(String, usize, usize)>,
+    /// (firmware, units at their last test).
+    pub firmware: Vec<(String, usize)>,
+    pub stations: Vec<String>,
+    /// (position, units whose last test was there, accepted).
+    pub positions: Vec<(usize, usize, usize)>,
 }
 
 /// One calibration limit across the lot: the fitted values and how many units fell outside.
@@ -254,6 +275,75 @@ fn by_unit(records: &[UnitRecord]) -> (Vec<UnitRecord>, Vec<UnitRecord>, Vec<Uni
         first.values().map(|r| (*r).clone()).collect(),
         earlier,
     )
+}
+
+/// The lot's context from all its tests (`all`) and each unit's last (`finals`).
+fn context(all: &[UnitRecord], finals: &[UnitRecord]) -> Context {
+    let accepted = |r: &UnitRecord| r.verdict.status == UnitStatus::Accepted;
+    let mut plans: Vec<String> = Vec::new();
+    let mut stations: Vec<String> = Vec::new();
+    let mut runs: Vec<(String, String, usize, usize)> = Vec::new();
+    for r in all {
+        let plan = format!(
+            "{} revision {} ({})",
+            r.plan.id,
+            r.plan.revision,
+            &r.plan.sha256[..r.plan.sha256.len().min(12)]
+        );
+        if !plans.contains(&plan) {
+            plans.push(plan);
+        }
+        if !stations.contains(&r.station.id) {
+            stations.push(r.station.id.clone());
+        }
+        match runs.iter_mut().find(|(id, ..)| *id == r.run_id) {
+            Some((_, start, n, ok)) => {
+                *n += 1;
+                *ok += accepted(r) as usize;
+                if r.started_at < *start {
+                    *start = r.started_at.clone();
+                }
+            }
+            None => runs.push((
+                r.run_id.clone(),
+                r.started_at.clone(),
+                1,
+                accepted(r) as usize,
+            )),
+        }
+    }
+    runs.sort_by(|a, b| a.1.cmp(&b.1));
+    let mut firmware: BTreeMap<String, usize> = BTreeMap::new();
+    let mut positions: BTreeMap<usize, (usize, usize)> = BTreeMap::new();
+    for r in finals {
+        let fw = r
+            .identity
+            .as_ref()
+            .map_or_else(|| "(not identified)".to_string(), |i| i.firmware.clone());
+        *firmware.entry(fw).or_default() += 1;
+        let p = positions.entry(r.position).or_default();
+        p.0 += 1;
+        p.1 += accepted(r) as usize;
+    }
+    // Times as instants (records may carry different offsets), shown to the minute.
+    let instant = |t: &str| chrono::DateTime::parse_from_rfc3339(t).ok();
+    let shown = |t: Option<chrono::DateTime<chrono::FixedOffset>>| {
+        t.map_or_else(String::new, |t| {
+            t.format("%Y-%m-%d %H:%M (UTC%:z)").to_string()
+        })
+    };
+    Context {
+        plans,
+        from: shown(all.iter().filter_map(|r| instant(&r.started_at)).min()),
+        to: shown(all.iter().filter_map(|r| instant(&r.finished_at)).max()),
+        runs: runs.into_iter().map(|(id, _, n, ok)| (id, n, ok)).collect(),
+        firmware: firmware.into_iter().collect(),
+        stations,
+        positions: positions
+            .into_iter()
+            .map(|(p, (n, ok))| (p, n, ok))
+            .collect(),
+    }
 }
 
 /// Whether a rejected unit failed only marginally: every failing check within its expanded
@@ -402,9 +492,29 @@ impl LotSummary {
                 c
             })
             .collect();
-        checks.sort_by(|a, b| {
-            (a.step.clone(), a.quantity.clone()).cmp(&(b.step.clone(), b.quantity.clone()))
-        });
+        // In plan order: steps as the plan runs them, checks as each step lists them.
+        let mut order: Vec<(String, String, String)> = Vec::new();
+        for r in records {
+            for s in &r.steps {
+                for c in &s.checks {
+                    let key = (
+                        s.id.clone(),
+                        c.quantity.name().to_string(),
+                        c.channel.clone(),
+                    );
+                    if !order.contains(&key) {
+                        order.push(key);
+                    }
+                }
+            }
+        }
+        let place = |c: &CheckStats| {
+            order
+                .iter()
+                .position(|(st, q, ch)| *st == c.step && *q == c.quantity && *ch == c.channel)
+                .unwrap_or(usize::MAX)
+        };
+        checks.sort_by_key(|c| place(c));
         let mut rejections: Vec<(String, usize)> = checks
             .iter()
             .filter(|c| c.failed > 0)
@@ -465,6 +575,8 @@ impl LotSummary {
             yield_percent: percent(count(UnitStatus::Accepted)),
             first_pass_yield_percent: percent(first_pass),
             earlier_tests: earlier.iter().map(line).collect(),
+            context: context(all, records),
+            made_at: None,
             rejections,
             checks,
             unit_lines,
