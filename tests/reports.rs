@@ -686,8 +686,37 @@ fn retests_are_not_new_units() {
         .sum();
     assert_eq!(by_position, 5);
     assert_eq!(s["checks"][0]["step"], "no-load", "plan order");
-    assert_eq!(s["checks"][12]["step"], "basic-pf0.5", "plan order");
+    // Histograms: a one-sided check draws its one limit, a two-sided one both, each labelled
+    // with its value; every bar carries its count, and the counts add up to the units.
+    assert_eq!(s["checks"][0]["sides"], "upper");
     let html = std::fs::read_to_string(dir.join("summary-lot-LOT-R.html")).unwrap();
+    let histogram_of = |row: &str| {
+        let at = html.find(row).unwrap_or_else(|| panic!("{row}"));
+        let start = at + html[at..].find("<svg").unwrap();
+        let end = start + html[start..].find("</svg>").unwrap();
+        html[start..end].to_string()
+    };
+    let dashed = |h: &str| h.matches("stroke-dasharray=\"6 3\"").count();
+    let no_load = histogram_of("no-load</td><td class=\"text\">active_power L");
+    assert_eq!(dashed(&no_load), 1, "{no_load}");
+    assert!(no_load.contains(">+0.500 W</text>"), "{no_load}");
+    let two_sided = histogram_of("basic-Ib</td><td class=\"text\">current L");
+    assert_eq!(dashed(&two_sided), 2);
+    assert!(
+        two_sided.contains(">\u{2212}0.500 %</text>") && two_sided.contains(">+0.500 %</text>")
+    );
+    // The bars' counts: the numbers drawn above the bars (the "0" below the axis is the
+    // origin's label).
+    let bar_counts: usize = two_sided
+        .split("<rect ")
+        .skip(1)
+        .filter_map(|bar| {
+            let text = bar.split("text-anchor=\"middle\">").nth(1)?;
+            text.split('<').next()?.parse::<usize>().ok()
+        })
+        .sum();
+    assert_eq!(bar_counts, 5, "{two_sided}");
+    assert_eq!(s["checks"][12]["step"], "basic-pf0.5", "plan order");
     assert!(html.contains("1 retest of 1 unit"), "{html}");
     assert!(html.contains("Yield by position and by run"), "{html}");
     assert!(html.contains("Earlier tests"), "{html}");

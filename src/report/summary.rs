@@ -488,7 +488,17 @@ impl LotSummary {
                 }
                 c.cpk_low = c.cpk.is_some_and(|k| k < capability::CPK_WARNING_BELOW);
                 (c.process_sd, c.global_risk) = lot_risk(&c, &values, limit);
-                c.histogram = histogram(&c.errors, c.tolerance_limit, &c.error_unit);
+                // The acceptance limit drawn is the units' mean, in the error's unit.
+                let acceptance = (!c.acceptance.is_empty() && !c.limit_varies).then(|| {
+                    c.acceptance.iter().sum::<f64>() / c.acceptance.len() as f64 * c.tolerance_limit
+                });
+                c.histogram = histogram(
+                    &c.errors,
+                    c.tolerance_limit,
+                    &c.error_unit,
+                    c.sense,
+                    acceptance,
+                );
                 c
             })
             .collect();
@@ -637,54 +647,112 @@ impl LotSummary {
     }
 }
 
-/// A histogram of errors with the ±limit drawn, as inline SVG.
-fn histogram(errors: &[f64], limit: f64, unit: &str) -> String {
+/// The lot's errors of one check as a histogram: the tolerance limits drawn dashed and
+/// labelled with their values at the axis, the acceptance limits (where the rule guards) dotted,
+/// a one-sided check drawn with its one limit, the count on each bar.
+fn histogram(
+    errors: &[f64],
+    limit: f64,
+    unit: &str,
+    sense: Sense,
+    acceptance: Option<f64>,
+) -> String {
     const W: f64 = 320.0;
-    const H: f64 = 120.0;
+    const H: f64 = 130.0;
     const BINS: usize = 20;
-    let extent = errors
+    let (lo_e, hi_e) = errors
         .iter()
-        .fold(limit, |m, e| m.max(e.abs()))
-        .max(f64::MIN_POSITIVE)
-        * 1.1;
+        .fold((0.0f64, 0.0f64), |(lo, hi), e| (lo.min(*e), hi.max(*e)));
+    let (low, high) = match sense {
+        Sense::PlusMinus => {
+            let m = limit.max(lo_e.abs()).max(hi_e.abs()).max(f64::MIN_POSITIVE) * 1.15;
+            (-m, m)
+        }
+        Sense::AtMost => (lo_e.min(0.0) - 0.15 * limit.abs(), limit.max(hi_e) * 1.15),
+        Sense::AtLeast => (limit.min(lo_e) * 1.15, hi_e.max(0.0) + 0.15 * limit.abs()),
+    };
+    let (low, high) = if high - low > 0.0 {
+        (low, high)
+    } else {
+        (low - 1.0, high + 1.0)
+    };
     let mut counts = [0usize; BINS];
     for e in errors {
-        let i = (((e + extent) / (2.0 * extent)) * BINS as f64).floor() as usize;
-        counts[i.min(BINS - 1)] += 1;
+        let i = ((e - low) / (high - low) * BINS as f64).floor();
+        counts[(i.max(0.0) as usize).min(BINS - 1)] += 1;
     }
     let max = counts.iter().copied().max().unwrap_or(1).max(1) as f64;
-    let plot_h = H - 24.0;
+    let top = 12.0;
+    let plot_h = H - 30.0 - top;
     let bar_w = W / BINS as f64;
-    let x_of = |v: f64| (v + extent) / (2.0 * extent) * W;
+    let x_of = |v: f64| (v - low) / (high - low) * W;
     let mut svg = format!(
         r##"<svg xmlns="http://www.w3.org/2000/svg" viewBox="0 -4 {W} {H}" width="{W}" height="{H}" role="img" aria-label="Distribution of the error" font-family="sans-serif" font-size="10">"##
     );
     for (i, c) in counts.iter().enumerate() {
+        if *c == 0 {
+            continue;
+        }
         let h = *c as f64 / max * plot_h;
+        let x = i as f64 * bar_w;
         let _ = write!(
             svg,
-            r##"<rect x="{:.1}" y="{:.1}" width="{:.1}" height="{h:.1}" fill="#777" stroke="#000" stroke-width="0.5"/>"##,
-            i as f64 * bar_w,
-            plot_h - h,
-            bar_w
+            r##"<rect x="{x:.1}" y="{:.1}" width="{bar_w:.1}" height="{h:.1}" fill="#777" stroke="#000" stroke-width="0.5"/><text x="{:.1}" y="{:.1}" text-anchor="middle">{c}</text>"##,
+            top + plot_h - h,
+            x + bar_w / 2.0,
+            top + plot_h - h - 2.0
         );
     }
-    for v in [-limit, limit] {
-        let x = x_of(v);
-        let _ = write!(
-            svg,
-            r##"<line x1="{x:.1}" x2="{x:.1}" y1="0" y2="{plot_h:.1}" stroke="#000" stroke-width="1.5" stroke-dasharray="6 3"/>"##
-        );
-    }
+    let signed = |v: f64| {
+        let text = format!("{:.3}", v.abs());
+        if v < 0.0 {
+            format!("\u{2212}{text}")
+        } else {
+            format!("+{text}")
+        }
+    };
+    let sides: &[f64] = match sense {
+        Sense::PlusMinus => &[-1.0, 1.0],
+        Sense::AtMost => &[1.0],
+        Sense::AtLeast => &[1.0],
+    };
+    let y_axis = top + plot_h;
     let _ = write!(
         svg,
-        r##"<text x="0" y="{:.1}">{:+.3} {unit}</text><text x="{:.1}" y="{:.1}" text-anchor="middle">0</text><text x="{W}" y="{:.1}" text-anchor="end">{:+.3} {unit}</text></svg>"##,
-        H - 8.0,
-        -extent,
-        W / 2.0,
-        H - 8.0,
-        H - 8.0,
-        extent
+        r##"<line x1="0" x2="{W}" y1="{y_axis:.1}" y2="{y_axis:.1}" stroke="#000" stroke-width="0.5"/>"##
     );
+    for sign in sides {
+        let v = sign * limit;
+        let x = x_of(v);
+        let anchor = if x < W * 0.15 {
+            "start"
+        } else if x > W * 0.85 {
+            "end"
+        } else {
+            "middle"
+        };
+        let _ = write!(
+            svg,
+            r##"<line x1="{x:.1}" x2="{x:.1}" y1="{top:.1}" y2="{y_axis:.1}" stroke="#000" stroke-width="1.5" stroke-dasharray="6 3"/><text x="{x:.1}" y="{:.1}" text-anchor="{anchor}">{} {unit}</text>"##,
+            y_axis + 12.0,
+            signed(v)
+        );
+        if let Some(a) = acceptance.filter(|a| (a - limit).abs() > 1e-12 * limit.abs().max(1e-12)) {
+            let xa = x_of(sign * a);
+            let _ = write!(
+                svg,
+                r##"<line x1="{xa:.1}" x2="{xa:.1}" y1="{top:.1}" y2="{y_axis:.1}" stroke="#000" stroke-width="1" stroke-dasharray="2 2"/>"##
+            );
+        }
+    }
+    let x0 = x_of(0.0);
+    if (0.0..=W).contains(&x0) {
+        let _ = write!(
+            svg,
+            r##"<text x="{x0:.1}" y="{:.1}" text-anchor="middle">0</text>"##,
+            y_axis + 24.0
+        );
+    }
+    svg.push_str("</svg>");
     svg
 }
