@@ -64,6 +64,25 @@ fn the_unit_report_has_a_well_formed_plot_and_the_run_a_junit_file() {
     assert_eq!(panels, 4, "current, active power, voltage, energy");
     // The planted defect's failing point is ringed and labelled, not only coloured.
     assert!(html.contains(">FAIL</text>"));
+    // On paper as in the record: each tolerance as the plan wrote it beside its value at the
+    // point, each class limit's source, where each reference came from, the TUR notes.
+    assert!(html.contains("±(1 % + 5 mA): ± 2.000 %"), "{html}");
+    assert!(
+        html.contains("class limit ±1 % from IEC 62053-21:2003 class 1"),
+        "{html}"
+    );
+    assert!(html.contains("read from the instrument"));
+    assert!(html.contains("test uncertainty ratio"), "{html}");
+    let mut typed = records[1].clone();
+    for step in &mut typed.steps {
+        for r in &mut step.references {
+            r.reading.source = "operator".into();
+        }
+    }
+    let templates = meterproof::report::Templates::load(None).unwrap();
+    let typed_html = templates.unit_html(&typed, None).unwrap();
+    assert!(typed_html.contains("typed by the operator"));
+    assert!(!typed_html.contains("read from the instrument"));
     // Each panel draws its quantity against its own limits, from the record: at basic-Ib the
     // current's envelope is its ±0.5 %, the active power's its ±1 % (class 1), never the
     // tighter of the two for both.

@@ -281,6 +281,9 @@ struct StepView {
     /// Settling until stable ran out of time: the samples may hold the tail of the settling.
     unsettled: bool,
     checks: Vec<CheckView>,
+    /// What the table's cells cannot hold: each class limit's source, the checks' notes (a low
+    /// test uncertainty ratio, a bound held reading by reading).
+    notes: Vec<String>,
 }
 
 #[derive(Serialize)]
@@ -297,6 +300,10 @@ struct CheckView {
     /// The probability that the true error lies beyond the tolerance.
     risk: String,
     acceptance_limit: String,
+    /// The tolerance as the plan wrote it ("±(1 % + 5 mA)").
+    tolerance: String,
+    /// Where the reference value came from: the instrument, typed by the operator, a file.
+    reference_source: String,
     tur: String,
     verdict_word: String,
     verdict_symbol: &'static str,
@@ -331,7 +338,26 @@ impl StepView {
             reason: step.reason.clone(),
             timing: timing_text(step),
             unsettled: step.settled == Some(false),
-            checks: step.checks.iter().map(CheckView::of).collect(),
+            checks: step.checks.iter().map(|c| CheckView::of(c, step)).collect(),
+            notes: step
+                .checks
+                .iter()
+                .flat_map(|c| {
+                    let class = match &c.tolerance {
+                        crate::plan::Tolerance::Class { percent, basis } => Some(format!(
+                            "{} on {}: class limit ±{percent} % from {basis}",
+                            c.quantity.name(),
+                            c.channel
+                        )),
+                        _ => None,
+                    };
+                    let note = c
+                        .note
+                        .as_ref()
+                        .map(|n| format!("{} on {}: {n}", c.quantity.name(), c.channel));
+                    class.into_iter().chain(note)
+                })
+                .collect(),
         }
     }
 }
@@ -363,10 +389,23 @@ pub fn step_status_word(status: StepStatus) -> &'static str {
 }
 
 impl CheckView {
-    fn of(c: &CheckRecord) -> CheckView {
+    fn of(c: &CheckRecord, step: &StepRecord) -> CheckView {
         let dim = c.quantity.dimension();
         let value = |v: Option<f64>| v.map_or("—".to_string(), |x| number(x, dim));
+        let reference_source = step
+            .references
+            .iter()
+            .find(|r| r.quantity == c.quantity)
+            .map_or("—", |r| match r.reading.source.as_str() {
+                "operator" => "typed by the operator",
+                "file" => "imported from a file",
+                "instrument" => "read from the instrument",
+                other => other,
+            })
+            .to_string();
         CheckView {
+            tolerance: describe::tolerance_text(&c.tolerance, dim),
+            reference_source,
             quantity: c.quantity.name(),
             channel: c.channel.clone(),
             reference: value(c.reference),
