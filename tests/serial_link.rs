@@ -275,15 +275,32 @@ fn a_retried_reading_is_timed_by_the_attempt_that_was_answered() {
     assert!(first < 0.25, "{first}");
 }
 
+/// A text link on the port at `path` that opens whatever path the returned cell holds when the
+/// port is lost: a reseated unit comes back on another pseudo-terminal here (a real port keeps
+/// its path).
+fn reseatable(
+    spec: &Arc<meterproof::plan::text_link::TextLinkSpec>,
+    path: &str,
+) -> (
+    text::TextLink<Box<dyn serialport::SerialPort>>,
+    Arc<std::sync::Mutex<String>>,
+) {
+    use meterproof::link::line::open_port;
+    let now_at = Arc::new(std::sync::Mutex::new(path.to_string()));
+    let settings = spec.port;
+    let at = now_at.clone();
+    let link = text::TextLink::new(spec.clone(), open_port(path, settings).unwrap(), "p1")
+        .with_reopen(Box::new(move || open_port(&at.lock().unwrap(), settings)));
+    (link, now_at)
+}
+
 /// A unit reseated on its port: the link opens the port again, checks that the same unit
 /// answers (its serial) and counts the reconnection; another unit in its place, or no unit, is
 /// an error that says so.
 #[test]
 fn a_reseated_unit_is_reopened_and_must_be_the_same_unit() {
     use meterproof::link::DutLink;
-    use meterproof::link::line::open_port;
     use meterproof::plan::Quantity;
-    use std::sync::Mutex;
     let serial_plan = plan("demo-serial.yaml");
     let LinkSpec::Text(spec) = &serial_plan.link else {
         panic!("a text link")
@@ -295,15 +312,7 @@ fn a_reseated_unit_is_reopened_and_must_be_the_same_unit() {
     let first = PtyDevice::spawn(Device::new(sim.meter(0), Faults::default())).unwrap();
     // Where the unit is now: a reseated unit comes back on another pseudo-terminal here (a
     // real port keeps its path).
-    let now_at = Arc::new(Mutex::new(first.path.clone()));
-    let settings = spec.port;
-    let at = now_at.clone();
-    let mut link = text::TextLink::new(
-        spec.clone(),
-        open_port(&first.path, settings).unwrap(),
-        "p1",
-    )
-    .with_reopen(Box::new(move || open_port(&at.lock().unwrap(), settings)));
+    let (mut link, now_at) = reseatable(&spec, &first.path);
     let id = link.identify().unwrap();
     assert!(link.read(Quantity::Voltage, "L").is_ok());
     // Unplugged, nothing to open: the read fails, saying the link is gone.
@@ -428,9 +437,7 @@ fn replies_later_than_the_timeout_are_named_as_such() {
 #[test]
 fn a_reopened_console_gets_its_init_sequence_again() {
     use meterproof::link::DutLink;
-    use meterproof::link::line::open_port;
     use meterproof::plan::Quantity;
-    use std::sync::Mutex;
     use std::sync::atomic::Ordering;
     let console_plan = plan("demo-console.yaml");
     let LinkSpec::Text(spec) = &console_plan.link else {
@@ -444,15 +451,7 @@ fn a_reopened_console_gets_its_init_sequence_again() {
         ..Faults::default()
     };
     let first = PtyDevice::spawn(Device::new(sim.meter(0), console())).unwrap();
-    let now_at = Arc::new(Mutex::new(first.path.clone()));
-    let settings = spec.port;
-    let at = now_at.clone();
-    let mut link = text::TextLink::new(
-        spec.clone(),
-        open_port(&first.path, settings).unwrap(),
-        "p1",
-    )
-    .with_reopen(Box::new(move || open_port(&at.lock().unwrap(), settings)));
+    let (mut link, now_at) = reseatable(&spec, &first.path);
     link.identify().unwrap();
     assert!(link.read(Quantity::Current, "L").is_ok());
     // init, who, one read.
