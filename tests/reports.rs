@@ -73,6 +73,20 @@ fn the_unit_report_has_a_well_formed_plot_and_the_run_a_junit_file() {
     );
     assert!(html.contains("read from the instrument"));
     assert!(html.contains("test uncertainty ratio"), "{html}");
+    // A bound is shown as the largest magnitude read, never as a signed "error"; a negative
+    // rms mean (a unit below its zero offset) is shown as reported and said so.
+    assert!(html.contains("largest |reading| "), "{html}");
+    let no_load_current = records[1].steps[0]
+        .checks
+        .iter()
+        .find(|c| c.quantity.name() == "current")
+        .unwrap();
+    // Seed 1's position 2 reads a little below zero at no load (its simulated offset).
+    assert!(no_load_current.measured.unwrap() < 0.0);
+    assert!(
+        html.contains("the unit reported a negative rms value"),
+        "{html}"
+    );
     let mut typed = records[1].clone();
     for step in &mut typed.steps {
         for r in &mut step.references {

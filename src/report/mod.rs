@@ -355,7 +355,28 @@ impl StepView {
                         .note
                         .as_ref()
                         .map(|n| format!("{} on {}: {n}", c.quantity.name(), c.channel));
-                    class.into_iter().chain(note)
+                    // An rms value cannot be negative: a unit reporting one below its zero
+                    // offset is shown as it reported it, and said so.
+                    let rms = matches!(
+                        c.quantity,
+                        crate::plan::Quantity::Current
+                            | crate::plan::Quantity::Voltage
+                            | crate::plan::Quantity::ApparentPower
+                    );
+                    let how = if matches!(c.tolerance, crate::plan::Tolerance::AtMost { .. }) {
+                        "compared with its bound by magnitude"
+                    } else {
+                        "compared as reported"
+                    };
+                    let negative = c.measured.filter(|m| rms && *m < 0.0).map(|m| {
+                        format!(
+                            "{} on {}: the unit reported a negative rms value (mean {}), below its zero offset; shown as reported, {how}",
+                            c.quantity.name(),
+                            c.channel,
+                            number(m, c.quantity.dimension())
+                        )
+                    });
+                    class.into_iter().chain(note).chain(negative)
                 })
                 .collect(),
         }
@@ -412,7 +433,14 @@ impl CheckView {
             measured: value(c.measured),
             std_dev: value(c.summary.and_then(|s| s.std_dev)),
             samples: c.samples.len(),
-            error: c.evaluation.as_ref().map_or("—".into(), error_text),
+            error: match (&c.evaluation, &c.tolerance) {
+                // A bound is compared with the reading itself: the largest magnitude, unsigned.
+                (Some(e), crate::plan::Tolerance::AtMost { .. }) if !c.quantity.is_register() => {
+                    format!("largest |reading| {}", number(e.error.abs(), dim))
+                }
+                (Some(e), _) => error_text(e),
+                (None, _) => "—".into(),
+            },
             limit: c.evaluation.as_ref().map_or("—".into(), limit_text),
             uncertainty: match (&c.evaluation, &c.decision) {
                 (Some(e), Some(d)) => {
