@@ -571,3 +571,40 @@ fn readout_link_mistakes_are_refused_with_their_place() {
     );
     found("link.max_bytes", "from 64 to");
 }
+
+/// The console keys of a `text` link: an empty prompt, an init line that is neither a line nor
+/// `{ send, reply }`, one without `send`, one with an unknown key, and a reply pattern that does
+/// not compile are each refused at their path, all in one pass.
+#[test]
+fn console_link_keys_are_checked_where_they_are_written() {
+    let console = include_str!("../test-plans/demo-console.yaml");
+    let text = console
+        .replace("  prompt: \"> \"", "  prompt: \"\"")
+        .replace(
+            "    - { send: log off, reply: '^logging stopped$' }",
+            "    - [log, off]\n    - { reply: '^ok$' }\n    - { send: x, wait: 1 s }\n    - { send: y, reply: '(' }",
+        );
+    let e = errors(&text);
+    let shown = e.to_string();
+    for (path, says) in [
+        ("link.prompt", "a prompt cannot be empty"),
+        (
+            "link.init[1]",
+            "write a line to send, or { send: LINE, reply: PATTERN }",
+        ),
+        ("link.init[2]", "an init line needs send"),
+        ("link.init[3]", "unknown key \"wait\""),
+        ("link.init[4].reply", ""),
+    ] {
+        assert!(
+            e.0.iter()
+                .any(|x| x.path == path && x.message.contains(says)),
+            "{path}: {shown}"
+        );
+    }
+    // Each with its line in the file.
+    assert!(
+        shown.contains(&format!("p.yaml:{}:", line_of(&text, "prompt: \"\""))),
+        "{shown}"
+    );
+}
