@@ -6,7 +6,7 @@
 
 use super::*;
 use crate::link::tap::{Direction, Recorder, TappedPort, Transcript};
-use crate::link::text::{LineRole, TextLink, ending_name, explain_line, explain_silence};
+use crate::link::text::{LineRole, TextLink, explain_line, explain_silence};
 use crate::link::{DutLink, line::open_port};
 use crate::plan::text_link::TextLinkSpec;
 use crate::plan::{LinkSpec, Quantity};
@@ -338,7 +338,7 @@ fn show_rest(link: &LinkSpec, carry: &mut String) {
         out!(
             "  ← {}  no line ending ({}) after it",
             terminal_safe(&format!("{carry:?}")),
-            ending_name(spec.receive_ending)
+            spec.receive_ending.name()
         );
     }
     carry.clear();

@@ -419,7 +419,7 @@ pub fn explain_silence(spec: &TextLinkSpec, received: &[u8]) -> String {
         return format!(
             "nothing came back: check the port and its settings ({} baud), and the line ending the unit waits for (send: {})",
             spec.port.baud,
-            ending_name(spec.send_ending)
+            spec.send_ending.name()
         );
     }
     let has_lf = received.contains(&b'\n');
@@ -438,7 +438,7 @@ pub fn explain_silence(spec: &TextLinkSpec, received: &[u8]) -> String {
         };
         return format!(
             "bytes came back, but no line ended with {} (the unit sent {seen}): set line_ending.receive",
-            ending_name(ending)
+            ending.name()
         );
     }
     if let Some(prompt) = spec.prompt.as_deref() {
@@ -448,16 +448,6 @@ pub fn explain_silence(spec: &TextLinkSpec, received: &[u8]) -> String {
         }
     }
     "no line matched the reply pattern".into()
-}
-
-/// A line ending as the plan writes it.
-pub fn ending_name(ending: crate::plan::text_link::LineEnding) -> &'static str {
-    use crate::plan::text_link::LineEnding;
-    match ending {
-        LineEnding::Cr => "CR",
-        LineEnding::Lf => "LF",
-        LineEnding::CrLf => "CRLF",
-    }
 }
 
 #[cfg(test)]

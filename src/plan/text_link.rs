@@ -52,6 +52,15 @@ impl LineEnding {
         }
     }
 
+    /// The name a plan writes it by: CR, LF or CRLF.
+    pub fn name(self) -> &'static str {
+        match self {
+            LineEnding::Cr => "CR",
+            LineEnding::Lf => "LF",
+            LineEnding::CrLf => "CRLF",
+        }
+    }
+
     pub fn from_name(name: &str) -> Option<LineEnding> {
         match name {
             "CR" => Some(LineEnding::Cr),

@@ -238,7 +238,6 @@ fn comparison_plots(result: &crate::regression::Comparison) -> Vec<(String, Stri
                     },
                 ],
                 labels: labels.clone(),
-                unit: "%".into(),
                 y_title: format!("mean error of {}, %", q.name()),
                 aria: format!("Mean error of {} on both sides", q.name()),
             };

@@ -46,7 +46,6 @@ pub struct Chart {
     pub labels: Vec<String>,
     pub limits: Vec<Option<(f64, Option<f64>)>>,
     pub series: Vec<Series>,
-    pub unit: String,
     /// The vertical axis's title, with its unit ("error of active_power, %").
     pub y_title: String,
     pub aria: String,
@@ -162,7 +161,6 @@ pub fn error_charts(record: &UnitRecord) -> Vec<(String, Chart)> {
                     marker,
                     points,
                 }],
-                unit: "%".into(),
                 y_title: format!("error of {}, %", q.name()),
                 aria: format!(
                     "Error of {} against load point, with its tolerance and acceptance limits",

@@ -574,10 +574,11 @@ impl LotSummary {
             units,
             tests: all.len(),
             retests: all.len() - units,
-            units_retested: records
+            units_retested: earlier
                 .iter()
-                .filter(|f| all.iter().filter(|r| r.serial == f.serial).count() > 1)
-                .count(),
+                .map(|r| r.serial.as_str())
+                .collect::<std::collections::BTreeSet<_>>()
+                .len(),
             accepted: count(UnitStatus::Accepted),
             rejected: count(UnitStatus::Rejected),
             rejected_marginal: unit_lines.iter().filter(|l| l.marginal).count(),
