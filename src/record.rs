@@ -265,6 +265,23 @@ pub struct CheckRecord {
     pub decision: Option<crate::metrology::decision::Decision>,
     pub verdict: CheckVerdict,
     pub note: Option<String>,
+    /// A check on the test output: the pulses counted and the time they took.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub pulses: Option<PulseCount>,
+}
+
+/// What the counter counted for one check on a unit's test output.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PulseCount {
+    /// `fixed_time` or `fixed_pulses`.
+    pub method: String,
+    /// imp/kWh.
+    pub meter_constant: f64,
+    /// Pulses counted from the first sample to the last (the gate, or the first edge to the
+    /// last).
+    pub pulses: u64,
+    /// Seconds from the first sample to the last.
+    pub seconds: f64,
 }
 
 /// The canonical form of anything the archive seals: its JSON with object keys sorted, and

@@ -3,6 +3,7 @@
 //! Each piece of hardware sits behind a trait, so that the built-in simulator and a real station
 //! drive the same executor.
 
+pub mod counter;
 pub mod operator;
 pub mod reference_file;
 pub mod scpi;
@@ -94,6 +95,8 @@ pub enum BenchError {
     Source(String),
     #[error("reference: {0}")]
     Reference(String),
+    #[error("pulse counter: {0}")]
+    Counter(String),
     /// The operator skipped the step.
     #[error("skipped by the operator: {0}")]
     Skipped(String),
@@ -286,6 +289,9 @@ pub struct StationInfo {
     /// The bench's stated ambient temperature, °C (class limits by temperature band use it).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub ambient_c: Option<f64>,
+    /// The counter of the units' test outputs, where the station has one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub counter: Option<counter::CounterInfo>,
 }
 
 /// One test position and the link to the unit in it.
@@ -303,6 +309,8 @@ pub struct Bench {
     pub clock: Arc<dyn Clock>,
     pub source: SourceHandle,
     pub reference: Box<dyn ReferenceMeter>,
+    /// The counter of the units' test outputs, where the station has one.
+    pub counter: Option<counter::CounterHandle>,
     pub positions: Vec<Position>,
     /// Whether positions are read concurrently (links that wait on real ports).
     pub parallel: bool,

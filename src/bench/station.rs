@@ -4,6 +4,7 @@
 //! Why this length: a station file's every key is read and checked here, each with its path, as
 //! the plan's are; the bench built from it is the last function.
 
+use super::counter::{CounterCommands, CounterInfo, ScpiCounter};
 use super::operator::{ManualSource, SharedConsole, TypedReference};
 use super::scpi::{ScpiReference, ScpiSource, SourceCommands};
 use super::{Bench, InstrumentInfo, LoadSource, Position, RealClock, ReferenceMeter, StationInfo};
@@ -33,6 +34,18 @@ pub struct Station {
     pub positions: Vec<StationPosition>,
     pub source: SourceSpec,
     pub reference: ReferenceSpec,
+    /// The counter of the units' test outputs, where the bench has one.
+    pub counter: Option<CounterSpec>,
+}
+
+/// A counter with a line interface and an input per position.
+#[derive(Debug, Clone)]
+pub struct CounterSpec {
+    pub info: CounterInfo,
+    pub port: InstrumentPort,
+    pub commands: CounterCommands,
+    /// (position, input) where they differ; otherwise position n is input n.
+    pub inputs: Vec<(usize, u32)>,
 }
 
 #[derive(Debug, Clone, PartialEq)]
@@ -93,6 +106,57 @@ struct RawStation {
     positions: Vec<RawStationPosition>,
     source: RawSource,
     reference: RawReference,
+    /// The counter of the units' test outputs (pulses), for plans that count them.
+    #[serde(default)]
+    counter: Option<RawCounter>,
+}
+
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
+#[serde(deny_unknown_fields)]
+struct RawCounter {
+    id: Text,
+    #[serde(default)]
+    description: Option<Text>,
+    /// The time base's accuracy: "5 ppm".
+    #[serde(default)]
+    timebase: Option<Text>,
+    /// How closely it times an edge: "1 µs".
+    #[serde(default)]
+    edge: Option<Text>,
+    /// Position number → counter input, where they differ.
+    #[serde(default)]
+    inputs: BTreeMap<String, Text>,
+    read: RawCounterRead,
+}
+
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
+#[serde(deny_unknown_fields, tag = "kind", rename_all = "snake_case")]
+enum RawCounterRead {
+    Scpi(Box<RawScpiCounter>),
+}
+
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
+#[serde(deny_unknown_fields)]
+struct RawScpiCounter {
+    port: Text,
+    #[serde(default)]
+    port_settings: Option<RawPort>,
+    #[serde(default)]
+    line_ending: Option<Text>,
+    #[serde(default)]
+    timeout: Option<Text>,
+    commands: RawCounterCommands,
+}
+
+/// A counter's commands; `{inputs}`, `{input}` and `{pulses}` are filled in.
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
+#[serde(deny_unknown_fields)]
+struct RawCounterCommands {
+    totalize: Text,
+    count: Text,
+    time_pulses: Text,
+    pulse_times: Text,
+    stop: Text,
 }
 
 #[derive(Debug, Deserialize, schemars::JsonSchema)]
@@ -353,6 +417,10 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
         RawSource::Manual {} => Some(SourceSpec::Manual),
     };
     let reference = reference(doc, &raw.reference);
+    let counter = match &raw.counter {
+        None => Some(None),
+        Some(c) => counter(doc, c, &positions).map(Some),
+    };
     // One port, one device: a port named twice would have two parts of the bench talk over
     // each other.
     let mut ports: Vec<(String, String)> = positions
@@ -364,6 +432,9 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
     }
     if let RawReferenceRead::Scpi(r) = &raw.reference.read {
         ports.push((r.port.0.trim().to_string(), "reference.read.port".into()));
+    }
+    if let Some(RawCounterRead::Scpi(c)) = raw.counter.as_ref().map(|c| &c.read) {
+        ports.push((c.port.0.trim().to_string(), "counter.read.port".into()));
     }
     // (Positions among themselves are checked above.)
     for i in positions.len()..ports.len() {
@@ -381,7 +452,139 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
         positions,
         source: source?,
         reference: reference?,
+        counter: counter?,
     })
+}
+
+/// The station's `counter`: its identity, specification, inputs and commands.
+fn counter(
+    doc: &mut Document,
+    raw: &RawCounter,
+    positions: &[StationPosition],
+) -> Option<CounterSpec> {
+    let id = doc.non_empty("counter.id", &raw.id);
+    let relative = |doc: &mut Document, key: &str, t: Option<&Text>| match t {
+        None => Some(None),
+        Some(t) => doc
+            .value(&format!("counter.{key}"), t, Dimension::Percent)
+            .and_then(|v| {
+                if (0.0..1.0).contains(&v) {
+                    Some(Some(v / 100.0))
+                } else {
+                    doc.error(
+                        &format!("counter.{key}"),
+                        "expected a small share: \"5 ppm\"",
+                    );
+                    None
+                }
+            }),
+    };
+    let timebase = relative(doc, "timebase", raw.timebase.as_ref());
+    let edge_s = doc.optional_value("counter.edge", raw.edge.as_ref(), Dimension::Time);
+    let mut inputs = Vec::new();
+    for (position, input) in &raw.inputs {
+        let path = format!("counter.inputs.{position}");
+        let p = position.trim().parse::<usize>().ok();
+        if !p.is_some_and(|p| positions.iter().any(|q| q.number == p)) {
+            doc.error(
+                &path,
+                format!("\"{position}\" is not a position of this station"),
+            );
+            continue;
+        }
+        match input.0.trim().parse::<u32>() {
+            Ok(i) if i >= 1 => inputs.push((p.unwrap_or_default(), i)),
+            _ => doc.error(&path, format!("\"{}\" is not an input number", input.0)),
+        }
+    }
+    let RawCounterRead::Scpi(scpi) = &raw.read;
+    let fields = PortFields {
+        port: &scpi.port,
+        port_settings: scpi.port_settings.as_ref(),
+        line_ending: scpi.line_ending.as_ref(),
+        timeout: scpi.timeout.as_ref(),
+    };
+    let port = instrument_port(doc, "counter.read", &fields);
+    let c = &scpi.commands;
+    let texts = [
+        &c.totalize,
+        &c.count,
+        &c.time_pulses,
+        &c.pulse_times,
+        &c.stop,
+    ];
+    for ((name, allowed), text) in crate::bench::counter::COUNTER_PLACEHOLDERS
+        .iter()
+        .zip(texts)
+    {
+        placeholders(doc, &format!("counter.read.commands.{name}"), text, allowed);
+    }
+    Some(CounterSpec {
+        info: CounterInfo {
+            id: id?,
+            description: raw
+                .description
+                .as_ref()
+                .map(|t| t.0.clone())
+                .unwrap_or_default(),
+            timebase: timebase?,
+            edge_s: edge_s?,
+        },
+        port: port?,
+        commands: CounterCommands {
+            totalize: c.totalize.0.trim().to_string(),
+            count: c.count.0.trim().to_string(),
+            time_pulses: c.time_pulses.0.trim().to_string(),
+            pulse_times: c.pulse_times.0.trim().to_string(),
+            stop: c.stop.0.trim().to_string(),
+        },
+        inputs,
+    })
+}
+
+/// A counter command's placeholders: each one it has must be among `allowed`, and each of
+/// `allowed` must be there (a command without its `{input}` would read the wrong input).
+fn placeholders(doc: &mut Document, path: &str, text: &Text, allowed: &[&str]) {
+    let command = text.0.trim();
+    if command.is_empty() {
+        doc.error(path, "the command is empty");
+        return;
+    }
+    let mut found = Vec::new();
+    let mut rest = command;
+    while let Some(start) = rest.find('{') {
+        let after = &rest[start + 1..];
+        let Some(end) = after.find('}') else {
+            doc.error(path, format!("\"{command}\" has a {{ that is never closed"));
+            return;
+        };
+        found.push(after[..end].to_string());
+        rest = &after[end + 1..];
+    }
+    for f in &found {
+        if !allowed.contains(&f.as_str()) {
+            doc.error(
+                path,
+                format!(
+                    "\"{{{f}}}\" is not filled in here: this command takes {}",
+                    if allowed.is_empty() {
+                        "no placeholder".to_string()
+                    } else {
+                        allowed
+                            .iter()
+                            .map(|a| format!("{{{a}}}"))
+                            .collect::<Vec<_>>()
+                            .join(" and ")
+                    }
+                ),
+            );
+        }
+    }
+    for a in allowed {
+        if !found.iter().any(|f| f == a) {
+            doc.error(path, format!("\"{command}\" has no {{{a}}}"));
+        }
+    }
 }
 
 /// A command sent to an instrument: its only placeholder is `{value}` (the number to set),
@@ -653,6 +856,19 @@ pub fn build_bench(
             plan.reference_plausibility,
         )),
     };
+    let clock: Arc<dyn super::Clock> = Arc::new(RealClock::scaled(station.time_scale));
+    let counter = match &station.counter {
+        None => None,
+        Some(c) => Some(super::counter::CounterHandle::new(Box::new(
+            ScpiCounter::new(
+                instrument("counter", &c.port)?,
+                c.port.line.clone(),
+                (c.commands.clone(), c.inputs.clone()),
+                clock.clone(),
+                &c.port.path,
+            ),
+        ))),
+    };
     let positions = station
         .positions
         .iter()
@@ -670,10 +886,12 @@ pub fn build_bench(
             reference: station.reference.info.clone(),
             source: source_description,
             ambient_c: station.ambient_c,
+            counter: station.counter.as_ref().map(|c| c.info.clone()),
         },
-        clock: Arc::new(RealClock::scaled(station.time_scale)),
+        clock,
         source: super::SourceHandle::new(source),
         reference,
+        counter,
         positions,
         parallel: true,
         interrupt: Default::default(),

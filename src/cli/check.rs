@@ -16,7 +16,9 @@ pub(super) fn check(paths: &[PathBuf]) -> Result<i32, CliError> {
             Station::load(path).map(|s| station_summary(&s))
         } else {
             Plan::load(path).map(|p| {
-                crate::report::describe::plan_summary(&p) + &zone_warnings(&p, station.as_ref())
+                crate::report::describe::plan_summary(&p)
+                    + &zone_warnings(&p, station.as_ref())
+                    + &plan_warnings(&p)
             })
         };
         match summary {
@@ -105,6 +107,14 @@ fn zone_warnings(plan: &Plan, station: Option<&Station>) -> String {
         s.push_str(&format!("  warning: {z}\n"));
     }
     s
+}
+
+/// What the plan asks that its steps cannot give (a resolution out of reach in its time).
+fn plan_warnings(plan: &Plan) -> String {
+    plan.warnings()
+        .into_iter()
+        .map(|(step, w)| format!("  warning: step {step}: {w}\n"))
+        .collect()
 }
 
 /// Whether a YAML file is a station file (its top level names a `station`) rather than a plan.

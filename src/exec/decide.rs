@@ -5,8 +5,11 @@ use crate::metrology::accuracy::Accuracy;
 use crate::metrology::decision::{TUR_WARNING_BELOW, decide};
 use crate::metrology::uncertainty::{self, Budget};
 use crate::metrology::{Summary, evaluate};
-use crate::plan::{Check, DecisionRule, Quantity, Step};
-use crate::record::{CheckRecord, CheckVerdict, StepRecord, StepStatus, UnitStatus, UnitVerdict};
+use crate::plan::units::duration_text;
+use crate::plan::{Check, DecisionRule, PulseMethod, PulseSpec, Quantity, Step};
+use crate::record::{
+    CheckRecord, CheckVerdict, PulseCount, StepRecord, StepStatus, UnitStatus, UnitVerdict,
+};
 use std::collections::BTreeMap;
 
 /// What every check of a run is judged with.
@@ -16,6 +19,8 @@ pub(super) struct Judge<'a> {
     pub accuracy: Option<Accuracy>,
     pub ranges: &'a BTreeMap<String, f64>,
     pub calibration: Option<&'a crate::plan::CalibrationSpec>,
+    /// The counter of the test outputs: its time base and edge timing enter the budget.
+    pub counter: Option<crate::bench::counter::CounterInfo>,
 }
 
 /// What one check is evaluated from.
@@ -46,7 +51,43 @@ pub(super) fn evaluate_check(input: CheckInputs, record: &mut CheckRecord, judge
     } else {
         Summary::of(&values)
     };
-    record.measured = if check.quantity.is_register() {
+    let pulses = check
+        .counts_pulses()
+        .then_some(step.pulses.as_ref())
+        .flatten();
+    record.pulses = pulses.and_then(|spec| pulse_count(spec, &record.samples));
+    if let Some(spec) = pulses
+        && let PulseMethod::FixedPulses { count, at_most_s } = spec.method
+    {
+        let got = record.pulses.as_ref().map_or(0, |p| p.pulses);
+        if got < count {
+            record.note = Some(if record.samples.is_empty() {
+                format!(
+                    "no pulse came from the test output within {}: not evaluated",
+                    duration_text(at_most_s)
+                )
+            } else {
+                format!(
+                    "{got} of {count} pulses came within {}: not evaluated",
+                    duration_text(at_most_s)
+                )
+            });
+            return;
+        }
+    }
+    record.measured = if let Some(spec) = pulses {
+        // Whole pulses times the energy of one, from the first sample to the last (the edge
+        // that completed a count); over a gate every sample must be there.
+        let complete = match spec.method {
+            PulseMethod::FixedPulses { .. } => values.len() >= 2,
+            PulseMethod::FixedTime { .. } => values.len() == step.samples as usize,
+        };
+        record
+            .pulses
+            .as_ref()
+            .filter(|_| complete)
+            .map(|p| p.pulses as f64 * spec.pulse_wh())
+    } else if check.quantity.is_register() {
         // The register's advance over the window: all of its samples must be there.
         (values.len() == step.samples as usize && values.len() >= 2)
             .then(|| values[values.len() - 1] - values[0])
@@ -107,6 +148,7 @@ pub(super) fn evaluate_check(input: CheckInputs, record: &mut CheckRecord, judge
     };
     let known = Known {
         resolution,
+        pulses,
         repeatability: step.repeatability.as_ref(),
         power_readings: &power_readings,
         share,
@@ -211,6 +253,8 @@ impl Partial<'_> {
 /// a repeatability declared by the plan.
 struct Known<'a> {
     resolution: Option<f64>,
+    /// How the test output was counted, for a check on it.
+    pulses: Option<&'a PulseSpec>,
     repeatability: Option<&'a crate::plan::Repeatability>,
     /// The reference's power readings an energy was inferred from (bench time s, W).
     power_readings: &'a [(f64, f64)],
@@ -231,6 +275,7 @@ fn budget(
 ) -> Budget {
     let Known {
         resolution,
+        pulses,
         repeatability: declared,
         power_readings,
         share,
@@ -266,29 +311,55 @@ fn budget(
         }
         _ => {}
     }
-    match resolution {
+    // A bound on a count of pulses (no-load: at most one; starting: at least two) is a bound
+    // on whole pulses, compared as counted.
+    let counted_bound = pulses.is_some() && check.tolerance.is_bound();
+    if counted_bound {
+        notes.push("the bound is on whole pulses, compared as counted".into());
+    }
+    match (resolution, pulses) {
+        (_, Some(_)) if counted_bound => {}
+        (_, Some(spec)) => pulse_terms(
+            &mut components,
+            &mut notes,
+            spec,
+            (record, reference),
+            (c_unit, c_ref),
+            judge.counter.as_ref(),
+        ),
         // A register's advance is the difference of two quantised readings: δ·√2 / √12.
-        Some(d) if check.quantity.is_register() => components.push(uncertainty::resolution(
-            "resolution of the unit's register (two readings)",
-            d * 2f64.sqrt(),
-            c_unit,
-        )),
-        Some(d) => components.push(uncertainty::resolution(
+        (Some(d), None) if check.quantity.is_register() => {
+            components.push(uncertainty::resolution(
+                "resolution of the unit's register (two readings)",
+                d * 2f64.sqrt(),
+                c_unit,
+            ))
+        }
+        (Some(d), None) => components.push(uncertainty::resolution(
             "resolution of the unit's reading",
             d,
             c_unit,
         )),
-        None => notes.push("the link does not state the unit's resolution: not included".into()),
+        (None, None) => {
+            notes.push("the link does not state the unit's resolution: not included".into())
+        }
     }
     if check.quantity.is_register()
+        && !counted_bound
         && let Some(a) = register_timing_half_width(&record.samples, measured)
     {
-        components.push(uncertainty::rectangular(
-            "timing of the register's two readings",
-            a,
-            c_unit,
-            "half of each reading's transaction time, at the window's mean power",
-        ));
+        let (name, basis) = if pulses.is_some() {
+            (
+                "timing of the gate's opening and closing",
+                "half of each counter reading's transaction time, at the window's mean power",
+            )
+        } else {
+            (
+                "timing of the register's two readings",
+                "half of each reading's transaction time, at the window's mean power",
+            )
+        };
+        components.push(uncertainty::rectangular(name, a, c_unit, basis));
     }
     if let Some(r) = reference {
         match reference_half_width(check, r, judge, span_s) {
@@ -386,6 +457,83 @@ fn energy_terms(
             ),
         ));
     }
+}
+
+/// The budget's terms of a count of pulses (GUM 4.3.7, rectangular). Over a gate: the count
+/// is off by up to one pulse, the gate opening and closing at any phase of the pulses (a = 1/k,
+/// on the unit's side). Timing a number of pulses, edge to edge: no quantisation, but the
+/// counter's time base (±a of the interval) and the timing of the two edges (±δ each) scale
+/// the reference energy set against the count.
+fn pulse_terms(
+    components: &mut Vec<uncertainty::Component>,
+    notes: &mut Vec<String>,
+    spec: &PulseSpec,
+    (record, reference): (&CheckRecord, Option<f64>),
+    (c_unit, c_ref): (f64, f64),
+    counter: Option<&crate::bench::counter::CounterInfo>,
+) {
+    let pulse = spec.pulse_wh();
+    match spec.method {
+        PulseMethod::FixedTime { .. } => components.push(uncertainty::rectangular(
+            "quantisation of the count (±1 pulse)",
+            pulse,
+            c_unit,
+            &format!(
+                "a gate opening and closing at any phase of the pulses: ±1 pulse of {} Wh",
+                trim_number(pulse)
+            ),
+        )),
+        PulseMethod::FixedPulses { .. } => {
+            let Some(r) = reference else { return };
+            let span = record.pulses.as_ref().map_or(0.0, |p| p.seconds);
+            match counter.and_then(|c| c.timebase) {
+                Some(a) => components.push(uncertainty::rectangular(
+                    "the counter's time base",
+                    r.abs() * a,
+                    c_ref,
+                    &format!("±{} ppm of the timed interval", trim_number(a * 1e6)),
+                )),
+                None => notes.push(
+                    "the counter's time base is not stated: not included (station key counter.timebase)"
+                        .into(),
+                ),
+            }
+            match counter.and_then(|c| c.edge_s) {
+                Some(d) if span > 0.0 => components.push(uncertainty::rectangular(
+                    "timing of the first and last pulse edge",
+                    r.abs() * 2f64.sqrt() * d / span,
+                    c_ref,
+                    &format!(
+                        "±{} µs at each of two edges over {span:.3} s",
+                        trim_number(d * 1e6)
+                    ),
+                )),
+                Some(_) => {}
+                None => notes.push(
+                    "how closely the counter times an edge is not stated: not included (station key counter.edge)"
+                        .into(),
+                ),
+            }
+        }
+    }
+}
+
+fn trim_number(x: f64) -> String {
+    let t = format!("{x:.6}");
+    t.trim_end_matches('0').trim_end_matches('.').to_string()
+}
+
+/// The count a check's samples stand for: pulses and seconds from the first to the last.
+fn pulse_count(spec: &PulseSpec, samples: &[crate::record::Sample]) -> Option<PulseCount> {
+    let (first, last) = (samples.first()?, samples.last()?);
+    Some(PulseCount {
+        method: spec.method_name().to_string(),
+        meter_constant: spec.meter_constant,
+        pulses: ((last.value - first.value) / spec.pulse_wh())
+            .round()
+            .max(0.0) as u64,
+        seconds: last.t_s - first.t_s,
+    })
 }
 
 /// "error −3.676 % ± 0.092 % (U) is outside the acceptance limit ±0.908 % (tolerance ±1 %, guard

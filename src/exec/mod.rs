@@ -249,6 +249,7 @@ pub fn run_with(
             .and_then(|a| crate::metrology::accuracy::Accuracy::parse(a).ok()),
         ranges: &ranges,
         calibration: plan.calibration.as_ref(),
+        counter: bench.station.counter.clone(),
     };
     let mut source_failure: Option<String> = None;
     let mut recording_failure_said = false;
@@ -300,6 +301,18 @@ pub fn run_with(
                 }
             }
             source_failure = Some(reason);
+            continue;
+        }
+        // No load for a count that nothing can take.
+        if step.pulses.is_some() && bench.counter.is_none() {
+            for (u, run) in units.iter_mut().zip(&to_run) {
+                if *run {
+                    u.record.steps.push(not_run(
+                        step,
+                        "not run: the step counts the units' test outputs and the station has no counter (add counter: to the station file)",
+                    ));
+                }
+            }
             continue;
         }
         let restarts_before = restarts(bench);

@@ -6,8 +6,9 @@
 //! Every reading is handed to `on_reading` as soon as it is taken, so the archive can commit it.
 
 use crate::bench::Clock;
+use crate::bench::counter::CounterHandle;
 use crate::link::DutLink;
-use crate::plan::{Quantity, Step};
+use crate::plan::{PulseMethod, Quantity, Step};
 use crate::record::Sample;
 
 /// One position's readings over a step's window: a series per wanted reading, and the fault that
@@ -42,6 +43,10 @@ pub(super) struct Sampler<'a> {
     pub on_reading: OnReading<'a>,
     /// Set by Ctrl-C: sampling stops before the next sample.
     pub interrupt: &'a std::sync::atomic::AtomicBool,
+    /// The counter of the test outputs and each slot's position number, for the readings on
+    /// channel `test_output`.
+    pub counter: Option<&'a CounterHandle>,
+    pub numbers: &'a [usize],
 }
 
 const INTERRUPTED: &str = "interrupted (stop signal) before this sample";
@@ -117,6 +122,16 @@ fn read_once(
 ) -> Option<String> {
     link.begin_sample();
     for (w, want) in s.wanted.iter().enumerate() {
+        if want.channel == crate::plan::TEST_OUTPUT {
+            if let Err(e) = read_counter(s, slot, w, series) {
+                return Some(format!(
+                    "sample {} of {}: counting the test output: {e}",
+                    k + 1,
+                    s.step.samples
+                ));
+            }
+            continue;
+        }
         let asked = s.clock.now_s();
         let reading = if want.raw {
             link.read_raw(want.quantity, &want.channel)
@@ -177,6 +192,65 @@ fn read_once(
         }
     }
     None
+}
+
+/// Reads one position's counter input. Counting over a gate, every reading is a sample (the
+/// count as energy, N/k, stamped at the middle of the transaction, like a register's). Timing
+/// a number of pulses, the first edge is the first sample and each later edge the counter has
+/// seen is one more: the series ends at the edge that completes the count.
+fn read_counter(s: Sampler, slot: usize, w: usize, series: &mut Series) -> Result<(), String> {
+    let (Some(counter), Some(pulses)) = (s.counter, s.step.pulses.as_ref()) else {
+        return Err("the station has no counter for the units' test outputs".into());
+    };
+    let position = s.numbers.get(slot).copied().unwrap_or(slot + 1);
+    let asked = s.clock.now_s();
+    let reading = counter.read(position).map_err(|e| e.to_string())?;
+    let answered = s.clock.now_s();
+    let wh = |n: u64| n as f64 * pulses.pulse_wh();
+    let taken = &mut series.samples[w];
+    let mut new = Vec::new();
+    match pulses.method {
+        PulseMethod::FixedTime { .. } => new.push(Sample {
+            t_s: (asked + answered) / 2.0,
+            value: wh(reading.pulses),
+            took_s: (answered > asked).then_some(answered - asked),
+        }),
+        PulseMethod::FixedPulses { .. } => {
+            if let Some((first, latest)) = reading.edges_s {
+                if taken.is_empty() {
+                    new.push(Sample::at(first, 0.0));
+                }
+                let last = taken.last().map_or(0.0, |x| x.value);
+                if reading.pulses > 0 && wh(reading.pulses) > last {
+                    new.push(Sample::at(latest, wh(reading.pulses)));
+                }
+            }
+        }
+    }
+    for sample in new {
+        taken.push(sample);
+        (s.on_reading)(slot, w, sample);
+    }
+    Ok(())
+}
+
+/// Whether a slot's count of pulses is complete (timing a fixed number of pulses).
+pub(super) fn count_complete(step: &Step, wanted: &[Wanted], series: &Series) -> bool {
+    let Some(spec) = step.pulses.as_ref() else {
+        return true;
+    };
+    let PulseMethod::FixedPulses { count, .. } = spec.method else {
+        return true;
+    };
+    wanted
+        .iter()
+        .zip(&series.samples)
+        .filter(|(w, _)| w.channel == crate::plan::TEST_OUTPUT)
+        .all(|(_, samples)| {
+            samples
+                .last()
+                .is_some_and(|x| x.value >= (count as f64 - 0.5) * spec.pulse_wh())
+        })
 }
 
 fn empty(wanted: usize) -> Series {

@@ -4,6 +4,7 @@
 //! where the load, a restart or the reference cannot be trusted.
 
 use super::*;
+use crate::bench::counter::CounterMode;
 
 pub(super) fn not_run(step: &Step, reason: &str) -> StepRecord {
     let mut record = empty_step(step, None);
@@ -46,6 +47,7 @@ pub(super) fn empty_step(step: &Step, started_at_s: Option<f64>) -> StepRecord {
                 decision: None,
                 verdict: CheckVerdict::NotEvaluated,
                 note: None,
+                pulses: None,
             })
             .collect(),
     }
@@ -68,6 +70,9 @@ pub(super) fn readings_of(
             out.push(w);
         }
     }
+    // The counter's readings last: the link's come first, and the first series counts the
+    // samples a step that stopped early took.
+    out.sort_by_key(|w| w.channel == crate::plan::TEST_OUTPUT);
     if let Some(cal) = calibration.filter(|c| c.points.contains(&step.id)) {
         out.push(sampling::Wanted {
             quantity: cal.quantity,
@@ -91,6 +96,7 @@ pub(super) fn run_step(
     let wanted = readings_of(step, calibration);
     let resolutions = resolutions_of(step, bench, units);
     let start_problem = open_energy_window(step, bench);
+    let counter_problem = start_counter(step, sc, bench);
     let plan = SamplePlan {
         step,
         calibration,
@@ -103,6 +109,18 @@ pub(super) fn run_step(
         window,
         early,
     } = sample(&plan, sc, bench);
+    if let Some(counter) = bench.counter.as_ref().filter(|_| step.pulses.is_some()) {
+        // Nothing taken depends on it: a counter that does not stop is stopped again at the
+        // next start.
+        let _ = counter.stop();
+    }
+    if let Some(problem) = counter_problem {
+        for (s, run) in series.iter_mut().zip(sc.to_run) {
+            if *run && s.fault.is_none() {
+                s.fault = Some(format!("counting the test output: {problem}"));
+            }
+        }
+    }
     let evaluated_step = as_sampled(step, &series);
     let restarted = restarted_during(bench, sc);
     // A stop signal after the last sample: the output is already off, so no reference may be
@@ -186,6 +204,10 @@ fn resolutions_of(step: &Step, bench: &Bench, units: &[Unit]) -> Vec<Vec<Option<
             step.checks
                 .iter()
                 .map(|c| {
+                    // A count of pulses has its own quantisation, not the link's resolution.
+                    if c.counts_pulses() {
+                        return None;
+                    }
                     calibrated_resolution(
                         p.link.resolution(c.quantity),
                         u.record.calibration.as_ref(),
@@ -213,6 +235,30 @@ fn open_energy_window(step: &Step, bench: &mut Bench) -> Option<String> {
         .window_starts(bench.clock.now_s())
         .err()
         .map(|e| e.to_string())
+}
+
+/// Starts the counter on every position sampled at a step that counts the test output, just
+/// before the first sample: totalizing for a gate, or timing the plan's number of pulses. What
+/// went wrong, if anything.
+fn start_counter(step: &Step, sc: &StepContext, bench: &mut Bench) -> Option<String> {
+    let spec = step.pulses.as_ref()?;
+    let Some(counter) = bench.counter.as_ref() else {
+        return Some("the station has no counter for the units' test outputs".into());
+    };
+    let positions: Vec<usize> = bench
+        .positions
+        .iter()
+        .zip(sc.to_run)
+        .filter(|(_, run)| **run)
+        .map(|(p, _)| p.number)
+        .collect();
+    let mode = match spec.method {
+        crate::plan::PulseMethod::FixedTime { .. } => CounterMode::Totalize,
+        crate::plan::PulseMethod::FixedPulses { count, .. } => {
+            CounterMode::TimePulses { pulses: count }
+        }
+    };
+    counter.start(&positions, mode).err().map(|e| e.to_string())
 }
 
 /// What a step samples and how it is judged, for the sampling and reference phases.
@@ -265,10 +311,24 @@ fn sample(plan: &SamplePlan, sc: &StepContext, bench: &mut Bench) -> Sampled {
         clock: bench.clock.as_ref(),
         on_reading: &on_reading,
         interrupt: &interrupt,
+        counter: bench.counter.as_ref(),
+        numbers: &numbers,
     };
+    // Timing a number of pulses ends once every unit has sent them.
+    let counting = matches!(
+        step.pulses.as_ref().map(|p| p.method),
+        Some(crate::plan::PulseMethod::FixedPulses { .. })
+    );
     let mut early: Option<(References, (f64, f64))> = None;
     let reference = &mut bench.reference;
     let mut stop_rule = |n: u32, all: &[sampling::Series], window: (f64, f64)| -> bool {
+        if counting {
+            return all.iter().all(|s| {
+                s.samples.is_empty()
+                    || s.fault.is_some()
+                    || sampling::count_complete(step, plan.wanted, s)
+            });
+        }
         let Some(rule) = step.sequential else {
             return false;
         };
@@ -294,7 +354,7 @@ fn sample(plan: &SamplePlan, sc: &StepContext, bench: &mut Bench) -> Sampled {
         };
         partial.all_settled(all, n, plan.judge)
     };
-    let stop: Option<sampling::StopRule> = if step.sequential.is_some() {
+    let stop: Option<sampling::StopRule> = if step.sequential.is_some() || counting {
         Some(&mut stop_rule)
     } else {
         None
@@ -311,7 +371,11 @@ fn sample(plan: &SamplePlan, sc: &StepContext, bench: &mut Bench) -> Sampled {
 /// took.
 fn as_sampled(step: &Step, series: &[sampling::Series]) -> Step {
     let mut evaluated = step.clone();
-    if step.sequential.is_some() {
+    let counted = matches!(
+        step.pulses.as_ref().map(|p| p.method),
+        Some(crate::plan::PulseMethod::FixedPulses { .. })
+    );
+    if step.sequential.is_some() || counted {
         evaluated.samples = series
             .iter()
             .map(|s| s.samples.first().map_or(0, Vec::len))

@@ -42,7 +42,12 @@ impl Tolerance {
     }
 
     pub fn needs_reference(&self) -> bool {
-        !matches!(self, Tolerance::AtMost { .. } | Tolerance::AtLeast { .. })
+        !self.is_bound()
+    }
+
+    /// A bound on the reading itself (at most, at least), not on its error.
+    pub fn is_bound(&self) -> bool {
+        matches!(self, Tolerance::AtMost { .. } | Tolerance::AtLeast { .. })
     }
 }
 

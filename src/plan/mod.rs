@@ -223,6 +223,52 @@ pub struct Step {
     pub settle_until: Option<SettleRule>,
     /// Sample until decided instead of a fixed count (then `samples` is the most it takes).
     pub sequential: Option<SequentialRule>,
+    /// Counting the unit's test output, for the checks on channel [`TEST_OUTPUT`].
+    pub pulses: Option<PulseSpec>,
+}
+
+/// The channel name of a check read from the unit's test output (its pulses, counted by the
+/// station's counter) rather than over its link.
+pub const TEST_OUTPUT: &str = "test_output";
+
+/// How a step counts the unit's test output. The counting runs over the step's sampling
+/// window: the counter is read at every sample, as a register would be.
+#[derive(Debug, Clone, PartialEq, Serialize, serde::Deserialize)]
+pub struct PulseSpec {
+    pub method: PulseMethod,
+    /// The meter constant k the pulses are counted at, imp/kWh.
+    pub meter_constant: f64,
+    /// The resolution the plan asked for (one pulse as a fraction of the count).
+    pub resolution: Option<f64>,
+    /// Pulses due over the count at the step's nominal power.
+    pub expected_pulses: f64,
+    /// What the plan asks that the step cannot give (a resolution out of reach in its time).
+    pub warning: Option<String>,
+}
+
+/// The two ways of counting a test output.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, serde::Deserialize)]
+#[serde(tag = "method", rename_all = "snake_case")]
+pub enum PulseMethod {
+    /// Pulses counted over a gate of the sampling window's length; ±1 pulse of quantisation.
+    FixedTime { gate_s: f64 },
+    /// The time of `count` pulses, from one pulse edge to another, timed by the counter; the
+    /// step samples until every unit has sent them, at most its `samples`.
+    FixedPulses { count: u64, at_most_s: f64 },
+}
+
+impl PulseSpec {
+    /// Energy per pulse, Wh.
+    pub fn pulse_wh(&self) -> f64 {
+        1000.0 / self.meter_constant
+    }
+
+    pub fn method_name(&self) -> &'static str {
+        match self.method {
+            PulseMethod::FixedTime { .. } => "fixed_time",
+            PulseMethod::FixedPulses { .. } => "fixed_pulses",
+        }
+    }
 }
 
 /// The relative standard deviation of one reading, known from earlier data, and its source.
@@ -275,7 +321,16 @@ pub enum SpecialTest {
 impl Step {
     /// Bench time this step is scheduled to take: settling, then the sampling window.
     pub fn scheduled_s(&self) -> f64 {
-        self.settle_s + self.sampling_window_s()
+        // Timing a number of pulses takes as long as they come at the nominal power, not the
+        // most it may.
+        let window = match self.pulses.as_ref().map(|p| (p.method, p.meter_constant)) {
+            Some((PulseMethod::FixedPulses { count, .. }, k)) => {
+                let power = self.load.nominal(Quantity::ActivePower, 0.0).abs();
+                count as f64 * crate::metrology::pulses::pulse_interval_s(k, power)
+            }
+            _ => self.sampling_window_s(),
+        };
+        self.settle_s + window
     }
 
     /// From the first sample to the last.
@@ -409,7 +464,8 @@ impl Quantity {
         self.dimension().unit()
     }
 
-    /// Whether the quantity is read as a register difference over the window, not sampled.
+    /// Whether the quantity is read as a register difference over the window, not sampled
+    /// (the energy register, or the count of the test output's pulses).
     pub fn is_register(self) -> bool {
         self == Quantity::ActiveEnergy
     }
@@ -421,6 +477,13 @@ pub struct Check {
     pub quantity: Quantity,
     pub channel: String,
     pub tolerance: Tolerance,
+}
+
+impl Check {
+    /// Whether the check counts the unit's test output instead of reading its link.
+    pub fn counts_pulses(&self) -> bool {
+        self.channel == TEST_OUTPUT
+    }
 }
 
 impl Plan {
@@ -462,6 +525,17 @@ impl Plan {
     /// Whether the plan's class limits depend on the bench's ambient temperature.
     pub fn class_depends_on_ambient(&self) -> bool {
         validate::ratings::class_depends_on_ambient(&self.ratings)
+    }
+
+    /// What the plan asks that its steps cannot give, step by step (`check` shows them).
+    pub fn warnings(&self) -> Vec<(String, String)> {
+        self.steps
+            .iter()
+            .filter_map(|s| {
+                let w = s.pulses.as_ref()?.warning.clone()?;
+                Some((s.id.clone(), w))
+            })
+            .collect()
     }
 
     pub fn check_count(&self) -> usize {

@@ -526,8 +526,34 @@ pub struct RawStep {
     pub settle_until: Option<RawSettleUntil>,
     #[serde(default)]
     pub samples_until_decided: Option<RawSequential>,
+    /// Counting the unit's test output (its pulses at the meter constant) for the checks on
+    /// channel `test_output`.
+    #[serde(default)]
+    pub pulses: Option<RawPulses>,
     #[serde(default)]
     pub checks: Vec<RawCheck>,
+}
+
+/// How a step counts the test output: over a fixed time (`gate`), or timing a fixed number of
+/// pulses (`count`); either may be chosen from a `resolution` (one pulse as a share of the
+/// count) at the step's nominal power.
+#[derive(Debug, Deserialize, schemars::JsonSchema)]
+#[serde(deny_unknown_fields)]
+pub struct RawPulses {
+    /// `fixed_time` or `fixed_pulses`.
+    pub method: Text,
+    /// fixed_time: how long the pulses are counted ("60 s").
+    #[serde(default)]
+    pub gate: Option<Text>,
+    /// fixed_pulses: how many pulses are timed.
+    #[serde(default)]
+    pub count: Option<Text>,
+    /// One pulse as a share of the count ("0.2 %"): the gate or count is chosen to reach it.
+    #[serde(default)]
+    pub resolution: Option<Text>,
+    /// The longest the counting may take ("10 min", the default).
+    #[serde(default)]
+    pub at_most: Option<Text>,
 }
 
 #[derive(Debug, Deserialize, schemars::JsonSchema)]

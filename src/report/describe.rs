@@ -76,7 +76,7 @@ pub fn plan_summary(plan: &Plan) -> String {
                 format!(
                     "{}{} {}",
                     c.quantity.name(),
-                    if plan.link.channels().len() > 1 {
+                    if plan.link.channels().len() > 1 || c.counts_pulses() {
                         format!("[{}]", c.channel)
                     } else {
                         String::new()
@@ -108,6 +108,9 @@ pub fn plan_summary(plan: &Plan) -> String {
         for b in bases {
             s.push_str(&format!("  {:<14} class limit: {b}\n", ""));
         }
+        if let Some(p) = &step.pulses {
+            s.push_str(&format!("  {:<14} {}\n", "", pulses_text(step, p)));
+        }
         match &step.special {
             Some(crate::plan::SpecialTest::NoLoad {
                 minutes,
@@ -134,6 +137,33 @@ pub fn plan_summary(plan: &Plan) -> String {
         report::decision_text(plan.decision)
     ));
     s
+}
+
+/// "test output: counted over a gate of 6 min 32 s, about 400.7 pulses due at 3.68 kW".
+fn pulses_text(step: &crate::plan::Step, p: &crate::plan::PulseSpec) -> String {
+    use crate::plan::PulseMethod;
+    let power = step.load.nominal(crate::plan::Quantity::ActivePower, 0.0);
+    let at = report::number(power, Dimension::ActivePower);
+    let k = format!("{} imp/kWh", p.meter_constant);
+    match p.method {
+        PulseMethod::FixedTime { gate_s } => format!(
+            "test output at {k}: pulses counted over a gate of {}, about {:.1} due at {at} (±1 pulse is {})",
+            crate::plan::units::duration_text(gate_s),
+            p.expected_pulses,
+            if p.expected_pulses > 0.0 {
+                format!("{:.2} %", 100.0 / p.expected_pulses)
+            } else {
+                "all of it".into()
+            }
+        ),
+        PulseMethod::FixedPulses { count, at_most_s } => format!(
+            "test output at {k}: the time of {count} pulses, {} at {at}, at most {}",
+            crate::plan::units::duration_text(
+                count as f64 * crate::metrology::pulses::pulse_interval_s(p.meter_constant, power)
+            ),
+            crate::plan::units::duration_text(at_most_s)
+        ),
+    }
 }
 
 /// The plan's calibration and what it is held to, for `check`.

@@ -375,7 +375,22 @@ impl StepView {
                             number(m, c.quantity.dimension())
                         )
                     });
-                    class.into_iter().chain(note).chain(negative)
+                    let counted = c.pulses.as_ref().map(|p| {
+                        let how = if p.method == "fixed_pulses" {
+                            "timed from the first edge to the last"
+                        } else {
+                            "counted over a gate"
+                        };
+                        format!(
+                            "{} on {}: {} pulses at {} imp/kWh, {how}, {:.3} s",
+                            c.quantity.name(),
+                            c.channel,
+                            p.pulses,
+                            p.meter_constant,
+                            p.seconds
+                        )
+                    });
+                    class.into_iter().chain(counted).chain(note).chain(negative)
                 })
                 .collect(),
         }

@@ -10,7 +10,7 @@ use crate::bench::{LoadSource, ReferenceMeter, ReferenceRequest};
 use crate::plan::{Load, Quantity};
 
 const NO_ERROR: &str = "0,\"No error\"";
-const UNDEFINED_HEADER: &str = "-113,\"Undefined header\"";
+pub(super) const UNDEFINED_HEADER: &str = "-113,\"Undefined header\"";
 
 /// The simulated programmable source.
 pub struct ScpiSourceDevice {
@@ -42,7 +42,11 @@ impl ScpiSourceDevice {
     }
 }
 
-fn common(request: &str, idn: &str, errors: &mut Vec<&'static str>) -> Option<Vec<String>> {
+pub(super) fn common(
+    request: &str,
+    idn: &str,
+    errors: &mut Vec<&'static str>,
+) -> Option<Vec<String>> {
     match request.trim().to_ascii_uppercase().as_str() {
         "*IDN?" => Some(vec![idn.to_string()]),
         "*OPC?" => Some(vec!["1".into()]),

@@ -24,6 +24,7 @@ pub mod instruments;
 pub mod modbus_device;
 pub mod readout_device;
 pub mod served;
+pub mod test_output;
 
 pub use firmware::FirmwareChange;
 
@@ -81,6 +82,16 @@ use std::sync::{Arc, Mutex, MutexGuard};
 /// The simulated product's identity (an invented maker's invented smart plug).
 pub const SIM_MODEL: &str = "TM-16";
 pub const SIM_FIRMWARE: &str = "2.1.4";
+
+/// The simulated counter's identity and specification.
+pub fn sim_counter_info() -> crate::bench::counter::CounterInfo {
+    crate::bench::counter::CounterInfo {
+        id: "SIM-CNT-1".into(),
+        description: "simulated pulse counter, an input per position".into(),
+        timebase: Some(1e-6),
+        edge_s: Some(1e-6),
+    }
+}
 
 /// The simulated reference meter's data-sheet accuracy and ranges.
 pub const SIM_REFERENCE_ACCURACY: &str = "0.01 % of reading + 0.005 % of range";
@@ -191,6 +202,9 @@ struct MeterState {
     energy_wh: f64,
     energy_until_s: f64,
     noise: ChaCha8Rng,
+    /// The part of a pulse the test output's accumulator held when the meter was made, so
+    /// that each unit's first pulse comes at a phase of its own.
+    pulse_phase: f64,
 }
 
 impl MeterModel {
@@ -367,6 +381,7 @@ const STREAM_SERIALS: u64 = 3;
 const STREAM_LOAD_CHECK: u64 = 4;
 const STREAM_MODEL_BASE: u64 = 1_000;
 const STREAM_NOISE_BASE: u64 = 2_000;
+const STREAM_PULSE_BASE: u64 = 3_000;
 
 impl SimBench {
     /// A simulated bench on a virtual clock: it never waits for real.
@@ -408,6 +423,10 @@ impl SimBench {
                     seen_at_change: (0.0, 0.0),
                     energy_wh: 0.0,
                     energy_until_s: 0.0,
+                    pulse_phase: {
+                        let mut rng = stream(config.seed, STREAM_PULSE_BASE + i as u64);
+                        rand::Rng::next_u64(&mut rng) as f64 / (u64::MAX as f64 + 1.0)
+                    },
                     noise: stream(
                         config.seed,
                         STREAM_NOISE_BASE + i as u64 + 10_000 * config.noise_stream_offset,
@@ -484,6 +503,11 @@ impl SimBench {
         )
     }
 
+    /// The counter of the simulated meters' test outputs.
+    pub fn counter(&self) -> test_output::SimCounter {
+        test_output::SimCounter::new(self.world.clone())
+    }
+
     /// Turns the simulator into a [`Bench`] for the executor.
     pub fn into_bench(self) -> Bench {
         let (source, reference) = self.instruments();
@@ -512,10 +536,14 @@ impl SimBench {
                 source: "simulated lamp-bank load with switch-on surge".into(),
                 // The simulated bench sits at the usual reference temperature.
                 ambient_c: Some(crate::plan::REFERENCE_AMBIENT_C),
+                counter: Some(sim_counter_info()),
             },
             clock: self.clock.clone(),
             source: SourceHandle::new(source),
             reference,
+            counter: Some(crate::bench::counter::CounterHandle::new(Box::new(
+                self.counter(),
+            ))),
             positions,
             parallel: false,
             interrupt: Default::default(),

@@ -26,8 +26,13 @@ pub(super) fn check(
         }
     };
     let channels = link.channels();
+    let test_output = raw
+        .channel
+        .as_ref()
+        .is_some_and(|t| t.0.trim() == crate::plan::TEST_OUTPUT);
     let channel = match &raw.channel {
         None => channels.first().cloned(),
+        Some(_) if test_output => Some(crate::plan::TEST_OUTPUT.to_string()),
         Some(t) if channels.iter().any(|c| *c == t.0.trim()) => Some(t.0.trim().to_string()),
         Some(t) => {
             ctx.error(
@@ -42,7 +47,15 @@ pub(super) fn check(
         }
     };
     let quantity = quantity?;
-    if !link.reads(quantity) {
+    if test_output && quantity != Quantity::ActiveEnergy {
+        ctx.error(
+            &format!("{path}.channel"),
+            format!(
+                "the test output gives pulses of active energy: {} cannot be read from it",
+                quantity.name()
+            ),
+        );
+    } else if !test_output && !link.reads(quantity) {
         ctx.error(
             &format!("{path}.quantity"),
             format!(

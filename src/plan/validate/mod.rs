@@ -4,6 +4,7 @@ mod calibration;
 mod checks;
 pub(super) mod link;
 mod modbus;
+mod pulses;
 pub(super) mod ratings;
 mod readout;
 mod steps;

@@ -137,6 +137,27 @@ pub(super) fn step(
     if let Some(rule) = sequential {
         samples = Some(rule.max);
     }
+    // Counting the test output sets the window: the gate, or long enough for the count.
+    let counting = pulses::counting(
+        ctx,
+        path,
+        raw,
+        (ratings, load.as_ref()),
+        special.as_ref().and_then(|s| s.as_ref()),
+        pulses::Timing {
+            samples,
+            interval_s,
+        },
+        sequential,
+    );
+    let mut sequential = sequential;
+    if let Some(Some(c)) = &counting {
+        samples = Some(c.samples);
+        interval_s = Some(c.interval_s);
+        if matches!(c.spec.method, crate::plan::PulseMethod::FixedPulses { .. }) {
+            sequential = None;
+        }
+    }
     // One reading has no spread of its own: its repeatability must come from earlier data.
     let repeatability = match &raw.repeatability {
         None => Some(None),
@@ -211,10 +232,32 @@ pub(super) fn step(
         (None, s) => s,
     };
     let special = special?;
+    let counting = counting?;
+    // A special test is read from the test output when the step counts pulses.
+    let special_channel = if counting.is_some() {
+        crate::plan::TEST_OUTPUT.to_string()
+    } else {
+        link.channels().first().cloned().unwrap_or_default()
+    };
+    let counts_pulses = checks.iter().any(Check::counts_pulses);
+    if let Some(i) = checks.iter().position(Check::counts_pulses)
+        && counting.is_none()
+    {
+        ctx.error(
+            &format!("{path}.checks[{i}].channel"),
+            "a check on the test output needs the step to count pulses: add pulses: { method: fixed_time, gate: 60 s } (or method: fixed_pulses, count: 25)",
+        );
+    }
+    if counting.is_some() && !counts_pulses && special.is_none() {
+        ctx.error(
+            &format!("{path}.pulses"),
+            "the step counts pulses but no check reads them: add { quantity: active_energy, channel: test_output, tolerance: ... }",
+        );
+    }
     match &special {
         Some(SpecialTest::NoLoad { allowance_wh, .. }) => checks.push(Check {
             quantity: Quantity::ActiveEnergy,
-            channel: link.channels().first().cloned().unwrap_or_default(),
+            channel: special_channel.clone(),
             tolerance: Tolerance::AtMost {
                 bound: *allowance_wh,
             },
@@ -228,12 +271,16 @@ pub(super) fn step(
                     "a starting test needs a window: at least 2 samples and an interval",
                 );
             }
+            // Counted at the test output, the pulses must start and keep coming: at least two
+            // in the window (common practice, no published source); the window holds three.
+            let bound = match &counting {
+                Some(c) => 2.0 * c.spec.pulse_wh(),
+                None => 0.5 * expected_wh,
+            };
             checks.push(Check {
                 quantity: Quantity::ActiveEnergy,
-                channel: link.channels().first().cloned().unwrap_or_default(),
-                tolerance: Tolerance::AtLeast {
-                    bound: 0.5 * expected_wh,
-                },
+                channel: special_channel,
+                tolerance: Tolerance::AtLeast { bound },
             });
         }
         None => {}
@@ -251,6 +298,7 @@ pub(super) fn step(
         special,
         settle_until,
         sequential,
+        pulses: counting.map(|c| c.spec),
     })
 }
 
