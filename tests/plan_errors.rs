@@ -608,3 +608,81 @@ fn console_link_keys_are_checked_where_they_are_written() {
         "{shown}"
     );
 }
+
+/// The `pulses` section and the checks on the test output, each mistake at its path and line.
+#[test]
+fn pulse_sections_are_checked_where_they_are_written() {
+    let good = include_str!("../test-plans/demo-pulses.yaml");
+    let text = good
+        .replace(
+            "pulses: { method: fixed_pulses, count: 25, at_most: 2 min }",
+            "pulses: { method: fixed_pulses, count: 50, at_most: 2 min }",
+        )
+        .replace(
+            "pulses: { method: fixed_pulses, resolution: 4 %, at_most: 5 min }",
+            "pulses: { method: fixed_count, resolution: 4 % }",
+        )
+        .replace(
+            "pulses: { method: fixed_time, resolution: 0.25 % }",
+            "pulses: { method: fixed_time }",
+        )
+        .replace(
+            "      - { quantity: active_power, tolerance: { class: true } }",
+            "      - { quantity: voltage, channel: test_output, tolerance: { percent: 1 % } }",
+        );
+    let e = errors(&text);
+    let shown = e.to_string();
+    // Each mistake once, nothing said again for the window it leaves unknown.
+    assert_eq!(e.0.len(), 4, "{shown}");
+    for (path, says) in [
+        // 50 pulses of 1 Wh at 1150 W take 156.5 s: more than 2 min.
+        ("steps[2].pulses.count", "50 pulses at"),
+        (
+            "steps[2].pulses.count",
+            "take 2 min 37 s, and at_most is 2 min 0 s",
+        ),
+        ("steps[3].pulses.method", "unknown method \"fixed_count\""),
+        ("steps[1].pulses", "fixed_time needs gate (or resolution)"),
+        (
+            "steps[2].checks[2].channel",
+            "voltage cannot be read from it",
+        ),
+    ] {
+        assert!(
+            shown
+                .lines()
+                .any(|l| l.contains(&format!(" {path}: ")) && l.contains(says)),
+            "{path}: {shown}"
+        );
+    }
+    assert!(
+        shown.contains(&format!(
+            "p.yaml:{}:",
+            line_of(&text, "method: fixed_count")
+        )),
+        "{shown}"
+    );
+    // A check on the test output with no pulses to count; pulses with no meter constant.
+    let text = good
+        .replace(
+            "    pulses: { method: fixed_pulses, count: 25, at_most: 2 min }\n",
+            "",
+        )
+        .replace("  meter_constant: 1000 imp/kWh\n", "");
+    let e = errors(&text);
+    let shown = e.to_string();
+    for (path, says) in [
+        (
+            "steps[2].checks[1].channel",
+            "needs the step to count pulses",
+        ),
+        ("steps[1].pulses", "ratings.meter_constant"),
+    ] {
+        assert!(
+            shown
+                .lines()
+                .any(|l| l.contains(&format!(" {path}: ")) && l.contains(says)),
+            "{path}: {shown}"
+        );
+    }
+}

@@ -69,6 +69,10 @@ pub(super) fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
     }
     out!("  source:     {}  (SCPI)", station.source.path);
     out!("  reference:  {}  (SCPI)", station.reference.path);
+    out!(
+        "  counter:    {}  (SCPI, the test outputs)",
+        station.counter.path
+    );
     if let Some(path) = &args.station {
         let dir = path
             .parent()

@@ -272,6 +272,70 @@ pub fn run(runs: u64, smoke: bool) {
         adaptive_overhead(&quick_adaptive(&text[..cut]), &dir);
     }
     std::fs::remove_dir_all(&dir).unwrap();
+    pulse_method((runs / 5).max(2));
+}
+
+/// The pulse-method demo plan: bench time per step and the expanded uncertainty each way of
+/// counting reaches, and the gate read until decided instead of to its end.
+fn pulse_method(runs: u64) {
+    let text = std::fs::read_to_string("test-plans/demo-pulses.yaml").unwrap();
+    let fixed = Plan::from_text("demo-pulses.yaml", &text).unwrap();
+    let until = text.replace(
+        "pulses: { method: fixed_time, resolution: 0.25 % }",
+        "pulses: { method: fixed_time, resolution: 0.25 % }\n    samples_until_decided: { min: 3, max: 11 }",
+    );
+    let until = Plan::from_text("demo-pulses-until.yaml", &until).unwrap();
+    println!("pulse method (test-plans/demo-pulses.yaml), {runs} runs of 4 positions:");
+    for (name, plan) in [("as written", &fixed), ("gate until decided", &until)] {
+        let steps = plan.steps.len();
+        let (mut time, mut u, mut agree) = (vec![0.0; steps], vec![0.0; steps], 0);
+        let mut units = vec![String::new(); steps];
+        let mut n = 0;
+        for seed in 1..=runs {
+            let records = exec::run(
+                plan,
+                &mut SimBench::new(&SimConfig::new(seed, 4)).into_bench(),
+                &ctx(),
+                &mut Silent,
+            );
+            add_step_times(&records[0], &mut time);
+            for r in &records {
+                n += 1;
+                for (i, s) in r.steps.iter().enumerate() {
+                    if let Some(b) = s.checks[0].uncertainty.as_ref() {
+                        u[i] += b.expanded;
+                    }
+                    if let Some(e) = s.checks[0].evaluation.as_ref() {
+                        units[i] = e.error_unit.clone();
+                    }
+                }
+                // The register-free reading of the same unit: its power error at count-Ib.
+                let count = &r.steps[1].checks;
+                if let (Some(e), Some(p)) = (&count[0].evaluation, &count[1].evaluation) {
+                    let (ue, up) = (
+                        count[0].uncertainty.as_ref().map_or(0.0, |b| b.expanded),
+                        count[1].uncertainty.as_ref().map_or(0.0, |b| b.expanded),
+                    );
+                    if (e.error - p.error).abs() <= ue.hypot(up) {
+                        agree += 1;
+                    }
+                }
+            }
+        }
+        println!("  {name}:");
+        for (i, step) in plan.steps.iter().enumerate() {
+            println!(
+                "    {:<12} {:>7.1} s a run, U of the count's error {:.3} {}",
+                step.id,
+                time[i] / runs as f64,
+                u[i] / n as f64,
+                units[i]
+            );
+        }
+        println!(
+            "    count-Ib: the timed count's error and the power readings' agree within their combined U for {agree} of {n} units"
+        );
+    }
 }
 
 /// Three steps that settle until stable and sample until decided, 100 ms apart.

@@ -7,6 +7,7 @@ use super::device::{Device, Faults, PtyDevice};
 use super::instruments::{REFERENCE_QUERIES, ScpiReferenceDevice, ScpiSourceDevice};
 use super::modbus_device::{self, BusUnit, ModbusBus};
 use super::readout_device::{self, ReadoutMeter};
+use super::test_output::{COUNTER_COMMANDS, ScpiCounterDevice};
 use super::{SimBench, SimConfig};
 use crate::bench::RealClock;
 use std::io;
@@ -34,6 +35,8 @@ pub struct SimStation {
     pub serials: Vec<String>,
     pub source: PtyDevice,
     pub reference: PtyDevice,
+    /// The counter of the meters' test outputs, an input per position.
+    pub counter: PtyDevice,
     pub seed: u64,
     pub time_scale: f64,
 }
@@ -96,12 +99,14 @@ impl SimStation {
             }
         }
         let (source, reference) = sim.instruments();
+        let counter = PtyDevice::spawn(ScpiCounterDevice::new(sim.counter()))?;
         Ok(SimStation {
             meters,
             ports,
             serials,
             source: PtyDevice::spawn(ScpiSourceDevice::new(source))?,
             reference: PtyDevice::spawn(ScpiReferenceDevice::new(reference))?,
+            counter,
             seed: config.seed,
             time_scale,
         })
@@ -138,6 +143,13 @@ impl SimStation {
         ));
         for (q, query) in REFERENCE_QUERIES {
             s.push_str(&format!("      {}: '{}'\n", q.name(), query));
+        }
+        s.push_str(&format!(
+            "counter:\n  id: SIM-CNT-1\n  description: simulated pulse counter, an input per position\n  timebase: 1 ppm\n  edge: 1 µs\n  read:\n    kind: scpi\n    port: {}\n    timeout: 2 s\n    commands:\n",
+            self.counter.path
+        ));
+        for (name, command) in COUNTER_COMMANDS {
+            s.push_str(&format!("      {name}: '{command}'\n"));
         }
         s
     }
@@ -239,5 +251,8 @@ mod tests {
             .unwrap_or_else(|e| panic!("{e}\n{}", station.station_yaml()));
         assert_eq!(parsed.positions.len(), 2);
         assert_eq!(parsed.time_scale, 10.0);
+        let counter = parsed.counter.expect("the counter is wired");
+        assert_eq!(counter.info.timebase, Some(1e-6));
+        assert_eq!(counter.commands.count, "TOT:COUN? (@{input})");
     }
 }

@@ -151,6 +151,12 @@ pub(super) fn step(
         sequential,
     );
     let mut sequential = sequential;
+    if raw.pulses.is_some() && counting.is_none() {
+        // A mistake in the pulses section is said there once: the checks are read against a
+        // stand-in window rather than refused again for having none.
+        samples = Some(2);
+        interval_s = Some(1.0);
+    }
     if let Some(Some(c)) = &counting {
         samples = Some(c.samples);
         interval_s = Some(c.interval_s);

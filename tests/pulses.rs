@@ -1,0 +1,340 @@
+//! Energy by the test output: the simulated meters' pulses counted over a gate and timed edge to
+//! edge, on the built-in bench and on a station served by `sim-meter`; the errors redone from
+//! the recorded counts with the published pulse formulas.
+
+mod common;
+use common::{bin, ctx, records_in, serve_at, temp_dir};
+
+use meterproof::bench::sim::{SimBench, SimConfig};
+use meterproof::exec::{self, Silent};
+use meterproof::metrology::pulses::{
+    fixed_pulse_error_percent, fixed_time_error_percent, quantisation_u_relative,
+};
+use meterproof::plan::{Plan, PulseMethod, TEST_OUTPUT};
+use meterproof::record::{
+    CheckRecord, CheckVerdict, StepRecord, StepStatus, UnitRecord, UnitStatus,
+};
+
+const PLAN: &str = "test-plans/demo-pulses.yaml";
+
+fn run(plan: &Plan, config: &SimConfig) -> Vec<UnitRecord> {
+    exec::run(
+        plan,
+        &mut SimBench::new(config).into_bench(),
+        &ctx(),
+        &mut Silent,
+    )
+}
+
+fn pulse_check<'a>(r: &'a UnitRecord, step: &str) -> (&'a StepRecord, &'a CheckRecord) {
+    let s = r.steps.iter().find(|s| s.id == step).unwrap();
+    let c = s.checks.iter().find(|c| c.channel == TEST_OUTPUT).unwrap();
+    (s, c)
+}
+
+/// The demo plan on the built-in bench: the planted phase defect (position 2) is found at power
+/// factor 0.5 by the count of its pulses, as the power readings find it; every other unit passes
+/// by both methods, and the starting test sees pulses come.
+#[test]
+fn the_demo_counts_the_test_output_both_ways() {
+    let plan = Plan::load(PLAN.as_ref()).unwrap();
+    let records = run(&plan, &SimConfig::new(1, 4));
+    let statuses: Vec<UnitStatus> = records.iter().map(|r| r.verdict.status).collect();
+    assert_eq!(
+        statuses,
+        [
+            UnitStatus::Accepted,
+            UnitStatus::Rejected,
+            UnitStatus::Accepted,
+            UnitStatus::Accepted
+        ]
+    );
+    let failed: Vec<String> = records[1]
+        .failed_checks()
+        .map(|(s, c)| format!("{} {}", s.id, c.channel))
+        .collect();
+    assert_eq!(failed, ["count-pf0.5 test_output"]);
+    // The planted defect lags the current by 1.2° more: cos 61.2° / cos 60° − 1 = −3.64 %
+    // (computed by hand); the count says so within its uncertainty and the unit's own errors.
+    let (_, c) = pulse_check(&records[1], "count-pf0.5");
+    let e = c.evaluation.as_ref().unwrap().error;
+    assert!((e - (-3.64)).abs() < 0.3, "{e}");
+    for r in &records {
+        let (_, start) = pulse_check(r, "starting");
+        let p = start.pulses.as_ref().unwrap();
+        assert!(p.pulses >= 2, "{p:?}");
+        assert_eq!(start.verdict, CheckVerdict::Pass);
+        // A count is compared as counted: no quantisation in a bound on whole pulses.
+        assert!(start.uncertainty.as_ref().unwrap().components.is_empty());
+    }
+}
+
+/// The recorded counts give the recorded errors by the published formulas (domain notes,
+/// section 2: fixed time e = (3.6·10⁶·N/(k·P·t) − 1)·100; fixed pulses T = 3.6·10⁶·N/(k·P),
+/// e = (T − T_m)/T_m·100), with P the reference's mean power over the counted time.
+#[test]
+fn the_errors_follow_from_the_counts_by_the_published_formulas() {
+    let plan = Plan::load(PLAN.as_ref()).unwrap();
+    let records = run(&plan, &SimConfig::new(7, 3));
+    let mut seen = 0;
+    for r in &records {
+        for step in ["gate-Imax", "count-Ib", "count-pf0.5"] {
+            let (_, c) = pulse_check(r, step);
+            let p = c.pulses.as_ref().expect("the count is recorded");
+            let reference_wh = c.reference.unwrap();
+            let power = reference_wh * 3600.0 / p.seconds;
+            let n = p.pulses as f64;
+            let e = c.evaluation.as_ref().unwrap().error;
+            let by_formula = if p.method == "fixed_time" {
+                fixed_time_error_percent(n, p.meter_constant, power, p.seconds)
+            } else {
+                fixed_pulse_error_percent(n, p.meter_constant, power, p.seconds)
+            };
+            assert!((e - by_formula).abs() < 1e-9, "{step}: {e} vs {by_formula}");
+            // The unit's energy is whole pulses: N / k.
+            assert!((c.measured.unwrap() - n * 1000.0 / p.meter_constant).abs() < 1e-12);
+            seen += 1;
+        }
+    }
+    assert_eq!(seen, 9);
+}
+
+/// The ±1-pulse term by hand (GUM 4.3.7, rectangular over ±1 pulse, u = 1/(N·√3)): the gate
+/// of 392 s at 3680 W holds about 400.7 pulses of 1 Wh; in the error's percent the term is
+/// 100 / (E_ref · √3) with E_ref in pulses, 0.1441 % for 400.7. Timing pulses edge to edge has
+/// no such term but the counter's time base (1 ppm) and its edges (1 µs each).
+#[test]
+fn the_quantisation_term_is_one_pulse_over_the_count() {
+    let plan = Plan::load(PLAN.as_ref()).unwrap();
+    let gate = &plan.steps[0];
+    assert_eq!(
+        gate.pulses.as_ref().unwrap().method,
+        PulseMethod::FixedTime { gate_s: 392.0 }
+    );
+    let records = run(&plan, &SimConfig::new(1, 2));
+    let (_, c) = pulse_check(&records[0], "gate-Imax");
+    let budget = c.uncertainty.as_ref().unwrap();
+    let q = budget
+        .components
+        .iter()
+        .find(|x| x.name.starts_with("quantisation"))
+        .unwrap();
+    let reference = c.reference.unwrap();
+    let by_hand = 100.0 / (reference * 3f64.sqrt());
+    assert!((q.u - by_hand).abs() < 1e-9, "{} vs {by_hand}", q.u);
+    assert!((q.u - quantisation_u_relative(reference) * 100.0).abs() < 1e-9);
+    assert!((q.u - 0.1441).abs() < 0.0005, "{}", q.u);
+    let (_, timed) = pulse_check(&records[0], "count-Ib");
+    let names: Vec<&str> = timed
+        .uncertainty
+        .as_ref()
+        .unwrap()
+        .components
+        .iter()
+        .map(|x| x.name.as_str())
+        .collect();
+    assert!(
+        !names.iter().any(|n| n.starts_with("quantisation")),
+        "{names:?}"
+    );
+    assert!(names.contains(&"the counter's time base"), "{names:?}");
+    assert!(
+        names.contains(&"timing of the first and last pulse edge"),
+        "{names:?}"
+    );
+}
+
+/// Timing 25 pulses stops once every unit has sent them (about 78 s at 1150 W), not at the
+/// step's most of 2 min; each unit's first pulse comes at a phase of its own.
+#[test]
+fn a_fixed_count_ends_when_the_pulses_are_in() {
+    let plan = Plan::load(PLAN.as_ref()).unwrap();
+    let records = run(&plan, &SimConfig::new(1, 4));
+    let mut firsts = Vec::new();
+    for r in &records {
+        let (s, c) = pulse_check(r, "count-Ib");
+        assert_eq!(s.status, StepStatus::Done);
+        let p = c.pulses.as_ref().unwrap();
+        assert_eq!(p.pulses, 25);
+        // 25 pulses of 1 Wh at 1150 W take 78.26 s (domain notes' check value: 78 s).
+        assert!((p.seconds - 78.26).abs() < 0.5, "{}", p.seconds);
+        firsts.push(c.samples[0].t_s - s.started_at_s.unwrap());
+        let window = c.samples.last().unwrap().t_s - s.started_at_s.unwrap();
+        assert!(window < 100.0, "{window}");
+    }
+    firsts.sort_by(f64::total_cmp);
+    firsts.dedup_by(|a, b| (*a - *b).abs() < 0.01);
+    assert_eq!(
+        firsts.len(),
+        4,
+        "every first edge at its own time: {firsts:?}"
+    );
+}
+
+/// The no-load test counted at the test output: over the standard's duration at most one pulse;
+/// a meter that creeps sends more and is rejected, one that does not sends none.
+#[test]
+fn no_load_counts_pulses() {
+    let text = std::fs::read_to_string("test-plans/type-tests.yaml").unwrap();
+    let text = text.replace(
+        "    special: no_load\n",
+        "    special: no_load\n    pulses: { method: fixed_time }\n",
+    );
+    let plan = Plan::from_text("type-tests.yaml", &text).unwrap();
+    assert_eq!(plan.steps[0].checks[0].channel, TEST_OUTPUT);
+    let quiet = run(&plan, &SimConfig::new(1, 2));
+    let (_, c) = pulse_check(&quiet[0], "creep");
+    assert_eq!(c.pulses.as_ref().unwrap().pulses, 0);
+    assert_eq!(c.verdict, CheckVerdict::Pass);
+    let mut creeping = SimConfig::new(1, 2);
+    creeping.creep_fault = true;
+    let records = run(&plan, &creeping);
+    let (_, c) = pulse_check(&records[0], "creep");
+    assert!(c.pulses.as_ref().unwrap().pulses > 1, "{:?}", c.pulses);
+    assert_eq!(c.verdict, CheckVerdict::Fail);
+}
+
+/// A station with no counter: the steps that count pulses are not run, and say why.
+#[test]
+fn no_counter_no_count() {
+    let plan = Plan::load(PLAN.as_ref()).unwrap();
+    let mut bench = SimBench::new(&SimConfig::new(1, 1)).into_bench();
+    bench.counter = None;
+    let records = exec::run(&plan, &mut bench, &ctx(), &mut Silent);
+    assert_eq!(records[0].verdict.status, UnitStatus::Incomplete);
+    for s in &records[0].steps {
+        assert_eq!(s.status, StepStatus::NotRun);
+        assert!(
+            s.reason.as_deref().unwrap().contains("no counter"),
+            "{:?}",
+            s.reason
+        );
+    }
+}
+
+/// `check` shows the gate and count chosen, and warns where a resolution cannot be reached in
+/// the time allowed.
+#[test]
+fn check_warns_when_a_resolution_is_out_of_reach() {
+    let dir = temp_dir("pulse-check");
+    let text = std::fs::read_to_string(PLAN).unwrap().replace(
+        "pulses: { method: fixed_time, resolution: 0.25 % }",
+        "pulses: { method: fixed_time, resolution: 0.1 %, at_most: 5 min }",
+    );
+    let plan = dir.join("plan.yaml");
+    std::fs::write(&plan, text).unwrap();
+    let out = bin().arg("check").arg(&plan).output().unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout).replace('\n', " ");
+    let squeezed: String = stdout.split_whitespace().collect::<Vec<_>>().join(" ");
+    assert!(out.status.success(), "{squeezed}");
+    // 1000 pulses at 3680 W take 978 s; a 5 min gate holds 306.7 of them.
+    assert!(
+        squeezed.contains("warning: step gate-Imax: a resolution of 0.1 % needs 1000 pulses"),
+        "{squeezed}"
+    );
+    assert!(squeezed.contains("about 306.667 pulses"), "{squeezed}");
+    assert!(
+        squeezed.contains("the time of 25 pulses, 1 min 18 s"),
+        "{squeezed}"
+    );
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// The plan with its link replaced by the serial one of `demo-serial.yaml`, its gate shortened
+/// and held to 5 % (the ±1-pulse term of 100 pulses leaves no acceptance zone within a class 1
+/// limit), and its starting test left out: a station runs in real time.
+fn served_plan(dir: &std::path::Path) -> std::path::PathBuf {
+    let serial = std::fs::read_to_string("test-plans/demo-serial.yaml").unwrap();
+    let link_start = serial.find("\nlink:").unwrap();
+    let link_end = serial.find("\ndecision:").unwrap();
+    let text = std::fs::read_to_string(PLAN).unwrap();
+    let (a, b) = (
+        text.find("\nlink:").unwrap(),
+        text.find("\ndecision:").unwrap(),
+    );
+    let mut text = format!(
+        "{}{}{}",
+        &text[..a],
+        &serial[link_start..link_end],
+        &text[b..]
+    );
+    text = text.replace(
+        "pulses: { method: fixed_time, resolution: 0.25 % }\n    checks:\n      - { quantity: active_energy, channel: test_output, tolerance: { class: true } }",
+        "pulses: { method: fixed_time, gate: 100 s }\n    checks:\n      - { quantity: active_energy, channel: test_output, tolerance: { percent: 5 % } }",
+    );
+    let cut = text.find("\n  - id: starting").unwrap();
+    text.truncate(cut + 1);
+    let path = dir.join("pulses-serial.yaml");
+    std::fs::write(&path, text).unwrap();
+    path
+}
+
+/// The same counts on a station served by `sim-meter`: a SCPI counter on its own port, the
+/// meters on theirs. The verdicts are the built-in bench's, and each timed count's error lies
+/// within 0.1 % of it (the served bench runs on a real clock, 40 times real time).
+#[test]
+fn a_served_counter_gives_the_builtin_verdicts() {
+    let dir = temp_dir("pulse-station");
+    let plan_path = served_plan(&dir);
+    let served = serve_at(&dir, "40", &[]);
+    let out = dir.join("out");
+    let output = bin()
+        .args(["run", "--quiet", "--unattended", "--bench"])
+        .arg(&served.station)
+        .arg("--out")
+        .arg(&out)
+        .arg(&plan_path)
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&output.stdout).to_string()
+        + &String::from_utf8_lossy(&output.stderr);
+    assert_eq!(output.status.code(), Some(1), "{text}");
+    let records = records_in(&out);
+    let statuses: Vec<UnitStatus> = records.iter().map(|r| r.verdict.status).collect();
+    assert_eq!(
+        statuses,
+        [
+            UnitStatus::Accepted,
+            UnitStatus::Rejected,
+            UnitStatus::Accepted,
+            UnitStatus::Accepted
+        ],
+        "{text}"
+    );
+    assert_eq!(
+        records[0].station.counter.as_ref().map(|c| c.id.as_str()),
+        Some("SIM-CNT-1")
+    );
+    // The built-in bench on the same plan (the sim link), same seed.
+    let builtin_text = std::fs::read_to_string(&plan_path).unwrap();
+    let own = std::fs::read_to_string(PLAN).unwrap();
+    let (a, b) = (
+        own.find("\nlink:").unwrap(),
+        own.find("\ndecision:").unwrap(),
+    );
+    let (c, d) = (
+        builtin_text.find("\nlink:").unwrap(),
+        builtin_text.find("\ndecision:").unwrap(),
+    );
+    let builtin_text = format!("{}{}{}", &builtin_text[..c], &own[a..b], &builtin_text[d..]);
+    let builtin = run(
+        &Plan::from_text("builtin.yaml", &builtin_text).unwrap(),
+        &SimConfig::new(1, 4),
+    );
+    for (served, built) in records.iter().zip(&builtin) {
+        for step in ["count-Ib", "count-pf0.5"] {
+            let (_, s) = pulse_check(served, step);
+            let (_, b) = pulse_check(built, step);
+            assert_eq!(s.verdict, b.verdict, "{step}");
+            let (es, eb) = (
+                s.evaluation.as_ref().unwrap().error,
+                b.evaluation.as_ref().unwrap().error,
+            );
+            assert!((es - eb).abs() < 0.1, "{step}: served {es}, built-in {eb}");
+        }
+        let (_, gate) = pulse_check(served, "gate-Imax");
+        assert_eq!(gate.verdict, CheckVerdict::Pass, "{:?}", gate.evaluation);
+    }
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
