@@ -282,6 +282,12 @@ pub struct PulseCount {
     pub pulses: u64,
     /// Seconds from the first sample to the last.
     pub seconds: f64,
+    /// The reference standard's pulses over the same interval, where the counter counted them.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub reference_pulses: Option<u64>,
+    /// Their constant, imp/kWh.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub reference_constant: Option<f64>,
 }
 
 /// The canonical form of anything the archive seals: its JSON with object keys sorted, and

@@ -338,3 +338,151 @@ fn a_served_counter_gives_the_builtin_verdicts() {
     drop(served);
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// Pulses from the reference standard (an error calculator): the counter counts the standard's
+/// own pulse output (100,000 imp/kWh here) over each unit's interval, and the error follows
+/// from the ratio of the two counts, e = ((N/k) / (N_ref/k_ref) − 1) · 100 (domain notes,
+/// section 2, E = N/k on both sides; the published check value 640 pulses at 3200 imp/kWh
+/// against 0.195 kWh is in `metrology::pulses`' tests). The time base cancels; the standard's
+/// ±1 pulse enters the budget. The same units read against the reference's energy agree within
+/// the two results' combined U.
+#[test]
+fn pulses_from_the_reference_standard_give_the_error_by_ratio() {
+    let plan = Plan::load(PLAN.as_ref()).unwrap();
+    let mut config = SimConfig::new(3, 4);
+    config.reference_pulses = Some(100_000.0);
+    let counted = run(&plan, &config);
+    let by_energy = run(&plan, &SimConfig::new(3, 4));
+    for (r, e) in counted.iter().zip(&by_energy) {
+        assert_eq!(
+            r.station.counter.as_ref().unwrap().reference_constant,
+            Some(100_000.0)
+        );
+        for step in ["gate-Imax", "count-Ib", "count-pf0.5"] {
+            let (s, c) = pulse_check(r, step);
+            let p = c.pulses.as_ref().unwrap();
+            let n_ref = p
+                .reference_pulses
+                .expect("the standard's pulses are counted") as f64;
+            let by_ratio = meterproof::metrology::pulses::pulse_ratio_error_percent(
+                p.pulses as f64,
+                p.meter_constant,
+                n_ref,
+                100_000.0,
+            );
+            let err = c.evaluation.as_ref().unwrap().error;
+            assert!((err - by_ratio).abs() < 1e-9, "{step}: {err} vs {by_ratio}");
+            assert!(
+                s.references
+                    .iter()
+                    .all(|x| x.quantity != meterproof::plan::Quantity::ActiveEnergy
+                        || x.reading.source != "reference pulses"),
+                "the step's own references stay the instrument's"
+            );
+            let budget = c.uncertainty.as_ref().unwrap();
+            let q = budget
+                .components
+                .iter()
+                .find(|x| x.name == "quantisation of the reference's count (±1 pulse)")
+                .expect("the standard's ±1 pulse");
+            // a = 0.01 Wh, c = 100·N/k / E_ref² in % per Wh: u = a·|c|/√3 (GUM 4.3.7).
+            let e_ref = n_ref * 1000.0 / 100_000.0;
+            let c_ref = 100.0 * c.measured.unwrap() / (e_ref * e_ref);
+            assert!((q.u - 0.01 * c_ref / 3f64.sqrt()).abs() < 1e-9, "{}", q.u);
+            assert!(
+                !budget
+                    .components
+                    .iter()
+                    .any(|x| x.name == "the counter's time base")
+            );
+            let (_, other) = pulse_check(e, step);
+            let (u1, u2) = (
+                budget.expanded,
+                other.uncertainty.as_ref().unwrap().expanded,
+            );
+            let e2 = other.evaluation.as_ref().unwrap().error;
+            assert!(
+                (err - e2).abs() <= u1.hypot(u2),
+                "{step}: {err} ± {u1} vs {e2} ± {u2}"
+            );
+        }
+    }
+}
+
+/// `sim-meter --reference-pulses` serves the same error calculator: the station file names the
+/// standard's constant and the query that reads its pulses, and the verdicts are the built-in
+/// bench's.
+#[test]
+fn a_served_error_calculator_gives_the_builtin_verdicts() {
+    let dir = temp_dir("pulse-ratio");
+    let plan_path = served_plan(&dir);
+    let served = serve_at(&dir, "40", &["--reference-pulses", "100000"]);
+    let station = std::fs::read_to_string(&served.station).unwrap();
+    assert!(
+        station.contains("reference_pulses: 100000 imp/kWh"),
+        "{station}"
+    );
+    let out = dir.join("out");
+    let output = bin()
+        .args(["run", "--quiet", "--unattended", "--bench"])
+        .arg(&served.station)
+        .arg("--out")
+        .arg(&out)
+        .arg(&plan_path)
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&output.stdout).to_string()
+        + &String::from_utf8_lossy(&output.stderr);
+    assert_eq!(output.status.code(), Some(1), "{text}");
+    let records = records_in(&out);
+    let statuses: Vec<UnitStatus> = records.iter().map(|r| r.verdict.status).collect();
+    assert_eq!(
+        statuses,
+        [
+            UnitStatus::Accepted,
+            UnitStatus::Rejected,
+            UnitStatus::Accepted,
+            UnitStatus::Accepted
+        ],
+        "{text}"
+    );
+    for r in &records {
+        for step in ["gate-Imax", "count-Ib", "count-pf0.5"] {
+            let (_, c) = pulse_check(r, step);
+            assert!(
+                c.pulses.as_ref().unwrap().reference_pulses.is_some(),
+                "{step}: {:?}",
+                c.pulses
+            );
+        }
+    }
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// The unit report says what was counted: the pulses, how, over how long, and against what.
+#[test]
+fn the_unit_report_shows_the_counts() {
+    let plan = Plan::load(PLAN.as_ref()).unwrap();
+    let mut config = SimConfig::new(1, 1);
+    config.reference_pulses = Some(100_000.0);
+    let records = run(&plan, &config);
+    let templates = meterproof::report::Templates::load(None).unwrap();
+    let html = templates
+        .unit_html(&records[0], None)
+        .unwrap()
+        .replace("&#x2f;", "/")
+        .replace("&#x27;", "'");
+    let (_, c) = pulse_check(&records[0], "count-Ib");
+    let p = c.pulses.as_ref().unwrap();
+    assert!(
+        html.contains(&format!(
+            "active_energy on test_output: 25 pulses at 1000 imp/kWh, timed from the first edge to the last, {:.3} s; against the reference standard's {} pulses at 100000 imp/kWh",
+            p.seconds,
+            p.reference_pulses.unwrap()
+        )),
+        "{html}"
+    );
+    assert!(html.contains("counted over a gate"), "{html}");
+    assert!(html.contains("counted from the reference standard's pulses"));
+}

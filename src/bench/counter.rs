@@ -30,6 +30,10 @@ pub struct CounterReading {
     pub pulses: u64,
     /// Timing pulses: bench times of the first edge and of the latest edge counted.
     pub edges_s: Option<(f64, f64)>,
+    /// Where the counter also counts a reference standard's pulse output: its pulses over the
+    /// same interval (since the start; or from the first edge to the latest), latched with the
+    /// unit's count.
+    pub reference_pulses: Option<u64>,
 }
 
 /// A counter with an input per position.
@@ -85,6 +89,11 @@ pub struct CounterInfo {
     /// How closely an edge is timed, ± seconds.
     #[serde(default)]
     pub edge_s: Option<f64>,
+    /// Where the counter also counts the reference standard's pulse output: its constant,
+    /// imp/kWh. The reference energy of a count is then the standard's pulses over the same
+    /// interval, N_ref / k_ref.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub reference_constant: Option<f64>,
 }
 
 /// The commands of a counter with a line interface; `{inputs}` is a comma-separated list of
@@ -101,15 +110,18 @@ pub struct CounterCommands {
     /// was armed, 9.91E37 (SCPI's not-a-number) while there is none.
     pub pulse_times: String,
     pub stop: String,
+    /// Asks the reference standard's pulses latched with `{input}`'s last reading: one number.
+    pub reference_count: Option<String>,
 }
 
 /// The placeholders each command may hold.
-pub const COUNTER_PLACEHOLDERS: [(&str, &[&str]); 5] = [
+pub const COUNTER_PLACEHOLDERS: [(&str, &[&str]); 6] = [
     ("totalize", &["inputs"]),
     ("count", &["input"]),
     ("time_pulses", &["inputs", "pulses"]),
     ("pulse_times", &["input"]),
     ("stop", &[]),
+    ("reference_count", &["input"]),
 ];
 
 /// SCPI's not-a-number, sent for a value not (yet) measured (SCPI-99, vol. 1, 7.2.1.5; from
@@ -165,6 +177,25 @@ impl<W: Wire> ScpiCounter<W> {
             .map_or(position as u32, |(_, i)| *i)
     }
 
+    /// The reference standard's pulses latched with `input`'s last reading, where the station
+    /// has the counter count them.
+    fn reference_count(&mut self, input: &str) -> Result<Option<u64>, BenchError> {
+        let Some(query) = self.commands.reference_count.clone() else {
+            return Ok(None);
+        };
+        let query = query.replace("{input}", input);
+        let line = self
+            .channel
+            .transact(&query, &NUMBER)
+            .map_err(counter_error)?;
+        parse_count(&line).map(Some).ok_or_else(|| {
+            BenchError::Counter(format!(
+                "input {input}: \"{}\" is not a count of the reference's pulses",
+                line.trim()
+            ))
+        })
+    }
+
     fn inputs_of(&self, positions: &[usize]) -> String {
         positions
             .iter()
@@ -208,9 +239,11 @@ impl<W: Wire> PulseCounter for ScpiCounter<W> {
                     line.trim()
                 ))
             })?;
+            let reference_pulses = self.reference_count(&input)?;
             return Ok(CounterReading {
                 pulses,
                 edges_s: None,
+                reference_pulses,
             });
         }
         let query = self.commands.pulse_times.replace("{input}", &input);
@@ -224,9 +257,16 @@ impl<W: Wire> PulseCounter for ScpiCounter<W> {
                 line.trim()
             ))
         })?;
+        // Before the first edge there is nothing of the reference's to count.
+        let reference_pulses = if edges.is_some() {
+            self.reference_count(&input)?
+        } else {
+            None
+        };
         Ok(CounterReading {
             pulses,
             edges_s: edges.map(|(a, b)| (self.armed_at_s + a, self.armed_at_s + b)),
+            reference_pulses,
         })
     }
 

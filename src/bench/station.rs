@@ -126,6 +126,10 @@ struct RawCounter {
     /// Position number → counter input, where they differ.
     #[serde(default)]
     inputs: BTreeMap<String, Text>,
+    /// The constant of the reference standard's own pulse output, where the counter counts it
+    /// beside the units' ("100000 imp/kWh"): a count's reference energy is then N_ref / k_ref.
+    #[serde(default)]
+    reference_pulses: Option<Text>,
     read: RawCounterRead,
 }
 
@@ -157,6 +161,9 @@ struct RawCounterCommands {
     time_pulses: Text,
     pulse_times: Text,
     stop: Text,
+    /// The reference standard's pulses latched with `{input}`'s last reading.
+    #[serde(default)]
+    reference_count: Option<Text>,
 }
 
 #[derive(Debug, Deserialize, schemars::JsonSchema)]
@@ -507,17 +514,51 @@ fn counter(
     let port = instrument_port(doc, "counter.read", &fields);
     let c = &scpi.commands;
     let texts = [
-        &c.totalize,
-        &c.count,
-        &c.time_pulses,
-        &c.pulse_times,
-        &c.stop,
+        Some(&c.totalize),
+        Some(&c.count),
+        Some(&c.time_pulses),
+        Some(&c.pulse_times),
+        Some(&c.stop),
+        c.reference_count.as_ref(),
     ];
     for ((name, allowed), text) in crate::bench::counter::COUNTER_PLACEHOLDERS
         .iter()
         .zip(texts)
     {
-        placeholders(doc, &format!("counter.read.commands.{name}"), text, allowed);
+        if let Some(text) = text {
+            placeholders(doc, &format!("counter.read.commands.{name}"), text, allowed);
+        }
+    }
+    let reference_constant = match &raw.reference_pulses {
+        None => None,
+        Some(t) => {
+            let k =
+                t.0.trim()
+                    .strip_suffix("imp/kWh")
+                    .and_then(|n| n.trim().parse::<f64>().ok())
+                    .filter(|k| *k > 0.0 && k.is_finite());
+            if k.is_none() {
+                doc.error(
+                    "counter.reference_pulses",
+                    format!(
+                        "expected the reference standard's constant such as \"100000 imp/kWh\", got \"{}\"",
+                        t.0
+                    ),
+                );
+            }
+            k
+        }
+    };
+    match (&raw.reference_pulses, &c.reference_count) {
+        (Some(_), None) => doc.error(
+            "counter.read.commands",
+            "counting the reference standard's pulses needs the query that reads them: reference_count",
+        ),
+        (None, Some(_)) => doc.error(
+            "counter.read.commands.reference_count",
+            "the counter reads the reference standard's pulses only where the station gives their constant: counter.reference_pulses",
+        ),
+        _ => {}
     }
     Some(CounterSpec {
         info: CounterInfo {
@@ -529,6 +570,7 @@ fn counter(
                 .unwrap_or_default(),
             timebase: timebase?,
             edge_s: edge_s?,
+            reference_constant,
         },
         port: port?,
         commands: CounterCommands {
@@ -537,6 +579,7 @@ fn counter(
             time_pulses: c.time_pulses.0.trim().to_string(),
             pulse_times: c.pulse_times.0.trim().to_string(),
             stop: c.stop.0.trim().to_string(),
+            reference_count: c.reference_count.as_ref().map(|t| t.0.trim().to_string()),
         },
         inputs,
     })

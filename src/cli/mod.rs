@@ -169,6 +169,10 @@ struct SimMeterArgs {
     /// endings, a "> " prompt, log lines until `log off` (the fault P:console for one meter).
     #[arg(long)]
     console: bool,
+    /// The counter also counts the reference standard's own pulse output, at this constant
+    /// (imp/kWh): counts of the test output are then set against the standard's pulses.
+    #[arg(long, value_name = "IMP_PER_KWH")]
+    reference_pulses: Option<f64>,
 }
 
 #[derive(clap::Args)]

@@ -40,6 +40,14 @@ pub(super) fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
     };
     let mut config = SimConfig::new(args.seed, args.positions);
     config.plant_defect = !args.no_defect;
+    if let Some(k) = args.reference_pulses {
+        if !(k > 0.0 && k.is_finite()) {
+            return Err(CliError::Usage(
+                "--reference-pulses: a constant above 0 imp/kWh".into(),
+            ));
+        }
+        config.reference_pulses = Some(k);
+    }
     if let Some(text) = &args.firmware {
         config.firmware = crate::bench::sim::FirmwareChange::parse(text)
             .map_err(|e| CliError::Usage(format!("--firmware: {e}")))?;

@@ -33,6 +33,9 @@ pub(super) struct CheckInputs<'a> {
     pub window: (f64, f64),
     /// The unit's resolution for the quantity, where the link knows it.
     pub resolution: Option<f64>,
+    /// A count of the test output set against the reference standard's own pulses over the
+    /// same interval: (its pulses, its constant imp/kWh).
+    pub counted_reference: Option<(u64, f64)>,
 }
 
 /// Fills in the statistics, error, uncertainty, decision and verdict of one check.
@@ -40,9 +43,10 @@ pub(super) fn evaluate_check(input: CheckInputs, record: &mut CheckRecord, judge
     let CheckInputs {
         check,
         step,
-        reference,
-        window,
+        mut reference,
+        mut window,
         resolution,
+        counted_reference,
     } = input;
     let values: Vec<f64> = record.samples.iter().map(|s| s.value).collect();
     // The spread of a register's contents says nothing; its advance is the measurement.
@@ -56,6 +60,27 @@ pub(super) fn evaluate_check(input: CheckInputs, record: &mut CheckRecord, judge
         .then_some(step.pulses.as_ref())
         .flatten();
     record.pulses = pulses.and_then(|spec| pulse_count(spec, &record.samples));
+    // Pulses from the reference standard: its energy over exactly the unit's interval is
+    // N_ref / k_ref (the error then follows from the ratio of the two counts).
+    if let (Some((n, k)), Some(p), Some(first), Some(last)) = (
+        counted_reference,
+        record.pulses.as_mut(),
+        record.samples.first(),
+        record.samples.last(),
+    ) {
+        p.reference_pulses = Some(n);
+        p.reference_constant = Some(k);
+        window = (first.t_s, last.t_s);
+        reference = Some(Ok(ReferenceReading {
+            value: n as f64 * 1000.0 / k,
+            source: "reference pulses".into(),
+            taken_at_s: last.t_s,
+            as_given: Some(format!("{n} pulses at {k} imp/kWh")),
+            entries: Vec::new(),
+            window_s: Some(window),
+            power_readings: Vec::new(),
+        }));
+    }
     if let Some(spec) = pulses
         && let PulseMethod::FixedPulses { count, at_most_s } = spec.method
     {
@@ -235,6 +260,8 @@ impl Partial<'_> {
                     reference,
                     window: self.reference_window,
                     resolution: self.resolutions.get(u).and_then(|r| r[i]),
+                    // Until decided, the instrument's reading over the window so far stands in.
+                    counted_reference: None,
                 };
                 evaluate_check(input, &mut record, judge);
                 match (&record.evaluation, &record.decision) {
@@ -473,6 +500,23 @@ fn pulse_terms(
     counter: Option<&crate::bench::counter::CounterInfo>,
 ) {
     let pulse = spec.pulse_wh();
+    // Against the reference standard's own count over the same interval: its ±1 pulse, and no
+    // time base or edge timing (both counts share the interval, so they cancel).
+    let counted = record
+        .pulses
+        .as_ref()
+        .and_then(|p| p.reference_constant.zip(p.reference_pulses));
+    if let Some((k_ref, _)) = counted {
+        components.push(uncertainty::rectangular(
+            "quantisation of the reference's count (±1 pulse)",
+            1000.0 / k_ref,
+            c_ref,
+            &format!(
+                "the reference standard's pulses counted over the unit's interval: ±1 pulse of {} Wh",
+                trim_number(1000.0 / k_ref)
+            ),
+        ));
+    }
     match spec.method {
         PulseMethod::FixedTime { .. } => components.push(uncertainty::rectangular(
             "quantisation of the count (±1 pulse)",
@@ -483,6 +527,7 @@ fn pulse_terms(
                 trim_number(pulse)
             ),
         )),
+        PulseMethod::FixedPulses { .. } if counted.is_some() => {}
         PulseMethod::FixedPulses { .. } => {
             let Some(r) = reference else { return };
             let span = record.pulses.as_ref().map_or(0.0, |p| p.seconds);
@@ -533,6 +578,8 @@ fn pulse_count(spec: &PulseSpec, samples: &[crate::record::Sample]) -> Option<Pu
             .round()
             .max(0.0) as u64,
         seconds: last.t_s - first.t_s,
+        reference_pulses: None,
+        reference_constant: None,
     })
 }
 

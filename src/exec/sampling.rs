@@ -17,6 +17,9 @@ use crate::record::Sample;
 pub(super) struct Series {
     pub samples: Vec<Vec<Sample>>,
     pub fault: Option<String>,
+    /// For a count of the test output where the counter also counts the reference standard's
+    /// pulses: the standard's count latched with each sample.
+    pub reference_counts: Vec<Vec<u64>>,
 }
 
 /// One reading taken from each unit at every sample.
@@ -90,6 +93,7 @@ pub(super) fn sample_step(
                     h.join().unwrap_or_else(|_| Series {
                         samples: Vec::new(),
                         fault: Some("the sampling thread failed".into()),
+                        reference_counts: Vec::new(),
                     })
                 })
                 .collect()
@@ -208,27 +212,39 @@ fn read_counter(s: Sampler, slot: usize, w: usize, series: &mut Series) -> Resul
     let answered = s.clock.now_s();
     let wh = |n: u64| n as f64 * pulses.pulse_wh();
     let taken = &mut series.samples[w];
-    let mut new = Vec::new();
+    // Each new sample with the reference standard's count latched with it, where there is one.
+    let mut new: Vec<(Sample, Option<u64>)> = Vec::new();
     match pulses.method {
-        PulseMethod::FixedTime { .. } => new.push(Sample {
-            t_s: (asked + answered) / 2.0,
-            value: wh(reading.pulses),
-            took_s: (answered > asked).then_some(answered - asked),
-        }),
+        PulseMethod::FixedTime { .. } => new.push((
+            Sample {
+                t_s: (asked + answered) / 2.0,
+                value: wh(reading.pulses),
+                took_s: (answered > asked).then_some(answered - asked),
+            },
+            reading.reference_pulses,
+        )),
         PulseMethod::FixedPulses { .. } => {
             if let Some((first, latest)) = reading.edges_s {
                 if taken.is_empty() {
-                    new.push(Sample::at(first, 0.0));
+                    new.push((Sample::at(first, 0.0), reading.reference_pulses.map(|_| 0)));
                 }
                 let last = taken.last().map_or(0.0, |x| x.value);
                 if reading.pulses > 0 && wh(reading.pulses) > last {
-                    new.push(Sample::at(latest, wh(reading.pulses)));
+                    new.push((
+                        Sample::at(latest, wh(reading.pulses)),
+                        reading.reference_pulses,
+                    ));
                 }
             }
         }
     }
-    for sample in new {
+    for (sample, reference) in new {
         taken.push(sample);
+        if let Some(n) = reference
+            && let Some(counts) = series.reference_counts.get_mut(w)
+        {
+            counts.push(n);
+        }
         (s.on_reading)(slot, w, sample);
     }
     Ok(())
@@ -257,6 +273,7 @@ fn empty(wanted: usize) -> Series {
     Series {
         samples: vec![Vec::new(); wanted],
         fault: None,
+        reference_counts: vec![Vec::new(); wanted],
     }
 }
 

@@ -498,12 +498,21 @@ pub(super) fn unit_step_record(
             .iter()
             .find(|(q, _)| *q == check.quantity)
             .map(|(_, r)| r.clone());
+        // The reference standard's own pulses over the same interval, where the counter
+        // counted them with every sample.
+        let counts = series.reference_counts.get(w).filter(|c| {
+            check.counts_pulses() && !c.is_empty() && c.len() == check_record.samples.len()
+        });
+        let counted_reference = counts
+            .zip(judge.counter.as_ref().and_then(|c| c.reference_constant))
+            .and_then(|(c, k)| Some((c.last()? - c.first()?, k)));
         let input = decide::CheckInputs {
             check,
             step: evaluated_step,
             reference,
             window: reference_window,
             resolution: resolutions[u][i],
+            counted_reference,
         };
         decide::evaluate_check(input, check_record, judge);
     }

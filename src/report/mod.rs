@@ -381,8 +381,14 @@ impl StepView {
                         } else {
                             "counted over a gate"
                         };
+                        let against = match (p.reference_pulses, p.reference_constant) {
+                            (Some(n), Some(k)) => format!(
+                                "; against the reference standard's {n} pulses at {k} imp/kWh over the same interval"
+                            ),
+                            _ => String::new(),
+                        };
                         format!(
-                            "{} on {}: {} pulses at {} imp/kWh, {how}, {:.3} s",
+                            "{} on {}: {} pulses at {} imp/kWh, {how}, {:.3} s{against}",
                             c.quantity.name(),
                             c.channel,
                             p.pulses,
@@ -438,6 +444,11 @@ impl CheckView {
                 other => other,
             })
             .to_string();
+        // A count set against the reference standard's own pulses has that for its reference.
+        let reference_source = match c.pulses.as_ref().and_then(|p| p.reference_pulses) {
+            Some(_) => "counted from the reference standard's pulses".to_string(),
+            None => reference_source,
+        };
         CheckView {
             tolerance: describe::tolerance_text(&c.tolerance, dim),
             reference_source,

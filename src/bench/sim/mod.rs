@@ -90,6 +90,7 @@ pub fn sim_counter_info() -> crate::bench::counter::CounterInfo {
         description: "simulated pulse counter, an input per position".into(),
         timebase: Some(1e-6),
         edge_s: Some(1e-6),
+        reference_constant: None,
     }
 }
 
@@ -148,6 +149,9 @@ pub struct SimConfig {
     pub firmware: FirmwareChange,
     /// Offsets the noise streams: the same meters tested again give other noise.
     pub noise_stream_offset: u64,
+    /// The counter also counts the reference standard's pulse output at this constant
+    /// (imp/kWh), an error calculator's way.
+    pub reference_pulses: Option<f64>,
 }
 
 impl SimConfig {
@@ -161,6 +165,7 @@ impl SimConfig {
             creep_fault: false,
             firmware: FirmwareChange::default(),
             noise_stream_offset: 0,
+            reference_pulses: None,
         }
     }
 }
@@ -245,6 +250,9 @@ struct World {
     changed_at_s: f64,
     from_no_load: bool,
     meters: Vec<MeterState>,
+    /// The energy the source really delivered up to the last load change, Wh (what a
+    /// reference standard's pulse output counts).
+    true_energy_wh: f64,
 }
 
 impl World {
@@ -298,8 +306,17 @@ impl World {
         meter.energy_until_s = t;
     }
 
+    /// The energy the source really delivered up to bench time `t` (at or after the last load
+    /// change), Wh.
+    fn true_energy_at(&self, t: f64) -> f64 {
+        self.true_energy_wh
+            + self.actual.nominal(Quantity::ActivePower, 0.0) * (t - self.changed_at_s).max(0.0)
+                / 3600.0
+    }
+
     fn apply(&mut self, actual: Load) {
         let now = self.clock.now_s();
+        self.true_energy_wh = self.true_energy_at(now);
         for index in 0..self.meters.len() {
             self.advance_energy(index, now);
             let seen = self.seen(&self.meters[index], now);
@@ -366,6 +383,7 @@ pub struct SimBench {
     clock: Arc<dyn Clock>,
     defects: Vec<PlantedDefect>,
     seed: u64,
+    reference_pulses: Option<f64>,
 }
 
 fn stream(seed: u64, stream: u64) -> ChaCha8Rng {
@@ -382,6 +400,10 @@ const STREAM_LOAD_CHECK: u64 = 4;
 const STREAM_MODEL_BASE: u64 = 1_000;
 const STREAM_NOISE_BASE: u64 = 2_000;
 const STREAM_PULSE_BASE: u64 = 3_000;
+const STREAM_REFERENCE_PULSES: u64 = 5;
+
+/// The simulated reference's fixed relative error.
+const SIM_REFERENCE_GAIN: f64 = 0.0001;
 
 impl SimBench {
     /// A simulated bench on a virtual clock: it never waits for real.
@@ -446,12 +468,14 @@ impl SimBench {
             changed_at_s: 0.0,
             from_no_load: false,
             meters,
+            true_energy_wh: 0.0,
         };
         SimBench {
             world: Arc::new(Mutex::new(world)),
             clock,
             defects,
             seed: config.seed,
+            reference_pulses: config.reference_pulses,
         }
     }
 
@@ -498,14 +522,34 @@ impl SimBench {
                 world: self.world.clone(),
                 rng: stream(self.seed, STREAM_REFERENCE),
                 load_rng: stream(self.seed, STREAM_LOAD_CHECK),
-                gain: 0.0001,
+                gain: SIM_REFERENCE_GAIN,
             }),
         )
     }
 
-    /// The counter of the simulated meters' test outputs.
+    /// The counter of the simulated meters' test outputs (counting the reference standard's
+    /// pulses too where the configuration says so).
     pub fn counter(&self) -> test_output::SimCounter {
-        test_output::SimCounter::new(self.world.clone())
+        match self.reference_pulses {
+            Some(k) => self.counter_with_reference_pulses(k),
+            None => test_output::SimCounter::new(self.world.clone(), None),
+        }
+    }
+
+    /// The counter as a reference standard's error calculator: it counts the standard's own
+    /// pulse output (`constant` imp/kWh, with the simulated reference's error) beside each
+    /// unit's, over the same interval.
+    pub fn counter_with_reference_pulses(&self, constant: f64) -> test_output::SimCounter {
+        let mut rng = stream(self.seed, STREAM_REFERENCE_PULSES);
+        let phase = rand::Rng::next_u64(&mut rng) as f64 / (u64::MAX as f64 + 1.0);
+        test_output::SimCounter::new(
+            self.world.clone(),
+            Some(test_output::ReferencePulses {
+                constant,
+                phase,
+                gain: SIM_REFERENCE_GAIN,
+            }),
+        )
     }
 
     /// Turns the simulator into a [`Bench`] for the executor.
@@ -536,7 +580,10 @@ impl SimBench {
                 source: "simulated lamp-bank load with switch-on surge".into(),
                 // The simulated bench sits at the usual reference temperature.
                 ambient_c: Some(crate::plan::REFERENCE_AMBIENT_C),
-                counter: Some(sim_counter_info()),
+                counter: Some(crate::bench::counter::CounterInfo {
+                    reference_constant: self.reference_pulses,
+                    ..sim_counter_info()
+                }),
             },
             clock: self.clock.clone(),
             source: SourceHandle::new(source),

@@ -37,6 +37,8 @@ pub struct SimStation {
     pub reference: PtyDevice,
     /// The counter of the meters' test outputs, an input per position.
     pub counter: PtyDevice,
+    /// The reference standard's pulse constant, where the counter counts its pulses too.
+    pub reference_pulses: Option<f64>,
     pub seed: u64,
     pub time_scale: f64,
 }
@@ -107,6 +109,7 @@ impl SimStation {
             source: PtyDevice::spawn(ScpiSourceDevice::new(source))?,
             reference: PtyDevice::spawn(ScpiReferenceDevice::new(reference))?,
             counter,
+            reference_pulses: config.reference_pulses,
             seed: config.seed,
             time_scale,
         })
@@ -150,6 +153,10 @@ impl SimStation {
         ));
         for (name, command) in COUNTER_COMMANDS {
             s.push_str(&format!("      {name}: '{command}'\n"));
+        }
+        if let Some(k) = self.reference_pulses {
+            s.push_str("      reference_count: 'REF:COUN? (@{input})'\n");
+            s.push_str(&format!("  reference_pulses: {k} imp/kWh\n"));
         }
         s
     }

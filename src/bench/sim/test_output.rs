@@ -15,6 +15,18 @@ use std::sync::{Arc, Mutex};
 /// The simulated meters' constant, imp/kWh (the TM-16's, as the demo plans rate it).
 pub const SIM_METER_CONSTANT: f64 = 1000.0;
 
+/// A reference standard's pulse output, counted by the simulated counter beside the units':
+/// it pulses from the energy the source really delivered, with the simulated reference's error.
+#[derive(Debug, Clone, Copy)]
+pub struct ReferencePulses {
+    /// imp/kWh.
+    pub constant: f64,
+    /// The part of a pulse its accumulator held at the start.
+    pub phase: f64,
+    /// Its fixed relative error.
+    pub gain: f64,
+}
+
 /// One input's state since its start.
 #[derive(Debug, Clone, Copy, Default)]
 struct Input {
@@ -27,6 +39,8 @@ struct Input {
     first_s: Option<f64>,
     /// Pulses counted since the first edge and the time of the latest.
     latest: (u64, f64),
+    /// The reference standard's pulse level at the start.
+    reference_start: f64,
 }
 
 /// The simulated counter: an input per meter, acting on the simulated world.
@@ -34,16 +48,35 @@ pub struct SimCounter {
     world: Arc<Mutex<World>>,
     mode: CounterMode,
     inputs: Vec<Input>,
+    reference: Option<ReferencePulses>,
 }
 
 impl SimCounter {
-    pub(super) fn new(world: Arc<Mutex<World>>) -> SimCounter {
+    pub(super) fn new(world: Arc<Mutex<World>>, reference: Option<ReferencePulses>) -> SimCounter {
         let n = lock(&world).meters.len();
         SimCounter {
             world,
             mode: CounterMode::Totalize,
             inputs: vec![Input::default(); n],
+            reference,
         }
+    }
+
+    /// The reference standard's pulse level at bench time `t` (since the last load change).
+    fn reference_level(&self, t: f64) -> f64 {
+        let Some(r) = self.reference else {
+            return 0.0;
+        };
+        let energy = lock(&self.world).true_energy_at(t);
+        energy * (1.0 + r.gain) * r.constant / 1000.0 + r.phase
+    }
+
+    /// The reference's whole pulses between two bench times.
+    fn reference_pulses(&self, from: f64, to: f64) -> Option<u64> {
+        self.reference?;
+        Some(
+            (self.reference_level(to).floor() - self.reference_level(from).floor()).max(0.0) as u64,
+        )
     }
 
     /// Bench time now and meter `index`'s pulse level: pulses sent (with the fraction under
@@ -84,6 +117,7 @@ impl PulseCounter for SimCounter {
                 last: (now, level),
                 first_s: None,
                 latest: (0, now),
+                reference_start: self.reference_level(now),
             };
         }
         Ok(())
@@ -97,12 +131,17 @@ impl PulseCounter for SimCounter {
             )));
         }
         let (now, level) = self.level(i);
+        let reference_now = self.reference_level(now);
+        let reference = self.reference.is_some();
         let input = &mut self.inputs[i];
         let whole = (level.floor() - input.base).max(0.0) as u64;
         let CounterMode::TimePulses { pulses: wanted } = self.mode else {
             return Ok(CounterReading {
                 pulses: whole,
                 edges_s: None,
+                reference_pulses: reference.then(|| {
+                    (reference_now.floor() - input.reference_start.floor()).max(0.0) as u64
+                }),
             });
         };
         let ((t0, l0), base) = (input.last, input.base);
@@ -129,9 +168,15 @@ impl PulseCounter for SimCounter {
         if input.latest.0 < wanted {
             input.last = (now, level);
         }
+        let edges_s = input.first_s.map(|f| (f, input.latest.1));
         Ok(CounterReading {
             pulses: input.latest.0,
-            edges_s: input.first_s.map(|f| (f, input.latest.1)),
+            edges_s,
+            // Counted from the unit's first edge to its latest, as an error calculator gates it.
+            reference_pulses: match edges_s {
+                Some((a, b)) => self.reference_pulses(a, b),
+                None => self.reference.map(|_| 0),
+            },
         })
     }
 
@@ -144,11 +189,14 @@ impl PulseCounter for SimCounter {
 }
 
 /// The simulated counter on a port, speaking this project's SCPI-style commands:
-/// `TOT:STAR (@1,2)`, `TOT:COUN? (@1)`, `TINT:ARM (@1,2),25`, `TINT:STAT? (@1)`, `ABOR`.
+/// `TOT:STAR (@1,2)`, `TOT:COUN? (@1)`, `TINT:ARM (@1,2),25`, `TINT:STAT? (@1)`, `ABOR`, and
+/// `REF:COUN? (@1)` (the reference standard's pulses latched with input 1's last reading).
 pub struct ScpiCounterDevice {
     counter: SimCounter,
     armed_at_s: f64,
     errors: Vec<&'static str>,
+    /// The reference's pulses latched with each input's last reading.
+    latched: std::collections::BTreeMap<usize, u64>,
 }
 
 /// The station file's counter commands for the simulated counter.
@@ -166,11 +214,19 @@ impl ScpiCounterDevice {
             counter,
             armed_at_s: 0.0,
             errors: Vec::new(),
+            latched: Default::default(),
         }
     }
 
     fn now(&self) -> f64 {
         lock(&self.counter.world).clock.now_s()
+    }
+
+    fn latch(&mut self, input: usize, reference: Option<u64>) {
+        match reference {
+            Some(n) => self.latched.insert(input, n),
+            None => self.latched.remove(&input),
+        };
     }
 }
 
@@ -217,14 +273,23 @@ impl LineDevice for ScpiCounterDevice {
                 }
             }
             "TOT:COUN?" => match channel_list(args).as_deref() {
+                Some([input]) => self.counter.read(*input).map(|r| {
+                    self.latch(*input, r.reference_pulses);
+                    vec![r.pulses.to_string()]
+                }),
+                _ => Err(BenchError::Counter(String::new())),
+            },
+            "REF:COUN?" => match channel_list(args).as_deref() {
                 Some([input]) => self
-                    .counter
-                    .read(*input)
-                    .map(|r| vec![r.pulses.to_string()]),
+                    .latched
+                    .get(input)
+                    .map(|n| vec![n.to_string()])
+                    .ok_or_else(|| BenchError::Counter(String::new())),
                 _ => Err(BenchError::Counter(String::new())),
             },
             "TINT:STAT?" => match channel_list(args).as_deref() {
                 Some([input]) => self.counter.read(*input).map(|r| {
+                    self.latch(*input, r.reference_pulses);
                     let since = |t: f64| format!("{:.6}", t - self.armed_at_s);
                     vec![match r.edges_s {
                         Some((a, b)) => format!("{},{},{}", r.pulses, since(a), since(b)),
