@@ -472,6 +472,16 @@ pub(super) fn unit_step_record(
             "the reference's power at the window's start could not be read ({why})"
         ));
     }
+    if let Some(crate::plan::PulseMethod::FixedPulses { count, .. }) =
+        step.pulses.as_ref().map(|p| p.method)
+    {
+        record.sampling_note = Some(format!(
+            "timed {count} pulses: {} readings {} apart, until every unit had sent them (at most {})",
+            evaluated_step.samples,
+            crate::plan::units::duration_text(step.interval_s),
+            step.samples
+        ));
+    }
     if let Some(rule) = step.sequential {
         let n = series.samples.first().map_or(0, |s| s.len());
         record.sampling_note = Some(format!(

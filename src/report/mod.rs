@@ -471,6 +471,10 @@ impl CheckView {
                 (Some(e), Some(d)) => {
                     d.expanded_uncertainty
                         .map_or("—".into(), |u| match &c.uncertainty {
+                            // A count compared with a bound on whole pulses has no term.
+                            Some(b) if b.components.is_empty() && u == 0.0 => {
+                                "none (compared as counted)".into()
+                            }
                             Some(b) => {
                                 format!("{} (k = {:.2})", magnitude_text(u, &e.error_unit), b.k)
                             }
@@ -524,6 +528,8 @@ fn error_text(e: &crate::metrology::Evaluation) -> String {
 }
 
 fn magnitude_text(x: f64, unit: &str) -> String {
+    // One zero: −0 (a product of nothing) is printed as 0.
+    let x = if x == 0.0 { 0.0 } else { x };
     if unit == "%" {
         format!("{x:.3} %")
     } else {
