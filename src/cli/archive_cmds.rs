@@ -30,6 +30,9 @@ pub(super) struct ResumeArgs {
     /// Folder of templates that replace the embedded ones.
     #[arg(long)]
     templates: Option<PathBuf>,
+    /// The paper printed reports are laid out for.
+    #[arg(long, value_enum, default_value_t = crate::report::Paper::A4)]
+    paper: crate::report::Paper,
     #[arg(long)]
     quiet: bool,
     /// As for `run`.
@@ -111,8 +114,9 @@ pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
     let plan = Plan::from_text(&file, &text).map_err(CliError::Plan)?;
     let spec: BenchSpec = serde_json::from_str(&run.bench)
         .map_err(|e| CliError::Run(format!("the archived bench cannot be read: {e}")))?;
-    let templates =
-        Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
+    let templates = Templates::load(args.templates.as_deref())
+        .map_err(|e| CliError::Usage(e.to_string()))?
+        .with_paper(args.paper);
     let (mut bench, mut notes) = build_bench(&spec, &plan, args)?;
     let plan = plan_at_bench(plan, &bench)?;
     let state = archive.resume_state(&run.run_id).map_err(db)?;
@@ -489,6 +493,9 @@ pub(super) struct CompareArgs {
     html: Option<PathBuf>,
     #[arg(long)]
     templates: Option<PathBuf>,
+    /// The paper printed reports are laid out for.
+    #[arg(long, value_enum, default_value_t = crate::report::Paper::A4)]
+    paper: crate::report::Paper,
 }
 
 fn selector(text: &str) -> Result<(&str, &str), CliError> {
@@ -546,6 +553,7 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
     }
     if let Some(path) = &args.html {
         let templates = Templates::load(args.templates.as_deref())
+            .map(|t| t.with_paper(args.paper))
             .map_err(|e| CliError::Usage(e.to_string()))?;
         let title = format!("{} against {}", args.candidate, args.baseline);
         let html = templates
@@ -642,6 +650,9 @@ pub(super) struct SummaryArgs {
     out: PathBuf,
     #[arg(long)]
     templates: Option<PathBuf>,
+    /// The paper printed reports are laid out for.
+    #[arg(long, value_enum, default_value_t = crate::report::Paper::A4)]
+    paper: crate::report::Paper,
     /// Also write the units' checks as JUnit XML.
     #[arg(long, value_name = "FILE")]
     junit: Option<PathBuf>,
@@ -676,8 +687,9 @@ pub(super) fn summary(args: &SummaryArgs) -> Result<i32, CliError> {
     let mut summary = LotSummary::of(&format!("{key} {value}"), &records, &report_name);
     summary.made_at =
         Some(chrono::Local::now().to_rfc3339_opts(chrono::SecondsFormat::Secs, false));
-    let templates =
-        Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
+    let templates = Templates::load(args.templates.as_deref())
+        .map_err(|e| CliError::Usage(e.to_string()))?
+        .with_paper(args.paper);
     // Every unit line links to its report: a report not beside the summary (the summary
     // written elsewhere than the runs' --out, or runs from another bench) is rendered there
     // from the archive, as `report` would.
@@ -757,6 +769,9 @@ pub(super) struct ReportArgs {
     out: PathBuf,
     #[arg(long)]
     templates: Option<PathBuf>,
+    /// The paper printed reports are laid out for.
+    #[arg(long, value_enum, default_value_t = crate::report::Paper::A4)]
+    paper: crate::report::Paper,
     /// Also write the records' checks as JUnit XML.
     #[arg(long, value_name = "FILE")]
     junit: Option<PathBuf>,
@@ -766,8 +781,9 @@ pub(super) struct ReportArgs {
 pub(super) fn report(args: &ReportArgs) -> Result<i32, CliError> {
     let archive = open_to_read(&args.archive)?;
     let records = records_of(&archive, &args.what)?;
-    let templates =
-        Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
+    let templates = Templates::load(args.templates.as_deref())
+        .map_err(|e| CliError::Usage(e.to_string()))?
+        .with_paper(args.paper);
     std::fs::create_dir_all(&args.out)
         .map_err(|e| CliError::Run(format!("cannot create {}: {e}", args.out.display())))?;
     let anchors = anchors_of(&archive, &records)?;

@@ -215,6 +215,9 @@ struct RunArgs {
     /// Folder of templates that replace the embedded ones, file by file.
     #[arg(long)]
     templates: Option<PathBuf>,
+    /// The paper printed reports are laid out for.
+    #[arg(long, value_enum, default_value_t = crate::report::Paper::A4)]
+    paper: crate::report::Paper,
     /// Print only the final summary.
     #[arg(long)]
     quiet: bool,

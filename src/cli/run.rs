@@ -9,8 +9,9 @@ use super::*;
 pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
     let wall = Instant::now();
     let plan = Plan::load(&args.plan).map_err(CliError::Plan)?;
-    let templates =
-        Templates::load(args.templates.as_deref()).map_err(|e| CliError::Usage(e.to_string()))?;
+    let templates = Templates::load(args.templates.as_deref())
+        .map_err(|e| CliError::Usage(e.to_string()))?
+        .with_paper(args.paper);
     let mut serials = checked_serials(args.serials.as_deref())?;
     // The reference file is checked against the plan before anything else happens.
     let file_reference = match &args.reference {

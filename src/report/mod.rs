@@ -32,6 +32,8 @@ pub const DEFAULT_TEMPLATES: &[(&str, &str)] = &[
         include_str!("../../templates/lot-summary.html"),
     ),
     ("compare.html", include_str!("../../templates/compare.html")),
+    // The look the three documents share, included by each.
+    ("style.css", include_str!("../../templates/style.css")),
 ];
 
 #[derive(Debug, thiserror::Error)]
@@ -60,9 +62,64 @@ fn template_error(name: &str, e: &minijinja::Error) -> ReportError {
     }
 }
 
+/// The paper a report is printed on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, clap::ValueEnum)]
+pub enum Paper {
+    #[default]
+    A4,
+    Letter,
+}
+
+impl Paper {
+    /// The CSS `@page` size.
+    fn css(self) -> &'static str {
+        match self {
+            Paper::A4 => "A4",
+            Paper::Letter => "letter",
+        }
+    }
+}
+
+/// A CSS string literal of `text`, safe inside a `<style>` element: quotes and backslashes
+/// escaped, and `<` written as an escape so that no text can close the element.
+pub fn css_string(text: &str) -> String {
+    let mut out = String::from("\"");
+    for c in text.chars() {
+        match c {
+            '"' | '\\' => {
+                out.push('\\');
+                out.push(c);
+            }
+            '<' => out.push_str("\\3C "),
+            '\n' | '\r' => out.push(' '),
+            c if c.is_control() => {}
+            c => out.push(c),
+        }
+    }
+    out.push('"');
+    out
+}
+
 /// The templates reports are rendered with.
 pub struct Templates {
     env: Environment<'static>,
+    paper: Paper,
+}
+
+impl Templates {
+    /// The same templates, printing on `paper`.
+    pub fn with_paper(mut self, paper: Paper) -> Templates {
+        self.paper = paper;
+        self
+    }
+
+    /// What every printed page carries: its size, and the running header.
+    fn page(&self, header: &str) -> minijinja::Value {
+        minijinja::context! {
+            size => self.paper.css(),
+            header => minijinja::Value::from_safe_string(css_string(header)),
+        }
+    }
 }
 
 impl Templates {
@@ -79,7 +136,10 @@ impl Templates {
             env.add_template_owned(*name, source)
                 .map_err(|e| template_error(name, &e))?;
         }
-        Ok(Templates { env })
+        Ok(Templates {
+            env,
+            paper: Paper::default(),
+        })
     }
 
     /// Renders the HTML acceptance report of one unit. `anchor` is the archive's chain head
@@ -95,14 +155,24 @@ impl Templates {
             .env
             .get_template(name)
             .map_err(|e| template_error(name, &e))?;
+        let record_sha256 = crate::record::record_hash(record);
+        let header = format!(
+            "{} {} · plan {} rev {} · record {}…",
+            record.plan.model,
+            record.serial,
+            record.plan.id,
+            record.plan.revision,
+            record_sha256.get(..16).unwrap_or(&record_sha256)
+        );
         template
             .render(minijinja::context! {
                 record => minijinja::value::Serde(record),
                 view => minijinja::value::Serde(UnitView::of(record)),
                 seal => minijinja::context! {
-                    record_sha256 => crate::record::record_hash(record),
+                    record_sha256 => record_sha256,
                     anchor => anchor,
                 },
+                page => self.page(&header),
             })
             .map_err(|e| template_error(name, &e))
     }
@@ -130,6 +200,7 @@ impl Templates {
             .render(minijinja::context! {
                 summary => minijinja::value::Serde(s),
                 checks => checks,
+                page => self.page(&format!("Lot summary · {}", s.title)),
             })
             .map_err(|e| template_error(name, &e))
     }
@@ -171,6 +242,7 @@ impl Templates {
                 methods => methods,
                 p_texts => p_texts,
                 headline => result.headline(),
+                page => self.page(&format!("Comparison · {title}")),
             })
             .map_err(|e| template_error(name, &e))
     }
@@ -449,7 +521,7 @@ impl CheckView {
             Some(_) => "counted from the reference standard's pulses".to_string(),
             None => reference_source,
         };
-        CheckView {
+        let mut view = CheckView {
             tolerance: describe::tolerance_text(&c.tolerance, dim),
             reference_source,
             quantity: c.quantity.name(),
@@ -507,6 +579,27 @@ impl CheckView {
                 crate::record::CheckVerdict::Fail => "fail",
                 crate::record::CheckVerdict::NotEvaluated => "not-evaluated",
             },
+        };
+        view.keep_units();
+        view
+    }
+}
+
+impl CheckView {
+    /// A value never wraps away from its unit: the figures' spaces are no-break spaces (a
+    /// bracket after a figure may still start a new line).
+    fn keep_units(&mut self) {
+        let keep = |s: &mut String| *s = s.replace(' ', "\u{a0}").replace("\u{a0}(", " (");
+        for field in [
+            &mut self.reference,
+            &mut self.measured,
+            &mut self.std_dev,
+            &mut self.error,
+            &mut self.limit,
+            &mut self.uncertainty,
+            &mut self.acceptance_limit,
+        ] {
+            keep(field);
         }
     }
 }
