@@ -97,6 +97,50 @@ pub struct Comparison {
     pub paired_units: Vec<String>,
     /// Golden units missing from the baseline or the candidate.
     pub missing_golden: Vec<String>,
+    /// What each side is: its plans, runs, firmware and time span.
+    pub baseline: Side,
+    pub candidate: Side,
+}
+
+/// One side of a comparison, as the page names it.
+#[derive(Debug, Clone, PartialEq, Default, Serialize)]
+pub struct Side {
+    /// "TM16-EOL rev A".
+    pub plans: Vec<String>,
+    pub runs: Vec<String>,
+    pub firmware: Vec<String>,
+    pub units: usize,
+    /// The first and last start time of its records.
+    pub from: String,
+    pub to: String,
+}
+
+impl Side {
+    pub fn of(records: &[UnitRecord]) -> Side {
+        let mut side = Side {
+            units: records.len(),
+            ..Side::default()
+        };
+        for r in records {
+            let plan = format!("{} rev {}", r.plan.id, r.plan.revision);
+            if !side.plans.contains(&plan) {
+                side.plans.push(plan);
+            }
+            if !side.runs.contains(&r.run_id) {
+                side.runs.push(r.run_id.clone());
+            }
+            if let Some(f) = r.identity.as_ref().map(|i| i.firmware.clone())
+                && !side.firmware.contains(&f)
+            {
+                side.firmware.push(f);
+            }
+        }
+        let mut times: Vec<&str> = records.iter().map(|r| r.started_at.as_str()).collect();
+        times.sort_unstable();
+        side.from = times.first().map_or(String::new(), |t| t.to_string());
+        side.to = times.last().map_or(String::new(), |t| t.to_string());
+        side
+    }
 }
 
 impl Comparison {
@@ -350,6 +394,8 @@ pub fn compare(
         checks,
         paired_units,
         missing_golden,
+        baseline: Side::of(baseline),
+        candidate: Side::of(candidate),
     }
 }
 
@@ -427,6 +473,8 @@ mod tests {
             ],
             paired_units: Vec::new(),
             missing_golden: Vec::new(),
+            baseline: Side::default(),
+            candidate: Side::default(),
         };
         assert_eq!(
             all_shown.headline(),

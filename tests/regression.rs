@@ -211,6 +211,37 @@ fn the_release_gate_fails_for_a_real_regression_and_passes_for_none() {
         .unwrap();
     assert_eq!(h.status.code(), Some(1));
     let html = std::fs::read_to_string(&html_path).unwrap();
+    // Each side named on the page: plan, runs, firmware, when.
+    for side in ["Baseline", "Candidate"] {
+        assert!(
+            html.contains(&format!(
+                "<td class=\"text\">{side}</td><td class=\"text\">TM16-EOL rev A</td>"
+            )),
+            "{side}: {html}"
+        );
+    }
+    assert!(html.contains("R-base") && html.contains("2.2.0"), "{html}");
+    // Into a folder that is not there: said before any work, as a usage error.
+    let missing = bin()
+        .args([
+            "compare",
+            "--baseline",
+            "firmware=2.1.4",
+            "--candidate",
+            "firmware=2.2.0",
+            "--archive",
+        ])
+        .arg(&path)
+        .arg("--html")
+        .arg(dir.join("no-such-folder").join("compare.html"))
+        .output()
+        .unwrap();
+    assert_eq!(missing.status.code(), Some(2));
+    assert!(
+        String::from_utf8_lossy(&missing.stderr).contains("--html: the folder"),
+        "{}",
+        String::from_utf8_lossy(&missing.stderr)
+    );
     // The headline names what gates, and how many of how many.
     assert!(
         html.contains("✘ 3 of 13 checks moved beyond the allowance or newly fail: max-Imax"),

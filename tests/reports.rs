@@ -45,6 +45,15 @@ fn the_unit_report_has_a_well_formed_plot_and_the_run_a_junit_file() {
     let html = std::fs::read_to_string(run_dir.join(format!("{}-p2.html", records[1].serial)))
         .unwrap()
         .replace('\u{a0}', " ");
+    // One minus sign: no figure in a cell starts with a hyphen-minus.
+    assert!(
+        !regex::Regex::new(r">-[0-9]").unwrap().is_match(&html),
+        "a hyphen-minus before a figure"
+    );
+    assert!(
+        html.contains("\u{2212}"),
+        "negative figures are there to check"
+    );
     // Each check shows its own coverage factor and its specific risk.
     assert!(html.contains("<th>U (coverage factor k)</th>"), "{html}");
     assert!(html.contains("(k = 2."), "a k for every U");

@@ -512,6 +512,19 @@ fn selector(text: &str) -> Result<(&str, &str), CliError> {
 /// a unit newly fails.
 pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
     use crate::plan::units::{Dimension, parse};
+    // A file the comparison is to be written to must have somewhere to go, before any work.
+    for (flag, path) in [("--html", &args.html), ("--junit", &args.junit)] {
+        if let Some(parent) = path
+            .as_deref()
+            .and_then(Path::parent)
+            .filter(|p| !p.as_os_str().is_empty() && !p.is_dir())
+        {
+            return Err(CliError::Usage(format!(
+                "{flag}: the folder {} does not exist",
+                parent.display()
+            )));
+        }
+    }
     let archive = open_to_read(&args.archive)?;
     let (bk, bv) = selector(&args.baseline)?;
     let (ck, cv) = selector(&args.candidate)?;

@@ -583,20 +583,20 @@ fn pulse_count(spec: &PulseSpec, samples: &[crate::record::Sample]) -> Option<Pu
     })
 }
 
-/// "error −3.676 % ± 0.092 % (U) is outside the acceptance limit ±0.908 % (tolerance ±1 %, guard
-/// band 1 U)".
+/// "error −3.661 % (U = 0.072 %) is outside the acceptance limit ±0.928 % (tolerance ±1.000 %,
+/// guard band 1 U)": the figures at the precision of the reports' tables.
 pub fn failure_text(c: &CheckRecord) -> String {
     use crate::metrology::tolerance::Sense;
     let (Some(e), Some(d)) = (&c.evaluation, &c.decision) else {
         return "failed".into();
     };
+    // The precision of the reports' tables: three decimals of a percentage, four of a unit.
     let with_unit = |x: f64| {
-        let t = format!("{x:.4}");
-        format!(
-            "{} {}",
-            t.trim_end_matches('0').trim_end_matches('.'),
-            e.error_unit
-        )
+        if e.error_unit == "%" {
+            format!("{x:.3} %")
+        } else {
+            format!("{x:.4} {}", e.error_unit)
+        }
     };
     let (what, bound, value) = match e.sense {
         Sense::PlusMinus => {

@@ -62,6 +62,15 @@ fn template_error(name: &str, e: &minijinja::Error) -> ReportError {
     }
 }
 
+/// One minus sign in every document: a hyphen-minus before a figure becomes U+2212, as the
+/// plots and the reasons write it.
+pub fn minus_sign(text: &str) -> String {
+    static NEGATIVE: std::sync::LazyLock<regex::Regex> = std::sync::LazyLock::new(|| {
+        regex::Regex::new(r"(^|[\s(±\u{a0}])-(\d|\.\d)").expect("a valid pattern")
+    });
+    NEGATIVE.replace_all(text, "${1}\u{2212}${2}").into_owned()
+}
+
 /// The paper a report is printed on.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, clap::ValueEnum)]
 pub enum Paper {
@@ -127,6 +136,8 @@ impl Templates {
     pub fn load(dir: Option<&Path>) -> Result<Templates, ReportError> {
         let mut env = Environment::new();
         env.set_undefined_behavior(UndefinedBehavior::Strict);
+        // `x|minus` writes a figure with the one minus sign (U+2212) all documents use.
+        env.add_filter("minus", |v: minijinja::Value| minus_sign(&v.to_string()));
         for (name, text) in DEFAULT_TEMPLATES {
             let source = match dir.map(|d| d.join(name)).filter(|p| p.exists()) {
                 Some(path) => std::fs::read_to_string(&path)
@@ -589,7 +600,9 @@ impl CheckView {
     /// A value never wraps away from its unit: the figures' spaces are no-break spaces (a
     /// bracket after a figure may still start a new line).
     fn keep_units(&mut self) {
-        let keep = |s: &mut String| *s = s.replace(' ', "\u{a0}").replace("\u{a0}(", " (");
+        let keep = |s: &mut String| {
+            *s = minus_sign(&s.replace(' ', "\u{a0}").replace("\u{a0}(", " ("));
+        };
         for field in [
             &mut self.reference,
             &mut self.measured,
@@ -831,6 +844,17 @@ pub fn unit_csv(record: &UnitRecord) -> Result<Vec<u8>, ReportError> {
 
 #[cfg(test)]
 mod tests {
+    /// One minus sign: figures get U+2212; hyphens inside serials, dates and ids stay.
+    #[test]
+    fn negative_figures_get_the_minus_sign() {
+        assert_eq!(super::minus_sign("-892.8571 µA"), "\u{2212}892.8571 µA");
+        assert_eq!(super::minus_sign("±(1 % + -5 mA)"), "±(1 % + \u{2212}5 mA)");
+        assert_eq!(super::minus_sign("-.5 %"), "\u{2212}.5 %");
+        for kept in ["TM16-322611", "2026-12-02", "low-0.1Ib", "max-Imax"] {
+            assert_eq!(super::minus_sign(kept), kept);
+        }
+    }
+
     use super::*;
 
     #[test]
