@@ -100,6 +100,8 @@ pub struct Comparison {
     /// What each side is: its plans, runs, firmware and time span.
     pub baseline: Side,
     pub candidate: Side,
+    /// The steps in the order the records took them (the plan's load order).
+    pub step_order: Vec<String>,
 }
 
 /// One side of a comparison, as the page names it.
@@ -229,7 +231,7 @@ impl CheckComparison {
                 let digits = (1 - p.log10().floor() as i32).max(2) as usize;
                 format!("{p:.digits$}")
             }
-            _ => "-".into(),
+            _ => "—".into(),
         }
     }
 }
@@ -396,6 +398,16 @@ pub fn compare(
         missing_golden,
         baseline: Side::of(baseline),
         candidate: Side::of(candidate),
+        step_order: baseline
+            .iter()
+            .chain(candidate)
+            .flat_map(|r| r.steps.iter().map(|s| s.id.clone()))
+            .fold(Vec::new(), |mut order, id| {
+                if !order.contains(&id) {
+                    order.push(id);
+                }
+                order
+            }),
     }
 }
 
@@ -475,6 +487,7 @@ mod tests {
             missing_golden: Vec::new(),
             baseline: Side::default(),
             candidate: Side::default(),
+            step_order: Vec::new(),
         };
         assert_eq!(
             all_shown.headline(),

@@ -49,7 +49,12 @@ fn main() {
         check_pdf(name, &pdf, *paper);
         check_widths(name, html, &dir, *paper);
     }
-    std::fs::remove_dir_all(&dir).unwrap();
+    // MP_KEEP_PRINTS keeps the documents and their PDFs for a person to look at.
+    if std::env::var_os("MP_KEEP_PRINTS").is_some() {
+        println!("the documents and their PDFs are in {}", dir.display());
+    } else {
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
     println!(
         "print checks: {} documents printed and read back",
         docs.len()
@@ -102,6 +107,16 @@ fn documents(dir: &Path) -> Vec<(String, PathBuf, Paper)> {
         "accepted unit on Letter",
         letter.unit_html(&baseline[0], None).unwrap(),
         Paper::Letter,
+    );
+    // An incomplete unit: the pulse plan on a bench with no counter, every step not run.
+    let pulses = Plan::load("test-plans/demo-pulses.yaml".as_ref()).unwrap();
+    let mut bench = SimBench::new(&SimConfig::new(1, 1)).into_bench();
+    bench.counter = None;
+    let incomplete = exec::run(&pulses, &mut bench, &ctx(), &mut Silent);
+    write(
+        "incomplete unit",
+        a4.unit_html(&incomplete[0], None).unwrap(),
+        Paper::A4,
     );
     let summary = LotSummary::of("demo lot", &baseline, &|r| format!("{}.html", r.serial));
     write("lot summary", a4.lot_html(&summary).unwrap(), Paper::A4);
@@ -207,7 +222,14 @@ fn check_pdf(name: &str, pdf: &Path, paper: Paper) {
             i + 1
         );
     }
-    if name.contains("unit") {
+    if name == "incomplete unit" {
+        // Nothing holds the steps back from the first page: it is not left two-thirds empty.
+        assert!(
+            page_texts[0].contains("Step 1: gate-Imax"),
+            "{name}: {}",
+            page_texts[0]
+        );
+    } else if name.contains("unit") {
         assert!(
             header.contains("TM16-")
                 && header.contains("plan TM16-EOL rev A")

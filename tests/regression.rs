@@ -221,6 +221,18 @@ fn the_release_gate_fails_for_a_real_regression_and_passes_for_none() {
         );
     }
     assert!(html.contains("R-base") && html.contains("2.2.0"), "{html}");
+    // The plots: the allowance drawn as a band around the baseline, the bars said for what they
+    // are, the load points in the plan's order (demo.yaml: low-0.1Ib, basic-Ib, max-Imax).
+    assert!(html.contains("allowance around the baseline"), "{html}");
+    assert!(html.contains("bars: ±2 SE of the shift (candidate)"));
+    let first_plot = &html[html.find("<svg").unwrap()..];
+    let first_plot = &first_plot[..first_plot.find("</svg>").unwrap()];
+    let at = |label: &str| {
+        first_plot
+            .find(&format!(">{label}</text>"))
+            .unwrap_or_else(|| panic!("{label}: {first_plot}"))
+    };
+    assert!(at("low-0.1Ib") < at("basic-Ib") && at("basic-Ib") < at("max-Imax"));
     // Into a folder that is not there: said before any work, as a usage error.
     let missing = bin()
         .args([

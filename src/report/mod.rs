@@ -276,8 +276,15 @@ fn comparison_plots(result: &crate::regression::Comparison) -> Vec<(String, Stri
                 .iter()
                 .filter(|c| c.quantity == q && c.error_unit == "%")
                 .collect();
+            // In load order: the plan's order of steps.
             let mut labels: Vec<String> = checks.iter().map(|c| c.step.clone()).collect();
-            labels.sort();
+            labels.sort_by_key(|l| {
+                result
+                    .step_order
+                    .iter()
+                    .position(|s| s == l)
+                    .unwrap_or(usize::MAX)
+            });
             labels.dedup();
             let at = |c: &crate::regression::CheckComparison| {
                 labels.iter().position(|l| *l == c.step).unwrap_or(0)
@@ -323,6 +330,17 @@ fn comparison_plots(result: &crate::regression::Comparison) -> Vec<(String, Stri
                 labels: labels.clone(),
                 y_title: format!("mean error of {}, %", q.name()),
                 aria: format!("Mean error of {} on both sides", q.name()),
+                bands: labels
+                    .iter()
+                    .map(|l| {
+                        checks
+                            .iter()
+                            .find(|c| &c.step == l)
+                            .map(|c| (c.baseline_mean - c.allowance, c.baseline_mean + c.allowance))
+                    })
+                    .collect(),
+                band_name: "allowance around the baseline".into(),
+                bars: "±2 SE of the shift (candidate)".into(),
             };
             plot::draw(&chart).map(|svg| (q.name().to_string(), svg))
         })

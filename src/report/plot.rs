@@ -49,6 +49,12 @@ pub struct Chart {
     /// The vertical axis's title, with its unit ("error of active_power, %").
     pub y_title: String,
     pub aria: String,
+    /// A band to shade at each load point (low, high), and what it is ("allowance around the
+    /// baseline"); none on a unit's plot.
+    pub bands: Vec<Option<(f64, f64)>>,
+    pub band_name: String,
+    /// What the bars are ("±U", "±2 SE of the shift").
+    pub bars: String,
 }
 
 fn marker(shape: &str, x: f64, y: f64) -> String {
@@ -166,6 +172,9 @@ pub fn error_charts(record: &UnitRecord) -> Vec<(String, Chart)> {
                     "Error of {} against load point, with its tolerance and acceptance limits",
                     q.name()
                 ),
+                bands: Vec::new(),
+                band_name: String::new(),
+                bars: "±U".into(),
             };
             (q.name().to_string(), chart)
         })
@@ -223,6 +232,9 @@ pub fn draw(chart: &Chart) -> Option<String> {
     for (tl, _) in chart.limits.iter().flatten() {
         extent = extent.max(*tl);
     }
+    for (lo, hi) in chart.bands.iter().flatten() {
+        extent = extent.max(lo.abs()).max(hi.abs());
+    }
     if extent == 0.0 {
         return None;
     }
@@ -269,6 +281,18 @@ pub fn draw(chart: &Chart) -> Option<String> {
         LEFT + plot_w / 2.0,
         HEIGHT - 4.0
     );
+    // Bands (the allowance around the baseline), light grey behind everything else.
+    for (x, band) in chart.bands.iter().enumerate() {
+        if let Some((lo, hi)) = band {
+            let (x0, w) = (xpos(x) - plot_w / n / 2.0 + 4.0, plot_w / n - 8.0);
+            let (y0, y1) = (ypos(*hi), ypos(*lo));
+            let _ = write!(
+                svg,
+                r##"<rect x="{x0:.1}" y="{y0:.1}" width="{w:.1}" height="{:.1}" fill="#e4e4e4" stroke="#999" stroke-width="0.5"/>"##,
+                (y1 - y0).max(0.5)
+            );
+        }
+    }
     // Envelopes: tolerance dashed, acceptance dotted, as steps across each load point.
     for (sign, pattern, pick) in [
         (1.0, "6 3", 0),
@@ -359,11 +383,24 @@ pub fn draw(chart: &Chart) -> Option<String> {
         );
         ly += 18.0;
     }
+    if chart.bands.iter().any(Option::is_some) {
+        let _ = write!(
+            svg,
+            r##"<rect x="{:.1}" y="{:.1}" width="12" height="8" fill="#e4e4e4" stroke="#999" stroke-width="0.5"/><text x="{:.1}" y="{:.1}">{}</text>"##,
+            lx - 6.0,
+            ly - 4.0,
+            lx + 10.0,
+            ly + 4.0,
+            escape(&chart.band_name)
+        );
+        ly += 18.0;
+    }
     let _ = write!(
         svg,
-        r##"<text x="{:.1}" y="{:.1}">bars: ±U</text>"##,
+        r##"<text x="{:.1}" y="{:.1}">bars: {}</text>"##,
         lx - 6.0,
-        ly + 4.0
+        ly + 4.0,
+        escape(&chart.bars)
     );
     if chart
         .series
