@@ -486,3 +486,47 @@ fn the_unit_report_shows_the_counts() {
     assert!(html.contains("counted over a gate"), "{html}");
     assert!(html.contains("counted from the reference standard's pulses"));
 }
+
+/// The station's counter section: each mistake at its path (placeholders a command must have
+/// or must not, an input for a position the station lacks, the reference standard's constant
+/// without the query that reads its pulses).
+#[test]
+fn counter_sections_are_checked_where_they_are_written() {
+    let good = std::fs::read_to_string("test-plans/station-example.yaml").unwrap();
+    let station = meterproof::bench::station::Station::from_text("s.yaml", &good).unwrap();
+    let counter = station.counter.expect("the example has a counter");
+    assert_eq!(counter.info.timebase, Some(5e-6));
+    assert_eq!(counter.info.edge_s, Some(1e-6));
+    // Inputs by position, the keys written as YAML numbers.
+    let mapped = good.replace(
+        "  timebase: 5 ppm\n",
+        "  timebase: 5 ppm\n  inputs: { 1: 3, 2: 4 }\n",
+    );
+    let mapped = meterproof::bench::station::Station::from_text("s.yaml", &mapped).unwrap();
+    assert_eq!(mapped.counter.unwrap().inputs, [(1, 3), (2, 4)]);
+    let bad = good
+        .replace("count: 'TOT:COUN? (@{input})'", "count: 'TOT:COUN?'")
+        .replace("stop: 'ABOR'", "stop: 'ABOR {input}'")
+        .replace(
+            "  timebase: 5 ppm\n",
+            "  timebase: 5 ppm\n  inputs: { 9: 1 }\n  reference_pulses: 100000 imp/kWh\n",
+        );
+    let e = meterproof::bench::station::Station::from_text("s.yaml", &bad).unwrap_err();
+    let shown = e.to_string();
+    for (path, says) in [
+        ("counter.read.commands.count", "has no {input}"),
+        (
+            "counter.read.commands.stop",
+            "this command takes no placeholder",
+        ),
+        ("counter.inputs.9", "is not a position of this station"),
+        ("counter.read.commands", "reference_count"),
+    ] {
+        assert!(
+            shown
+                .lines()
+                .any(|l| l.contains(&format!(" {path}: ")) && l.contains(says)),
+            "{path}: {shown}"
+        );
+    }
+}

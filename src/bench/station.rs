@@ -123,9 +123,9 @@ struct RawCounter {
     /// How closely it times an edge: "1 µs".
     #[serde(default)]
     edge: Option<Text>,
-    /// Position number → counter input, where they differ.
+    /// Position number → counter input, where they differ (YAML keys may be numbers).
     #[serde(default)]
-    inputs: BTreeMap<String, Text>,
+    inputs: BTreeMap<Text, Text>,
     /// The constant of the reference standard's own pulse output, where the counter counts it
     /// beside the units' ("100000 imp/kWh"): a count's reference energy is then N_ref / k_ref.
     #[serde(default)]
@@ -490,8 +490,9 @@ fn counter(
     let edge_s = doc.optional_value("counter.edge", raw.edge.as_ref(), Dimension::Time);
     let mut inputs = Vec::new();
     for (position, input) in &raw.inputs {
+        let position = position.0.trim();
         let path = format!("counter.inputs.{position}");
-        let p = position.trim().parse::<usize>().ok();
+        let p = position.parse::<usize>().ok();
         if !p.is_some_and(|p| positions.iter().any(|q| q.number == p)) {
             doc.error(
                 &path,

@@ -141,8 +141,19 @@ fn station_summary(s: &Station) -> String {
         station::ReferenceRead::Scpi { port, .. } => format!("read over SCPI on {}", port.path),
         station::ReferenceRead::Operator => "typed by the operator".into(),
     };
+    let counter = match &s.counter {
+        None => "no counter for the test outputs".to_string(),
+        Some(c) => format!(
+            "counter {} on {}{}",
+            c.info.id,
+            c.port.path,
+            c.info.reference_constant.map_or(String::new(), |k| format!(
+                ", counting the reference standard's pulses at {k} imp/kWh"
+            ))
+        ),
+    };
     format!(
-        "{}: station {}, {}, {source}; reference {} ({reading}){}; {}\n",
+        "{}: station {}, {}, {source}; reference {} ({reading}){}; {counter}; {}\n",
         s.file,
         s.id,
         counted(s.positions.len(), "position"),

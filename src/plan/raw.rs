@@ -9,7 +9,7 @@ use std::fmt;
 
 /// A scalar kept as its text: YAML `2`, `2.5`, `true` and `"2 s"` all arrive as strings, so
 /// that the validator, not serde, says what is wrong with them.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, Eq, PartialOrd, Ord)]
 pub struct Text(pub String);
 
 impl<'de> Deserialize<'de> for Text {
