@@ -530,3 +530,48 @@ fn counter_sections_are_checked_where_they_are_written() {
         );
     }
 }
+
+/// `explain` tells a count as a count: the pulses, how they were counted, E = N / k, and the
+/// reference over the span they cover.
+#[test]
+fn explain_tells_a_count_of_pulses() {
+    let dir = temp_dir("pulse-explain");
+    let archive = dir.join("a.sqlite");
+    let out = dir.join("out");
+    let run = bin()
+        .args(["run", PLAN, "--quiet", "--out"])
+        .arg(&out)
+        .arg("--archive")
+        .arg(&archive)
+        .output()
+        .unwrap();
+    assert_eq!(run.status.code(), Some(1));
+    let records = records_in(&out);
+    let r = &records[0];
+    let (_, c) = pulse_check(r, "count-Ib");
+    let p = c.pulses.as_ref().unwrap();
+    let o = bin()
+        .args(["explain", "--archive"])
+        .arg(&archive)
+        .args([
+            &r.run_id,
+            &r.serial,
+            "count-Ib",
+            "active_energy",
+            "--channel",
+            "test_output",
+        ])
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(o.status.success(), "{text}");
+    assert!(
+        text.contains(&format!(
+            "pulses of the test output: 25 at 1000 imp/kWh, timed by the counter from the first pulse edge to the last, {} s; energy E = N / k = 25 × 1 Wh",
+            p.seconds
+        )),
+        "{text}"
+    );
+    assert!(text.contains("reference energy over the span the counted pulses cover"));
+    std::fs::remove_dir_all(&dir).unwrap();
+}

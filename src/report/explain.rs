@@ -119,7 +119,22 @@ fn readings(w: &mut String, c: &CheckRecord) {
                 .map_or(String::new(), |t| format!("  (answered within {t} s)"))
         );
     }
-    if c.quantity.is_register() {
+    if let Some(p) = &c.pulses {
+        let how = if p.method == "fixed_pulses" {
+            "timed by the counter from the first pulse edge to the last"
+        } else {
+            "counted over the gate from the first reading to the last"
+        };
+        let _ = writeln!(
+            w,
+            "   pulses of the test output: {} at {} imp/kWh, {how}, {} s; energy E = N / k = {} × {} Wh",
+            p.pulses,
+            p.meter_constant,
+            p.seconds,
+            p.pulses,
+            1000.0 / p.meter_constant
+        );
+    } else if c.quantity.is_register() {
         if let (Some(a), Some(b)) = (c.samples.first(), c.samples.last()) {
             let _ = writeln!(
                 w,
@@ -146,6 +161,16 @@ fn readings(w: &mut String, c: &CheckRecord) {
 
 fn reference(w: &mut String, s: &StepRecord, c: &CheckRecord) {
     let _ = writeln!(w, "\n2. The reference:");
+    if let Some(p) = c.pulses.as_ref()
+        && let (Some(n), Some(k)) = (p.reference_pulses, p.reference_constant)
+    {
+        let _ = writeln!(
+            w,
+            "   the reference standard's pulses over the same interval: {n} at {k} imp/kWh, E_ref = N_ref / k_ref = {} Wh",
+            c.reference.map_or("—".to_string(), |r| r.to_string())
+        );
+        return;
+    }
     match s.references.iter().find(|r| r.quantity == c.quantity) {
         Some(r) => {
             let _ = writeln!(
@@ -174,10 +199,12 @@ fn reference(w: &mut String, s: &StepRecord, c: &CheckRecord) {
     if let Some(r) = c.reference
         && c.quantity.is_register()
     {
-        let _ = writeln!(
-            w,
-            "   reference energy over the span the register's readings cover: {r}"
-        );
+        let span = if c.pulses.is_some() {
+            "the counted pulses cover"
+        } else {
+            "the register's readings cover"
+        };
+        let _ = writeln!(w, "   reference energy over the span {span}: {r}");
     }
 }
 
