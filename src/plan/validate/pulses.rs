@@ -205,11 +205,14 @@ pub(super) fn counting(
                 }
             };
             let due = count as f64 * every;
-            // Read often enough to see the count end within a tenth of its time.
+            // Read often enough to see the count end soon after its last pulse (the edges are
+            // timed by the counter, so how often it is read changes only the dead time), and
+            // seldom enough that at_most fits in the most samples a step takes.
             let interval_s = match timing.interval_s {
                 Some(i) if raw.interval.is_some() => i,
-                _ => (due / 10.0).clamp(0.2, 10.0),
-            };
+                _ => (due / 40.0).clamp(0.2, 5.0),
+            }
+            .max(at_most_s / f64::from(MAX_SAMPLES - 1));
             if interval_s <= 0.0 {
                 ctx.error(
                     &format!("{path}.interval"),
