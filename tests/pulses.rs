@@ -575,3 +575,34 @@ fn explain_tells_a_count_of_pulses() {
     assert!(text.contains("reference energy over the span the counted pulses cover"));
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// A gate read until decided: the counter is read at every sample, and the gate ends as soon as
+/// no unit's decision can change, before its longest (common practice for registers, applied
+/// to counts). Its verdicts are those of the full gate.
+#[test]
+fn a_gate_read_until_decided_ends_early_with_the_same_verdicts() {
+    let text = std::fs::read_to_string(PLAN).unwrap();
+    let until = text.replace(
+        "pulses: { method: fixed_time, resolution: 0.25 % }",
+        "pulses: { method: fixed_time, resolution: 0.25 % }\n    samples_until_decided: { min: 3, max: 11 }",
+    );
+    let full = Plan::from_text("full.yaml", &text).unwrap();
+    let until = Plan::from_text("until.yaml", &until).unwrap();
+    assert_eq!(until.steps[0].samples, 11);
+    assert_eq!(until.steps[0].interval_s, full.steps[0].interval_s);
+    let mut shorter = 0;
+    for seed in 1..=4 {
+        let a = run(&full, &SimConfig::new(seed, 4));
+        let b = run(&until, &SimConfig::new(seed, 4));
+        for (x, y) in a.iter().zip(&b) {
+            let (_, cx) = pulse_check(x, "gate-Imax");
+            let (_, cy) = pulse_check(y, "gate-Imax");
+            assert_eq!(cx.verdict, cy.verdict, "seed {seed}");
+            assert!(cy.samples.len() <= cx.samples.len());
+            if cy.samples.len() < cx.samples.len() {
+                shorter += 1;
+            }
+        }
+    }
+    assert!(shorter > 0, "no gate ended early");
+}

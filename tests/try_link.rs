@@ -186,3 +186,27 @@ fn a_port_that_is_not_there_is_named() {
     assert_eq!(o.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&o.stderr).contains("built-in simulator"));
 }
+
+/// A position the station does not have is named, with how many it has; nothing is opened.
+#[test]
+fn a_position_the_station_lacks_is_named() {
+    let station = "test-plans/station-example.yaml";
+    let o = bin()
+        .args([
+            "try-link",
+            "test-plans/demo-serial.yaml",
+            "--bench",
+            station,
+            "--position",
+            "9",
+        ])
+        .stdin(Stdio::null())
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{err}");
+    assert!(
+        err.contains("station EOL-2 has no position 9 (it has 4 positions)"),
+        "{err}"
+    );
+}
