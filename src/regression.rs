@@ -535,6 +535,6 @@ mod tests {
         assert_eq!(p(0.0372), "0.037");
         assert_eq!(p(0.00512), "0.0051");
         assert_eq!(p(5.7e-8), "<0.001");
-        assert_eq!(p(f64::NAN), "-");
+        assert_eq!(p(f64::NAN), "—");
     }
 }

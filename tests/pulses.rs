@@ -491,12 +491,18 @@ fn counter_sections_are_checked_where_they_are_written() {
     );
     let mapped = meterproof::bench::station::Station::from_text("s.yaml", &mapped).unwrap();
     assert_eq!(mapped.counter.unwrap().inputs, [(1, 3), (2, 4)]);
+    let scanned = good.replace(
+        "  timebase: 5 ppm\n",
+        "  timebase: 5 ppm\n  multiplexer: true\n",
+    );
+    let scanned = meterproof::bench::station::Station::from_text("s.yaml", &scanned).unwrap();
+    assert!(scanned.counter.unwrap().info.multiplexer);
     let bad = good
         .replace("count: 'TOT:COUN? (@{input})'", "count: 'TOT:COUN?'")
         .replace("stop: 'ABOR'", "stop: 'ABOR {input}'")
         .replace(
             "  timebase: 5 ppm\n",
-            "  timebase: 5 ppm\n  inputs: { 9: 1 }\n  reference_pulses: 100000 imp/kWh\n",
+            "  timebase: 5 ppm\n  inputs: { 9: 1 }\n  reference_pulses: 100000 imp/kWh\n  multiplexer: sometimes\n",
         );
     let e = meterproof::bench::station::Station::from_text("s.yaml", &bad).unwrap_err();
     let shown = e.to_string();
@@ -508,6 +514,7 @@ fn counter_sections_are_checked_where_they_are_written() {
         ),
         ("counter.inputs.9", "is not a position of this station"),
         ("counter.read.commands", "reference_count"),
+        ("counter.multiplexer", "write true or false"),
     ] {
         assert!(
             shown
@@ -592,4 +599,40 @@ fn a_gate_read_until_decided_ends_early_with_the_same_verdicts() {
         }
     }
     assert!(shorter > 0, "no gate ended early");
+}
+
+/// A scanning multiplexer (one measuring input switched from position to position): each unit
+/// is counted in its own turn under the same load, one window after another, and the verdicts
+/// are those of a counter with an input per position.
+#[test]
+fn a_multiplexed_counter_counts_the_units_in_turn() {
+    let plan = Plan::load(PLAN.as_ref()).unwrap();
+    let parallel = run(&plan, &SimConfig::new(1, 4));
+    let mut bench = SimBench::new(&SimConfig::new(1, 4)).into_bench();
+    if let Some(c) = bench.station.counter.as_mut() {
+        c.multiplexer = true;
+    }
+    let in_turn = exec::run(&plan, &mut bench, &ctx(), &mut Silent);
+    let statuses = |rs: &[UnitRecord]| rs.iter().map(|r| r.verdict.status).collect::<Vec<_>>();
+    assert_eq!(statuses(&in_turn), statuses(&parallel));
+    for step in ["gate-Imax", "count-Ib", "count-pf0.5"] {
+        let windows: Vec<(f64, f64)> = in_turn
+            .iter()
+            .map(|r| {
+                let (_, c) = pulse_check(r, step);
+                (c.samples[0].t_s, c.samples.last().unwrap().t_s)
+            })
+            .collect();
+        for pair in windows.windows(2) {
+            assert!(pair[1].0 >= pair[0].1, "{step}: {windows:?}");
+        }
+        for (a, b) in in_turn.iter().zip(&parallel) {
+            assert_eq!(
+                pulse_check(a, step).1.verdict,
+                pulse_check(b, step).1.verdict
+            );
+        }
+    }
+    assert!(in_turn[0].bench_time_s > parallel[0].bench_time_s + 3.0 * 392.0);
+    assert!(in_turn[0].station.counter.as_ref().unwrap().multiplexer);
 }

@@ -94,6 +94,10 @@ pub struct CounterInfo {
     /// interval, N_ref / k_ref.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub reference_constant: Option<f64>,
+    /// One measuring input switched from position to position (a scanning multiplexer): the
+    /// units are counted one after another.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub multiplexer: bool,
 }
 
 /// The commands of a counter with a line interface; `{inputs}` is a comma-separated list of

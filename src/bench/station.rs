@@ -130,6 +130,10 @@ struct RawCounter {
     /// beside the units' ("100000 imp/kWh"): a count's reference energy is then N_ref / k_ref.
     #[serde(default)]
     reference_pulses: Option<Text>,
+    /// `true` for one measuring input switched from position to position (a scanning
+    /// multiplexer): the units are then counted one after another.
+    #[serde(default)]
+    multiplexer: Option<Text>,
     read: RawCounterRead,
 }
 
@@ -505,6 +509,17 @@ fn counter(
             _ => doc.error(&path, format!("\"{}\" is not an input number", input.0)),
         }
     }
+    let multiplexer = match raw.multiplexer.as_ref().map(|t| t.0.trim()) {
+        None | Some("false") => Some(false),
+        Some("true") => Some(true),
+        Some(other) => {
+            doc.error(
+                "counter.multiplexer",
+                format!("\"{other}\": write true or false"),
+            );
+            None
+        }
+    };
     let RawCounterRead::Scpi(scpi) = &raw.read;
     let fields = PortFields {
         port: &scpi.port,
@@ -572,6 +587,7 @@ fn counter(
             timebase: timebase?,
             edge_s: edge_s?,
             reference_constant,
+            multiplexer: multiplexer?,
         },
         port: port?,
         commands: CounterCommands {

@@ -172,6 +172,7 @@ struct Unit {
 }
 
 /// What `run_step` needs to know about the step beyond the plan.
+#[derive(Clone, Copy)]
 struct StepContext<'a> {
     /// How an adaptive settling went; `None` for a fixed settle time.
     settle: Option<settle::SettleOutcome>,
@@ -203,6 +204,40 @@ struct StepOutcome {
     stop: Option<String>,
     /// Why the step was set aside for every unit.
     set_aside: Option<String>,
+}
+
+/// A step counting pulses through a scanning multiplexer (one measuring input switched from
+/// position to position): each unit is counted in turn under the same load, its own window,
+/// references and record; a stop before a unit's turn leaves its step not run.
+fn count_in_turn(
+    step: &Step,
+    sc: &StepContext,
+    bench: &mut Bench,
+    units: &mut [Unit],
+    judge: &decide::Judge,
+) -> StepOutcome {
+    let mut outcome = StepOutcome::default();
+    for turn in 0..sc.to_run.len() {
+        if !sc.to_run[turn] {
+            continue;
+        }
+        if let Some(reason) = &outcome.stop {
+            units[turn]
+                .record
+                .steps
+                .push(not_run(step, &format!("not run: {reason}")));
+            continue;
+        }
+        let only: Vec<bool> = (0..sc.to_run.len()).map(|u| u == turn).collect();
+        let one = StepContext {
+            to_run: &only,
+            ..*sc
+        };
+        let o = run_step(step, &one, bench, units, judge);
+        outcome.set_aside = o.set_aside.or(outcome.set_aside);
+        outcome.stop = o.stop;
+    }
+    outcome
 }
 
 /// Runs `plan` on `bench` and returns one record per position.
@@ -344,7 +379,17 @@ pub fn run_with(
             base_current: plan.ratings.base_current,
             restarts_before: &restarts_before,
         };
-        let outcome = run_step(step, &ctx_step, bench, &mut units, &judge);
+        let multiplexed = step.pulses.is_some()
+            && bench
+                .station
+                .counter
+                .as_ref()
+                .is_some_and(|c| c.multiplexer);
+        let outcome = if multiplexed {
+            count_in_turn(step, &ctx_step, bench, &mut units, &judge)
+        } else {
+            run_step(step, &ctx_step, bench, &mut units, &judge)
+        };
         if let Some(reason) = &outcome.set_aside {
             reporter.event(&Event::StepSetAside { step, reason });
         }

@@ -91,6 +91,7 @@ pub fn sim_counter_info() -> crate::bench::counter::CounterInfo {
         timebase: Some(1e-6),
         edge_s: Some(1e-6),
         reference_constant: None,
+        multiplexer: false,
     }
 }
 
