@@ -636,3 +636,54 @@ fn a_multiplexed_counter_counts_the_units_in_turn() {
     assert!(in_turn[0].bench_time_s > parallel[0].bench_time_s + 3.0 * 392.0);
     assert!(in_turn[0].station.counter.as_ref().unwrap().multiplexer);
 }
+
+/// A counter that garbles a reply now and then is asked again and the run gives the built-in
+/// verdicts; one that dies leaves every unit's count incomplete, named, and keeps the readings
+/// the links took at the same steps. Nothing is accepted that was not counted.
+#[test]
+fn a_faulty_counter_loses_nothing_and_accepts_nothing_uncounted() {
+    let dir = temp_dir("pulse-faults");
+    let plan_path = served_plan(&dir);
+    let served = serve_at(&dir, "40", &["--counter-fault", "garble-every=25"]);
+    let records = run_served(&served.station, &plan_path, &dir.join("garbled"));
+    for r in &records {
+        let (_, c) = pulse_check(r, "count-Ib");
+        assert!(c.evaluation.is_some(), "{:?}", c.note);
+    }
+    drop(served);
+    let served = serve_at(&dir, "40", &["--counter-fault", "die-after=30"]);
+    let out = dir.join("dead");
+    let output = bin()
+        .args(["run", "--quiet", "--unattended", "--bench"])
+        .arg(&served.station)
+        .arg("--out")
+        .arg(&out)
+        .arg(&plan_path)
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&output.stdout).to_string()
+        + &String::from_utf8_lossy(&output.stderr);
+    assert_eq!(output.status.code(), Some(3), "{text}");
+    for r in records_in(&out) {
+        assert_eq!(r.verdict.status, UnitStatus::Incomplete, "{text}");
+        let (s, _) = pulse_check(&r, "count-Ib");
+        assert_eq!(s.status, StepStatus::Incomplete);
+        assert!(
+            s.reason
+                .as_deref()
+                .unwrap_or("")
+                .contains("pulse counter: no reply"),
+            "{:?}",
+            s.reason
+        );
+        // The link's power readings of that step are kept.
+        let power = s
+            .checks
+            .iter()
+            .find(|c| c.channel == "L")
+            .expect("the power check");
+        assert!(!power.samples.is_empty());
+    }
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}

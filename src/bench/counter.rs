@@ -45,6 +45,11 @@ pub trait PulseCounter: Send {
     fn read(&mut self, position: usize) -> Result<CounterReading, BenchError>;
     /// Ends counting on every input.
     fn stop(&mut self) -> Result<(), BenchError>;
+    /// How long the attempt that answered the last read took, in real seconds: after a retry
+    /// the count was latched then, not when the first attempt was sent. `None` when instant.
+    fn last_answered_in_s(&self) -> Option<f64> {
+        None
+    }
 }
 
 /// The counter, shared by the positions' sampling threads: every operation takes the lock for
@@ -71,6 +76,13 @@ impl CounterHandle {
 
     pub fn read(&self, position: usize) -> Result<CounterReading, BenchError> {
         self.lock().read(position)
+    }
+
+    /// A read with how long its answered attempt took (real seconds), under one lock.
+    pub fn read_timed(&self, position: usize) -> Result<(CounterReading, Option<f64>), BenchError> {
+        let mut counter = self.lock();
+        let reading = counter.read(position)?;
+        Ok((reading, counter.last_answered_in_s()))
     }
 
     pub fn stop(&self) -> Result<(), BenchError> {
@@ -277,6 +289,10 @@ impl<W: Wire> PulseCounter for ScpiCounter<W> {
     fn stop(&mut self) -> Result<(), BenchError> {
         let stop = self.commands.stop.clone();
         self.channel.send_only(&stop).map_err(counter_error)
+    }
+
+    fn last_answered_in_s(&self) -> Option<f64> {
+        self.channel.last_answered_in().map(|d| d.as_secs_f64())
     }
 }
 

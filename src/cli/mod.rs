@@ -173,6 +173,10 @@ struct SimMeterArgs {
     /// (imp/kWh): counts of the test output are then set against the standard's pulses.
     #[arg(long, value_name = "IMP_PER_KWH")]
     reference_pulses: Option<f64>,
+    /// A fault of the served counter: garble-every=N (every Nth reply is noise) or die-after=N
+    /// (no reply after N requests).
+    #[arg(long, value_name = "KIND=N")]
+    counter_fault: Option<String>,
 }
 
 #[derive(clap::Args)]

@@ -48,6 +48,10 @@ pub(super) fn sim_meter(args: &SimMeterArgs) -> Result<i32, CliError> {
         }
         config.reference_pulses = Some(k);
     }
+    if let Some(text) = &args.counter_fault {
+        config.counter_faults = crate::bench::sim::test_output::CounterFaults::parse(text)
+            .map_err(|e| CliError::Usage(format!("--counter-fault: {e}")))?;
+    }
     if let Some(text) = &args.firmware {
         config.firmware = crate::bench::sim::FirmwareChange::parse(text)
             .map_err(|e| CliError::Usage(format!("--firmware: {e}")))?;

@@ -208,8 +208,15 @@ fn read_counter(s: Sampler, slot: usize, w: usize, series: &mut Series) -> Resul
     };
     let position = s.numbers.get(slot).copied().unwrap_or(slot + 1);
     let asked = s.clock.now_s();
-    let reading = counter.read(position).map_err(|e| e.to_string())?;
+    let (reading, attempt_real_s) = counter.read_timed(position).map_err(|e| e.to_string())?;
     let answered = s.clock.now_s();
+    // After a retry the count was latched during the attempt that was answered: the reading
+    // stands for that attempt's time, not for the whole wait.
+    let took = attempt_real_s
+        .map_or(answered - asked, |real| real * s.clock.scale())
+        .min(answered - asked)
+        .max(0.0);
+    let latched = answered - took / 2.0;
     let wh = |n: u64| n as f64 * pulses.pulse_wh();
     let taken = &mut series.samples[w];
     // Each new sample with the reference standard's count latched with it, where there is one.
@@ -217,9 +224,9 @@ fn read_counter(s: Sampler, slot: usize, w: usize, series: &mut Series) -> Resul
     match pulses.method {
         PulseMethod::FixedTime { .. } => new.push((
             Sample {
-                t_s: (asked + answered) / 2.0,
+                t_s: latched,
                 value: wh(reading.pulses),
-                took_s: (answered > asked).then_some(answered - asked),
+                took_s: (took > 0.0).then_some(took),
             },
             reading.reference_pulses,
         )),

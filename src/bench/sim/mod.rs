@@ -153,6 +153,8 @@ pub struct SimConfig {
     /// The counter also counts the reference standard's pulse output at this constant
     /// (imp/kWh), an error calculator's way.
     pub reference_pulses: Option<f64>,
+    /// Faults of the served counter.
+    pub counter_faults: test_output::CounterFaults,
 }
 
 impl SimConfig {
@@ -167,6 +169,7 @@ impl SimConfig {
             firmware: FirmwareChange::default(),
             noise_stream_offset: 0,
             reference_pulses: None,
+            counter_faults: Default::default(),
         }
     }
 }

@@ -101,7 +101,8 @@ impl SimStation {
             }
         }
         let (source, reference) = sim.instruments();
-        let counter = PtyDevice::spawn(ScpiCounterDevice::new(sim.counter()))?;
+        let counter =
+            PtyDevice::spawn(ScpiCounterDevice::new(sim.counter(), config.counter_faults))?;
         Ok(SimStation {
             meters,
             ports,
@@ -148,7 +149,7 @@ impl SimStation {
             s.push_str(&format!("      {}: '{}'\n", q.name(), query));
         }
         s.push_str(&format!(
-            "counter:\n  id: SIM-CNT-1\n  description: simulated pulse counter, an input per position\n  timebase: 1 ppm\n  edge: 1 µs\n  read:\n    kind: scpi\n    port: {}\n    timeout: 2 s\n    commands:\n",
+            "counter:\n  id: SIM-CNT-1\n  description: simulated pulse counter, an input per position\n  timebase: 1 ppm\n  edge: 1 µs\n  read:\n    kind: scpi\n    port: {}\n    timeout: 500 ms\n    commands:\n",
             self.counter.path
         ));
         for (name, command) in COUNTER_COMMANDS {

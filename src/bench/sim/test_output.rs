@@ -188,6 +188,38 @@ impl PulseCounter for SimCounter {
     }
 }
 
+/// Faults the served counter can be told to have.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct CounterFaults {
+    /// Every Nth query is answered with noise.
+    pub garble_every: Option<u64>,
+    /// After N requests the counter answers nothing more.
+    pub die_after: Option<u64>,
+}
+
+impl CounterFaults {
+    /// Reads `garble-every=N` or `die-after=N`.
+    pub fn parse(text: &str) -> Result<CounterFaults, String> {
+        let help = "write a counter fault as garble-every=N or die-after=N";
+        let (kind, n) = text
+            .split_once('=')
+            .ok_or_else(|| format!("\"{text}\": {help}"))?;
+        let n: u64 = n
+            .trim()
+            .parse()
+            .ok()
+            .filter(|n| *n > 0)
+            .ok_or_else(|| format!("\"{n}\" is not a count above 0: {help}"))?;
+        let mut f = CounterFaults::default();
+        match kind.trim() {
+            "garble-every" => f.garble_every = Some(n),
+            "die-after" => f.die_after = Some(n),
+            other => return Err(format!("unknown counter fault \"{other}\": {help}")),
+        }
+        Ok(f)
+    }
+}
+
 /// The simulated counter on a port, speaking this project's SCPI-style commands:
 /// `TOT:STAR (@1,2)`, `TOT:COUN? (@1)`, `TINT:ARM (@1,2),25`, `TINT:STAT? (@1)`, `ABOR`, and
 /// `REF:COUN? (@1)` (the reference standard's pulses latched with input 1's last reading).
@@ -197,6 +229,8 @@ pub struct ScpiCounterDevice {
     errors: Vec<&'static str>,
     /// The reference's pulses latched with each input's last reading.
     latched: std::collections::BTreeMap<usize, u64>,
+    faults: CounterFaults,
+    requests: u64,
 }
 
 /// The station file's counter commands for the simulated counter.
@@ -209,12 +243,14 @@ pub const COUNTER_COMMANDS: [(&str, &str); 5] = [
 ];
 
 impl ScpiCounterDevice {
-    pub fn new(counter: SimCounter) -> ScpiCounterDevice {
+    pub fn new(counter: SimCounter, faults: CounterFaults) -> ScpiCounterDevice {
         ScpiCounterDevice {
             counter,
             armed_at_s: 0.0,
             errors: Vec::new(),
             latched: Default::default(),
+            faults,
+            requests: 0,
         }
     }
 
@@ -241,6 +277,22 @@ fn channel_list(text: &str) -> Option<Vec<usize>> {
 
 impl LineDevice for ScpiCounterDevice {
     fn handle(&mut self, request: &str) -> Vec<String> {
+        self.requests += 1;
+        if self.faults.die_after.is_some_and(|n| self.requests > n) {
+            return Vec::new();
+        }
+        let reply = self.answer(request);
+        match self.faults.garble_every {
+            Some(n) if self.requests.is_multiple_of(n) && !reply.is_empty() => {
+                vec!["#?!\u{7f}".to_string()]
+            }
+            _ => reply,
+        }
+    }
+}
+
+impl ScpiCounterDevice {
+    fn answer(&mut self, request: &str) -> Vec<String> {
         if let Some(reply) = super::instruments::common(
             request,
             "Tallowmere Test Systems,SIM-COUNTER,SIM-CNT-1,1.0",
