@@ -240,24 +240,19 @@ fn check_warns_when_a_resolution_is_out_of_reach() {
     std::fs::remove_dir_all(&dir).unwrap();
 }
 
+/// `plan` with its `link:` block replaced by `donor`'s (each runs to the `decision:` key).
+fn with_link_of(plan: &str, donor: &str) -> String {
+    let block = |t: &str| (t.find("\nlink:").unwrap(), t.find("\ndecision:").unwrap());
+    let ((a, b), (c, d)) = (block(plan), block(donor));
+    format!("{}{}{}", &plan[..a], &donor[c..d], &plan[b..])
+}
+
 /// The plan with its link replaced by the serial one of `demo-serial.yaml`, its gate shortened
 /// and held to 5 % (the ±1-pulse term of 100 pulses leaves no acceptance zone within a class 1
 /// limit), and its starting test left out: a station runs in real time.
 fn served_plan(dir: &std::path::Path) -> std::path::PathBuf {
     let serial = std::fs::read_to_string("test-plans/demo-serial.yaml").unwrap();
-    let link_start = serial.find("\nlink:").unwrap();
-    let link_end = serial.find("\ndecision:").unwrap();
-    let text = std::fs::read_to_string(PLAN).unwrap();
-    let (a, b) = (
-        text.find("\nlink:").unwrap(),
-        text.find("\ndecision:").unwrap(),
-    );
-    let mut text = format!(
-        "{}{}{}",
-        &text[..a],
-        &serial[link_start..link_end],
-        &text[b..]
-    );
+    let mut text = with_link_of(&std::fs::read_to_string(PLAN).unwrap(), &serial);
     text = text.replace(
         "pulses: { method: fixed_time, resolution: 0.25 % }\n    checks:\n      - { quantity: active_energy, channel: test_output, tolerance: { class: true } }",
         "pulses: { method: fixed_time, gate: 100 s }\n    checks:\n      - { quantity: active_energy, channel: test_output, tolerance: { percent: 5 % } }",
@@ -316,17 +311,10 @@ fn a_served_counter_gives_the_builtin_verdicts() {
         Some("SIM-CNT-1")
     );
     // The built-in bench on the same plan (the sim link), same seed.
-    let builtin_text = std::fs::read_to_string(&plan_path).unwrap();
-    let own = std::fs::read_to_string(PLAN).unwrap();
-    let (a, b) = (
-        own.find("\nlink:").unwrap(),
-        own.find("\ndecision:").unwrap(),
+    let builtin_text = with_link_of(
+        &std::fs::read_to_string(&plan_path).unwrap(),
+        &std::fs::read_to_string(PLAN).unwrap(),
     );
-    let (c, d) = (
-        builtin_text.find("\nlink:").unwrap(),
-        builtin_text.find("\ndecision:").unwrap(),
-    );
-    let builtin_text = format!("{}{}{}", &builtin_text[..c], &own[a..b], &builtin_text[d..]);
     let builtin = run(
         &Plan::from_text("builtin.yaml", &builtin_text).unwrap(),
         &SimConfig::new(1, 4),

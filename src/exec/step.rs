@@ -315,10 +315,7 @@ fn sample(plan: &SamplePlan, sc: &StepContext, bench: &mut Bench) -> Sampled {
         numbers: &numbers,
     };
     // Timing a number of pulses ends once every unit has sent them.
-    let counting = matches!(
-        step.pulses.as_ref().map(|p| p.method),
-        Some(crate::plan::PulseMethod::FixedPulses { .. })
-    );
+    let counting = step.times_pulses();
     let mut early: Option<(References, (f64, f64))> = None;
     let reference = &mut bench.reference;
     let mut stop_rule = |n: u32, all: &[sampling::Series], window: (f64, f64)| -> bool {
@@ -371,11 +368,7 @@ fn sample(plan: &SamplePlan, sc: &StepContext, bench: &mut Bench) -> Sampled {
 /// took.
 fn as_sampled(step: &Step, series: &[sampling::Series]) -> Step {
     let mut evaluated = step.clone();
-    let counted = matches!(
-        step.pulses.as_ref().map(|p| p.method),
-        Some(crate::plan::PulseMethod::FixedPulses { .. })
-    );
-    if step.sequential.is_some() || counted {
+    if step.sequential.is_some() || step.times_pulses() {
         evaluated.samples = series
             .iter()
             .map(|s| s.samples.first().map_or(0, Vec::len))

@@ -333,6 +333,15 @@ impl Step {
         self.settle_s + window
     }
 
+    /// Whether the step times a number of pulses (and so samples until every unit has sent
+    /// them, not for a fixed count).
+    pub fn times_pulses(&self) -> bool {
+        matches!(
+            self.pulses.as_ref().map(|p| p.method),
+            Some(PulseMethod::FixedPulses { .. })
+        )
+    }
+
     /// From the first sample to the last.
     pub fn sampling_window_s(&self) -> f64 {
         f64::from(self.samples.saturating_sub(1)) * self.interval_s
