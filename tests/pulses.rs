@@ -675,3 +675,28 @@ fn a_faulty_counter_loses_nothing_and_accepts_nothing_uncounted() {
     drop(served);
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// sim-meter's counter options refuse what they cannot use, saying which.
+#[test]
+fn sim_meter_refuses_a_counter_option_it_cannot_use() {
+    for (flag, value, says) in [
+        (
+            "--reference-pulses",
+            "0",
+            "--reference-pulses: a constant above 0 imp/kWh",
+        ),
+        (
+            "--counter-fault",
+            "explode=3",
+            "--counter-fault: unknown counter fault",
+        ),
+    ] {
+        let o = bin()
+            .args(["sim-meter", "--for", "1 s", flag, value])
+            .output()
+            .unwrap();
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert_eq!(o.status.code(), Some(2), "{flag}: {err}");
+        assert!(err.contains(says), "{flag}: {err}");
+    }
+}

@@ -359,3 +359,50 @@ impl ScpiCounterDevice {
         })
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The served counter's faults read as written; anything else is refused and says how to
+    /// write one.
+    #[test]
+    fn counter_faults_read_as_written() {
+        assert_eq!(
+            CounterFaults::parse("garble-every=9").unwrap().garble_every,
+            Some(9)
+        );
+        assert_eq!(
+            CounterFaults::parse("die-after=30").unwrap().die_after,
+            Some(30)
+        );
+        for bad in ["garble-every", "die-after=0", "explode=3", "die-after=x"] {
+            let e = CounterFaults::parse(bad).unwrap_err();
+            assert!(e.contains("garble-every=N or die-after=N"), "{bad}: {e}");
+        }
+    }
+
+    /// The built-in counter's inputs are the positions: a position it lacks, or one not
+    /// started, is named.
+    #[test]
+    fn a_position_without_an_input_is_named() {
+        let sim = super::super::SimBench::new(&super::super::SimConfig::new(1, 2));
+        let mut counter = sim.counter();
+        assert!(
+            counter
+                .start(&[3], CounterMode::Totalize)
+                .unwrap_err()
+                .to_string()
+                .contains("no input for position 3")
+        );
+        counter.start(&[1], CounterMode::Totalize).unwrap();
+        assert!(
+            counter
+                .read(2)
+                .unwrap_err()
+                .to_string()
+                .contains("input 2 was not started")
+        );
+        assert_eq!(counter.read(1).unwrap().pulses, 0);
+    }
+}
