@@ -20,6 +20,7 @@ use std::path::Path;
 use std::sync::Mutex;
 
 mod backend;
+mod chain;
 mod recorder;
 pub mod seal;
 mod sqlite;

@@ -45,7 +45,50 @@ pub enum Entry<'a> {
     Legacy,
 }
 
-impl Entry<'_> {
+/// The columns of a chain row that say what an entry seals (every backend stores these).
+pub struct EntryColumns<'a> {
+    pub run_id: &'a str,
+    pub position: Option<i64>,
+    pub step_index: Option<i64>,
+    pub attempt: Option<i64>,
+    pub unit_seq: Option<i64>,
+}
+
+impl<'a> Entry<'a> {
+    pub fn columns(&self) -> EntryColumns<'a> {
+        let (run_id, position, step_index, attempt, unit_seq) = match *self {
+            Entry::Run { run_id } | Entry::End { run_id } => (run_id, None, None, None, None),
+            Entry::Legacy => ("", None, None, None, None),
+            Entry::Seen {
+                run_id, position, ..
+            } => (run_id, Some(position as i64), None, None, None),
+            Entry::Step {
+                run_id,
+                position,
+                step_index,
+                attempt,
+            } => (
+                run_id,
+                Some(position as i64),
+                Some(step_index as i64),
+                Some(i64::from(attempt)),
+                None,
+            ),
+            Entry::Unit {
+                run_id,
+                position,
+                unit_seq,
+            } => (run_id, Some(position as i64), None, None, Some(unit_seq)),
+        };
+        EntryColumns {
+            run_id,
+            position,
+            step_index,
+            attempt,
+            unit_seq,
+        }
+    }
+
     pub fn kind(&self) -> &'static str {
         match self {
             Entry::Run { .. } => "run",

@@ -15,6 +15,8 @@
 //! same rule for a position's newest record (`NEWEST`); they stay side by side so that rule is
 //! written once.
 
+use super::chain as shared;
+use super::chain::reassemble;
 use super::seal;
 use super::{
     ArchiveError, Backend, HistoryRow, RunFilter, RunRow, RunState, RunSummary, SelectBy,
@@ -183,13 +185,6 @@ fn insert_unit_row(conn: &Connection, r: &UnitRecord) -> rusqlite::Result<()> {
 
 const INSERT_READING: &str = "INSERT INTO readings (run_id, position, step_index, attempt, quantity, channel, raw, t_s, value, took_s)
      VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10)";
-
-/// A stored (stripped) unit record with its samples put back from the readings: the same
-/// reassembly `verify` hashes (`chain::unit_json`), read into the record type.
-fn reassemble(conn: &Connection, text: &str) -> Result<UnitRecord, ArchiveError> {
-    serde_json::from_value(chain::unit_json(conn, text)?)
-        .map_err(|e| ArchiveError::Corrupt(e.to_string()))
-}
 
 /// Writes one position's record of one step, without its samples (those are the readings),
 /// and seals it, samples and all, in the chain. A step row is never replaced: a step run again
@@ -446,7 +441,7 @@ impl Backend for Sqlite {
                 run.started_at
             ],
         )?;
-        let content = chain::run_content(&tx, &run.run_id)?.expect("the run was just written");
+        let content = shared::run_content(&*tx, &run.run_id)?.expect("the run was just written");
         chain::append(
             &tx,
             &seal::Entry::Run {
@@ -579,7 +574,7 @@ impl Backend for Sqlite {
             if status == "done" {
                 let corrupt = |e: serde_json::Error| ArchiveError::Corrupt(e.to_string());
                 let mut json: serde_json::Value = serde_json::from_str(&text).map_err(corrupt)?;
-                chain::fill_step_json(conn, run_id, position as i64, index as i64, &mut json)?;
+                shared::fill_step_json(conn, run_id, position as i64, index as i64, &mut json)?;
                 let record: StepRecord = serde_json::from_value(json).map_err(corrupt)?;
                 resume
                     .done
@@ -691,16 +686,6 @@ impl Backend for Sqlite {
     /// where one is given.
     fn verify(&self, anchor: Option<&str>) -> Result<Verification, ArchiveError> {
         let conn = &self.conn;
-        let legacy_upto: i64 = conn
-            .query_row(
-                "SELECT value FROM meta WHERE key = 'legacy_units_upto'",
-                [],
-                |r| r.get::<_, String>(0),
-            )
-            .optional()?
-            .and_then(|v| v.parse().ok())
-            .unwrap_or(0);
-        let legacy_runs = chain::legacy_runs(conn)?;
         if !has_table(conn, "chain")? {
             // A version-1 archive opened read-only: it has only its records' own chain.
             return Err(ArchiveError::Open {
@@ -710,7 +695,7 @@ impl Backend for Sqlite {
                     .into(),
             });
         }
-        chain::verify(conn, legacy_upto, &legacy_runs, anchor)
+        shared::verify(conn, anchor)
     }
 
     /// Appends unit records, sealing each in the chain, in one transaction (one commit for a

@@ -69,7 +69,7 @@ pub(super) fn has_table(conn: &Connection, name: &str) -> rusqlite::Result<bool>
 /// lose their one-record-per-position constraint (rows, sequence numbers and hashes are copied
 /// as they are), and what was there is marked as written before the chain, with its own record
 /// chain's head, so `verify` checks it the old way and sees anything added since.
-pub(super) fn migrate_from_1(conn: &Connection) -> rusqlite::Result<()> {
+pub(super) fn migrate_from_1(conn: &Connection) -> Result<(), ArchiveError> {
     conn.execute_batch(
         "
         ALTER TABLE units RENAME TO units_v1;
@@ -113,7 +113,7 @@ pub(super) fn migrate_from_1(conn: &Connection) -> rusqlite::Result<()> {
             head.unwrap_or_else(|| format!("0:{}", seal::GENESIS)),
         )?;
         conn.execute("DELETE FROM meta WHERE key = 'chain_head'", [])?;
-        let content = chain::legacy_content(conn)?.expect("the markers were just written");
+        let content = shared::legacy_content(conn)?.expect("the markers were just written");
         chain::append(conn, &seal::Entry::Legacy, &content)?;
     }
     Ok(())
