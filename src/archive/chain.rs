@@ -148,6 +148,9 @@ pub fn run_content(t: &dyn Tables, run_id: &str) -> Result<Option<String>, Archi
     }))
 }
 
+/// Samples as JSON values, by (quantity, channel, raw).
+type SeriesOf = BTreeMap<(String, String, bool), Vec<Value>>;
+
 /// The readings of one attempt, by (quantity, channel, raw), as sample values.
 fn readings_of(
     t: &dyn Tables,
@@ -155,8 +158,8 @@ fn readings_of(
     position: i64,
     step_index: i64,
     attempt: i64,
-) -> Result<BTreeMap<(String, String, bool), Vec<Value>>, ArchiveError> {
-    let mut out: BTreeMap<(String, String, bool), Vec<Value>> = BTreeMap::new();
+) -> Result<SeriesOf, ArchiveError> {
+    let mut out = SeriesOf::new();
     for r in t.readings(run_id, position, step_index, attempt)? {
         let mut sample = json!({"t_s": r.t_s, "value": r.value});
         if let Some(took) = r.took_s {
