@@ -31,9 +31,10 @@
 
 use crate::archive::ArchiveError;
 use crate::archive::seal::*;
+use crate::exec::{ReadingKey, Resume};
 use crate::plan::Quantity;
 use crate::plan::sha256_hex;
-use crate::record::UnitRecord;
+use crate::record::{Sample, StepRecord, StepStatus, UnitRecord};
 use serde_json::{Value, json};
 use std::collections::{BTreeMap, BTreeSet};
 
@@ -125,6 +126,113 @@ pub trait Tables {
     fn legacy_units(&self, upto: i64) -> Result<Vec<LegacyUnit>, ArchiveError>;
     /// Runs opened before the chain existed (none in an archive created with it).
     fn legacy_runs(&self) -> Result<BTreeSet<String>, ArchiveError>;
+}
+
+// ---- The stored forms: what a backend writes ----
+
+/// How a step's status is stored.
+pub fn status_word(s: StepStatus) -> &'static str {
+    match s {
+        StepStatus::Done => "done",
+        StepStatus::Incomplete => "incomplete",
+        StepStatus::NotRun => "not_run",
+    }
+}
+
+/// The record without its samples, which the archive keeps as readings.
+pub fn stripped(record: &UnitRecord) -> UnitRecord {
+    let mut r = record.clone();
+    for s in &mut r.steps {
+        strip_step(s);
+    }
+    r
+}
+
+fn strip_step(s: &mut StepRecord) {
+    for c in &mut s.checks {
+        c.samples.clear();
+    }
+    if let Some(p) = &mut s.calibration_point {
+        p.samples.clear();
+    }
+}
+
+/// A step record's stored text: without its samples (those are the readings).
+pub fn stored_step(record: &StepRecord) -> String {
+    let mut r = record.clone();
+    strip_step(&mut r);
+    serde_json::to_string(&r).expect("a step record serialises")
+}
+
+/// Every sample of a finished record as a reading to store, with its key (checks sharing a
+/// reading share its rows).
+pub fn readings_of_record(r: &UnitRecord) -> Vec<(ReadingKey, &Sample)> {
+    let mut out = Vec::new();
+    for (index, step) in r.steps.iter().enumerate() {
+        let series = step
+            .checks
+            .iter()
+            .map(|c| (c.quantity, &c.channel, false, &c.samples))
+            .chain(
+                step.calibration_point
+                    .iter()
+                    .map(|p| (p.quantity, &p.channel, true, &p.samples)),
+            );
+        let mut seen = Vec::new();
+        for (quantity, channel, raw, samples) in series {
+            if seen.contains(&(quantity, channel, raw)) {
+                continue;
+            }
+            seen.push((quantity, channel, raw));
+            for s in samples {
+                let key = ReadingKey {
+                    position: r.position,
+                    step_index: index,
+                    attempt: step.attempt,
+                    quantity,
+                    channel: channel.clone(),
+                    raw,
+                };
+                out.push((key, s));
+            }
+        }
+    }
+    out
+}
+
+/// Whether a record says nothing new about its position beyond the newest stored one (a
+/// resumed run's unit that had finished before the interruption): it is not stored twice.
+pub fn same_as_stored(newest_text: Option<&str>, record: &UnitRecord) -> bool {
+    newest_text
+        .and_then(|t| serde_json::from_str::<UnitRecord>(t).ok())
+        .is_some_and(|old| old.serial == record.serial && old.steps == stripped(record).steps)
+}
+
+/// Adds a run's stored step rows (position, step index, attempt, status, record text, in that
+/// order) to what a resume needs: the highest attempt of each step and the records of the
+/// steps done, with their samples put back.
+pub fn resume_steps(
+    t: &dyn Tables,
+    run_id: &str,
+    rows: Vec<(usize, usize, u32, String, String)>,
+    resume: &mut Resume,
+) -> Result<(), ArchiveError> {
+    for (position, index, attempt, status, text) in rows {
+        let entry = resume.attempts.entry((position, index)).or_insert(0);
+        *entry = (*entry).max(attempt);
+        if status == "done" {
+            let corrupt = |e: serde_json::Error| ArchiveError::Corrupt(e.to_string());
+            let mut json: Value = serde_json::from_str(&text).map_err(corrupt)?;
+            fill_step_json(t, run_id, position as i64, index as i64, &mut json)?;
+            let record: StepRecord = serde_json::from_value(json).map_err(corrupt)?;
+            resume
+                .done
+                .entry(position)
+                .or_default()
+                .insert(index, record);
+        }
+    }
+    Ok(())
 }
 
 // ---- Content, as written and as recomputed from the tables ----

@@ -21,11 +21,13 @@ use std::sync::Mutex;
 
 mod backend;
 mod chain;
+mod pg;
 mod recorder;
 pub mod seal;
 mod sqlite;
 
 pub use backend::Backend;
+pub use pg::{PG_SCHEMA_VERSION, Postgres};
 pub use recorder::RunRecorder;
 pub use seal::{Failure, GENESIS, Verification};
 pub use sqlite::{SCHEMA_VERSION, Sqlite};
@@ -36,6 +38,8 @@ pub enum ArchiveError {
     Open { path: String, why: String },
     #[error("archive: {0}")]
     Sql(#[from] rusqlite::Error),
+    #[error("archive: {}", postgres_message(.0))]
+    Postgres(#[from] postgres::Error),
     #[error("archive: a stored record does not parse: {0}")]
     Corrupt(String),
     #[error("archive: {0}")]
@@ -46,6 +50,50 @@ pub enum ArchiveError {
     Newer(i64),
     #[error("{path} is not a meterproof archive: {why}")]
     NotAnArchive { path: String, why: String },
+}
+
+/// What the PostgreSQL server said, rather than the client's summary of it ("db error").
+fn postgres_message(e: &postgres::Error) -> String {
+    match e.as_db_error() {
+        Some(db) => format!("{} ({})", db.message(), db.code().code()),
+        None => e.to_string(),
+    }
+}
+
+/// Where an archive is: an SQLite file, or a PostgreSQL database named by a libpq-style URL.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Location {
+    Sqlite(std::path::PathBuf),
+    Postgres(String),
+}
+
+impl Location {
+    /// `postgres://...` or `postgresql://...` is a database; anything else a file path.
+    pub fn parse(text: &str) -> Location {
+        let lower = text.to_ascii_lowercase();
+        if lower.starts_with("postgres://") || lower.starts_with("postgresql://") {
+            Location::Postgres(text.to_string())
+        } else {
+            Location::Sqlite(std::path::PathBuf::from(text))
+        }
+    }
+}
+
+impl std::str::FromStr for Location {
+    type Err = std::convert::Infallible;
+    fn from_str(text: &str) -> Result<Location, Self::Err> {
+        Ok(Location::parse(text))
+    }
+}
+
+impl std::fmt::Display for Location {
+    /// The location as it may be shown: a database's password is never printed.
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            Location::Sqlite(p) => write!(f, "{}", p.display()),
+            Location::Postgres(url) => f.write_str(&pg::redacted(url)),
+        }
+    }
 }
 
 /// A run as the archive keeps it.
@@ -146,6 +194,22 @@ impl Archive {
         Ok(Archive::with(Box::new(Sqlite::open(path)?)))
     }
 
+    /// Opens (or creates) the archive at `location`, proving it writable.
+    pub fn open_at(location: &Location) -> Result<Archive, ArchiveError> {
+        match location {
+            Location::Sqlite(path) => Archive::open(path),
+            Location::Postgres(url) => Ok(Archive::with(Box::new(Postgres::open(url)?))),
+        }
+    }
+
+    /// Opens the archive at `location` for reading only.
+    pub fn open_read_only_at(location: &Location) -> Result<Archive, ArchiveError> {
+        match location {
+            Location::Sqlite(path) => Archive::open_read_only(path),
+            Location::Postgres(url) => Ok(Archive::with(Box::new(Postgres::open_read_only(url)?))),
+        }
+    }
+
     /// Opens an existing SQLite archive for reading only: never creates, migrates or changes
     /// anything, and works on a file or folder that is read-only.
     pub fn open_read_only(path: &Path) -> Result<Archive, ArchiveError> {
@@ -170,6 +234,7 @@ impl Archive {
     fn note_error(&self, what: &str, e: ArchiveError) {
         let said = match e {
             ArchiveError::Sql(inner) => inner.to_string(),
+            ArchiveError::Postgres(inner) => postgres_message(&inner),
             other => other.to_string(),
         };
         let mut slot = self.first_error.lock().unwrap_or_else(|p| p.into_inner());

@@ -9,7 +9,7 @@ use super::{
     finish_run, fitted, plan_at_bench, print_json, print_summary, verdict_mark, wrapped,
     write_file, write_outputs,
 };
-use crate::archive::{Archive, RunFilter, RunRecorder};
+use crate::archive::{Archive, Location, RunFilter, RunRecorder};
 use crate::exec::{self, RunContext};
 use crate::plan::Plan;
 use crate::record;
@@ -23,7 +23,7 @@ pub(super) struct ResumeArgs {
     run: String,
     /// The archive database the run is in.
     #[arg(long)]
-    archive: PathBuf,
+    archive: crate::archive::Location,
     /// Folder for records and reports (the run's subfolder is reused).
     #[arg(long)]
     out: PathBuf,
@@ -59,16 +59,18 @@ impl BenchOptions for ResumeArgs {
 }
 
 /// Opens an archive to write to (resume).
-fn open(path: &Path) -> Result<Archive, CliError> {
-    if !path.exists() {
+fn open(location: &Location) -> Result<Archive, CliError> {
+    if let Location::Sqlite(path) = location
+        && !path.exists()
+    {
         return Err(CliError::Usage(format!("no archive at {}", path.display())));
     }
-    Archive::open(path).map_err(|e| CliError::Run(e.to_string()))
+    Archive::open_at(location).map_err(|e| CliError::Run(e.to_string()))
 }
 
 /// Opens an archive to read from: never changes it, works where it is read-only.
-pub(super) fn open_to_read(path: &Path) -> Result<Archive, CliError> {
-    Archive::open_read_only(path).map_err(|e| match e {
+pub(super) fn open_to_read(location: &Location) -> Result<Archive, CliError> {
+    Archive::open_read_only_at(location).map_err(|e| match e {
         crate::archive::ArchiveError::NotFound(what) => CliError::Usage(what),
         crate::archive::ArchiveError::NotAnArchive { .. } => CliError::NotArchive(e.to_string()),
         other => CliError::Run(other.to_string()),
@@ -192,7 +194,7 @@ pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
 pub(super) struct HistoryArgs {
     serial: String,
     #[arg(long)]
-    archive: PathBuf,
+    archive: crate::archive::Location,
     /// Print JSON for machines.
     #[arg(long)]
     json: bool,
@@ -253,7 +255,7 @@ fn minutes(at: &str) -> String {
 #[derive(clap::Args)]
 pub(super) struct RunsArgs {
     #[arg(long)]
-    archive: PathBuf,
+    archive: crate::archive::Location,
     #[arg(long)]
     lot: Option<String>,
     /// Plan id.
@@ -353,7 +355,7 @@ pub(super) struct ExportArgs {
     /// A run id or a serial number.
     what: String,
     #[arg(long)]
-    archive: PathBuf,
+    archive: crate::archive::Location,
     /// Folder to write the records and plan texts into.
     #[arg(long)]
     to: PathBuf,
@@ -413,7 +415,7 @@ pub(super) fn export(args: &ExportArgs) -> Result<i32, CliError> {
 #[derive(clap::Args)]
 pub(super) struct VerifyArgs {
     #[arg(long)]
-    archive: PathBuf,
+    archive: crate::archive::Location,
     /// An anchor the chain must still hold: `SEQ:SHA256` as printed on a report, or the
     /// `chain-anchor.txt` file of a run's folder. Finds records removed from the end of the
     /// chain with the chain rewritten to match, which the archive alone cannot show.
@@ -469,7 +471,7 @@ pub(super) fn verify(args: &VerifyArgs) -> Result<i32, CliError> {
 #[derive(clap::Args)]
 pub(super) struct CompareArgs {
     #[arg(long)]
-    archive: PathBuf,
+    archive: crate::archive::Location,
     /// The baseline: run=ID, lot=L or firmware=VERSION.
     #[arg(long)]
     baseline: String,
@@ -650,7 +652,7 @@ pub(super) fn compare(args: &CompareArgs) -> Result<i32, CliError> {
 #[derive(clap::Args)]
 pub(super) struct SummaryArgs {
     #[arg(long)]
-    archive: PathBuf,
+    archive: crate::archive::Location,
     /// The lot to summarise.
     #[arg(long, conflicts_with = "run")]
     lot: Option<String>,
@@ -776,7 +778,7 @@ pub(super) struct ReportArgs {
     /// A run id or a serial number.
     what: String,
     #[arg(long)]
-    archive: PathBuf,
+    archive: crate::archive::Location,
     /// Folder to write the reports into.
     #[arg(long)]
     out: PathBuf,

@@ -2,7 +2,6 @@
 
 use super::CliError;
 use super::archive_cmds::open_to_read;
-use std::path::PathBuf;
 
 #[derive(clap::Args)]
 pub(super) struct ExplainArgs {
@@ -15,7 +14,7 @@ pub(super) struct ExplainArgs {
     /// The quantity checked (current, voltage, active_power, ...).
     quantity: String,
     #[arg(long)]
-    archive: PathBuf,
+    archive: crate::archive::Location,
     /// The channel, where the unit has several.
     #[arg(long)]
     channel: Option<String>,

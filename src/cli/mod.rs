@@ -48,7 +48,7 @@ use terminal::{
 };
 use tools::{export_templates, ports, sim_meter};
 
-use crate::archive::{Archive, RunRecorder, RunRow, RunState};
+use crate::archive::{Archive, Location, RunRecorder, RunRow, RunState};
 use crate::bench::Bench;
 use crate::bench::operator::{Console, ConsoleRescan, ManualSource, SharedConsole, TypedReference};
 use crate::bench::reference_file::FileReference;
@@ -235,7 +235,7 @@ struct RunArgs {
     unattended: bool,
     /// The archive database (default: archive.sqlite in the --out folder).
     #[arg(long)]
-    archive: Option<PathBuf>,
+    archive: Option<crate::archive::Location>,
     /// Also write the run as JUnit XML (a test suite per unit, a test case per check).
     #[arg(long, value_name = "FILE")]
     junit: Option<PathBuf>,

@@ -95,8 +95,8 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
     let archive_path = args
         .archive
         .clone()
-        .unwrap_or_else(|| args.out.join("archive.sqlite"));
-    let archive = Archive::open(&archive_path).map_err(|e| CliError::Run(e.to_string()))?;
+        .unwrap_or_else(|| Location::Sqlite(args.out.join("archive.sqlite")));
+    let archive = Archive::open_at(&archive_path).map_err(|e| CliError::Run(e.to_string()))?;
     let lock = lock_run(&archive_path, &ctx.run_id)?;
     archive
         .begin_run(
@@ -266,14 +266,14 @@ pub(super) fn write_or_keep(
 /// For a run stopped early: that the output is off, and the command that continues it.
 pub(super) fn resume_hint(
     run_id: &str,
-    archive: &Path,
+    archive: &Location,
     out: &Path,
     records: &[UnitRecord],
 ) -> Option<String> {
     let why = exec::stopped_early(records)?;
     Some(format!(
         "The run stopped early ({why}); the source output is off. Continue it with:\n  meterproof resume {run_id} --archive {} --out {}",
-        shell_word(&archive.display().to_string()),
+        shell_word(&archive.to_string()),
         shell_word(&out.display().to_string())
     ))
 }
@@ -327,9 +327,17 @@ pub(super) struct RunLock {
     path: PathBuf,
 }
 
-pub(super) fn lock_run(archive: &Path, run_id: &str) -> Result<RunLock, CliError> {
-    let full = std::fs::canonicalize(archive).unwrap_or_else(|_| archive.to_path_buf());
-    let key = crate::plan::sha256_hex(full.display().to_string().as_bytes());
+pub(super) fn lock_run(archive: &Location, run_id: &str) -> Result<RunLock, CliError> {
+    let name = match archive {
+        Location::Sqlite(path) => std::fs::canonicalize(path)
+            .unwrap_or_else(|_| path.clone())
+            .display()
+            .to_string(),
+        // A database is named by its address without the password; this lock holds on this
+        // machine only (two benches never share a run id: it carries the station).
+        Location::Postgres(_) => archive.to_string(),
+    };
+    let key = crate::plan::sha256_hex(name.as_bytes());
     let dir = std::env::temp_dir().join("meterproof-run-locks");
     std::fs::create_dir_all(&dir)
         .map_err(|e| CliError::Run(format!("cannot create {}: {e}", dir.display())))?;

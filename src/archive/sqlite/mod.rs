@@ -16,7 +16,7 @@
 //! written once.
 
 use super::chain as shared;
-use super::chain::reassemble;
+use super::chain::{reassemble, status_word, stripped};
 use super::seal;
 use super::{
     ArchiveError, Backend, HistoryRow, RunFilter, RunRow, RunState, RunSummary, SelectBy,
@@ -24,7 +24,7 @@ use super::{
 };
 use crate::exec::ReadingKey;
 use crate::plan::Plan;
-use crate::record::{Sample, StepRecord, StepStatus, UnitRecord};
+use crate::record::{Sample, StepRecord, UnitRecord};
 use rusqlite::{Connection, OptionalExtension, params};
 use std::path::Path;
 
@@ -52,14 +52,6 @@ fn is_busy(e: &ArchiveError) -> bool {
 /// Selects, of the records of one run and position, the newest: an interrupted run's record
 /// stays in the archive (and in the unit's history), its resumption's record counts.
 const NEWEST: &str = "u.seq = (SELECT MAX(n.seq) FROM units n WHERE n.run_id = u.run_id AND n.position = u.position)";
-
-fn status_word(s: StepStatus) -> &'static str {
-    match s {
-        StepStatus::Done => "done",
-        StepStatus::Incomplete => "incomplete",
-        StepStatus::NotRun => "not_run",
-    }
-}
 
 /// Refuses a file that exists but is no SQLite database (an empty file is one only when it is
 /// to be created).
@@ -91,20 +83,6 @@ fn refuse_other_files(path: &Path, reading: bool) -> Result<(), ArchiveError> {
     Ok(())
 }
 
-/// The record without its samples, which the archive keeps as readings.
-fn stripped(record: &UnitRecord) -> UnitRecord {
-    let mut r = record.clone();
-    for s in &mut r.steps {
-        for c in &mut s.checks {
-            c.samples.clear();
-        }
-        if let Some(p) = &mut s.calibration_point {
-            p.samples.clear();
-        }
-    }
-    r
-}
-
 /// A write transaction that takes the write lock at once: every write appends to the chain,
 /// which reads the newest entry first, so a deferred transaction could find it moved.
 fn immediate(conn: &Connection) -> rusqlite::Result<rusqlite::Transaction<'_>> {
@@ -115,37 +93,19 @@ fn immediate(conn: &Connection) -> rusqlite::Result<rusqlite::Transaction<'_>> {
 /// its rows).
 fn insert_readings_of(conn: &Connection, r: &UnitRecord) -> rusqlite::Result<()> {
     let mut reading = conn.prepare_cached(INSERT_READING)?;
-    for (index, step) in r.steps.iter().enumerate() {
-        let series = step
-            .checks
-            .iter()
-            .map(|c| (c.quantity, &c.channel, false, &c.samples))
-            .chain(
-                step.calibration_point
-                    .iter()
-                    .map(|p| (p.quantity, &p.channel, true, &p.samples)),
-            );
-        let mut seen = Vec::new();
-        for (q, ch, raw, samples) in series {
-            if seen.contains(&(q, ch, raw)) {
-                continue;
-            }
-            seen.push((q, ch, raw));
-            for s in samples {
-                reading.execute(params![
-                    r.run_id,
-                    r.position as i64,
-                    index as i64,
-                    step.attempt as i64,
-                    q.name(),
-                    ch,
-                    raw,
-                    s.t_s,
-                    s.value,
-                    s.took_s
-                ])?;
-            }
-        }
+    for (key, s) in shared::readings_of_record(r) {
+        reading.execute(params![
+            r.run_id,
+            r.position as i64,
+            key.step_index as i64,
+            key.attempt as i64,
+            key.quantity.name(),
+            key.channel,
+            key.raw,
+            s.t_s,
+            s.value,
+            s.took_s
+        ])?;
     }
     Ok(())
 }
@@ -196,14 +156,7 @@ fn insert_step(
     step_index: usize,
     record: &StepRecord,
 ) -> rusqlite::Result<()> {
-    let mut r = record.clone();
-    for c in &mut r.checks {
-        c.samples.clear();
-    }
-    if let Some(p) = &mut r.calibration_point {
-        p.samples.clear();
-    }
-    let text = serde_json::to_string(&r).expect("a step record serialises");
+    let text = shared::stored_step(record);
     let status = status_word(record.status);
     conn.execute(
         "INSERT INTO steps (run_id, position, step_index, attempt, status, record)
@@ -567,22 +520,8 @@ impl Backend for Sqlite {
                 r.get::<_, String>(4)?,
             ))
         })?;
-        for row in rows {
-            let (position, index, attempt, status, text) = row?;
-            let entry = resume.attempts.entry((position, index)).or_insert(0);
-            *entry = (*entry).max(attempt);
-            if status == "done" {
-                let corrupt = |e: serde_json::Error| ArchiveError::Corrupt(e.to_string());
-                let mut json: serde_json::Value = serde_json::from_str(&text).map_err(corrupt)?;
-                shared::fill_step_json(conn, run_id, position as i64, index as i64, &mut json)?;
-                let record: StepRecord = serde_json::from_value(json).map_err(corrupt)?;
-                resume
-                    .done
-                    .entry(position)
-                    .or_default()
-                    .insert(index, record);
-            }
-        }
+        let rows = rows.collect::<Result<_, _>>()?;
+        shared::resume_steps(conn, run_id, rows, &mut resume)?;
         Ok(resume)
     }
 
@@ -712,11 +651,7 @@ impl Backend for Sqlite {
                     |r| r.get(0),
                 )
                 .optional()?;
-            let same = newest
-                .and_then(|t| serde_json::from_str::<UnitRecord>(&t).ok())
-                .is_some_and(|old| {
-                    old.serial == record.serial && old.steps == stripped(record).steps
-                });
+            let same = shared::same_as_stored(newest.as_deref(), record);
             if !same {
                 insert_unit_row(&tx, record)?;
             }
