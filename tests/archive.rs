@@ -2,6 +2,7 @@
 //! with SIGKILL and resumed.
 
 mod common;
+use common::store::{Store, backends};
 use common::{bin, temp_dir};
 
 use meterproof::record::UnitStatus;
@@ -21,11 +22,11 @@ fn run_demo(out: &Path, extra: &[&str]) -> i32 {
         .unwrap()
 }
 
-fn cmd(args: &[&str], archive: &Path) -> (i32, String) {
+fn cmd(args: &[&str], archive: &Store) -> (i32, String) {
     let o = bin()
         .args(args)
         .arg("--archive")
-        .arg(archive)
+        .arg(archive.arg())
         .output()
         .unwrap();
     (
@@ -40,34 +41,52 @@ fn cmd(args: &[&str], archive: &Path) -> (i32, String) {
 
 #[test]
 fn the_demo_lands_in_the_archive_and_can_be_queried() {
-    let dir = temp_dir("query");
+    let top = temp_dir("query");
+    for archive in backends(&top, "query") {
+        let dir = top.join(archive.label());
+        demo_queried(&dir, &archive);
+        archive.remove();
+    }
+    std::fs::remove_dir_all(&top).unwrap();
+}
+
+fn demo_queried(dir: &Path, archive: &Store) {
+    let archive_arg = archive.arg();
+    let at = ["--archive", archive_arg.as_str()];
     assert_eq!(
         run_demo(
-            &dir,
-            &["--lot", "LOT-1", "--serials", "A-1,B-2,O'Hara;--,D-4"]
-        ),
-        1
-    );
-    assert_eq!(
-        run_demo(
-            &dir,
+            dir,
             &[
-                "--lot",
-                "LOT-2",
-                "--serials",
-                "A-1,B-2,C-3,D-4",
-                "--seed",
-                "2"
+                &["--lot", "LOT-1", "--serials", "A-1,B-2,O'Hara;--,D-4"][..],
+                &at
             ]
+            .concat()
         ),
         1
     );
-    let archive = dir.join("archive.sqlite");
-    let (code, text) = cmd(&["history", "A-1"], &archive);
+    assert_eq!(
+        run_demo(
+            dir,
+            &[
+                &[
+                    "--lot",
+                    "LOT-2",
+                    "--serials",
+                    "A-1,B-2,C-3,D-4",
+                    "--seed",
+                    "2"
+                ][..],
+                &at
+            ]
+            .concat()
+        ),
+        1
+    );
+    let (code, text) = cmd(&["history", "A-1"], archive);
     assert_eq!(code, 0);
     let lines: Vec<&str> = text.lines().collect();
     assert_eq!(lines.len(), 3, "header and two runs: {text}");
-    let (_, json) = cmd(&["history", "A-1", "--json"], &archive);
+    let (_, json) = cmd(&["history", "A-1", "--json"], archive);
     let rows: serde_json::Value = serde_json::from_str(&json).unwrap();
     assert_eq!(rows.as_array().unwrap().len(), 2);
     assert!(
@@ -75,9 +94,9 @@ fn the_demo_lands_in_the_archive_and_can_be_queried() {
         "newest first"
     );
     // A serial with quotes and semicolons is data, never SQL.
-    let (_, text) = cmd(&["history", "O'Hara;--"], &archive);
+    let (_, text) = cmd(&["history", "O'Hara;--"], archive);
     assert_eq!(text.lines().count(), 2, "{text}");
-    let (_, json) = cmd(&["runs", "--lot", "LOT-1", "--json"], &archive);
+    let (_, json) = cmd(&["runs", "--lot", "LOT-1", "--json"], archive);
     let runs: serde_json::Value = serde_json::from_str(&json).unwrap();
     assert_eq!(runs.as_array().unwrap().len(), 1);
     let r = &runs[0];
@@ -93,7 +112,7 @@ fn the_demo_lands_in_the_archive_and_can_be_queried() {
     let count = |args: &[&str]| -> usize {
         let mut a = vec!["runs", "--json"];
         a.extend_from_slice(args);
-        let (code, json) = cmd(&a, &archive);
+        let (code, json) = cmd(&a, archive);
         assert_eq!(code, 0, "{json}");
         serde_json::from_str::<serde_json::Value>(&json)
             .unwrap()
@@ -105,7 +124,7 @@ fn the_demo_lands_in_the_archive_and_can_be_queried() {
     assert_eq!(count(&[]), 2);
     assert_eq!(count(&["--verdict", "rejected"]), 2);
     assert_eq!(count(&["--verdict", "incomplete"]), 0);
-    let (code, _) = cmd(&["runs", "--verdict", "maybe"], &archive);
+    let (code, _) = cmd(&["runs", "--verdict", "maybe"], archive);
     assert_eq!(code, 2);
     // --plan by the plan's id, --since by date (today's runs are since yesterday, not since
     // tomorrow).
@@ -117,7 +136,7 @@ fn the_demo_lands_in_the_archive_and_can_be_queried() {
     assert_eq!(count(&["--since", &day(today + chrono::Days::new(1))]), 0);
     // Export by serial: both runs' records and the plan text, byte for byte the plan file.
     let to = dir.join("export");
-    let (code, text) = cmd(&["export", "A-1", "--to", to.to_str().unwrap()], &archive);
+    let (code, text) = cmd(&["export", "A-1", "--to", to.to_str().unwrap()], archive);
     assert_eq!(code, 0, "{text}");
     let plan = std::fs::read("test-plans/demo.yaml").unwrap();
     let sha = meterproof::plan::sha256_hex(&plan);
@@ -132,16 +151,22 @@ fn the_demo_lands_in_the_archive_and_can_be_queried() {
     let beside = meterproof::record::read(&dir.join(run_id).join("A-1-p1.json")).unwrap();
     let from_archive = meterproof::record::read(&to.join(format!("{run_id}-A-1-p1.json"))).unwrap();
     assert_eq!(beside, from_archive);
-    let (code, text) = cmd(&["verify"], &archive);
+    let (code, text) = cmd(&["verify"], archive);
     assert_eq!(code, 0, "{text}");
     assert!(text.contains("8 unit records checked, 0 failed"), "{text}");
-    std::fs::remove_dir_all(&dir).unwrap();
 }
 
 #[test]
 fn two_runs_writing_one_archive_at_once_lose_nothing() {
     let dir = temp_dir("concurrent");
-    let archive = dir.join("shared.sqlite");
+    for archive in backends(&dir, "shared") {
+        two_at_once(&dir.join(archive.label()), &archive);
+        archive.remove();
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+fn two_at_once(dir: &Path, archive: &Store) {
     let spawn = |seed: &str, out: &str| {
         bin()
             .args([
@@ -156,7 +181,7 @@ fn two_runs_writing_one_archive_at_once_lose_nothing() {
             .arg("--out")
             .arg(dir.join(out))
             .arg("--archive")
-            .arg(&archive)
+            .arg(archive.arg())
             .stdout(Stdio::null())
             .spawn()
             .unwrap()
@@ -165,14 +190,9 @@ fn two_runs_writing_one_archive_at_once_lose_nothing() {
     let mut b = spawn("12", "b");
     assert!(a.wait().unwrap().code().is_some_and(|c| c <= 1));
     assert!(b.wait().unwrap().code().is_some_and(|c| c <= 1));
-    let conn = Connection::open(&archive).unwrap();
-    let units: i64 = conn
-        .query_row("SELECT COUNT(*) FROM units", [], |r| r.get(0))
-        .unwrap();
-    assert_eq!(units, 12);
-    let (code, text) = cmd(&["verify"], &archive);
-    assert_eq!(code, 0, "{text}");
-    std::fs::remove_dir_all(&dir).unwrap();
+    assert_eq!(archive.value("SELECT COUNT(*) FROM units"), "12");
+    let (code, text) = cmd(&["verify"], archive);
+    assert_eq!(code, 0, "{}: {text}", archive.label());
 }
 
 #[test]
@@ -209,8 +229,16 @@ fn a_file_that_is_not_an_archive_is_refused_before_any_step() {
 fn a_run_killed_mid_way_resumes_with_no_reading_lost() {
     let dir = temp_dir("kill");
     let served = common::serve_at(&dir, "10", &[]);
-    let station = served.station.clone();
-    let archive = dir.join("archive.sqlite");
+    for archive in backends(&dir, "kill") {
+        killed_and_resumed(&dir.join(archive.label()), &served.station, &archive);
+        archive.remove();
+    }
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+fn killed_and_resumed(dir: &Path, station: &Path, archive: &Store) {
+    let on = archive.label();
     let out = dir.join("out");
     let mut run = bin()
         .args([
@@ -220,11 +248,11 @@ fn a_run_killed_mid_way_resumes_with_no_reading_lost() {
             "--unattended",
             "--bench",
         ])
-        .arg(&station)
+        .arg(station)
         .arg("--out")
         .arg(&out)
         .arg("--archive")
-        .arg(&archive)
+        .arg(archive.arg())
         .stdout(Stdio::null())
         .stderr(Stdio::null())
         .spawn()
@@ -237,54 +265,29 @@ fn a_run_killed_mid_way_resumes_with_no_reading_lost() {
             "the run never got to its third step"
         );
         std::thread::sleep(Duration::from_millis(20));
-        let Ok(conn) = Connection::open(&archive) else {
-            continue;
-        };
-        let done: i64 = conn
-            .query_row("SELECT COUNT(*) FROM steps WHERE step_index = 1", [], |r| {
-                r.get(0)
-            })
-            .unwrap_or(0);
-        let third: i64 = conn
-            .query_row(
-                "SELECT COUNT(*) FROM readings WHERE step_index = 2",
-                [],
-                |r| r.get(0),
-            )
-            .unwrap_or(0);
-        if done == 4 && third > 0 {
+        let counted = |sql: &str| archive.try_value(sql).and_then(|v| v.parse::<i64>().ok());
+        let done = counted("SELECT COUNT(*) FROM steps WHERE step_index = 1");
+        let third = counted("SELECT COUNT(*) FROM readings WHERE step_index = 2");
+        if done == Some(4) && third.is_some_and(|n| n > 0) {
             break;
         }
     }
     run.kill().unwrap(); // SIGKILL on Unix
     run.wait().unwrap();
     // Which steps each position had finished when it was killed.
-    let finished: Vec<(i64, i64)> = {
-        let conn = Connection::open(&archive).unwrap();
-        let mut stmt = conn
-            .prepare("SELECT position, step_index FROM steps WHERE status = 'done'")
-            .unwrap();
-        stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
-            .unwrap()
-            .map(|x| x.unwrap())
-            .collect()
-    };
-    let before: Vec<(i64, f64)> = {
-        let conn = Connection::open(&archive).unwrap();
-        let mut stmt = conn
-            .prepare("SELECT id, value FROM readings ORDER BY id")
-            .unwrap();
-        stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
-            .unwrap()
-            .map(|x| x.unwrap())
-            .collect()
-    };
+    let finished: Vec<(i64, i64)> = archive
+        .rows("SELECT position, step_index FROM steps WHERE status = 'done'")
+        .iter()
+        .map(|r| (r[0].parse().unwrap(), r[1].parse().unwrap()))
+        .collect();
+    let before: Vec<(i64, f64)> = archive
+        .rows("SELECT id, value FROM readings ORDER BY id")
+        .iter()
+        .map(|r| (r[0].parse().unwrap(), r[1].parse().unwrap()))
+        .collect();
     assert!(!before.is_empty());
-    let run_id: String = Connection::open(&archive)
-        .unwrap()
-        .query_row("SELECT run_id FROM runs", [], |r| r.get(0))
-        .unwrap();
-    let (code, text) = cmd(&["runs"], &archive);
+    let run_id = archive.value("SELECT run_id FROM runs");
+    let (code, text) = cmd(&["runs"], archive);
     assert_eq!(code, 0);
     assert!(
         text.contains("running"),
@@ -295,7 +298,7 @@ fn a_run_killed_mid_way_resumes_with_no_reading_lost() {
         .args(["resume", &run_id, "--quiet", "--unattended", "--out"])
         .arg(&out)
         .arg("--archive")
-        .arg(&archive)
+        .arg(archive.arg())
         .output()
         .unwrap();
     let text = format!(
@@ -303,17 +306,16 @@ fn a_run_killed_mid_way_resumes_with_no_reading_lost() {
         String::from_utf8_lossy(&o.stdout),
         String::from_utf8_lossy(&o.stderr)
     );
-    assert_eq!(o.status.code(), Some(1), "{text}");
+    assert_eq!(o.status.code(), Some(1), "{on}: {text}");
 
     // Every reading taken before the kill is still there, unchanged.
-    let conn = Connection::open(&archive).unwrap();
+    let after: std::collections::BTreeMap<i64, f64> = archive
+        .rows("SELECT id, value FROM readings ORDER BY id")
+        .iter()
+        .map(|r| (r[0].parse().unwrap(), r[1].parse().unwrap()))
+        .collect();
     for (id, value) in &before {
-        let v: f64 = conn
-            .query_row("SELECT value FROM readings WHERE id = ?1", [id], |r| {
-                r.get(0)
-            })
-            .unwrap();
-        assert_eq!(v, *value);
+        assert_eq!(after.get(id), Some(value), "{on}: reading {id}");
     }
     // The verdicts are those of an uninterrupted run: the planted defect at position 2.
     let mut records: Vec<meterproof::record::UnitRecord> = std::fs::read_dir(out.join(&run_id))
@@ -361,14 +363,13 @@ fn a_run_killed_mid_way_resumes_with_no_reading_lost() {
             "kept steps are not repeated"
         );
     }
-    let (code, text) = cmd(&["verify"], &archive);
-    assert_eq!(code, 0, "{text}");
+    let (code, text) = cmd(&["verify"], archive);
+    assert_eq!(code, 0, "{on}: {text}");
     let (code, _) = cmd(
         &["resume", &run_id, "--out", out.to_str().unwrap()],
-        &archive,
+        archive,
     );
     assert_eq!(code, 2, "a finished run cannot be resumed");
-    std::fs::remove_dir_all(&dir).unwrap();
 }
 
 /// An archive from before readings kept their transaction time opens, gains the column, and its
@@ -408,7 +409,7 @@ fn an_archive_without_reading_durations_is_brought_up_to_date() {
             .unwrap()
     };
     // Reading commands read it as it is, and change nothing.
-    let (code, text) = cmd(&["verify"], &archive);
+    let (code, text) = cmd(&["verify"], &Store::Sqlite(archive.clone()));
     assert_eq!(code, 0, "{text}");
     assert!(!has(), "verify opens the archive read-only");
     // Opened for writing (as a run or resume does), it gets the column.
@@ -422,23 +423,41 @@ fn an_archive_without_reading_durations_is_brought_up_to_date() {
 /// a file, none accepted, and the run ends with exit 3 naming the archive's error.
 #[test]
 fn an_archive_that_fails_mid_run_stops_the_loads_and_loses_no_record() {
-    let dir = temp_dir("full");
-    let archive = dir.join("a.sqlite");
-    drop(meterproof::archive::Archive::open(&archive).unwrap());
-    Connection::open(&archive)
-        .unwrap()
-        .execute_batch(
+    let top = temp_dir("full");
+    for archive in backends(&top, "full") {
+        fails_mid_run(&top.join(archive.label()), &archive);
+        archive.remove();
+    }
+    std::fs::remove_dir_all(&top).unwrap();
+}
+
+fn fails_mid_run(dir: &Path, archive: &Store) {
+    drop(archive.open());
+    let trigger = match archive {
+        Store::Sqlite(_) => {
             "CREATE TRIGGER full BEFORE INSERT ON readings
              WHEN (SELECT COUNT(*) FROM readings) >= 40
-             BEGIN SELECT RAISE(ABORT, 'database or disk is full (simulated)'); END;",
-        )
-        .unwrap();
+             BEGIN SELECT RAISE(ABORT, 'database or disk is full (simulated)'); END;"
+        }
+        Store::Postgres { .. } => {
+            "CREATE FUNCTION full_disk() RETURNS trigger LANGUAGE plpgsql AS $$
+             BEGIN
+                 IF (SELECT COUNT(*) FROM readings) >= 40 THEN
+                     RAISE EXCEPTION 'database or disk is full (simulated)';
+                 END IF;
+                 RETURN NEW;
+             END $$;
+             CREATE TRIGGER disk_full BEFORE INSERT ON readings
+                 FOR EACH ROW EXECUTE FUNCTION full_disk()"
+        }
+    };
+    archive.tamper(trigger).unwrap();
     let out = dir.join("out");
     let o = bin()
         .args(["run", "test-plans/demo.yaml", "--out"])
         .arg(&out)
         .arg("--archive")
-        .arg(&archive)
+        .arg(archive.arg())
         .output()
         .unwrap();
     let stderr = String::from_utf8_lossy(&o.stderr);
@@ -476,7 +495,6 @@ fn an_archive_that_fails_mid_run_stops_the_loads_and_loses_no_record() {
                 .contains("the archive could not keep")
         }));
     }
-    std::fs::remove_dir_all(&dir).unwrap();
 }
 
 /// `explain` prints one check's whole computation from the archive; redoing its arithmetic from
@@ -484,17 +502,25 @@ fn an_archive_that_fails_mid_run_stops_the_loads_and_loses_no_record() {
 /// the percentage error as IEC 62053-21 defines it).
 #[test]
 fn explain_prints_a_computation_that_can_be_redone_by_hand() {
-    let dir = temp_dir("explain");
-    run_demo(&dir, &["--serials", "A-1,A-2,A-3,A-4"]);
-    let archive = dir.join("archive.sqlite");
-    let run_id = std::fs::read_dir(&dir)
+    let top = temp_dir("explain");
+    for archive in backends(&top, "explain") {
+        explained(&top.join(archive.label()), &archive);
+        archive.remove();
+    }
+    std::fs::remove_dir_all(&top).unwrap();
+}
+
+fn explained(dir: &Path, archive: &Store) {
+    let at = archive.arg();
+    run_demo(dir, &["--serials", "A-1,A-2,A-3,A-4", "--archive", &at]);
+    let run_id = std::fs::read_dir(dir)
         .unwrap()
         .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
         .find(|n| n.starts_with("20"))
         .unwrap();
     let (code, text) = cmd(
         &["explain", &run_id, "A-2", "basic-pf0.5", "active_power"],
-        &archive,
+        archive,
     );
     assert_eq!(code, 0, "{text}");
     let after = |line_start: &str, marker: &str| -> f64 {
@@ -544,17 +570,17 @@ fn explain_prints_a_computation_that_can_be_redone_by_hand() {
     let big_u = after("U = k", "= ");
     assert!((big_u - k * uc).abs() < 1e-12);
     // A step or quantity that is not there is named with what is.
-    let (code, text) = cmd(&["explain", &run_id, "A-2", "nine", "current"], &archive);
+    let (code, text) = cmd(&["explain", &run_id, "A-2", "nine", "current"], archive);
     assert_eq!(code, 2);
     assert!(
         text.contains("no step \"nine\"") && text.contains("basic-pf0.5"),
         "{text}"
     );
-    std::fs::remove_dir_all(&dir).unwrap();
 }
 
-/// The archive's durability settings as SQLite itself reports them (the WAL journal, fsync at
-/// every commit), and the group commit of readings that arrive together: sixteen positions
+/// The archive's durability settings as the storage itself reports them (SQLite: the WAL
+/// journal, fsync at every commit; PostgreSQL: `synchronous_commit` on, `fsync` on), and the
+/// group commit of readings that arrive together: sixteen positions
 /// handing over readings at once are committed in fewer transactions than readings, and every
 /// reading is stored.
 #[test]
@@ -564,58 +590,158 @@ fn durability_settings_and_group_commit_of_concurrent_readings() {
     use meterproof::plan::{Plan, Quantity};
     use meterproof::record::Sample;
     let dir = temp_dir("durability");
-    let path = dir.join("archive.sqlite");
-    let archive = meterproof::archive::Archive::open(&path).unwrap();
-    assert_eq!(archive.durability().unwrap(), ("wal".to_string(), 2));
-    let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
-    archive
-        .begin_run(&plan, &common::run_row(&plan, "G", None))
-        .unwrap();
-    let recorder = RunRecorder::new(&archive, "G");
-    let (positions, per_position) = (16usize, 40usize);
-    let start = std::sync::Barrier::new(positions);
-    std::thread::scope(|s| {
-        for position in 1..=positions {
-            let (recorder, start) = (&recorder, &start);
-            s.spawn(move || {
-                start.wait();
-                for i in 0..per_position {
-                    let key = ReadingKey {
-                        position,
-                        step_index: 0,
-                        attempt: 1,
-                        quantity: Quantity::Current,
-                        channel: "L".into(),
-                        raw: false,
-                    };
-                    recorder.reading(
-                        &key,
-                        Sample {
-                            t_s: i as f64,
-                            value: position as f64 + i as f64 / 1000.0,
-                            took_s: None,
-                        },
-                    );
-                }
-            });
-        }
-    });
-    assert_eq!(archive.failure(), None);
-    let total = positions * per_position;
-    let stored: i64 = rusqlite::Connection::open(&path)
-        .unwrap()
-        .query_row(
-            "SELECT COUNT(*) FROM readings WHERE run_id = 'G'",
-            [],
-            |r| r.get(0),
-        )
-        .unwrap();
-    assert_eq!(stored as usize, total, "every reading stored");
-    let commits = recorder.reading_commits();
-    println!("{total} readings from {positions} threads in {commits} commits");
-    assert!(
-        commits < total as u64,
-        "{commits} commits for {total} readings"
-    );
+    for store in backends(&dir, "durability") {
+        let archive = store.open();
+        let expected = match store {
+            Store::Sqlite(_) => ("wal".to_string(), 2),
+            Store::Postgres { .. } => ("on".to_string(), 1),
+        };
+        assert_eq!(archive.durability().unwrap(), expected);
+        let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
+        archive
+            .begin_run(&plan, &common::run_row(&plan, "G", None))
+            .unwrap();
+        let recorder = RunRecorder::new(&archive, "G");
+        let (positions, per_position) = (16usize, 40usize);
+        let start = std::sync::Barrier::new(positions);
+        std::thread::scope(|s| {
+            for position in 1..=positions {
+                let (recorder, start) = (&recorder, &start);
+                s.spawn(move || {
+                    start.wait();
+                    for i in 0..per_position {
+                        let key = ReadingKey {
+                            position,
+                            step_index: 0,
+                            attempt: 1,
+                            quantity: Quantity::Current,
+                            channel: "L".into(),
+                            raw: false,
+                        };
+                        recorder.reading(
+                            &key,
+                            Sample {
+                                t_s: i as f64,
+                                value: position as f64 + i as f64 / 1000.0,
+                                took_s: None,
+                            },
+                        );
+                    }
+                });
+            }
+        });
+        assert_eq!(archive.failure(), None);
+        let total = positions * per_position;
+        let stored = store.value("SELECT COUNT(*) FROM readings WHERE run_id = 'G'");
+        assert_eq!(stored, total.to_string(), "every reading stored");
+        let commits = recorder.reading_commits();
+        println!(
+            "{}: {total} readings from {positions} threads in {commits} commits",
+            store.label()
+        );
+        assert!(
+            commits < total as u64,
+            "{commits} commits for {total} readings"
+        );
+        drop(recorder);
+        drop(archive);
+        store.remove();
+    }
     std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// Eight benches of sixteen positions writing one archive at once (eight processes, as eight
+/// stations would): every reading of every record is in the archive, every record reads back
+/// equal to the file its bench wrote, and the one chain verifies with exactly one entry per
+/// run opened and ended, per unit seen, per step and per unit record.
+#[test]
+fn eight_benches_of_sixteen_positions_write_one_archive() {
+    let top = temp_dir("eight-benches");
+    for archive in backends(&top, "eight") {
+        eight_benches(&top.join(archive.label()), &archive);
+        archive.remove();
+    }
+    std::fs::remove_dir_all(&top).unwrap();
+}
+
+fn eight_benches(dir: &Path, archive: &Store) {
+    let on = archive.label();
+    let benches: Vec<_> = (0..8)
+        .map(|i| {
+            bin()
+                .args([
+                    "run",
+                    "test-plans/demo.yaml",
+                    "--quiet",
+                    "--positions",
+                    "16",
+                ])
+                .args(["--seed", &(100 + i).to_string()])
+                .arg("--out")
+                .arg(dir.join(format!("bench-{i}")))
+                .arg("--archive")
+                .arg(archive.arg())
+                .stdout(Stdio::null())
+                .stderr(Stdio::piped())
+                .spawn()
+                .unwrap()
+        })
+        .collect();
+    for b in benches {
+        let o = b.wait_with_output().unwrap();
+        assert!(
+            o.status.code().is_some_and(|c| c <= 1),
+            "{on}: {}",
+            String::from_utf8_lossy(&o.stderr)
+        );
+    }
+    let records: Vec<_> = (0..8)
+        .flat_map(|i| common::records_in(&dir.join(format!("bench-{i}"))))
+        .collect();
+    assert_eq!(records.len(), 128);
+    // The readings a record holds: one row per sample of each series (checks of one quantity
+    // and channel share their readings).
+    let mut expected_readings = 0;
+    let mut steps = 0;
+    for r in &records {
+        for s in &r.steps {
+            let mut seen = Vec::new();
+            for (q, ch, raw, n) in s
+                .checks
+                .iter()
+                .map(|c| (c.quantity, &c.channel, false, c.samples.len()))
+                .chain(
+                    s.calibration_point
+                        .iter()
+                        .map(|p| (p.quantity, &p.channel, true, p.samples.len())),
+                )
+            {
+                if !seen.contains(&(q, ch, raw)) {
+                    seen.push((q, ch, raw));
+                    expected_readings += n;
+                }
+            }
+            steps += 1;
+        }
+    }
+    assert_eq!(
+        archive.value("SELECT COUNT(*) FROM readings"),
+        expected_readings.to_string(),
+        "{on}: every reading, none twice"
+    );
+    assert_eq!(archive.value("SELECT COUNT(*) FROM units"), "128");
+    let a = archive.open_read_only().unwrap();
+    for r in &records {
+        let stored = a.unit_records(&r.run_id).unwrap();
+        let same = stored.iter().find(|s| s.position == r.position).unwrap();
+        assert_eq!(same, r, "{on}: {} reads back as written", r.serial);
+    }
+    let v = a.verify(None).unwrap();
+    assert!(v.failures.is_empty(), "{on}: {:?}", v.failures);
+    assert_eq!(v.entries, 8 * 2 + 128 * 2 + steps, "{on}");
+    assert_eq!(v.unit_records, 128);
+    println!(
+        "{on}: 8 benches × 16 positions: {expected_readings} readings, {} chain entries, verified",
+        v.entries
+    );
 }

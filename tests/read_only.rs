@@ -45,6 +45,60 @@ fn set_mode(p: &Path, mode: u32) {
     std::fs::set_permissions(p, std::fs::Permissions::from_mode(mode)).unwrap();
 }
 
+/// Every command that only reads, on the archive `a`, writing its files where `o` says.
+fn reading_commands(
+    a: &str,
+    first: &str,
+    second: &str,
+    o: &dyn Fn(&str) -> String,
+) -> Vec<Vec<String>> {
+    vec![
+        vec!["verify".into(), "--archive".into(), a.into()],
+        vec!["history".into(), "A-1".into(), "--archive".into(), a.into()],
+        vec![
+            "runs".into(),
+            "--lot".into(),
+            "L-7".into(),
+            "--archive".into(),
+            a.into(),
+        ],
+        vec![
+            "export".into(),
+            first.to_string(),
+            "--archive".into(),
+            a.into(),
+            "--to".into(),
+            o("export"),
+        ],
+        vec![
+            "report".into(),
+            "A-1".into(),
+            "--archive".into(),
+            a.into(),
+            "--out".into(),
+            o("report"),
+        ],
+        vec![
+            "summary".into(),
+            "--lot".into(),
+            "L-7".into(),
+            "--archive".into(),
+            a.into(),
+            "--out".into(),
+            o(""),
+        ],
+        vec![
+            "compare".into(),
+            "--baseline".into(),
+            format!("run={first}"),
+            "--candidate".into(),
+            format!("run={second}"),
+            "--archive".into(),
+            a.into(),
+        ],
+    ]
+}
+
 #[test]
 fn reading_commands_work_on_a_read_only_archive_and_change_nothing() {
     let dir = temp_dir("read-only");
@@ -84,51 +138,7 @@ fn reading_commands_work_on_a_read_only_archive_and_change_nothing() {
     let files_before = listing(&store);
     let a = archive.to_str().unwrap();
     let o = |name: &str| outside.join(name).to_str().unwrap().to_string();
-    let commands: Vec<Vec<String>> = vec![
-        vec!["verify".into(), "--archive".into(), a.into()],
-        vec!["history".into(), "A-1".into(), "--archive".into(), a.into()],
-        vec![
-            "runs".into(),
-            "--lot".into(),
-            "L-7".into(),
-            "--archive".into(),
-            a.into(),
-        ],
-        vec![
-            "export".into(),
-            first.clone(),
-            "--archive".into(),
-            a.into(),
-            "--to".into(),
-            o("export"),
-        ],
-        vec![
-            "report".into(),
-            "A-1".into(),
-            "--archive".into(),
-            a.into(),
-            "--out".into(),
-            o("report"),
-        ],
-        vec![
-            "summary".into(),
-            "--lot".into(),
-            "L-7".into(),
-            "--archive".into(),
-            a.into(),
-            "--out".into(),
-            o(""),
-        ],
-        vec![
-            "compare".into(),
-            "--baseline".into(),
-            format!("run={first}"),
-            "--candidate".into(),
-            format!("run={second}"),
-            "--archive".into(),
-            a.into(),
-        ],
-    ];
+    let commands = reading_commands(a, &first, &second, &o);
     for args in &commands {
         let args: Vec<&str> = args.iter().map(String::as_str).collect();
         let out = as_reader(&args);
@@ -177,5 +187,114 @@ fn reading_commands_work_on_a_read_only_archive_and_change_nothing() {
         "no unit was tested"
     );
     set_mode(&store, 0o755);
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// The same commands against a shared PostgreSQL archive, as a database user who may only read
+/// (an auditor's or a quality manager's account: `SELECT` and nothing else): each works, nothing
+/// changes, and a run with that account is refused before any step.
+#[test]
+fn reading_commands_work_for_a_database_user_who_may_only_read() {
+    if common::store::server().is_none() {
+        return; // said loudly by tests/postgres_notice.rs
+    }
+    let dir = temp_dir("read-only-pg");
+    let url = common::store::fresh_database("reader");
+    let store = dir.join("store");
+    let first = demo(
+        &store,
+        &[
+            "--lot",
+            "L-7",
+            "--serials",
+            "A-1,A-2,A-3,A-4",
+            "--archive",
+            &url,
+        ],
+    );
+    let second = demo(
+        &store,
+        &[
+            "--lot",
+            "L-7",
+            "--serials",
+            "A-1,A-2,A-3,A-4",
+            "--seed",
+            "3",
+            "--archive",
+            &url,
+        ],
+    );
+    let db = url.rsplit('/').next().unwrap().to_string();
+    let mut admin = postgres::Client::connect(&url, postgres::NoTls).unwrap();
+    admin
+        .batch_execute(&format!(
+            "DO $$ BEGIN
+                 IF NOT EXISTS (SELECT 1 FROM pg_roles WHERE rolname = 'mp_auditor') THEN
+                     CREATE ROLE mp_auditor LOGIN;
+                 END IF;
+             END $$;
+             GRANT CONNECT ON DATABASE {db} TO mp_auditor;
+             GRANT USAGE ON SCHEMA public TO mp_auditor;
+             GRANT SELECT ON ALL TABLES IN SCHEMA public TO mp_auditor;"
+        ))
+        .unwrap();
+    let state = |c: &mut postgres::Client| -> String {
+        let row = c
+            .query_one(
+                "SELECT (SELECT string_agg(key || '=' || value, ',' ORDER BY key) FROM meta),
+                        (SELECT COUNT(*) FROM readings)::text, (SELECT COUNT(*) FROM units)::text",
+                &[],
+            )
+            .unwrap();
+        format!(
+            "{:?} {:?} {:?}",
+            row.get::<_, Option<String>>(0),
+            row.get::<_, String>(1),
+            row.get::<_, String>(2)
+        )
+    };
+    let before = state(&mut admin);
+    let reader =
+        common::store::with_database(&url.replacen("://meterproof@", "://mp_auditor@", 1), &db);
+    assert!(reader.contains("mp_auditor@"), "{reader}");
+    let outside = dir.join("outside");
+    let o = |name: &str| outside.join(name).to_str().unwrap().to_string();
+    for args in reading_commands(&reader, &first, &second, &o) {
+        let out = bin().args(&args).output().unwrap();
+        let text = format!(
+            "{}{}",
+            String::from_utf8_lossy(&out.stdout),
+            String::from_utf8_lossy(&out.stderr)
+        );
+        assert!(
+            matches!(out.status.code(), Some(0) | Some(1)),
+            "{}: {text}",
+            args[0]
+        );
+    }
+    assert_eq!(state(&mut admin), before, "the archive is unchanged");
+    let refused = bin()
+        .args([
+            "run",
+            "test-plans/demo.yaml",
+            "--quiet",
+            "--archive",
+            &reader,
+            "--out",
+            &o("run"),
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(refused.status.code(), Some(3));
+    let err = String::from_utf8_lossy(&refused.stderr);
+    assert!(
+        err.contains("not writable") && err.contains("permission denied"),
+        "{err}"
+    );
+    assert!(
+        common::records_in(&outside.join("run")).is_empty(),
+        "no unit was tested"
+    );
     std::fs::remove_dir_all(&dir).unwrap();
 }

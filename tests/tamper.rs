@@ -9,14 +9,14 @@
 //! fingerprint must fail `verify`, and the counts are printed.
 
 mod common;
+use common::store::{Store, backends};
 use common::{bin, temp_dir};
 
-use meterproof::archive::{Archive, RunFilter, RunRecorder, RunRow, RunState};
+use meterproof::archive::{RunFilter, RunRecorder, RunRow, RunState};
 use meterproof::bench::sim::{SimBench, SimConfig};
 use meterproof::exec::{self, Event, Reporter, RunContext};
 use meterproof::plan::Plan;
-use rusqlite::Connection;
-use std::path::{Path, PathBuf};
+use std::path::Path;
 use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
 
@@ -53,9 +53,9 @@ fn context(run_id: &str, lot: &str) -> RunContext {
 }
 
 /// A finished run and an interrupted-then-resumed one, in one archive.
-fn fixture(path: &Path) {
+fn fixture(store: &Store) {
     let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
-    let archive = Archive::open(path).unwrap();
+    let archive = store.open();
     // Run 1: straight through.
     archive
         .begin_run(&plan, &run_row(&plan, "R1", "LOT-A"))
@@ -115,8 +115,8 @@ fn fixture(path: &Path) {
 }
 
 /// What the archive's commands would show, as text.
-fn shown(path: &Path, runs: &[String], serials: &[String], firmwares: &[String]) -> String {
-    let a = match Archive::open_read_only(path) {
+fn shown(store: &Store, runs: &[String], serials: &[String], firmwares: &[String]) -> String {
+    let a = match store.open_read_only() {
         Ok(a) => a,
         Err(e) => return format!("cannot open: {e}"),
     };
@@ -145,8 +145,8 @@ fn shown(path: &Path, runs: &[String], serials: &[String], firmwares: &[String])
     out
 }
 
-fn verify_fails(path: &Path) -> bool {
-    match Archive::open_read_only(path) {
+fn verify_fails(store: &Store) -> bool {
+    match store.open_read_only() {
         Err(_) => true,
         Ok(a) => match a.verify(None) {
             Err(_) => true,
@@ -161,7 +161,7 @@ struct Case {
     sql: String,
 }
 
-fn cases(conn: &Connection) -> Vec<Case> {
+fn cases(store: &Store) -> Vec<Case> {
     let mut out = Vec::new();
     let tables = [
         "meta",
@@ -174,35 +174,18 @@ fn cases(conn: &Connection) -> Vec<Case> {
         "chain",
     ];
     for table in tables {
-        let n: i64 = conn
-            .query_row(&format!("SELECT COUNT(*) FROM {table}"), [], |r| r.get(0))
+        let n: i64 = store
+            .value(&format!("SELECT COUNT(*) FROM {table}"))
+            .parse()
             .unwrap();
         assert!(n > 0, "the fixture has rows in {table}");
-        let rowids: Vec<i64> = [0, n / 2, n - 1]
-            .iter()
-            .map(|off| {
-                conn.query_row(
-                    &format!("SELECT rowid FROM {table} ORDER BY rowid LIMIT 1 OFFSET {off}"),
-                    [],
-                    |r| r.get(0),
-                )
-                .unwrap()
-            })
-            .collect();
-        let columns: Vec<(String, String)> = conn
-            .prepare(&format!(
-                "SELECT name, type FROM pragma_table_info('{table}')"
-            ))
-            .unwrap()
-            .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
-            .unwrap()
-            .map(Result::unwrap)
-            .collect();
-        for (column, ty) in &columns {
-            let rowid = rowids[1];
-            let edits: Vec<(&str, String)> = match ty.as_str() {
-                "INTEGER" => vec![("+1", format!("{column} = {column} + 1"))],
-                "REAL" => vec![(
+        let rowids = store.rows_at(table, &[0, n / 2, n - 1]);
+        for (column, ty) in store.columns(table) {
+            let rowid = &rowids[1];
+            let edits: Vec<(&str, String)> = match ty {
+                "integer" => vec![("+1", format!("{column} = {column} + 1"))],
+                "boolean" => vec![("negated", format!("{column} = NOT {column}"))],
+                "real" => vec![(
                     "×1.001",
                     format!("{column} = COALESCE({column} * 1.001 + 0.000001, 1.5)"),
                 )],
@@ -224,7 +207,7 @@ fn cases(conn: &Connection) -> Vec<Case> {
             for (what, set) in edits {
                 out.push(Case {
                     name: format!("{table}.{column} {what} (row {rowid})"),
-                    sql: format!("UPDATE {table} SET {set} WHERE rowid = {rowid}"),
+                    sql: format!("UPDATE {table} SET {set} WHERE {rowid}"),
                 });
             }
         }
@@ -232,7 +215,7 @@ fn cases(conn: &Connection) -> Vec<Case> {
             let place = ["first", "middle", "last"][i];
             out.push(Case {
                 name: format!("{table}: {place} row deleted"),
-                sql: format!("DELETE FROM {table} WHERE rowid = {rowid}"),
+                sql: format!("DELETE FROM {table} WHERE {rowid}"),
             });
         }
         out.push(Case {
@@ -268,20 +251,22 @@ fn cases(conn: &Connection) -> Vec<Case> {
     out
 }
 
-fn copy_of(archive: &Path, dir: &Path, i: usize) -> PathBuf {
-    let p = dir.join(format!("case-{i}.sqlite"));
-    std::fs::copy(archive, &p).unwrap();
-    p
-}
-
 #[test]
 fn verify_finds_every_change_that_alters_what_a_command_shows() {
     let dir = temp_dir("tamper-suite");
-    let archive = dir.join("archive.sqlite");
-    fixture(&archive);
-    let a = Archive::open_read_only(&archive).unwrap();
+    for archive in backends(&dir, "suite") {
+        tamper_suite(&dir, &archive);
+        archive.remove();
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+fn tamper_suite(dir: &Path, archive: &Store) {
+    let on = archive.label();
+    fixture(archive);
+    let a = archive.open_read_only().unwrap();
     let v = a.verify(None).unwrap();
-    assert!(v.failures.is_empty(), "untouched: {:?}", v.failures);
+    assert!(v.failures.is_empty(), "{on}: untouched: {:?}", v.failures);
     assert_eq!(
         v.unit_records, 9,
         "3 units of R1; 3 of R2 when it was interrupted and 3 after its resume"
@@ -294,24 +279,23 @@ fn verify_finds_every_change_that_alters_what_a_command_shows() {
         .filter_map(|r| r.identity.as_ref().map(|i| i.firmware.clone()))
         .collect();
     drop(a);
-    let before = shown(&archive, &runs, &serials, &firmwares);
-    let conn = Connection::open(&archive).unwrap();
-    let cases = cases(&conn);
-    drop(conn);
+    let before = shown(archive, &runs, &serials, &firmwares);
+    let cases = cases(archive);
     let (mut altering, mut caught, mut harmless, mut flagged_anyway) = (0, 0, 0, 0);
     let mut impossible = 0;
     let mut missed = Vec::new();
     for (i, case) in cases.iter().enumerate() {
-        let copy = copy_of(&archive, &dir, i);
+        let copy = archive.copy(dir, i);
         // An attacker is not held back by the schema's foreign keys; an edit that a unique
         // key refuses (a sequence number moved onto another) is not possible and not counted.
-        let edited = Connection::open(&copy)
-            .unwrap()
-            .execute_batch(&format!("PRAGMA foreign_keys = OFF; {}", case.sql));
-        if let Err(e) = edited {
-            assert!(e.to_string().contains("UNIQUE"), "{}: {e}", case.name);
+        if let Err(e) = copy.tamper(&case.sql) {
+            assert!(
+                e.to_ascii_lowercase().contains("unique"),
+                "{on}: {}: {e}",
+                case.name
+            );
             impossible += 1;
-            std::fs::remove_file(&copy).unwrap();
+            copy.remove();
             continue;
         }
         let alters = shown(&copy, &runs, &serials, &firmwares) != before;
@@ -331,20 +315,19 @@ fn verify_finds_every_change_that_alters_what_a_command_shows() {
             }
             (false, false) => {
                 harmless += 1;
-                eprintln!("harmless and passed: {}", case.name)
+                eprintln!("{on}: harmless and passed: {}", case.name)
             }
         }
-        std::fs::remove_file(&copy).unwrap();
+        copy.remove();
     }
     println!(
-        "tamper cases: {} tried, {impossible} refused by the schema's unique keys; {altering} alter what a \
+        "{on}: tamper cases: {} tried, {impossible} refused by the schema's unique keys; {altering} alter what a \
          command shows, {caught} of them found by verify; {harmless} alter nothing shown ({flagged_anyway} \
          of those flagged too)",
         cases.len()
     );
-    assert!(missed.is_empty(), "verify missed: {missed:#?}");
+    assert!(missed.is_empty(), "{on}: verify missed: {missed:#?}");
     assert!(altering > 100, "the suite edits enough to mean something");
-    std::fs::remove_dir_all(&dir).unwrap();
 }
 
 /// Records removed from the end with the chain rewritten to match cannot be seen from inside
@@ -352,39 +335,36 @@ fn verify_finds_every_change_that_alters_what_a_command_shows() {
 #[test]
 fn truncation_is_found_against_the_anchor() {
     let dir = temp_dir("tamper-anchor");
-    let archive = dir.join("archive.sqlite");
-    fixture(&archive);
-    let anchor = Archive::open_read_only(&archive)
+    for archive in backends(&dir, "anchor") {
+        truncation_against_the_anchor(&dir, &archive);
+        archive.remove();
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+fn truncation_against_the_anchor(dir: &Path, archive: &Store) {
+    fixture(archive);
+    let anchor = archive
+        .open_read_only()
         .unwrap()
         .run_anchor("R2")
         .unwrap()
         .unwrap();
     // Remove run R2 whole, chain entries included, and write the head of what is left.
-    let conn = Connection::open(&archive).unwrap();
-    conn.execute_batch(
-        "DELETE FROM units WHERE run_id = 'R2'; DELETE FROM steps WHERE run_id = 'R2';
-         DELETE FROM readings WHERE run_id = 'R2'; DELETE FROM run_units WHERE run_id = 'R2';
-         DELETE FROM runs WHERE run_id = 'R2'; DELETE FROM chain WHERE run_id = 'R2';",
-    )
-    .unwrap();
-    let (seq, hash): (i64, String) = conn
-        .query_row(
-            "SELECT seq, sha256 FROM chain ORDER BY seq DESC LIMIT 1",
-            [],
-            |r| Ok((r.get(0)?, r.get(1)?)),
+    archive
+        .tamper(
+            "DELETE FROM units WHERE run_id = 'R2'; DELETE FROM steps WHERE run_id = 'R2';
+             DELETE FROM readings WHERE run_id = 'R2'; DELETE FROM run_units WHERE run_id = 'R2';
+             DELETE FROM runs WHERE run_id = 'R2'; DELETE FROM chain WHERE run_id = 'R2';
+             UPDATE meta SET value = (SELECT seq || ':' || sha256 FROM chain ORDER BY seq DESC LIMIT 1)
+                 WHERE key = 'chain_head'",
         )
         .unwrap();
-    conn.execute(
-        "UPDATE meta SET value = ?1 WHERE key = 'chain_head'",
-        [format!("{seq}:{hash}")],
-    )
-    .unwrap();
-    drop(conn);
     let run = |extra: &[&str]| {
         let o = bin()
             .arg("verify")
             .arg("--archive")
-            .arg(&archive)
+            .arg(archive.arg())
             .args(extra)
             .output()
             .unwrap();
@@ -394,7 +374,7 @@ fn truncation_is_found_against_the_anchor() {
         )
     };
     // Alone, the archive is consistent: the README says this is what verify cannot prove.
-    assert_eq!(run(&[]).0, 0);
+    assert_eq!(run(&[]).0, 0, "{}", archive.label());
     let (code, text) = run(&["--anchor", &anchor]);
     assert_eq!(code, 1, "{text}");
     assert!(text.contains("the chain has no entry"), "{text}");
@@ -402,7 +382,6 @@ fn truncation_is_found_against_the_anchor() {
     let file = dir.join("chain-anchor.txt");
     std::fs::write(&file, format!("{anchor}\n")).unwrap();
     assert_eq!(run(&["--anchor", file.to_str().unwrap()]).0, 1);
-    std::fs::remove_dir_all(&dir).unwrap();
 }
 
 #[test]
@@ -458,10 +437,14 @@ impl exec::Recorder for KilledBeforeTheEnd<'_> {
 fn a_unit_swapped_during_an_interruption_keeps_its_own_record() {
     use meterproof::record::{StepStatus, UnitStatus};
     let plan = Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
-    for killed in [false, true] {
-        let dir = temp_dir(&format!("swap-{killed}"));
-        let path = dir.join("archive.sqlite");
-        let archive = Archive::open(&path).unwrap();
+    let dir = temp_dir("swap");
+    for (killed, store) in [false, true].into_iter().flat_map(|k| {
+        backends(&dir, &format!("swap-{k}"))
+            .into_iter()
+            .map(move |s| (k, s))
+    }) {
+        let on = store.label();
+        let archive = store.open();
         archive
             .begin_run(&plan, &run_row(&plan, "S", "LOT-S"))
             .unwrap();
@@ -521,7 +504,7 @@ fn a_unit_swapped_during_an_interruption_keeps_its_own_record() {
         assert_eq!(new.steps.len(), plan.steps.len());
         assert!(
             new.steps.iter().all(|s| s.status == StepStatus::Done),
-            "killed: {killed}"
+            "killed: {killed}, {on}"
         );
         assert!(
             new.notes.iter().any(|n| n.contains("replaced OLD-2")),
@@ -543,10 +526,11 @@ fn a_unit_swapped_during_an_interruption_keeps_its_own_record() {
             "its readings are in its record"
         );
         let v = archive.verify(None).unwrap();
-        assert!(v.failures.is_empty(), "{:?}", v.failures);
+        assert!(v.failures.is_empty(), "{on}: {:?}", v.failures);
         drop(archive);
-        std::fs::remove_dir_all(&dir).unwrap();
+        store.remove();
     }
+    std::fs::remove_dir_all(&dir).unwrap();
 }
 
 /// `verify` names what it found changed: an edited reading and an edited verdict each name the
@@ -555,22 +539,27 @@ fn a_unit_swapped_during_an_interruption_keeps_its_own_record() {
 #[test]
 fn verify_names_the_record_a_change_belongs_to() {
     let dir = temp_dir("tamper-named");
-    let archive = dir.join("archive.sqlite");
-    fixture(&archive);
-    let conn = Connection::open(&archive).unwrap();
+    for archive in backends(&dir, "named") {
+        changes_named(&dir, &archive);
+        archive.remove();
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+fn changes_named(dir: &Path, archive: &Store) {
+    fixture(archive);
     // A reading of a finished step, and a cut-short attempt's reading: the interrupted run's
     // step 3 (index 2) was stopped during its sampling, then run again as attempt 2.
-    let cut_short: i64 = conn
-        .query_row(
-            "SELECT COUNT(*) FROM readings WHERE run_id = 'R2' AND step_index = 2 AND attempt = 1",
-            [],
-            |r| r.get(0),
-        )
-        .unwrap();
-    drop(conn);
+    let cut_short = archive.value(
+        "SELECT COUNT(*) FROM readings WHERE run_id = 'R2' AND step_index = 2 AND attempt = 1",
+    );
+    assert_ne!(
+        cut_short, "0",
+        "the fixture's interruption left no cut-short attempt"
+    );
     let cases = [
         (
-            "UPDATE readings SET value = value * 1.01 WHERE rowid = (SELECT rowid FROM readings WHERE run_id = 'R1' AND position = 2 AND step_index = 1 LIMIT 1)",
+            "UPDATE readings SET value = value * 1.01 WHERE id = (SELECT id FROM readings WHERE run_id = 'R1' AND position = 2 AND step_index = 1 ORDER BY id LIMIT 1)",
             "R1",
             2,
         ),
@@ -580,39 +569,27 @@ fn verify_names_the_record_a_change_belongs_to() {
             2,
         ),
         (
-            "UPDATE readings SET value = value * 1.01 WHERE rowid = (SELECT rowid FROM readings WHERE run_id = 'R2' AND position = 3 AND step_index = 2 AND attempt = 1 LIMIT 1)",
+            "UPDATE readings SET value = value * 1.01 WHERE id = (SELECT id FROM readings WHERE run_id = 'R2' AND position = 3 AND step_index = 2 AND attempt = 1 ORDER BY id LIMIT 1)",
             "R2",
             3,
         ),
     ];
     for (i, (sql, run, position)) in cases.iter().enumerate() {
-        if i == 2 && cut_short == 0 {
-            panic!("the fixture's interruption left no cut-short attempt");
-        }
-        let copy = copy_of(&archive, &dir, 1000 + i);
-        Connection::open(&copy).unwrap().execute_batch(sql).unwrap();
-        let v = Archive::open_read_only(&copy)
-            .unwrap()
-            .verify(None)
-            .unwrap();
-        assert!(!v.failures.is_empty(), "{sql}: not found");
-        let serial = {
-            let c = Connection::open(&copy).unwrap();
-            c.query_row(
-                "SELECT serial FROM units WHERE run_id = ?1 AND position = ?2 LIMIT 1",
-                rusqlite::params![run, position],
-                |r| r.get::<_, String>(0),
-            )
-            .unwrap()
-        };
+        let copy = archive.copy(dir, 1000 + i);
+        copy.tamper(sql).unwrap();
+        let v = copy.open_read_only().unwrap().verify(None).unwrap();
+        assert!(!v.failures.is_empty(), "{}: {sql}: not found", copy.label());
+        let serial = copy.value(&format!(
+            "SELECT serial FROM units WHERE run_id = '{run}' AND position = {position} LIMIT 1"
+        ));
         let named = v.failures.iter().any(|f| {
             f.what.contains(run)
                 && f.what.contains(&format!("position {position}"))
                 && f.what.contains(&serial)
         });
-        assert!(named, "{sql}: {:#?}", v.failures);
+        assert!(named, "{}: {sql}: {:#?}", copy.label(), v.failures);
+        copy.remove();
     }
-    std::fs::remove_dir_all(&dir).unwrap();
 }
 
 /// Forgeries made the way one who knows the scheme would make them: a run's end time changed in
@@ -621,63 +598,52 @@ fn verify_names_the_record_a_change_belongs_to() {
 /// own hash, the second by the next entry's link to it (the run is not the last in the chain).
 #[test]
 fn a_consistent_forgery_is_caught_by_the_chain_itself() {
+    let dir = temp_dir("tamper-forged");
+    for archive in backends(&dir, "forged") {
+        forgeries_caught(&dir, &archive);
+        archive.remove();
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+fn forgeries_caught(dir: &Path, archive: &Store) {
     use meterproof::plan::sha256_hex;
     use meterproof::record::canonical_bytes;
-    let dir = temp_dir("tamper-forged");
-    let archive = dir.join("archive.sqlite");
-    fixture(&archive);
+    fixture(archive);
     let forged_at = "2026-12-01T23:59:59.000+00:00";
     let content = sha256_hex(&canonical_bytes(&serde_json::json!({
         "run_id": "R1",
         "state": "finished",
         "finished_at": forged_at,
     })));
-    let (seq, prev): (i64, String) = Connection::open(&archive)
-        .unwrap()
-        .query_row(
-            "SELECT seq, prev_sha256 FROM chain WHERE kind = 'end' AND run_id = 'R1' ORDER BY seq DESC LIMIT 1",
-            [],
-            |r| Ok((r.get(0)?, r.get(1)?)),
-        )
-        .unwrap();
-    let last: i64 = Connection::open(&archive)
-        .unwrap()
-        .query_row("SELECT MAX(seq) FROM chain", [], |r| r.get(0))
-        .unwrap();
+    let end =
+        "SELECT seq FROM chain WHERE kind = 'end' AND run_id = 'R1' ORDER BY seq DESC LIMIT 1";
+    let seq: i64 = archive.value(end).parse().unwrap();
+    let prev = archive.value(&format!("SELECT prev_sha256 FROM chain WHERE seq = {seq}"));
+    let last: i64 = archive.value("SELECT MAX(seq) FROM chain").parse().unwrap();
     assert!(seq < last, "R1's end is not the last entry");
     let rehashed = sha256_hex(format!("{prev}\nend\n{content}").as_bytes());
     let forge = |i: usize, with_hash: bool| {
-        let copy = copy_of(&archive, &dir, 2000 + i);
-        let c = Connection::open(&copy).unwrap();
-        c.execute(
-            "UPDATE runs SET finished_at = ?1 WHERE run_id = 'R1'",
-            [forged_at],
-        )
-        .unwrap();
-        c.execute(
-            "UPDATE chain SET content_sha256 = ?1 WHERE seq = ?2",
-            rusqlite::params![content, seq],
-        )
-        .unwrap();
+        let copy = archive.copy(dir, 2000 + i);
+        let mut sql = format!(
+            "UPDATE runs SET finished_at = '{forged_at}' WHERE run_id = 'R1';
+             UPDATE chain SET content_sha256 = '{content}' WHERE seq = {seq}"
+        );
         if with_hash {
-            c.execute(
-                "UPDATE chain SET sha256 = ?1 WHERE seq = ?2",
-                rusqlite::params![rehashed, seq],
-            )
-            .unwrap();
+            sql += &format!("; UPDATE chain SET sha256 = '{rehashed}' WHERE seq = {seq}");
         }
-        drop(c);
-        Archive::open_read_only(&copy)
-            .unwrap()
-            .verify(None)
-            .unwrap()
+        copy.tamper(&sql).unwrap();
+        let v = copy.open_read_only().unwrap().verify(None).unwrap();
+        copy.remove();
+        v
     };
     let own = forge(0, false);
     assert!(
         own.failures
             .iter()
             .any(|f| f.why.contains("its own hash does not match its content")),
-        "{:#?}",
+        "{}: {:#?}",
+        archive.label(),
         own.failures
     );
     let linked = forge(1, true);
@@ -686,8 +652,8 @@ fn a_consistent_forgery_is_caught_by_the_chain_itself() {
             .failures
             .iter()
             .any(|f| f.why.contains("missing, reordered or changed")),
-        "{:#?}",
+        "{}: {:#?}",
+        archive.label(),
         linked.failures
     );
-    std::fs::remove_dir_all(&dir).unwrap();
 }

@@ -409,14 +409,15 @@ pub(super) fn checked_serials(serials: Option<&[String]>) -> Result<Option<Vec<S
     Ok(Some(serials.iter().map(|s| s.trim().to_string()).collect()))
 }
 
-/// A run id that sorts by time and does not repeat: UTC time plus the process id and nanoseconds.
+/// A run id that sorts by time and does not repeat: UTC time plus 32 random bits, so that
+/// benches on several machines sharing one archive do not meet (the archive refuses a run id it
+/// has, before any load, should two ever do).
 pub(super) fn new_run_id() -> String {
     let now = chrono::Utc::now();
     format!(
-        "{}-{:04x}{:04x}",
+        "{}-{:08x}",
         now.format("%Y%m%dT%H%M%SZ"),
-        std::process::id() & 0xffff,
-        now.timestamp_subsec_nanos() & 0xffff
+        rand::random::<u32>()
     )
 }
 

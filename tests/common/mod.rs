@@ -1,6 +1,8 @@
 //! Helpers shared by the integration tests.
 #![allow(dead_code)]
 
+pub mod store;
+
 use meterproof::exec::RunContext;
 use meterproof::record::UnitRecord;
 use std::io::{BufRead, BufReader};
