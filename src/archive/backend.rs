@@ -8,6 +8,7 @@
 //! Every write must be durable when it returns (a reading committed is a reading kept), and
 //! every write appends its chain entry in the same transaction as its row.
 
+use super::image::{Fill, Sink};
 use super::{
     ArchiveError, HistoryRow, RunFilter, RunRow, RunState, RunSummary, SelectBy, Verification,
 };
@@ -77,4 +78,16 @@ pub trait Backend: Send {
     fn verify(&self, anchor: Option<&str>) -> Result<Verification, ArchiveError>;
     fn run_anchor(&self, run_id: &str) -> Result<Option<String>, ArchiveError>;
     fn chain_head(&self) -> Result<Option<String>, ArchiveError>;
+
+    // ---- Copying between archives (`image`) ----
+
+    /// Hands every stored row to `sink`, table by table (meta, plans, runs, units seen,
+    /// readings, steps, unit records, chain), in chunks, in the order written, from one
+    /// consistent view.
+    fn dump(&self, sink: &mut Sink<'_>) -> Result<(), ArchiveError>;
+    /// Whether the archive holds nothing yet: no run, no unit record, no chain entry.
+    fn is_empty(&self) -> Result<bool, ArchiveError>;
+    /// Loads the rows `fill` hands over into this (empty) archive, in one transaction, keeping
+    /// their numbers.
+    fn load(&self, fill: &mut Fill<'_>) -> Result<(), ArchiveError>;
 }

@@ -21,6 +21,7 @@ use std::sync::Mutex;
 
 mod backend;
 mod chain;
+pub mod image;
 mod pg;
 mod recorder;
 pub mod seal;
@@ -48,15 +49,34 @@ pub enum ArchiveError {
         "archive: written by a newer meterproof (schema version {0}; this one knows up to {SCHEMA_VERSION}): use that version"
     )]
     Newer(i64),
+    #[error(
+        "archive {0} already holds records: copy into a new, empty archive (copying into one with records would have to merge two chains)"
+    )]
+    NotEmpty(String),
     #[error("{path} is not a meterproof archive: {why}")]
     NotAnArchive { path: String, why: String },
 }
 
-/// What the PostgreSQL server said, rather than the client's summary of it ("db error").
+/// What the PostgreSQL server said, rather than the client's summary of it ("db error"), or
+/// the client's error with its cause ("error connecting to server: Connection refused").
 fn postgres_message(e: &postgres::Error) -> String {
     match e.as_db_error() {
         Some(db) => format!("{} ({})", db.message(), db.code().code()),
-        None => e.to_string(),
+        None => match std::error::Error::source(e) {
+            Some(cause) => format!("{e}: {cause}"),
+            None => e.to_string(),
+        },
+    }
+}
+
+impl ArchiveError {
+    /// The storage's own words, without the "archive:" this error's display puts first.
+    pub fn said(&self) -> String {
+        match self {
+            ArchiveError::Sql(inner) => inner.to_string(),
+            ArchiveError::Postgres(inner) => postgres_message(inner),
+            other => other.to_string(),
+        }
     }
 }
 
@@ -210,6 +230,25 @@ impl Archive {
         }
     }
 
+    /// Copies every row of this archive into `target`, which must hold nothing yet (`shown`
+    /// names it in the refusal), in one transaction on the target: every hash, sequence number
+    /// and reading order is kept, so `verify` gives the same chain head on both sides.
+    pub fn copy_into(&self, target: &Archive, shown: &str) -> Result<image::Copied, ArchiveError> {
+        let source = self.backend();
+        let to = target.backend();
+        if !to.is_empty()? {
+            return Err(ArchiveError::NotEmpty(shown.to_string()));
+        }
+        let mut copied = image::Copied::default();
+        to.load(&mut |sink| {
+            source.dump(&mut |rows| {
+                copied.count(&rows);
+                sink(rows)
+            })
+        })?;
+        Ok(copied)
+    }
+
     /// Opens an existing SQLite archive for reading only: never creates, migrates or changes
     /// anything, and works on a file or folder that is read-only.
     pub fn open_read_only(path: &Path) -> Result<Archive, ArchiveError> {
@@ -232,11 +271,7 @@ impl Archive {
     /// Keeps the first failed write, as the storage said it (the operator's message already
     /// says it is the archive's).
     fn note_error(&self, what: &str, e: ArchiveError) {
-        let said = match e {
-            ArchiveError::Sql(inner) => inner.to_string(),
-            ArchiveError::Postgres(inner) => postgres_message(&inner),
-            other => other.to_string(),
-        };
+        let said = e.said();
         let mut slot = self.first_error.lock().unwrap_or_else(|p| p.into_inner());
         if slot.is_none() {
             *slot = Some(format!("{what}: {said}"));

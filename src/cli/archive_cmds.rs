@@ -413,6 +413,79 @@ pub(super) fn export(args: &ExportArgs) -> Result<i32, CliError> {
 }
 
 #[derive(clap::Args)]
+pub(super) struct CopyArchiveArgs {
+    /// The archive to copy (read only; left as it is).
+    #[arg(long)]
+    from: Location,
+    /// The archive to copy into: a new SQLite file, or an empty PostgreSQL database.
+    #[arg(long)]
+    to: Location,
+}
+
+/// Copies a whole archive into a new one and verifies both: the same chain head, every record
+/// checked on each side. Exit 1 if either side fails its verification.
+pub(super) fn copy_archive(args: &CopyArchiveArgs) -> Result<i32, CliError> {
+    if args.from == args.to {
+        return Err(CliError::Usage(format!(
+            "--from and --to are the same archive ({})",
+            args.from
+        )));
+    }
+    let source = open_to_read(&args.from)?;
+    let target = Archive::open_at(&args.to).map_err(|e| CliError::Run(e.to_string()))?;
+    let copied = source
+        .copy_into(&target, &args.to.to_string())
+        .map_err(|e| match e {
+            e @ crate::archive::ArchiveError::NotEmpty(_) => CliError::Usage(e.to_string()),
+            e => CliError::Run(format!("the copy was not made (nothing was written): {e}")),
+        })?;
+    out!(
+        "copied {} runs, {} unit records, {} readings, {} step records and {} chain entries from {} to {}",
+        copied.runs,
+        copied.units,
+        copied.readings,
+        copied.steps,
+        copied.chain,
+        args.from,
+        args.to
+    );
+    let mut failed = 0;
+    let mut heads = Vec::new();
+    for (name, archive) in [(&args.from, &source), (&args.to, &target)] {
+        let v = archive.verify(None).map_err(db)?;
+        for f in &v.failures {
+            out!(
+                "{name}: {}: {}",
+                super::terminal_safe(&f.what),
+                super::terminal_safe(&f.why)
+            );
+        }
+        out!(
+            "{name}: {} chain entries and {} unit records checked, {} failed",
+            v.entries,
+            v.unit_records,
+            v.failures.len()
+        );
+        failed += v.failures.len();
+        heads.push(v.head);
+    }
+    if heads[0] == heads[1] {
+        out!(
+            "chain head {} on both",
+            heads[0].as_deref().unwrap_or("(empty)")
+        );
+    } else {
+        out!(
+            "the chain heads differ: {} and {}",
+            heads[0].as_deref().unwrap_or("(empty)"),
+            heads[1].as_deref().unwrap_or("(empty)")
+        );
+        failed += 1;
+    }
+    Ok(if failed == 0 { 0 } else { 1 })
+}
+
+#[derive(clap::Args)]
 pub(super) struct VerifyArgs {
     #[arg(long)]
     archive: crate::archive::Location,

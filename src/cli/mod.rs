@@ -116,6 +116,8 @@ enum Command {
     Export(archive_cmds::ExportArgs),
     /// Check every record in the archive against its hash and the chain.
     Verify(archive_cmds::VerifyArgs),
+    /// Copy a whole archive into a new one (SQLite to PostgreSQL or back), every hash kept.
+    CopyArchive(archive_cmds::CopyArchiveArgs),
     /// Compare two sets of runs (before and after a firmware change) check by check.
     Compare(archive_cmds::CompareArgs),
     /// The summary of a lot or a run: yield, rejections by check, error distributions, Cpk.
@@ -305,6 +307,7 @@ pub fn main() -> i32 {
         Command::Runs(args) => archive_cmds::runs(&args),
         Command::Export(args) => archive_cmds::export(&args),
         Command::Verify(args) => archive_cmds::verify(&args),
+        Command::CopyArchive(args) => archive_cmds::copy_archive(&args),
         Command::Compare(args) => archive_cmds::compare(&args),
         Command::Summary(args) => archive_cmds::summary(&args),
         Command::Report(args) => archive_cmds::report(&args),

@@ -111,14 +111,9 @@ pub(super) fn connect(url: &str) -> Result<Client, ArchiveError> {
     }
     config.connect_timeout(CONNECT_TIMEOUT);
     config.application_name("meterproof");
-    config.connect(NoTls).map_err(|e| {
-        open_err(format!(
-            "cannot connect: {}",
-            e.as_db_error()
-                .map(|d| d.message().to_string())
-                .unwrap_or_else(|| e.to_string())
-        ))
-    })
+    config
+        .connect(NoTls)
+        .map_err(|e| open_err(format!("cannot connect: {}", ArchiveError::from(e).said())))
 }
 
 #[cfg(test)]

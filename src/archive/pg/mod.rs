@@ -24,6 +24,7 @@ use std::cell::RefCell;
 
 mod chain;
 mod connect;
+mod image;
 mod schema;
 
 use chain::{PgTables, append, head, lock_chain};
@@ -129,7 +130,7 @@ impl Postgres {
             e @ ArchiveError::Newer(_) => e,
             e => ArchiveError::Open {
                 path: redacted(url),
-                why: format!("cannot set up the archive (not writable?): {e}"),
+                why: format!("cannot set up the archive (not writable?): {}", e.said()),
             },
         })?;
         Ok(Postgres {
@@ -543,5 +544,17 @@ impl Backend for Postgres {
 
     fn chain_head(&self) -> Result<Option<String>, ArchiveError> {
         head(&mut *self.client.borrow_mut())
+    }
+
+    fn dump(&self, sink: &mut crate::archive::image::Sink<'_>) -> Result<(), ArchiveError> {
+        image::dump(&mut self.client.borrow_mut(), sink)
+    }
+
+    fn is_empty(&self) -> Result<bool, ArchiveError> {
+        image::is_empty(&mut self.client.borrow_mut())
+    }
+
+    fn load(&self, fill: &mut crate::archive::image::Fill<'_>) -> Result<(), ArchiveError> {
+        image::load(&mut self.client.borrow_mut(), fill)
     }
 }

@@ -29,6 +29,7 @@ use rusqlite::{Connection, OptionalExtension, params};
 use std::path::Path;
 
 mod chain;
+mod image;
 mod schema;
 
 pub use schema::SCHEMA_VERSION;
@@ -672,6 +673,18 @@ impl Backend for Sqlite {
         }
         tx.commit()?;
         Ok(())
+    }
+
+    fn dump(&self, sink: &mut crate::archive::image::Sink<'_>) -> Result<(), ArchiveError> {
+        image::dump(&self.conn, sink)
+    }
+
+    fn is_empty(&self) -> Result<bool, ArchiveError> {
+        image::is_empty(&self.conn)
+    }
+
+    fn load(&self, fill: &mut crate::archive::image::Fill<'_>) -> Result<(), ArchiveError> {
+        image::load(&self.conn, fill)
     }
 
     /// Records which unit is in which position, once it has identified itself, sealed in the
