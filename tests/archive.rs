@@ -909,3 +909,179 @@ fn a_shared_archive_refuses_a_newer_schema_and_names_a_server_out_of_reach() {
     store.remove();
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// A PostgreSQL cluster of the test's own (it is stopped and started again), stopped when
+/// dropped.
+struct OwnServer {
+    dir: std::path::PathBuf,
+    port: u16,
+}
+
+impl OwnServer {
+    fn start(dir: &Path) -> OwnServer {
+        let port = std::net::TcpListener::bind("127.0.0.1:0")
+            .unwrap()
+            .local_addr()
+            .unwrap()
+            .port();
+        let s = OwnServer {
+            dir: dir.join("cluster"),
+            port,
+        };
+        s.ci("start");
+        s
+    }
+
+    fn ci(&self, what: &str) {
+        let ok = std::process::Command::new("bash")
+            .args([".ci/postgres", what])
+            .arg(&self.dir)
+            .arg(self.port.to_string())
+            .status()
+            .unwrap()
+            .success();
+        assert!(ok, ".ci/postgres {what}");
+    }
+
+    fn url(&self, db: &str) -> String {
+        format!("postgres://meterproof@127.0.0.1:{}/{db}", self.port)
+    }
+}
+
+impl Drop for OwnServer {
+    fn drop(&mut self) {
+        self.ci("stop");
+    }
+}
+
+/// A bench with a journal whose shared archive goes away mid-run: the run completes on the
+/// journal, the operator is told the database is out of reach and what waits; once the server
+/// is back, an upload that fails half-way (as a crash or a lost connection would leave it)
+/// writes nothing, and the next takes everything exactly once, in order: the same readings and
+/// records on both sides, the chain verified, and a third upload finds nothing to send.
+#[test]
+fn a_bench_that_loses_its_shared_archive_keeps_testing_and_uploads_once() {
+    if common::store::server().is_none() {
+        return; // said loudly by tests/postgres_notice.rs
+    }
+    let dir = temp_dir("journal");
+    let server = OwnServer::start(&dir);
+    let mut admin = postgres::Client::connect(&server.url("postgres"), postgres::NoTls).unwrap();
+    admin.batch_execute("CREATE DATABASE shared").unwrap();
+    drop(admin);
+    let url = server.url("shared");
+    let shared = Store::Postgres { url: url.clone() };
+    let journal = Store::Sqlite(dir.join("journal.sqlite"));
+    let served = common::serve_at(&dir, "10", &[]);
+    let out = dir.join("out");
+    let run = bin()
+        .args([
+            "run",
+            "test-plans/demo-serial.yaml",
+            "--quiet",
+            "--unattended",
+            "--bench",
+        ])
+        .arg(&served.station)
+        .arg("--out")
+        .arg(&out)
+        .args(["--journal", &journal.arg(), "--archive", &url])
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    // Cut the database off once the second step's readings arrive.
+    let deadline = Instant::now() + Duration::from_secs(60);
+    loop {
+        assert!(
+            Instant::now() < deadline,
+            "the run never got to its second step"
+        );
+        std::thread::sleep(Duration::from_millis(20));
+        let n = journal
+            .try_value("SELECT COUNT(*) FROM readings WHERE step_index = 1")
+            .and_then(|v| v.parse::<i64>().ok());
+        if n.is_some_and(|n| n > 0) {
+            break;
+        }
+    }
+    server.ci("stop");
+    let o = run.wait_with_output().unwrap();
+    let err = String::from_utf8_lossy(&o.stderr);
+    // The run completed on the journal: its verdicts, not "could not" (3).
+    assert_eq!(o.status.code(), Some(1), "{err}");
+    assert!(err.contains("SHARED ARCHIVE OUT OF REACH"), "{err}");
+    assert!(err.contains("waiting there: 1 run ("), "{err}");
+    let records = common::records_in(&out);
+    assert_eq!(records.len(), 4);
+    assert!(
+        records
+            .iter()
+            .all(|r| r.verdict.status != UnitStatus::Incomplete)
+    );
+    let local_readings = journal.value("SELECT COUNT(*) FROM readings");
+    // The server is back; an upload fails half-way (the first attempt's transaction is broken
+    // off after its readings are in, as a dropped connection would): nothing is kept of it.
+    server.ci("again");
+    shared
+        .tamper(
+            "CREATE SEQUENCE upload_attempts;
+             CREATE FUNCTION cut_off() RETURNS trigger LANGUAGE plpgsql AS $$
+             BEGIN
+                 IF nextval('upload_attempts') = 1 THEN
+                     RAISE EXCEPTION 'connection lost (simulated)';
+                 END IF;
+                 RETURN NEW;
+             END $$;
+             CREATE TRIGGER cut_off BEFORE INSERT ON units FOR EACH ROW EXECUTE FUNCTION cut_off()",
+        )
+        .unwrap();
+    let upload = || {
+        let o = bin()
+            .args(["upload", "--journal", &journal.arg(), "--archive", &url])
+            .output()
+            .unwrap();
+        (
+            o.status.code().unwrap(),
+            format!(
+                "{}{}",
+                String::from_utf8_lossy(&o.stdout),
+                String::from_utf8_lossy(&o.stderr)
+            ),
+        )
+    };
+    let (code, text) = upload();
+    assert_eq!(code, 3, "{text}");
+    assert!(text.contains("connection lost (simulated)"), "{text}");
+    assert_eq!(shared.value("SELECT COUNT(*) FROM readings"), "0");
+    assert_eq!(shared.value("SELECT COUNT(*) FROM chain"), "0");
+    let (code, text) = upload();
+    assert_eq!(code, 0, "{text}");
+    assert!(text.contains("uploaded 1 run (4 unit records"), "{text}");
+    assert_eq!(
+        shared.value("SELECT COUNT(*) FROM readings"),
+        local_readings
+    );
+    assert_eq!(
+        shared.value("SELECT COUNT(*) FROM chain"),
+        journal.value("SELECT COUNT(*) FROM chain")
+    );
+    // The same records, samples and all, on both sides; the shared chain verifies.
+    let run_id = &records[0].run_id;
+    let on = |s: &Store| s.open_read_only().unwrap().unit_records(run_id).unwrap();
+    assert_eq!(on(&journal), on(&shared));
+    let v = shared.open_read_only().unwrap().verify(None).unwrap();
+    assert!(v.failures.is_empty(), "{:?}", v.failures);
+    assert_eq!(v.unit_records, 4);
+    // Nothing twice.
+    let (code, text) = upload();
+    assert_eq!(code, 0, "{text}");
+    assert!(text.contains("up to date"), "{text}");
+    assert_eq!(
+        shared.value("SELECT COUNT(*) FROM readings"),
+        local_readings
+    );
+    drop(served);
+    drop(server);
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -22,6 +22,7 @@ use std::sync::Mutex;
 mod backend;
 mod chain;
 pub mod image;
+pub mod journal;
 mod pg;
 mod recorder;
 pub mod seal;

@@ -21,9 +21,12 @@ use std::path::{Path, PathBuf};
 pub(super) struct ResumeArgs {
     /// The run id to continue.
     run: String,
-    /// The archive database the run is in.
+    /// The archive database the run is in (with --journal: the shared archive it goes to).
     #[arg(long)]
     archive: crate::archive::Location,
+    /// The station's journal the run is kept in, with a shared --archive.
+    #[arg(long, value_name = "FILE")]
+    journal: Option<PathBuf>,
     /// Folder for records and reports (the run's subfolder is reused).
     #[arg(long)]
     out: PathBuf,
@@ -102,8 +105,18 @@ fn db(e: crate::archive::ArchiveError) -> CliError {
 
 /// Continues an interrupted run: each unit from the first step it did not finish.
 pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
-    let archive = open(&args.archive)?;
-    let lock = super::lock_run(&args.archive, &args.run)?;
+    if let Some(j) = &args.journal
+        && !j.exists()
+    {
+        return Err(CliError::Usage(format!("no journal at {}", j.display())));
+    }
+    let keeping = super::journal::keeping(
+        Some(&args.archive),
+        args.journal.as_deref(),
+        args.archive.clone(),
+    )?;
+    let archive = open(&keeping.at)?;
+    let lock = super::lock_run(&keeping.at, &args.run)?;
     let run = archive.run(&args.run).map_err(db)?;
     if run.state != "running" && run.state != "interrupted" {
         return Err(CliError::Usage(format!(
@@ -145,10 +158,18 @@ pub(super) fn resume(args: &ResumeArgs) -> Result<i32, CliError> {
         Some(&state),
     );
     let archived = finish_run(&archive, &run.run_id, &records);
+    if let Some((journal, url)) = &keeping.journal {
+        super::journal::send(journal, url);
+    }
     // What the folder held from before the interruption is kept, set aside, so the final
     // reports carry their plain names.
     super::set_aside_earlier_files(&run_dir)?;
-    let hint = super::resume_hint(&run.run_id, &args.archive, &args.out, &records);
+    let hint = super::resume_hint(
+        &run.run_id,
+        &super::resume_archive_args(Some(&args.archive), args.journal.as_deref(), &keeping.at),
+        &args.out,
+        &records,
+    );
     if hint.is_none() && archived.is_ok() {
         lock.finished();
     }

@@ -31,6 +31,7 @@ mod bench_choice;
 mod check;
 mod editor;
 mod explain;
+mod journal;
 mod run;
 mod terminal;
 mod tools;
@@ -39,8 +40,8 @@ mod try_link;
 use bench_choice::{BenchOptions, BenchSpec, build_bench, plan_at_bench, sim_positions};
 use check::check;
 use run::{
-    fallback_dir, finish_run, lock_run, resume_hint, run, set_aside_earlier_files, write_or_keep,
-    write_outputs,
+    fallback_dir, finish_run, lock_run, resume_archive_args, resume_hint, run,
+    set_aside_earlier_files, write_or_keep, write_outputs,
 };
 use terminal::{
     TerminalReporter, Written, exit_status, fitted, print_summary, terminal_safe,
@@ -118,6 +119,8 @@ enum Command {
     Verify(archive_cmds::VerifyArgs),
     /// Copy a whole archive into a new one (SQLite to PostgreSQL or back), every hash kept.
     CopyArchive(archive_cmds::CopyArchiveArgs),
+    /// Upload a station's journal to the shared archive (what waits since it was out of reach).
+    Upload(journal::UploadArgs),
     /// Compare two sets of runs (before and after a firmware change) check by check.
     Compare(archive_cmds::CompareArgs),
     /// The summary of a lot or a run: yield, rejections by check, error distributions, Cpk.
@@ -235,9 +238,15 @@ struct RunArgs {
     /// is closed: only for a bench whose interlocks make it safe with nobody watching.
     #[arg(long)]
     unattended: bool,
-    /// The archive database (default: archive.sqlite in the --out folder).
+    /// The archive database (default: archive.sqlite in the --out folder), or a shared one
+    /// (postgres://USER@HOST/DB).
     #[arg(long)]
     archive: Option<crate::archive::Location>,
+    /// With a shared --archive: the station's journal, where the run is kept as it goes and
+    /// uploaded from (before and after each run), so that a network that goes away never stops
+    /// the bench.
+    #[arg(long, value_name = "FILE")]
+    journal: Option<PathBuf>,
     /// Also write the run as JUnit XML (a test suite per unit, a test case per check).
     #[arg(long, value_name = "FILE")]
     junit: Option<PathBuf>,
@@ -308,6 +317,7 @@ pub fn main() -> i32 {
         Command::Export(args) => archive_cmds::export(&args),
         Command::Verify(args) => archive_cmds::verify(&args),
         Command::CopyArchive(args) => archive_cmds::copy_archive(&args),
+        Command::Upload(args) => journal::upload(&args),
         Command::Compare(args) => archive_cmds::compare(&args),
         Command::Summary(args) => archive_cmds::summary(&args),
         Command::Report(args) => archive_cmds::report(&args),

@@ -92,11 +92,17 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
         ))
     })?;
     let fallback = fallback_dir(args.fallback.as_deref())?;
-    let archive_path = args
-        .archive
-        .clone()
-        .unwrap_or_else(|| Location::Sqlite(args.out.join("archive.sqlite")));
+    let keeping = super::journal::keeping(
+        args.archive.as_ref(),
+        args.journal.as_deref(),
+        Location::Sqlite(args.out.join("archive.sqlite")),
+    )?;
+    let archive_path = keeping.at.clone();
     let archive = Archive::open_at(&archive_path).map_err(|e| CliError::Run(e.to_string()))?;
+    if let Some((journal, url)) = &keeping.journal {
+        // What an earlier run left in the journal goes first (said, never in the way).
+        super::journal::send(journal, url);
+    }
     let lock = lock_run(&archive_path, &ctx.run_id)?;
     archive
         .begin_run(
@@ -124,6 +130,9 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
     // The archive first, so the records and reports carry its anchor; when it failed, the
     // files are what is left of the run, and its error is the last word.
     let archived = finish_run(&archive, &ctx.run_id, &records);
+    if let Some((journal, url)) = &keeping.journal {
+        super::journal::send(journal, url);
+    }
     let mut anchors = Anchors::new();
     if let Ok(anchor) = &archived {
         anchors.insert(ctx.run_id.clone(), anchor.clone());
@@ -139,7 +148,16 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
     if let Some(path) = &args.junit {
         write_file(path, report::run_junit(&records))?;
     }
-    let resume_hint = resume_hint(&ctx.run_id, &archive_path, &args.out, &records);
+    let resume_hint = resume_hint(
+        &ctx.run_id,
+        &resume_archive_args(
+            args.archive.as_ref(),
+            args.journal.as_deref(),
+            &archive_path,
+        ),
+        &args.out,
+        &records,
+    );
     if resume_hint.is_none() && archived.is_ok() {
         lock.finished();
     }
@@ -266,16 +284,32 @@ pub(super) fn write_or_keep(
 /// For a run stopped early: that the output is off, and the command that continues it.
 pub(super) fn resume_hint(
     run_id: &str,
-    archive: &Location,
+    archive_args: &str,
     out: &Path,
     records: &[UnitRecord],
 ) -> Option<String> {
     let why = exec::stopped_early(records)?;
     Some(format!(
-        "The run stopped early ({why}); the source output is off. Continue it with:\n  meterproof resume {run_id} --archive {} --out {}",
-        shell_word(&archive.to_string()),
+        "The run stopped early ({why}); the source output is off. Continue it with:\n  meterproof resume {run_id} {archive_args} --out {}",
         shell_word(&out.display().to_string())
     ))
+}
+
+/// The archive options of a resume command line: `--archive A`, or with a journal `--journal
+/// J --archive URL` (the address without its password).
+pub(super) fn resume_archive_args(
+    archive: Option<&Location>,
+    journal: Option<&Path>,
+    at: &Location,
+) -> String {
+    match (archive, journal) {
+        (Some(shared), Some(j)) => format!(
+            "--journal {} --archive {}",
+            shell_word(&j.display().to_string()),
+            shell_word(&shared.to_string())
+        ),
+        _ => format!("--archive {}", shell_word(&at.to_string())),
+    }
 }
 
 /// A word as a shell reads it back: quoted where it has anything but plain characters.

@@ -38,11 +38,20 @@ pub(super) fn append(
     entry: &Entry,
     content: &str,
 ) -> Result<(), ArchiveError> {
+    append_as(c, entry.kind(), &entry.columns(), content)
+}
+
+/// Appends an entry of `kind` with these columns: what [`append`] does, and what an upload does
+/// with an entry first sealed in a station's journal (same kind, columns and content).
+pub(super) fn append_as(
+    c: &mut impl GenericClient,
+    kind: &str,
+    e: &EntryColumns<'_>,
+    content: &str,
+) -> Result<(), ArchiveError> {
     let (seq, prev) = newest(c)?;
     let seq = seq + 1;
-    let kind = entry.kind();
     let hash = link(&prev, kind, content);
-    let e = entry.columns();
     c.execute(
         "INSERT INTO chain (seq, kind, run_id, position, step_index, attempt, unit_seq, content_sha256, sha256, prev_sha256)
          VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10)",

@@ -26,8 +26,9 @@ mod chain;
 mod connect;
 mod image;
 mod schema;
+mod upload;
 
-use chain::{PgTables, append, head, lock_chain};
+use chain::{PgTables, append, append_as, head, lock_chain};
 pub use connect::redacted;
 pub use schema::PG_SCHEMA_VERSION;
 

@@ -52,6 +52,9 @@ CREATE TABLE IF NOT EXISTS chain (
     position BIGINT, step_index BIGINT, attempt BIGINT, unit_seq BIGINT,
     content_sha256 TEXT NOT NULL, sha256 TEXT NOT NULL, prev_sha256 TEXT NOT NULL);
 CREATE INDEX IF NOT EXISTS chain_run ON chain(run_id, kind);
+CREATE TABLE IF NOT EXISTS journal_uploads (
+    journal_id TEXT PRIMARY KEY, chain_upto BIGINT NOT NULL, readings_upto BIGINT NOT NULL,
+    uploaded_at TEXT NOT NULL);
 "#;
 
 /// The stored schema version, `None` for an empty database.
@@ -76,8 +79,13 @@ pub(super) fn set_up(client: &mut Client) -> Result<(), ArchiveError> {
     lock_chain(&mut tx)?;
     match stored_version(&mut tx)? {
         Some(v) if v > PG_SCHEMA_VERSION => return Err(ArchiveError::Newer(v)),
-        // Later versions add their migrations here, each in this same transaction.
-        Some(_) => {}
+        // Later versions add their migrations here, each in this same transaction. The table
+        // of journal uploads came within version 2, before any release: made where missing.
+        Some(_) => tx.batch_execute(
+            "CREATE TABLE IF NOT EXISTS journal_uploads (
+                 journal_id TEXT PRIMARY KEY, chain_upto BIGINT NOT NULL,
+                 readings_upto BIGINT NOT NULL, uploaded_at TEXT NOT NULL)",
+        )?,
         None => tx.batch_execute(SCHEMA)?,
     }
     tx.execute(

@@ -325,3 +325,204 @@ pub(super) fn load(conn: &Connection, fill: &mut Fill<'_>) -> Result<(), Archive
     tx.commit()?;
     Ok(())
 }
+
+/// The rows of a journal beyond `marks`, for an upload: the chain entries after the mark, the
+/// plan, run, seen, step and unit rows they seal (runs as they are now), and the readings after
+/// the mark, in the order a shared archive inserts them.
+pub(super) fn dump_since(
+    conn: &Connection,
+    marks: &crate::archive::journal::Marks,
+    sink: &mut Sink<'_>,
+) -> Result<(), ArchiveError> {
+    let tx = conn.unchecked_transaction()?;
+    let mut entries = Vec::new();
+    chunked(
+        &tx,
+        &format!(
+            "SELECT seq, kind, run_id, position, step_index, attempt, unit_seq, content_sha256, sha256,
+                    prev_sha256 FROM chain WHERE seq > {} ORDER BY seq",
+            marks.chain_upto
+        ),
+        |r| {
+            Ok(ChainRow {
+                seq: r.get(0)?,
+                kind: r.get(1)?,
+                run_id: r.get(2)?,
+                position: r.get(3)?,
+                step_index: r.get(4)?,
+                attempt: r.get(5)?,
+                unit_seq: r.get(6)?,
+                content_sha256: r.get(7)?,
+                sha256: r.get(8)?,
+                prev_sha256: r.get(9)?,
+            })
+        },
+        |v| Rows::Chain(v),
+        &mut |rows| {
+            if let Rows::Chain(v) = rows {
+                entries.extend(v);
+            }
+            Ok(())
+        },
+    )?;
+    let runs: std::collections::BTreeSet<&str> = entries
+        .iter()
+        .map(|e| e.run_id.as_str())
+        .filter(|r| !r.is_empty())
+        .collect();
+    for run in &runs {
+        let p = tx
+            .query_row(
+                "SELECT p.sha256, p.plan_id, p.revision, p.file, p.text
+                 FROM plans p JOIN runs r ON r.plan_sha256 = p.sha256 WHERE r.run_id = ?1",
+                [run],
+                |r| {
+                    Ok(PlanRow {
+                        sha256: r.get(0)?,
+                        plan_id: r.get(1)?,
+                        revision: r.get(2)?,
+                        file: r.get(3)?,
+                        text: r.get(4)?,
+                    })
+                },
+            )
+            .optional()?;
+        sink(Rows::Plans(p.into_iter().collect()))?;
+    }
+    let mut run_rows = Vec::new();
+    let mut seen = Vec::new();
+    for run in &runs {
+        run_rows.extend(
+            tx.query_row(
+                "SELECT rowid, run_id, plan_sha256, lot, station, operator, bench, tool_version,
+                        started_at, finished_at, state FROM runs WHERE run_id = ?1",
+                [run],
+                |r| {
+                    Ok(RunFull {
+                        seq: r.get(0)?,
+                        run_id: r.get(1)?,
+                        plan_sha256: r.get(2)?,
+                        lot: r.get(3)?,
+                        station: r.get(4)?,
+                        operator: r.get(5)?,
+                        bench: r.get(6)?,
+                        tool_version: r.get(7)?,
+                        started_at: r.get(8)?,
+                        finished_at: r.get(9)?,
+                        state: r.get(10)?,
+                    })
+                },
+            )
+            .optional()?,
+        );
+        let mut stmt = tx.prepare(
+            "SELECT rowid, run_id, position, serial FROM run_units WHERE run_id = ?1 ORDER BY rowid",
+        )?;
+        for row in stmt.query_map([run], |r| {
+            Ok(SeenRow {
+                seq: r.get(0)?,
+                run_id: r.get(1)?,
+                position: r.get(2)?,
+                serial: r.get(3)?,
+            })
+        })? {
+            seen.push(row?);
+        }
+    }
+    sink(Rows::Runs(run_rows))?;
+    sink(Rows::Seen(seen))?;
+    chunked(
+        &tx,
+        &format!(
+            "SELECT id, run_id, position, step_index, attempt, quantity, channel, raw, t_s, value, took_s
+             FROM readings WHERE id > {} ORDER BY id",
+            marks.readings_upto
+        ),
+        |r| {
+            Ok(ReadingFull {
+                id: r.get(0)?,
+                run_id: r.get(1)?,
+                position: r.get(2)?,
+                step_index: r.get(3)?,
+                attempt: r.get(4)?,
+                quantity: r.get(5)?,
+                channel: r.get(6)?,
+                raw: r.get(7)?,
+                t_s: r.get(8)?,
+                value: r.get(9)?,
+                took_s: r.get(10)?,
+            })
+        },
+        Rows::Readings,
+        sink,
+    )?;
+    let mut steps = Vec::new();
+    let mut units = Vec::new();
+    for e in &entries {
+        match e.kind.as_str() {
+            "step" => steps.extend(
+                tx.query_row(
+                    "SELECT run_id, position, step_index, attempt, status, record FROM steps
+                     WHERE run_id = ?1 AND position = ?2 AND step_index = ?3 AND attempt = ?4",
+                    params![e.run_id, e.position, e.step_index, e.attempt],
+                    |r| {
+                        Ok(StepFull {
+                            run_id: r.get(0)?,
+                            position: r.get(1)?,
+                            step_index: r.get(2)?,
+                            attempt: r.get(3)?,
+                            status: r.get(4)?,
+                            record: r.get(5)?,
+                        })
+                    },
+                )
+                .optional()?,
+            ),
+            "unit" => units.extend(
+                tx.query_row(
+                    "SELECT seq, run_id, position, serial, firmware, status, finished_at, record,
+                            record_sha256, prev_sha256 FROM units WHERE seq = ?1",
+                    [e.unit_seq],
+                    |r| {
+                        Ok(UnitFull {
+                            seq: r.get(0)?,
+                            run_id: r.get(1)?,
+                            position: r.get(2)?,
+                            serial: r.get(3)?,
+                            firmware: r.get(4)?,
+                            status: r.get(5)?,
+                            finished_at: r.get(6)?,
+                            record: r.get(7)?,
+                            record_sha256: r.get(8)?,
+                            prev_sha256: r.get(9)?,
+                        })
+                    },
+                )
+                .optional()?,
+            ),
+            _ => {}
+        }
+    }
+    sink(Rows::Steps(steps))?;
+    sink(Rows::Units(units))?;
+    sink(Rows::Chain(entries))?;
+    tx.finish()?;
+    Ok(())
+}
+
+/// What waits beyond `marks`: the runs with chain entries after it, and the readings.
+pub(super) fn waiting_since(
+    conn: &Connection,
+    marks: &crate::archive::journal::Marks,
+) -> Result<crate::archive::journal::Waiting, ArchiveError> {
+    let (runs, readings): (i64, i64) = conn.query_row(
+        "SELECT (SELECT COUNT(DISTINCT run_id) FROM chain WHERE seq > ?1 AND run_id != ''),
+                (SELECT COUNT(*) FROM readings WHERE id > ?2)",
+        params![marks.chain_upto, marks.readings_upto],
+        |r| Ok((r.get(0)?, r.get(1)?)),
+    )?;
+    Ok(crate::archive::journal::Waiting {
+        runs: runs as u64,
+        readings: readings as u64,
+    })
+}

@@ -291,6 +291,36 @@ impl Sqlite {
         Ok(Sqlite { conn })
     }
 
+    /// A `meta` value (what the archive notes about itself, outside the chain).
+    pub(crate) fn meta_value(&self, key: &str) -> Result<Option<String>, ArchiveError> {
+        shared::Tables::meta(&self.conn, key)
+    }
+
+    pub(crate) fn set_meta(&self, key: &str, value: &str) -> Result<(), ArchiveError> {
+        self.conn.execute(
+            "INSERT INTO meta (key, value) VALUES (?1, ?2)
+             ON CONFLICT(key) DO UPDATE SET value = excluded.value",
+            params![key, value],
+        )?;
+        Ok(())
+    }
+
+    /// A journal's rows beyond `marks`, for an upload (see `archive::journal`).
+    pub(crate) fn dump_since(
+        &self,
+        marks: &crate::archive::journal::Marks,
+        sink: &mut crate::archive::image::Sink<'_>,
+    ) -> Result<(), ArchiveError> {
+        image::dump_since(&self.conn, marks, sink)
+    }
+
+    pub(crate) fn waiting_since(
+        &self,
+        marks: &crate::archive::journal::Marks,
+    ) -> Result<crate::archive::journal::Waiting, ArchiveError> {
+        image::waiting_since(&self.conn, marks)
+    }
+
     fn records_where(&self, condition: &str, value: &str) -> Result<Vec<UnitRecord>, ArchiveError> {
         let conn = &self.conn;
         let mut stmt = conn.prepare(&format!(
