@@ -34,7 +34,7 @@ impl Postgres {
                 readings_upto: r.get(1),
             })
             .unwrap_or_default();
-        let mut moved = marks.clone();
+        let mut moved = marks;
         let mut up = Uploaded::default();
         let mut unit_seq: HashMap<i64, i64> = HashMap::new();
         let mut runs = std::collections::BTreeSet::new();

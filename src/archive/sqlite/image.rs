@@ -357,7 +357,7 @@ pub(super) fn dump_since(
                 prev_sha256: r.get(9)?,
             })
         },
-        |v| Rows::Chain(v),
+        Rows::Chain,
         &mut |rows| {
             if let Rows::Chain(v) = rows {
                 entries.extend(v);
