@@ -1085,3 +1085,52 @@ fn a_bench_that_loses_its_shared_archive_keeps_testing_and_uploads_once() {
     drop(server);
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// A station file may name its archive (a file beside it, or a shared database with the
+/// station's journal): a run without `--archive` goes there; a journal without a shared
+/// archive is refused at its key.
+#[test]
+fn a_station_file_names_its_archive() {
+    let dir = temp_dir("station-archive");
+    let served = common::serve_at(&dir, "40", &[]);
+    let text = std::fs::read_to_string(&served.station).unwrap();
+    let named = dir.join("named.yaml");
+    std::fs::write(&named, format!("{text}archive: bench-7.sqlite\n")).unwrap();
+    let o = bin()
+        .args([
+            "run",
+            "test-plans/demo-serial.yaml",
+            "--quiet",
+            "--unattended",
+            "--bench",
+        ])
+        .arg(&named)
+        .arg("--out")
+        .arg(dir.join("out"))
+        .output()
+        .unwrap();
+    assert_eq!(
+        o.status.code(),
+        Some(1),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let archive = Store::Sqlite(dir.join("bench-7.sqlite"));
+    assert_eq!(archive.value("SELECT COUNT(*) FROM units"), "4");
+    assert!(!dir.join("out").join("archive.sqlite").exists());
+    let wrong = dir.join("wrong.yaml");
+    std::fs::write(
+        &wrong,
+        format!("{text}archive: bench-7.sqlite\njournal: journal.sqlite\n"),
+    )
+    .unwrap();
+    let o = bin().arg("check").arg(&wrong).output().unwrap();
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{err}");
+    assert!(
+        err.contains("journal") && err.contains("shared archive"),
+        "{err}"
+    );
+    drop(served);
+    std::fs::remove_dir_all(&dir).unwrap();
+}

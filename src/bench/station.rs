@@ -18,7 +18,7 @@ use crate::plan::units::Dimension;
 use crate::plan::{Document, LinkSpec, Plan, PlanErrors, Quantity, RawPort, Text, port_settings};
 use serde::Deserialize;
 use std::collections::BTreeMap;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
 /// A validated station file.
@@ -36,6 +36,11 @@ pub struct Station {
     pub reference: ReferenceSpec,
     /// The counter of the units' test outputs, where the bench has one.
     pub counter: Option<CounterSpec>,
+    /// The archive the bench's runs go to when the command line names none: a file (relative
+    /// to the station file's folder) or a shared database's address.
+    pub archive: Option<String>,
+    /// With a shared archive: the station's journal (relative to the station file's folder).
+    pub journal: Option<PathBuf>,
 }
 
 /// A counter with a line interface and an input per position.
@@ -109,6 +114,12 @@ struct RawStation {
     /// The counter of the units' test outputs (pulses), for plans that count them.
     #[serde(default)]
     counter: Option<RawCounter>,
+    /// Where the bench's runs are archived: a file, or postgres://USER@HOST/DB.
+    #[serde(default)]
+    archive: Option<Text>,
+    /// With a shared archive: the station's journal file.
+    #[serde(default)]
+    journal: Option<Text>,
 }
 
 #[derive(Debug, Deserialize, schemars::JsonSchema)]
@@ -454,7 +465,35 @@ fn meaning(doc: &mut Document, file: &str, raw: RawStation) -> Option<Station> {
             doc.error(path, format!("port {port} is already used by {first}"));
         }
     }
+    let beside = |text: &str| {
+        let p = Path::new(text);
+        match Path::new(file).parent() {
+            Some(dir) if p.is_relative() => dir.join(p),
+            _ => p.to_path_buf(),
+        }
+    };
+    let archive = raw.archive.as_ref().map(|t| t.0.trim().to_string());
+    let shared = archive.as_deref().is_some_and(|a| {
+        let a = a.to_ascii_lowercase();
+        a.starts_with("postgres://") || a.starts_with("postgresql://")
+    });
+    let archive = archive.map(|a| {
+        if shared {
+            a
+        } else {
+            beside(&a).display().to_string()
+        }
+    });
+    let journal = raw.journal.as_ref().map(|t| beside(t.0.trim()));
+    if journal.is_some() && !shared {
+        doc.error(
+            "journal",
+            "a journal keeps a station's runs for a shared archive: give `archive: postgres://...` beside it",
+        );
+    }
     Some(Station {
+        archive,
+        journal,
         id: id?,
         description: raw.description.map(|t| t.0).unwrap_or_default(),
         file: file.to_string(),

@@ -152,8 +152,17 @@ fn station_summary(s: &Station) -> String {
             ))
         ),
     };
+    let archive = match (&s.archive, &s.journal) {
+        (None, _) => String::new(),
+        (Some(a), None) => format!("; runs archived in {}", crate::archive::Location::parse(a)),
+        (Some(a), Some(j)) => format!(
+            "; runs archived in {} through the journal {}",
+            crate::archive::Location::parse(a),
+            j.display()
+        ),
+    };
     format!(
-        "{}: station {}, {}, {source}; reference {} ({reading}){}; {counter}; {}\n",
+        "{}: station {}, {}, {source}; reference {} ({reading}){}; {counter}; {}{archive}\n",
         s.file,
         s.id,
         counted(s.positions.len(), "position"),

@@ -92,9 +92,21 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
         ))
     })?;
     let fallback = fallback_dir(args.fallback.as_deref())?;
+    // The command line's archive, else the station file's, else the file beside the reports.
+    let (archive_given, journal_given) = match (&args.archive, &spec) {
+        (None, BenchSpec::Station { path, .. }) if args.journal.is_none() => {
+            let station =
+                crate::bench::station::Station::load(Path::new(path)).map_err(CliError::Plan)?;
+            (
+                station.archive.map(|a| Location::parse(&a)),
+                station.journal,
+            )
+        }
+        _ => (args.archive.clone(), args.journal.clone()),
+    };
     let keeping = super::journal::keeping(
-        args.archive.as_ref(),
-        args.journal.as_deref(),
+        archive_given.as_ref(),
+        journal_given.as_deref(),
         Location::Sqlite(args.out.join("archive.sqlite")),
     )?;
     let archive_path = keeping.at.clone();
@@ -151,8 +163,8 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
     let resume_hint = resume_hint(
         &ctx.run_id,
         &resume_archive_args(
-            args.archive.as_ref(),
-            args.journal.as_deref(),
+            archive_given.as_ref(),
+            journal_given.as_deref(),
             &archive_path,
         ),
         &args.out,
