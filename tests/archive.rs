@@ -1134,3 +1134,70 @@ fn a_station_file_names_its_archive() {
     drop(served);
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// An archive of schema version 1, as meterproof wrote it before the chain (a real one:
+/// tests/data/archive-schema1.sqlite, see its README): the reading commands read it as it is
+/// and change nothing; opened for writing it is migrated in one transaction (a migration that
+/// fails half-way leaves it as it was), its records read back the same and verify by their own
+/// record chain; copied into PostgreSQL it verifies there too, the same way.
+#[test]
+fn an_archive_of_schema_1_is_migrated_in_one_transaction_and_copies_to_postgresql() {
+    let dir = temp_dir("schema1");
+    let fixture = std::fs::read("tests/data/archive-schema1.sqlite").unwrap();
+    let path = dir.join("v1.sqlite");
+    std::fs::write(&path, &fixture).unwrap();
+    let v1 = Store::Sqlite(path.clone());
+    let (code, text) = cmd(&["history", "V1-A", "--json"], &v1);
+    assert_eq!(code, 0, "{text}");
+    let history: serde_json::Value = serde_json::from_str(&text).unwrap();
+    assert_eq!(history.as_array().unwrap().len(), 2);
+    let before = v1.open_read_only().unwrap().serial_records("V1-A").unwrap();
+    assert_eq!(before.len(), 2);
+    assert_eq!(
+        std::fs::read(&path).unwrap(),
+        fixture,
+        "reading changed nothing"
+    );
+    // A migration that fails half-way (a table in the way of its renaming) leaves version 1.
+    let blocked = Store::Sqlite(dir.join("blocked.sqlite"));
+    std::fs::write(dir.join("blocked.sqlite"), &fixture).unwrap();
+    blocked.tamper("CREATE TABLE units_v1 (x INTEGER)").unwrap();
+    assert!(meterproof::archive::Archive::open(&dir.join("blocked.sqlite")).is_err());
+    assert_eq!(
+        blocked.value("SELECT COUNT(*) FROM sqlite_master WHERE name = 'chain'"),
+        "0",
+        "no half-migrated archive"
+    );
+    assert_eq!(blocked.value("SELECT COUNT(*) FROM units"), "8");
+    // Opened for writing: version 2, the same records, verified the old way for its old part.
+    let a = v1.open();
+    assert_eq!(a.serial_records("V1-A").unwrap(), before);
+    let v = a.verify(None).unwrap();
+    assert!(v.failures.is_empty(), "{:?}", v.failures);
+    assert_eq!(v.legacy_records, 8);
+    drop(a);
+    assert_eq!(
+        v1.value("SELECT value FROM meta WHERE key = 'schema_version'"),
+        "2"
+    );
+    if common::store::server().is_some() {
+        let pg = Store::Postgres {
+            url: common::store::fresh_database("schema1"),
+        };
+        let o = bin()
+            .args(["copy-archive", "--from", &v1.arg(), "--to", &pg.arg()])
+            .output()
+            .unwrap();
+        let text = String::from_utf8_lossy(&o.stdout);
+        assert_eq!(o.status.code(), Some(0), "{text}");
+        let v = pg.open_read_only().unwrap().verify(None).unwrap();
+        assert!(v.failures.is_empty(), "{:?}", v.failures);
+        assert_eq!(v.legacy_records, 8);
+        assert_eq!(
+            pg.open_read_only().unwrap().serial_records("V1-A").unwrap(),
+            before
+        );
+        pg.remove();
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -1,12 +1,17 @@
-//! Benchmark of the archive: an archive of many unit runs (1,000,000 by default; set
-//! METERPROOF_BENCH_UNITS to change it), each with 100 readings, in lots of 1,000 units.
-//! Prints ingest time, size per unit run, `history` of one serial, `runs --lot` for one lot and
-//! `verify` throughput. Run with `cargo bench --bench archive`; it asserts nothing.
+//! Benchmark of the archive, on SQLite and (where `MP_POSTGRES_URL` names a server) on
+//! PostgreSQL, printed side by side: an archive of many unit runs (1,000,000 by default; set
+//! METERPROOF_BENCH_UNITS to change it), each with 100 readings, in lots of 1,000 units. Prints
+//! ingest time, size per unit run, `history` of one serial, `runs --lot` for one lot, `verify`
+//! throughput, and the commit latency of a live reading with 8 benches of 16 positions writing
+//! at once. Run with `cargo bench --bench archive`; it asserts nothing.
 
-use meterproof::archive::{Archive, RunFilter, RunRow};
+use meterproof::archive::{Archive, Location, RunFilter, RunRecorder, RunRow};
 use meterproof::bench::sim::{SimBench, SimConfig};
 use meterproof::exec::{self, RunContext, Silent};
+use meterproof::exec::{ReadingKey, Recorder};
 use meterproof::plan::Plan;
+use meterproof::plan::Quantity;
+use meterproof::record::Sample;
 use meterproof::record::UnitRecord;
 use std::time::Instant;
 
@@ -42,13 +47,189 @@ fn main() {
     run(units);
 }
 
-/// The benchmark over an archive of `units` unit runs (the smoke test runs a small one).
+/// What one backend measured.
+#[derive(Default)]
+struct Figures {
+    ingest_s: f64,
+    bytes_per_unit: f64,
+    history_ms: f64,
+    lot_ms: f64,
+    verify_per_s: f64,
+    live_median_ms: f64,
+    live_p99_ms: f64,
+}
+
+/// A fresh PostgreSQL database on the server `MP_POSTGRES_URL` names.
+fn fresh_postgres(server: &str) -> String {
+    let db = format!("mp_bench_{}", std::process::id());
+    let mut c = postgres::Client::connect(server, postgres::NoTls).unwrap();
+    c.batch_execute(&format!("DROP DATABASE IF EXISTS {db}"))
+        .unwrap();
+    c.batch_execute(&format!("CREATE DATABASE {db}")).unwrap();
+    let base = server.rsplit_once('/').unwrap().0;
+    format!("{base}/{db}")
+}
+
+fn drop_postgres(server: &str, url: &str) {
+    let db = url.rsplit('/').next().unwrap();
+    let mut c = postgres::Client::connect(server, postgres::NoTls).unwrap();
+    let _ = c.batch_execute(&format!("DROP DATABASE IF EXISTS {db} WITH (FORCE)"));
+}
+
+/// The storage an archive takes: its files, or its database.
+fn bytes_of(location: &Location) -> u64 {
+    match location {
+        Location::Sqlite(path) => std::fs::read_dir(path.parent().unwrap())
+            .unwrap()
+            .map(|e| e.unwrap().metadata().unwrap().len())
+            .sum(),
+        Location::Postgres(url) => {
+            let mut c = postgres::Client::connect(url, postgres::NoTls).unwrap();
+            c.query_one("SELECT pg_database_size(current_database())", &[])
+                .unwrap()
+                .get::<_, i64>(0) as u64
+        }
+    }
+}
+
+/// The benchmark over an archive of `units` unit runs (the smoke test runs a small one), on
+/// every backend at hand.
 pub fn run(units: usize) {
-    let lots = units.div_ceil(LOT);
     let dir = std::env::temp_dir().join(format!("meterproof-bench-archive-{}", std::process::id()));
     std::fs::create_dir_all(&dir).unwrap();
-    let path = dir.join("archive.sqlite");
-    let archive = Archive::open(&path).unwrap();
+    let mut results = Vec::new();
+    let sqlite = Location::Sqlite(dir.join("archive.sqlite"));
+    results.push(("SQLite", run_on(units, &sqlite)));
+    std::fs::remove_dir_all(&dir).unwrap();
+    match std::env::var("MP_POSTGRES_URL") {
+        Ok(server) if !server.is_empty() => {
+            let url = fresh_postgres(&server);
+            results.push((
+                "PostgreSQL",
+                run_on(units, &Location::Postgres(url.clone())),
+            ));
+            drop_postgres(&server, &url);
+        }
+        _ => println!("PostgreSQL NOT MEASURED: MP_POSTGRES_URL names no server"),
+    }
+    println!("\n{units} unit runs of 100 readings, lots of {LOT}:");
+    print!("{:<44}", "");
+    for (name, _) in &results {
+        print!("{name:>14}");
+    }
+    println!();
+    type Row = (&'static str, fn(&Figures) -> f64, usize);
+    let rows: [Row; 7] = [
+        ("ingest, s", |f| f.ingest_s, 1),
+        ("bytes per unit run", |f| f.bytes_per_unit, 0),
+        (
+            "history of one serial, median ms (goal < 20)",
+            |f| f.history_ms,
+            3,
+        ),
+        (
+            "runs --lot of 1,000 units, median ms (< 200)",
+            |f| f.lot_ms,
+            3,
+        ),
+        ("verify, unit records per s", |f| f.verify_per_s, 0),
+        (
+            "live reading, 8 benches × 16: median ms",
+            |f| f.live_median_ms,
+            3,
+        ),
+        (
+            "live reading, 8 benches × 16: 99th pct. ms",
+            |f| f.live_p99_ms,
+            3,
+        ),
+    ];
+    for (label, value, decimals) in rows {
+        print!("{label:<44}");
+        for (_, f) in &results {
+            print!("{:>14.*}", decimals, value(f));
+        }
+        println!();
+    }
+}
+
+/// The commit latency of a live reading: 8 benches (an archive connection each) of 16
+/// positions (a thread each) hand over a reading every 20 ms, as sampling does; each call
+/// returns once its reading is committed.
+fn live_latency(location: &Location, plan: &Plan) -> (f64, f64) {
+    let latencies = std::sync::Mutex::new(Vec::new());
+    std::thread::scope(|s| {
+        for bench in 0..8 {
+            let latencies = &latencies;
+            s.spawn(move || {
+                let archive = Archive::open_at(location).unwrap();
+                let run_id = format!("LIVE-{bench}");
+                let mut row = live_row(plan, &run_id);
+                row.station = format!("bench-{bench}");
+                archive.begin_run(plan, &row).unwrap();
+                let recorder = RunRecorder::new(&archive, &run_id);
+                std::thread::scope(|s| {
+                    for position in 1..=16 {
+                        let recorder = &recorder;
+                        s.spawn(move || {
+                            let mut mine = Vec::new();
+                            for i in 0..50 {
+                                let key = ReadingKey {
+                                    position,
+                                    step_index: 0,
+                                    attempt: 1,
+                                    quantity: Quantity::Current,
+                                    channel: "L".into(),
+                                    raw: false,
+                                };
+                                let t = Instant::now();
+                                recorder.reading(
+                                    &key,
+                                    Sample {
+                                        t_s: i as f64 * 0.02,
+                                        value: 5.0,
+                                        took_s: None,
+                                    },
+                                );
+                                mine.push(t.elapsed().as_secs_f64() * 1e3);
+                                std::thread::sleep(std::time::Duration::from_millis(20));
+                            }
+                            latencies.lock().unwrap().extend(mine);
+                        });
+                    }
+                });
+                assert_eq!(archive.failure(), None);
+            });
+        }
+    });
+    let mut v = latencies.into_inner().unwrap();
+    v.sort_by(|a, b| a.partial_cmp(b).unwrap());
+    (v[v.len() / 2], v[v.len() * 99 / 100])
+}
+
+fn live_row(plan: &Plan, run_id: &str) -> RunRow {
+    RunRow {
+        run_id: run_id.into(),
+        plan_sha256: plan.source.sha256.clone(),
+        plan_id: plan.id.clone(),
+        revision: plan.revision.clone(),
+        lot: None,
+        station: "sim".into(),
+        operator: "bench".into(),
+        bench: "{}".into(),
+        tool_version: meterproof::VERSION.into(),
+        started_at: "2026-12-01T00:00:00+00:00".into(),
+        finished_at: None,
+        state: "running".into(),
+    }
+}
+
+/// The benchmark on one backend.
+fn run_on(units: usize, location: &Location) -> Figures {
+    let mut figures = Figures::default();
+    let lots = units.div_ceil(LOT);
+    let archive = Archive::open_at(location).unwrap();
+    let empty = bytes_of(location);
     let plan = Plan::from_text("bench.yaml", PLAN).unwrap();
     let ctx = RunContext {
         run_id: "template".into(),
@@ -66,7 +247,7 @@ pub fn run(units: usize) {
     .remove(0);
     // About a tenth of the serials come back for a retest in a later lot.
     let distinct_serials = (units as f64 * 0.9) as usize;
-    println!("archive benchmark: {units} unit runs of 100 readings, lots of {LOT}");
+    println!("archive benchmark on {location}: {units} unit runs of 100 readings, lots of {LOT}");
     let start = Instant::now();
     for lot in 0..lots {
         let run_id = format!("R{lot:07}");
@@ -122,10 +303,9 @@ pub fn run(units: usize) {
     }
     let ingest = start.elapsed().as_secs_f64();
     drop(archive);
-    let bytes: u64 = std::fs::read_dir(&dir)
-        .unwrap()
-        .map(|e| e.unwrap().metadata().unwrap().len())
-        .sum();
+    let bytes = bytes_of(location).saturating_sub(empty);
+    figures.ingest_s = ingest;
+    figures.bytes_per_unit = bytes as f64 / units as f64;
     println!(
         "ingest: {ingest:.1} s ({:.0} unit runs/s, {:.0} readings/s)",
         units as f64 / ingest,
@@ -136,7 +316,7 @@ pub fn run(units: usize) {
         bytes as f64 / 1e6,
         bytes as f64 / units as f64
     );
-    let archive = Archive::open(&path).unwrap();
+    let archive = Archive::open_at(location).unwrap();
     let mut times = Vec::new();
     for k in 0..200 {
         let serial = format!("S{:08}", (k * 7919) % distinct_serials);
@@ -145,9 +325,10 @@ pub fn run(units: usize) {
         times.push(t.elapsed().as_secs_f64() * 1e3);
         assert!(!rows.is_empty());
     }
+    figures.history_ms = median(times);
     println!(
         "history of one serial: median {:.3} ms (goal under 20 ms)",
-        median(times)
+        figures.history_ms
     );
     let mut times = Vec::new();
     for k in 0..50 {
@@ -160,9 +341,10 @@ pub fn run(units: usize) {
         times.push(t.elapsed().as_secs_f64() * 1e3);
         assert_eq!(rows.len(), 1);
     }
+    figures.lot_ms = median(times);
     println!(
         "runs --lot for a lot of {LOT} units: median {:.3} ms (goal under 200 ms)",
-        median(times)
+        figures.lot_ms
     );
     let t = Instant::now();
     let verification = archive.verify(None).unwrap();
@@ -174,6 +356,13 @@ pub fn run(units: usize) {
         checked as f64 / v,
         verification.failures.len()
     );
+    figures.verify_per_s = checked as f64 / v;
     drop(archive);
-    std::fs::remove_dir_all(&dir).unwrap();
+    let (median, p99) = live_latency(location, &plan);
+    println!(
+        "live reading with 8 benches of 16 positions: median {median:.3} ms, 99th percentile {p99:.3} ms"
+    );
+    figures.live_median_ms = median;
+    figures.live_p99_ms = p99;
+    figures
 }
