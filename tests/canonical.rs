@@ -25,12 +25,17 @@ static RECORD: LazyLock<UnitRecord> = LazyLock::new(|| {
 
 static CASE: AtomicUsize = AtomicUsize::new(0);
 
-/// Stores `r` in a fresh archive and reads it back; `verify` must pass.
+/// One PostgreSQL database for this file's cases, where a server is given: each case has an
+/// archive of its own in a schema of its own (the archive's tables are found through the
+/// connection's `search_path`), so that its `verify` sees that case alone.
+static SHARED: LazyLock<Option<String>> =
+    LazyLock::new(|| common::store::server().map(|_| common::store::fresh_database("canonical")));
+
+/// Stores `r` in a fresh SQLite archive and reads it back; `verify` must pass. Where a
+/// PostgreSQL server is given, the same through it: the record read back must keep its hash.
 fn through_the_archive(r: &UnitRecord) -> UnitRecord {
-    let dir = temp_dir(&format!(
-        "canonical-{}",
-        CASE.fetch_add(1, Ordering::SeqCst)
-    ));
+    let case = CASE.fetch_add(1, Ordering::SeqCst);
+    let dir = temp_dir(&format!("canonical-{case}"));
     let path = dir.join("a.sqlite");
     let archive = Archive::open(&path).unwrap();
     archive.import_units(std::slice::from_ref(r)).unwrap();
@@ -39,6 +44,29 @@ fn through_the_archive(r: &UnitRecord) -> UnitRecord {
     let back = archive.unit_records(&r.run_id).unwrap().remove(0);
     drop(archive);
     std::fs::remove_dir_all(&dir).unwrap();
+    if let Some(url) = SHARED.as_ref() {
+        let schema = format!("case_{case}");
+        let mut c = postgres::Client::connect(url, postgres::NoTls).unwrap();
+        c.batch_execute(&format!("CREATE SCHEMA {schema}")).unwrap();
+        let at = format!("{url}?options=-csearch_path%3D{schema}");
+        let shared = Archive::open_at(&meterproof::archive::Location::Postgres(at)).unwrap();
+        shared.import_units(std::slice::from_ref(r)).unwrap();
+        let v = shared.verify(None).unwrap();
+        assert!(
+            v.failures.is_empty(),
+            "PostgreSQL: false alarm: {:?}",
+            v.failures
+        );
+        let from_pg = shared.unit_records(&r.run_id).unwrap().remove(0);
+        assert_eq!(
+            record_hash(&from_pg),
+            record_hash(r),
+            "PostgreSQL: the record read back has another hash"
+        );
+        drop(shared);
+        c.batch_execute(&format!("DROP SCHEMA {schema} CASCADE"))
+            .unwrap();
+    }
     back
 }
 
