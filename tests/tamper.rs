@@ -281,10 +281,8 @@ fn tamper_suite(dir: &Path, archive: &Store) {
     drop(a);
     let before = shown(archive, &runs, &serials, &firmwares);
     let cases = cases(archive);
-    let (mut altering, mut caught, mut harmless, mut flagged_anyway) = (0, 0, 0, 0);
-    let mut impossible = 0;
-    let mut missed = Vec::new();
-    for (i, case) in cases.iter().enumerate() {
+    // Each case on a copy of its own; three at a time (a case mostly waits on its archive).
+    let outcome = |i: usize, case: &Case| -> Option<(bool, bool)> {
         let copy = archive.copy(dir, i);
         // An attacker is not held back by the schema's foreign keys; an edit that a unique
         // key refuses (a sequence number moved onto another) is not possible and not counted.
@@ -294,31 +292,54 @@ fn tamper_suite(dir: &Path, archive: &Store) {
                 "{on}: {}: {e}",
                 case.name
             );
-            impossible += 1;
             copy.remove();
-            continue;
+            return None;
         }
         let alters = shown(&copy, &runs, &serials, &firmwares) != before;
         let fails = verify_fails(&copy);
-        match (alters, fails) {
-            (true, true) => {
+        copy.remove();
+        Some((alters, fails))
+    };
+    let next = std::sync::atomic::AtomicUsize::new(0);
+    let outcomes = std::sync::Mutex::new(Vec::new());
+    std::thread::scope(|s| {
+        for _ in 0..3 {
+            s.spawn(|| {
+                loop {
+                    let i = next.fetch_add(1, Ordering::SeqCst);
+                    let Some(case) = cases.get(i) else { break };
+                    let o = outcome(i, case);
+                    outcomes.lock().unwrap().push((i, o));
+                }
+            });
+        }
+    });
+    let mut outcomes = outcomes.into_inner().unwrap();
+    outcomes.sort_by_key(|(i, _)| *i);
+    let (mut altering, mut caught, mut harmless, mut flagged_anyway) = (0, 0, 0, 0);
+    let mut impossible = 0;
+    let mut missed = Vec::new();
+    for (i, o) in outcomes {
+        let case = &cases[i];
+        match o {
+            None => impossible += 1,
+            Some((true, true)) => {
                 altering += 1;
                 caught += 1
             }
-            (true, false) => {
+            Some((true, false)) => {
                 altering += 1;
                 missed.push(case.name.clone())
             }
-            (false, true) => {
+            Some((false, true)) => {
                 harmless += 1;
                 flagged_anyway += 1
             }
-            (false, false) => {
+            Some((false, false)) => {
                 harmless += 1;
                 eprintln!("{on}: harmless and passed: {}", case.name)
             }
         }
-        copy.remove();
     }
     println!(
         "{on}: tamper cases: {} tried, {impossible} refused by the schema's unique keys; {altering} alter what a \
