@@ -848,18 +848,24 @@ fn an_archive_copied_to_postgresql_and_back_keeps_every_hash() {
     std::fs::remove_dir_all(&dir).unwrap();
 }
 
-/// A shared archive written by a newer meterproof is refused before anything is touched, by
-/// a run and by a reading command alike; a server out of reach is named, without the password
-/// given in the address, and a run is refused before any load.
+/// An archive written by a newer meterproof is refused before anything is touched, by a run
+/// and by a reading command alike, on every backend; a shared archive's server out of reach is
+/// named, without the password given in the address, and a run is refused before any load.
 #[test]
-fn a_shared_archive_refuses_a_newer_schema_and_names_a_server_out_of_reach() {
-    if common::store::server().is_none() {
-        return; // said loudly by tests/postgres_notice.rs
+fn a_newer_archive_is_refused_and_a_server_out_of_reach_named() {
+    let dir = temp_dir("refusals");
+    for store in backends(&dir, "newer") {
+        newer_refused(&dir.join(store.label()), &store);
+        store.remove();
     }
-    let dir = temp_dir("pg-refusals");
-    let store = Store::Postgres {
-        url: common::store::fresh_database("newer"),
-    };
+    if common::store::server().is_some() {
+        out_of_reach_named(&dir);
+    }
+    std::fs::remove_dir_all(&dir).unwrap();
+}
+
+fn newer_refused(dir: &Path, store: &Store) {
+    let on = store.label();
     run_demo(&dir.join("first"), &["--archive", &store.arg()]);
     store
         .tamper("UPDATE meta SET value = '99' WHERE key = 'schema_version'")
@@ -872,17 +878,23 @@ fn a_shared_archive_refuses_a_newer_schema_and_names_a_server_out_of_reach() {
         .output()
         .unwrap();
     let err = String::from_utf8_lossy(&o.stderr);
-    assert_eq!(o.status.code(), Some(3), "{err}");
-    assert!(err.contains("newer meterproof (schema version 99"), "{err}");
+    assert_eq!(o.status.code(), Some(3), "{on}: {err}");
+    assert!(
+        err.contains("newer meterproof (schema version 99"),
+        "{on}: {err}"
+    );
     assert!(common::records_in(&dir.join("second")).is_empty());
-    let (code, text) = cmd(&["runs"], &store);
-    assert_ne!(code, 0, "{text}");
-    assert!(text.contains("schema version 99"), "{text}");
+    let (code, text) = cmd(&["runs"], store);
+    assert_ne!(code, 0, "{on}: {text}");
+    assert!(text.contains("schema version 99"), "{on}: {text}");
     assert_eq!(store.value("SELECT COUNT(*) FROM chain"), before);
     assert_eq!(
         store.value("SELECT value FROM meta WHERE key = 'schema_version'"),
         "99"
     );
+}
+
+fn out_of_reach_named(dir: &Path) {
     // Nothing listens on port 9 of the loopback (discard): the connection is refused.
     let started = Instant::now();
     let o = bin()
@@ -906,8 +918,6 @@ fn a_shared_archive_refuses_a_newer_schema_and_names_a_server_out_of_reach() {
     );
     assert!(started.elapsed() < Duration::from_secs(20));
     assert!(common::records_in(&dir.join("third")).is_empty());
-    store.remove();
-    std::fs::remove_dir_all(&dir).unwrap();
 }
 
 /// A PostgreSQL cluster of the test's own (it is stopped and started again), stopped when

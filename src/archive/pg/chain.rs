@@ -137,21 +137,7 @@ impl<C: GenericClient> Tables for PgTables<'_, C> {
              FROM chain ORDER BY seq",
             &[],
         )?;
-        Ok(rows
-            .iter()
-            .map(|r| ChainRow {
-                seq: r.get(0),
-                kind: r.get(1),
-                run_id: r.get(2),
-                position: r.get(3),
-                step_index: r.get(4),
-                attempt: r.get(5),
-                unit_seq: r.get(6),
-                content_sha256: r.get(7),
-                sha256: r.get(8),
-                prev_sha256: r.get(9),
-            })
-            .collect())
+        Ok(rows.iter().map(super::image::chain_row).collect())
     }
 
     fn run_opening(&self, run_id: &str) -> Result<Option<RunOpening>, ArchiveError> {

@@ -41,13 +41,7 @@ pub(super) fn dump(client: &mut Client, sink: &mut Sink<'_>) -> Result<(), Archi
     chunked(
         &mut tx,
         "SELECT sha256, plan_id, revision, file, text FROM plans ORDER BY sha256",
-        |r| PlanRow {
-            sha256: r.get(0),
-            plan_id: r.get(1),
-            revision: r.get(2),
-            file: r.get(3),
-            text: r.get(4),
-        },
+        plan_row,
         Rows::Plans,
         sink,
     )?;
@@ -55,31 +49,14 @@ pub(super) fn dump(client: &mut Client, sink: &mut Sink<'_>) -> Result<(), Archi
         &mut tx,
         "SELECT seq, run_id, plan_sha256, lot, station, operator, bench, tool_version, started_at,
                 finished_at, state FROM runs ORDER BY seq",
-        |r| RunFull {
-            seq: r.get(0),
-            run_id: r.get(1),
-            plan_sha256: r.get(2),
-            lot: r.get(3),
-            station: r.get(4),
-            operator: r.get(5),
-            bench: r.get(6),
-            tool_version: r.get(7),
-            started_at: r.get(8),
-            finished_at: r.get(9),
-            state: r.get(10),
-        },
+        run_full,
         Rows::Runs,
         sink,
     )?;
     chunked(
         &mut tx,
         "SELECT seq, run_id, position, serial FROM run_units ORDER BY seq",
-        |r| SeenRow {
-            seq: r.get(0),
-            run_id: r.get(1),
-            position: r.get(2),
-            serial: r.get(3),
-        },
+        seen_row,
         Rows::Seen,
         sink,
     )?;
@@ -87,19 +64,7 @@ pub(super) fn dump(client: &mut Client, sink: &mut Sink<'_>) -> Result<(), Archi
         &mut tx,
         "SELECT id, run_id, position, step_index, attempt, quantity, channel, raw, t_s, value, took_s
          FROM readings ORDER BY id",
-        |r| ReadingFull {
-            id: r.get(0),
-            run_id: r.get(1),
-            position: r.get(2),
-            step_index: r.get(3),
-            attempt: r.get(4),
-            quantity: r.get(5),
-            channel: r.get(6),
-            raw: r.get(7),
-            t_s: r.get(8),
-            value: r.get(9),
-            took_s: r.get(10),
-        },
+        reading_full,
         Rows::Readings,
         sink,
     )?;
@@ -107,14 +72,7 @@ pub(super) fn dump(client: &mut Client, sink: &mut Sink<'_>) -> Result<(), Archi
         &mut tx,
         "SELECT run_id, position, step_index, attempt, status, record FROM steps
          ORDER BY run_id, position, step_index, attempt",
-        |r| StepFull {
-            run_id: r.get(0),
-            position: r.get(1),
-            step_index: r.get(2),
-            attempt: r.get(3),
-            status: r.get(4),
-            record: r.get(5),
-        },
+        step_full,
         Rows::Steps,
         sink,
     )?;
@@ -122,18 +80,7 @@ pub(super) fn dump(client: &mut Client, sink: &mut Sink<'_>) -> Result<(), Archi
         &mut tx,
         "SELECT seq, run_id, position, serial, firmware, status, finished_at, record, record_sha256,
                 prev_sha256 FROM units ORDER BY seq",
-        |r| UnitFull {
-            seq: r.get(0),
-            run_id: r.get(1),
-            position: r.get(2),
-            serial: r.get(3),
-            firmware: r.get(4),
-            status: r.get(5),
-            finished_at: r.get(6),
-            record: r.get(7),
-            record_sha256: r.get(8),
-            prev_sha256: r.get(9),
-        },
+        unit_full,
         Rows::Units,
         sink,
     )?;
@@ -141,18 +88,7 @@ pub(super) fn dump(client: &mut Client, sink: &mut Sink<'_>) -> Result<(), Archi
         &mut tx,
         "SELECT seq, kind, run_id, position, step_index, attempt, unit_seq, content_sha256, sha256,
                 prev_sha256 FROM chain ORDER BY seq",
-        |r| ChainRow {
-            seq: r.get(0),
-            kind: r.get(1),
-            run_id: r.get(2),
-            position: r.get(3),
-            step_index: r.get(4),
-            attempt: r.get(5),
-            unit_seq: r.get(6),
-            content_sha256: r.get(7),
-            sha256: r.get(8),
-            prev_sha256: r.get(9),
-        },
+        chain_row,
         Rows::Chain,
         sink,
     )?;
@@ -328,4 +264,98 @@ pub(super) fn load(client: &mut Client, fill: &mut Fill<'_>) -> Result<(), Archi
     )?;
     tx.commit()?;
     Ok(())
+}
+
+// ---- Rows as this backend reads them (one mapping per row kind) ----
+
+pub(super) fn chain_row(r: &Row) -> ChainRow {
+    ChainRow {
+        seq: r.get(0),
+        kind: r.get(1),
+        run_id: r.get(2),
+        position: r.get(3),
+        step_index: r.get(4),
+        attempt: r.get(5),
+        unit_seq: r.get(6),
+        content_sha256: r.get(7),
+        sha256: r.get(8),
+        prev_sha256: r.get(9),
+    }
+}
+
+pub(super) fn run_full(r: &Row) -> RunFull {
+    RunFull {
+        seq: r.get(0),
+        run_id: r.get(1),
+        plan_sha256: r.get(2),
+        lot: r.get(3),
+        station: r.get(4),
+        operator: r.get(5),
+        bench: r.get(6),
+        tool_version: r.get(7),
+        started_at: r.get(8),
+        finished_at: r.get(9),
+        state: r.get(10),
+    }
+}
+
+pub(super) fn seen_row(r: &Row) -> SeenRow {
+    SeenRow {
+        seq: r.get(0),
+        run_id: r.get(1),
+        position: r.get(2),
+        serial: r.get(3),
+    }
+}
+
+pub(super) fn reading_full(r: &Row) -> ReadingFull {
+    ReadingFull {
+        id: r.get(0),
+        run_id: r.get(1),
+        position: r.get(2),
+        step_index: r.get(3),
+        attempt: r.get(4),
+        quantity: r.get(5),
+        channel: r.get(6),
+        raw: r.get(7),
+        t_s: r.get(8),
+        value: r.get(9),
+        took_s: r.get(10),
+    }
+}
+
+pub(super) fn step_full(r: &Row) -> StepFull {
+    StepFull {
+        run_id: r.get(0),
+        position: r.get(1),
+        step_index: r.get(2),
+        attempt: r.get(3),
+        status: r.get(4),
+        record: r.get(5),
+    }
+}
+
+pub(super) fn unit_full(r: &Row) -> UnitFull {
+    UnitFull {
+        seq: r.get(0),
+        run_id: r.get(1),
+        position: r.get(2),
+        serial: r.get(3),
+        firmware: r.get(4),
+        status: r.get(5),
+        finished_at: r.get(6),
+        record: r.get(7),
+        record_sha256: r.get(8),
+        prev_sha256: r.get(9),
+    }
+}
+
+pub(super) fn plan_row(r: &Row) -> PlanRow {
+    PlanRow {
+        sha256: r.get(0),
+        plan_id: r.get(1),
+        revision: r.get(2),
+        file: r.get(3),
+        text: r.get(4),
+    }
 }

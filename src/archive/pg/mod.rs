@@ -22,6 +22,7 @@ use postgres::types::ToSql;
 use postgres::{Client, GenericClient, NoTls, Row};
 use std::cell::RefCell;
 
+mod bulk;
 mod chain;
 mod connect;
 mod image;
@@ -344,53 +345,9 @@ impl Backend for Postgres {
         })
     }
 
-    /// Readings in bulk go through `COPY ... FROM STDIN BINARY` (one round trip for all of
-    /// them, where an INSERT each would take one per reading); then each unit row and its seal.
+    /// In bulk (see `bulk`): readings, unit rows and their entries each in one `COPY`.
     fn import_units(&self, records: &[UnitRecord]) -> Result<(), ArchiveError> {
-        use postgres::binary_copy::BinaryCopyInWriter;
-        use postgres::types::Type;
-        self.sealed(|tx| {
-            let sink = tx.copy_in(
-                "COPY readings (run_id, position, step_index, attempt, quantity, channel, raw, t_s, value, took_s)
-                 FROM STDIN BINARY",
-            )?;
-            let mut w = BinaryCopyInWriter::new(
-                sink,
-                &[
-                    Type::TEXT,
-                    Type::INT8,
-                    Type::INT8,
-                    Type::INT8,
-                    Type::TEXT,
-                    Type::TEXT,
-                    Type::BOOL,
-                    Type::FLOAT8,
-                    Type::FLOAT8,
-                    Type::FLOAT8,
-                ],
-            );
-            for r in records {
-                for (key, s) in shared::readings_of_record(r) {
-                    w.write(&[
-                        &r.run_id,
-                        &(key.position as i64),
-                        &(key.step_index as i64),
-                        &i64::from(key.attempt),
-                        &key.quantity.name(),
-                        &key.channel,
-                        &key.raw,
-                        &s.t_s,
-                        &s.value,
-                        &s.took_s,
-                    ])?;
-                }
-            }
-            w.finish()?;
-            for r in records {
-                insert_unit_row(tx, r)?;
-            }
-            Ok(())
-        })
+        self.sealed(|tx| bulk::import_units(tx, records))
     }
 
     fn run(&self, run_id: &str) -> Result<RunRow, ArchiveError> {

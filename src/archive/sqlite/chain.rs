@@ -101,20 +101,7 @@ impl Tables for Connection {
             "SELECT seq, kind, run_id, position, step_index, attempt, unit_seq, content_sha256, sha256, prev_sha256
              FROM chain ORDER BY seq",
         )?;
-        let rows = stmt.query_map([], |r| {
-            Ok(ChainRow {
-                seq: r.get(0)?,
-                kind: r.get(1)?,
-                run_id: r.get(2)?,
-                position: r.get(3)?,
-                step_index: r.get(4)?,
-                attempt: r.get(5)?,
-                unit_seq: r.get(6)?,
-                content_sha256: r.get(7)?,
-                sha256: r.get(8)?,
-                prev_sha256: r.get(9)?,
-            })
-        })?;
+        let rows = stmt.query_map([], super::image::chain_row)?;
         Ok(rows.collect::<Result<_, _>>()?)
     }
 

@@ -45,15 +45,7 @@ pub(super) fn dump(conn: &Connection, sink: &mut Sink<'_>) -> Result<(), Archive
     chunked(
         &tx,
         "SELECT sha256, plan_id, revision, file, text FROM plans ORDER BY rowid",
-        |r| {
-            Ok(PlanRow {
-                sha256: r.get(0)?,
-                plan_id: r.get(1)?,
-                revision: r.get(2)?,
-                file: r.get(3)?,
-                text: r.get(4)?,
-            })
-        },
+        plan_row,
         Rows::Plans,
         sink,
     )?;
@@ -61,35 +53,14 @@ pub(super) fn dump(conn: &Connection, sink: &mut Sink<'_>) -> Result<(), Archive
         &tx,
         "SELECT rowid, run_id, plan_sha256, lot, station, operator, bench, tool_version, started_at,
                 finished_at, state FROM runs ORDER BY rowid",
-        |r| {
-            Ok(RunFull {
-                seq: r.get(0)?,
-                run_id: r.get(1)?,
-                plan_sha256: r.get(2)?,
-                lot: r.get(3)?,
-                station: r.get(4)?,
-                operator: r.get(5)?,
-                bench: r.get(6)?,
-                tool_version: r.get(7)?,
-                started_at: r.get(8)?,
-                finished_at: r.get(9)?,
-                state: r.get(10)?,
-            })
-        },
+        run_full,
         Rows::Runs,
         sink,
     )?;
     chunked(
         &tx,
         "SELECT rowid, run_id, position, serial FROM run_units ORDER BY rowid",
-        |r| {
-            Ok(SeenRow {
-                seq: r.get(0)?,
-                run_id: r.get(1)?,
-                position: r.get(2)?,
-                serial: r.get(3)?,
-            })
-        },
+        seen_row,
         Rows::Seen,
         sink,
     )?;
@@ -97,37 +68,14 @@ pub(super) fn dump(conn: &Connection, sink: &mut Sink<'_>) -> Result<(), Archive
         &tx,
         "SELECT id, run_id, position, step_index, attempt, quantity, channel, raw, t_s, value, took_s
          FROM readings ORDER BY id",
-        |r| {
-            Ok(ReadingFull {
-                id: r.get(0)?,
-                run_id: r.get(1)?,
-                position: r.get(2)?,
-                step_index: r.get(3)?,
-                attempt: r.get(4)?,
-                quantity: r.get(5)?,
-                channel: r.get(6)?,
-                raw: r.get(7)?,
-                t_s: r.get(8)?,
-                value: r.get(9)?,
-                took_s: r.get(10)?,
-            })
-        },
+        reading_full,
         Rows::Readings,
         sink,
     )?;
     chunked(
         &tx,
         "SELECT run_id, position, step_index, attempt, status, record FROM steps ORDER BY rowid",
-        |r| {
-            Ok(StepFull {
-                run_id: r.get(0)?,
-                position: r.get(1)?,
-                step_index: r.get(2)?,
-                attempt: r.get(3)?,
-                status: r.get(4)?,
-                record: r.get(5)?,
-            })
-        },
+        step_full,
         Rows::Steps,
         sink,
     )?;
@@ -135,20 +83,7 @@ pub(super) fn dump(conn: &Connection, sink: &mut Sink<'_>) -> Result<(), Archive
         &tx,
         "SELECT seq, run_id, position, serial, firmware, status, finished_at, record, record_sha256,
                 prev_sha256 FROM units ORDER BY seq",
-        |r| {
-            Ok(UnitFull {
-                seq: r.get(0)?,
-                run_id: r.get(1)?,
-                position: r.get(2)?,
-                serial: r.get(3)?,
-                firmware: r.get(4)?,
-                status: r.get(5)?,
-                finished_at: r.get(6)?,
-                record: r.get(7)?,
-                record_sha256: r.get(8)?,
-                prev_sha256: r.get(9)?,
-            })
-        },
+        unit_full,
         Rows::Units,
         sink,
     )?;
@@ -156,20 +91,7 @@ pub(super) fn dump(conn: &Connection, sink: &mut Sink<'_>) -> Result<(), Archive
         &tx,
         "SELECT seq, kind, run_id, position, step_index, attempt, unit_seq, content_sha256, sha256,
                 prev_sha256 FROM chain ORDER BY seq",
-        |r| {
-            Ok(ChainRow {
-                seq: r.get(0)?,
-                kind: r.get(1)?,
-                run_id: r.get(2)?,
-                position: r.get(3)?,
-                step_index: r.get(4)?,
-                attempt: r.get(5)?,
-                unit_seq: r.get(6)?,
-                content_sha256: r.get(7)?,
-                sha256: r.get(8)?,
-                prev_sha256: r.get(9)?,
-            })
-        },
+        chain_row,
         Rows::Chain,
         sink,
     )?;
@@ -343,20 +265,7 @@ pub(super) fn dump_since(
                     prev_sha256 FROM chain WHERE seq > {} ORDER BY seq",
             marks.chain_upto
         ),
-        |r| {
-            Ok(ChainRow {
-                seq: r.get(0)?,
-                kind: r.get(1)?,
-                run_id: r.get(2)?,
-                position: r.get(3)?,
-                step_index: r.get(4)?,
-                attempt: r.get(5)?,
-                unit_seq: r.get(6)?,
-                content_sha256: r.get(7)?,
-                sha256: r.get(8)?,
-                prev_sha256: r.get(9)?,
-            })
-        },
+        chain_row,
         Rows::Chain,
         &mut |rows| {
             if let Rows::Chain(v) = rows {
@@ -376,15 +285,7 @@ pub(super) fn dump_since(
                 "SELECT p.sha256, p.plan_id, p.revision, p.file, p.text
                  FROM plans p JOIN runs r ON r.plan_sha256 = p.sha256 WHERE r.run_id = ?1",
                 [run],
-                |r| {
-                    Ok(PlanRow {
-                        sha256: r.get(0)?,
-                        plan_id: r.get(1)?,
-                        revision: r.get(2)?,
-                        file: r.get(3)?,
-                        text: r.get(4)?,
-                    })
-                },
+                plan_row,
             )
             .optional()?;
         sink(Rows::Plans(p.into_iter().collect()))?;
@@ -397,35 +298,14 @@ pub(super) fn dump_since(
                 "SELECT rowid, run_id, plan_sha256, lot, station, operator, bench, tool_version,
                         started_at, finished_at, state FROM runs WHERE run_id = ?1",
                 [run],
-                |r| {
-                    Ok(RunFull {
-                        seq: r.get(0)?,
-                        run_id: r.get(1)?,
-                        plan_sha256: r.get(2)?,
-                        lot: r.get(3)?,
-                        station: r.get(4)?,
-                        operator: r.get(5)?,
-                        bench: r.get(6)?,
-                        tool_version: r.get(7)?,
-                        started_at: r.get(8)?,
-                        finished_at: r.get(9)?,
-                        state: r.get(10)?,
-                    })
-                },
+                run_full,
             )
             .optional()?,
         );
         let mut stmt = tx.prepare(
             "SELECT rowid, run_id, position, serial FROM run_units WHERE run_id = ?1 ORDER BY rowid",
         )?;
-        for row in stmt.query_map([run], |r| {
-            Ok(SeenRow {
-                seq: r.get(0)?,
-                run_id: r.get(1)?,
-                position: r.get(2)?,
-                serial: r.get(3)?,
-            })
-        })? {
+        for row in stmt.query_map([run], seen_row)? {
             seen.push(row?);
         }
     }
@@ -438,21 +318,7 @@ pub(super) fn dump_since(
              FROM readings WHERE id > {} ORDER BY id",
             marks.readings_upto
         ),
-        |r| {
-            Ok(ReadingFull {
-                id: r.get(0)?,
-                run_id: r.get(1)?,
-                position: r.get(2)?,
-                step_index: r.get(3)?,
-                attempt: r.get(4)?,
-                quantity: r.get(5)?,
-                channel: r.get(6)?,
-                raw: r.get(7)?,
-                t_s: r.get(8)?,
-                value: r.get(9)?,
-                took_s: r.get(10)?,
-            })
-        },
+        reading_full,
         Rows::Readings,
         sink,
     )?;
@@ -465,16 +331,7 @@ pub(super) fn dump_since(
                     "SELECT run_id, position, step_index, attempt, status, record FROM steps
                      WHERE run_id = ?1 AND position = ?2 AND step_index = ?3 AND attempt = ?4",
                     params![e.run_id, e.position, e.step_index, e.attempt],
-                    |r| {
-                        Ok(StepFull {
-                            run_id: r.get(0)?,
-                            position: r.get(1)?,
-                            step_index: r.get(2)?,
-                            attempt: r.get(3)?,
-                            status: r.get(4)?,
-                            record: r.get(5)?,
-                        })
-                    },
+                    step_full,
                 )
                 .optional()?,
             ),
@@ -483,20 +340,7 @@ pub(super) fn dump_since(
                     "SELECT seq, run_id, position, serial, firmware, status, finished_at, record,
                             record_sha256, prev_sha256 FROM units WHERE seq = ?1",
                     [e.unit_seq],
-                    |r| {
-                        Ok(UnitFull {
-                            seq: r.get(0)?,
-                            run_id: r.get(1)?,
-                            position: r.get(2)?,
-                            serial: r.get(3)?,
-                            firmware: r.get(4)?,
-                            status: r.get(5)?,
-                            finished_at: r.get(6)?,
-                            record: r.get(7)?,
-                            record_sha256: r.get(8)?,
-                            prev_sha256: r.get(9)?,
-                        })
-                    },
+                    unit_full,
                 )
                 .optional()?,
             ),
@@ -524,5 +368,99 @@ pub(super) fn waiting_since(
     Ok(crate::archive::journal::Waiting {
         runs: runs as u64,
         readings: readings as u64,
+    })
+}
+
+// ---- Rows as this backend reads them (one mapping per row kind) ----
+
+pub(super) fn chain_row(r: &rusqlite::Row<'_>) -> rusqlite::Result<ChainRow> {
+    Ok(ChainRow {
+        seq: r.get(0)?,
+        kind: r.get(1)?,
+        run_id: r.get(2)?,
+        position: r.get(3)?,
+        step_index: r.get(4)?,
+        attempt: r.get(5)?,
+        unit_seq: r.get(6)?,
+        content_sha256: r.get(7)?,
+        sha256: r.get(8)?,
+        prev_sha256: r.get(9)?,
+    })
+}
+
+pub(super) fn run_full(r: &rusqlite::Row<'_>) -> rusqlite::Result<RunFull> {
+    Ok(RunFull {
+        seq: r.get(0)?,
+        run_id: r.get(1)?,
+        plan_sha256: r.get(2)?,
+        lot: r.get(3)?,
+        station: r.get(4)?,
+        operator: r.get(5)?,
+        bench: r.get(6)?,
+        tool_version: r.get(7)?,
+        started_at: r.get(8)?,
+        finished_at: r.get(9)?,
+        state: r.get(10)?,
+    })
+}
+
+pub(super) fn seen_row(r: &rusqlite::Row<'_>) -> rusqlite::Result<SeenRow> {
+    Ok(SeenRow {
+        seq: r.get(0)?,
+        run_id: r.get(1)?,
+        position: r.get(2)?,
+        serial: r.get(3)?,
+    })
+}
+
+pub(super) fn reading_full(r: &rusqlite::Row<'_>) -> rusqlite::Result<ReadingFull> {
+    Ok(ReadingFull {
+        id: r.get(0)?,
+        run_id: r.get(1)?,
+        position: r.get(2)?,
+        step_index: r.get(3)?,
+        attempt: r.get(4)?,
+        quantity: r.get(5)?,
+        channel: r.get(6)?,
+        raw: r.get(7)?,
+        t_s: r.get(8)?,
+        value: r.get(9)?,
+        took_s: r.get(10)?,
+    })
+}
+
+pub(super) fn step_full(r: &rusqlite::Row<'_>) -> rusqlite::Result<StepFull> {
+    Ok(StepFull {
+        run_id: r.get(0)?,
+        position: r.get(1)?,
+        step_index: r.get(2)?,
+        attempt: r.get(3)?,
+        status: r.get(4)?,
+        record: r.get(5)?,
+    })
+}
+
+pub(super) fn unit_full(r: &rusqlite::Row<'_>) -> rusqlite::Result<UnitFull> {
+    Ok(UnitFull {
+        seq: r.get(0)?,
+        run_id: r.get(1)?,
+        position: r.get(2)?,
+        serial: r.get(3)?,
+        firmware: r.get(4)?,
+        status: r.get(5)?,
+        finished_at: r.get(6)?,
+        record: r.get(7)?,
+        record_sha256: r.get(8)?,
+        prev_sha256: r.get(9)?,
+    })
+}
+
+pub(super) fn plan_row(r: &rusqlite::Row<'_>) -> rusqlite::Result<PlanRow> {
+    Ok(PlanRow {
+        sha256: r.get(0)?,
+        plan_id: r.get(1)?,
+        revision: r.get(2)?,
+        file: r.get(3)?,
+        text: r.get(4)?,
     })
 }
