@@ -2,7 +2,7 @@
 //! with SIGKILL and resumed.
 
 mod common;
-use common::store::{Store, backends};
+use common::store::{Store, backends, on_every_backend};
 use common::{bin, temp_dir};
 
 use meterproof::record::UnitStatus;
@@ -158,12 +158,7 @@ fn demo_queried(dir: &Path, archive: &Store) {
 
 #[test]
 fn two_runs_writing_one_archive_at_once_lose_nothing() {
-    let dir = temp_dir("concurrent");
-    for archive in backends(&dir, "shared") {
-        two_at_once(&dir.join(archive.label()), &archive);
-        archive.remove();
-    }
-    std::fs::remove_dir_all(&dir).unwrap();
+    on_every_backend("concurrent", two_at_once);
 }
 
 fn two_at_once(dir: &Path, archive: &Store) {
@@ -423,12 +418,7 @@ fn an_archive_without_reading_durations_is_brought_up_to_date() {
 /// a file, none accepted, and the run ends with exit 3 naming the archive's error.
 #[test]
 fn an_archive_that_fails_mid_run_stops_the_loads_and_loses_no_record() {
-    let top = temp_dir("full");
-    for archive in backends(&top, "full") {
-        fails_mid_run(&top.join(archive.label()), &archive);
-        archive.remove();
-    }
-    std::fs::remove_dir_all(&top).unwrap();
+    on_every_backend("full", fails_mid_run);
 }
 
 fn fails_mid_run(dir: &Path, archive: &Store) {
@@ -502,12 +492,7 @@ fn fails_mid_run(dir: &Path, archive: &Store) {
 /// the percentage error as IEC 62053-21 defines it).
 #[test]
 fn explain_prints_a_computation_that_can_be_redone_by_hand() {
-    let top = temp_dir("explain");
-    for archive in backends(&top, "explain") {
-        explained(&top.join(archive.label()), &archive);
-        archive.remove();
-    }
-    std::fs::remove_dir_all(&top).unwrap();
+    on_every_backend("explain", explained);
 }
 
 fn explained(dir: &Path, archive: &Store) {
@@ -656,12 +641,7 @@ fn durability_settings_and_group_commit_of_concurrent_readings() {
 /// run opened and ended, per unit seen, per step and per unit record.
 #[test]
 fn eight_benches_of_sixteen_positions_write_one_archive() {
-    let top = temp_dir("eight-benches");
-    for archive in backends(&top, "eight") {
-        eight_benches(&top.join(archive.label()), &archive);
-        archive.remove();
-    }
-    std::fs::remove_dir_all(&top).unwrap();
+    on_every_backend("eight-benches", eight_benches);
 }
 
 fn eight_benches(dir: &Path, archive: &Store) {

@@ -9,7 +9,7 @@
 //! fingerprint must fail `verify`, and the counts are printed.
 
 mod common;
-use common::store::{Store, backends};
+use common::store::{Store, backends, on_every_backend};
 use common::{bin, temp_dir};
 
 use meterproof::archive::{RunFilter, RunRecorder, RunRow, RunState};
@@ -253,12 +253,7 @@ fn cases(store: &Store) -> Vec<Case> {
 
 #[test]
 fn verify_finds_every_change_that_alters_what_a_command_shows() {
-    let dir = temp_dir("tamper-suite");
-    for archive in backends(&dir, "suite") {
-        tamper_suite(&dir, &archive);
-        archive.remove();
-    }
-    std::fs::remove_dir_all(&dir).unwrap();
+    on_every_backend("tamper-suite", tamper_suite);
 }
 
 fn tamper_suite(dir: &Path, archive: &Store) {
@@ -355,12 +350,7 @@ fn tamper_suite(dir: &Path, archive: &Store) {
 /// the database; the anchor kept in the run's folder and on its reports finds it.
 #[test]
 fn truncation_is_found_against_the_anchor() {
-    let dir = temp_dir("tamper-anchor");
-    for archive in backends(&dir, "anchor") {
-        truncation_against_the_anchor(&dir, &archive);
-        archive.remove();
-    }
-    std::fs::remove_dir_all(&dir).unwrap();
+    on_every_backend("tamper-anchor", truncation_against_the_anchor);
 }
 
 fn truncation_against_the_anchor(dir: &Path, archive: &Store) {
@@ -559,12 +549,7 @@ fn a_unit_swapped_during_an_interruption_keeps_its_own_record() {
 /// attempt that was cut short by the interruption (kept, though no verdict rests on them).
 #[test]
 fn verify_names_the_record_a_change_belongs_to() {
-    let dir = temp_dir("tamper-named");
-    for archive in backends(&dir, "named") {
-        changes_named(&dir, &archive);
-        archive.remove();
-    }
-    std::fs::remove_dir_all(&dir).unwrap();
+    on_every_backend("tamper-named", changes_named);
 }
 
 fn changes_named(dir: &Path, archive: &Store) {
@@ -619,12 +604,7 @@ fn changes_named(dir: &Path, archive: &Store) {
 /// own hash, the second by the next entry's link to it (the run is not the last in the chain).
 #[test]
 fn a_consistent_forgery_is_caught_by_the_chain_itself() {
-    let dir = temp_dir("tamper-forged");
-    for archive in backends(&dir, "forged") {
-        forgeries_caught(&dir, &archive);
-        archive.remove();
-    }
-    std::fs::remove_dir_all(&dir).unwrap();
+    on_every_backend("tamper-forged", forgeries_caught);
 }
 
 fn forgeries_caught(dir: &Path, archive: &Store) {

@@ -90,6 +90,19 @@ pub fn backends(dir: &Path, name: &str) -> Vec<Store> {
     out
 }
 
+/// Runs `test` once per backend, each with a folder of its own (beside its archive, which is
+/// fresh), and removes both after it.
+pub fn on_every_backend(name: &str, test: impl Fn(&Path, &Store)) {
+    let top = super::temp_dir(name);
+    for store in backends(&top, name) {
+        let dir = top.join(store.label());
+        std::fs::create_dir_all(&dir).unwrap();
+        test(&dir, &store);
+        store.remove();
+    }
+    std::fs::remove_dir_all(&top).unwrap();
+}
+
 impl Store {
     /// The value of `--archive`.
     pub fn arg(&self) -> String {
