@@ -1191,3 +1191,58 @@ fn an_archive_of_schema_1_is_migrated_in_one_transaction_and_copies_to_postgresq
     }
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// The new archive options refuse what they cannot use, saying where and what, before any load:
+/// an address that does not parse (naming the option), a journal without a shared archive, an
+/// upload from a journal that is not there or to a file, a copy onto itself.
+#[test]
+fn archive_options_that_cannot_be_used_are_refused_with_where_and_what() {
+    let dir = temp_dir("archive-options");
+    let said = |args: &[&str]| {
+        let o = bin().args(args).output().unwrap();
+        (
+            o.status.code().unwrap(),
+            String::from_utf8_lossy(&o.stderr).to_string(),
+        )
+    };
+    let (code, err) = said(&["runs", "--archive", "postgres://u@db.example:notaport/x"]);
+    assert_eq!(code, 3, "{err}");
+    assert!(
+        err.contains("does not parse") && err.contains("port"),
+        "{err}"
+    );
+    let out = dir.join("out");
+    let (code, err) = said(&[
+        "run",
+        "test-plans/demo.yaml",
+        "--quiet",
+        "--out",
+        out.to_str().unwrap(),
+        "--journal",
+        "journal.sqlite",
+    ]);
+    assert_eq!(code, 2, "{err}");
+    assert!(
+        err.contains("--journal journal.sqlite") && err.contains("--archive postgres://"),
+        "{err}"
+    );
+    assert!(common::records_in(&out).is_empty(), "no unit was tested");
+    let missing = dir.join("missing.sqlite");
+    let (code, err) = said(&[
+        "upload",
+        "--journal",
+        missing.to_str().unwrap(),
+        "--archive",
+        "postgres://u@127.0.0.1:9/x",
+    ]);
+    assert_eq!(code, 2, "{err}");
+    assert!(err.contains("no journal at"), "{err}");
+    assert!(!missing.exists(), "nothing created");
+    let (code, err) = said(&["upload", "--journal", "j.sqlite", "--archive", "a.sqlite"]);
+    assert_eq!(code, 2, "{err}");
+    assert!(err.contains("--archive postgres://"), "{err}");
+    let (code, err) = said(&["copy-archive", "--from", "a.sqlite", "--to", "a.sqlite"]);
+    assert_eq!(code, 2, "{err}");
+    assert!(err.contains("same archive"), "{err}");
+    std::fs::remove_dir_all(&dir).unwrap();
+}

@@ -79,9 +79,12 @@ pub(super) fn connect(url: &str) -> Result<Client, ArchiveError> {
         path: redacted(url),
         why,
     };
-    let mut config: postgres::Config = url
-        .parse()
-        .map_err(|e| open_err(format!("the address does not parse: {e}")))?;
+    let mut config: postgres::Config = url.parse().map_err(|e: postgres::Error| {
+        open_err(format!(
+            "the address does not parse: {}",
+            ArchiveError::from(e).said()
+        ))
+    })?;
     if config.get_user().is_none() {
         let user = std::env::var("PGUSER")
             .or_else(|_| std::env::var("USER"))
