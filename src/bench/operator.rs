@@ -36,11 +36,39 @@ pub trait Screen: Send + Sync {
     fn aside(&self, f: &mut dyn FnMut());
 }
 
-/// Prompts on standard error; answers from standard input (or any line source, for tests).
+/// What a question asks for, so that a front end with buttons can offer the right ones. The
+/// answer is a line of text whatever the kind: the console reads it the same way.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Ask {
+    /// Any text: a serial number, a reason.
+    Text,
+    /// Set a load: Enter goes on, `skip REASON` or `abort REASON`.
+    Load,
+    /// A reading of the reference meter, with its unit.
+    Reading,
+    /// `yes` does it; anything else does not.
+    Confirm,
+}
+
+/// Where a console's words go when they do not go to the terminal: a front end of its own (a
+/// browser page), which shows each question until it is answered.
+pub trait Speaker: Send + Sync {
+    /// A line for the operator.
+    fn say(&self, text: &str);
+    /// A question, waiting for its answer.
+    fn ask(&self, kind: Ask, prompt: &str);
+    /// The question is answered (or given up): it goes from the screen.
+    fn answered(&self);
+}
+
+/// Prompts on standard error, or on a front end's [`Speaker`]; answers from standard input, a
+/// front end, or any line source (for tests).
 pub struct Console {
     lines: Receiver<String>,
     interrupt: Arc<AtomicBool>,
     screen: Option<Arc<dyn Screen>>,
+    speaker: Option<Arc<dyn Speaker>>,
 }
 
 impl Console {
@@ -60,6 +88,22 @@ impl Console {
             lines: rx,
             interrupt,
             screen: None,
+            speaker: None,
+        }
+    }
+
+    /// A console of a front end of its own: questions and lines go to `speaker`, answers come
+    /// from `answers`, one line each; it stops when `interrupt` is set.
+    pub fn remote(
+        answers: Receiver<String>,
+        interrupt: Arc<AtomicBool>,
+        speaker: Arc<dyn Speaker>,
+    ) -> Console {
+        Console {
+            lines: answers,
+            interrupt,
+            screen: None,
+            speaker: Some(speaker),
         }
     }
 
@@ -84,22 +128,39 @@ impl Console {
 
     /// Prints `prompt` and waits for one line.
     pub fn ask(&self, prompt: &str) -> Result<String, Interrupted> {
-        self.with_screen_aside(|| self.ask_now(prompt))
+        self.ask_for(Ask::Text, prompt)
     }
 
-    fn ask_now(&self, prompt: &str) -> Result<String, Interrupted> {
-        eprint!("{prompt}");
-        let _ = std::io::stderr().flush();
+    /// Asks for a `kind` of answer (shown on a front end's buttons; the terminal reads the
+    /// prompt alone).
+    pub fn ask_for(&self, kind: Ask, prompt: &str) -> Result<String, Interrupted> {
+        match &self.speaker {
+            Some(speaker) => {
+                speaker.ask(kind, prompt);
+                let answer = self.wait(|| {});
+                speaker.answered();
+                answer
+            }
+            None => self.with_screen_aside(|| {
+                eprint!("{prompt}");
+                let _ = std::io::stderr().flush();
+                self.wait(|| eprintln!())
+            }),
+        }
+    }
+
+    /// The next line, or why there is none (`broken` ends the prompt's line).
+    fn wait(&self, broken: impl Fn()) -> Result<String, Interrupted> {
         loop {
             if self.interrupt.load(Ordering::SeqCst) {
-                eprintln!();
+                broken();
                 return Err(Interrupted::Signal);
             }
             match self.lines.recv_timeout(Duration::from_millis(100)) {
                 Ok(line) => return Ok(line.trim().to_string()),
                 Err(RecvTimeoutError::Timeout) => {}
                 Err(RecvTimeoutError::Disconnected) => {
-                    eprintln!();
+                    broken();
                     return Err(Interrupted::EndOfInput);
                 }
             }
@@ -108,7 +169,10 @@ impl Console {
 
     /// Prints a line for the operator.
     pub fn say(&self, text: &str) {
-        self.with_screen_aside(|| eprintln!("{text}"));
+        match &self.speaker {
+            Some(speaker) => speaker.say(text),
+            None => self.with_screen_aside(|| eprintln!("{text}")),
+        }
     }
 }
 
@@ -136,7 +200,8 @@ impl Rescan for ConsoleRescan {
     }
 }
 
-fn lock(c: &SharedConsole) -> std::sync::MutexGuard<'_, Console> {
+/// The console, even when a thread that held it panicked (a prompt is still answerable).
+pub fn lock(c: &SharedConsole) -> std::sync::MutexGuard<'_, Console> {
     c.lock().unwrap_or_else(|p| p.into_inner())
 }
 
@@ -195,7 +260,9 @@ impl LoadSource for ManualSource {
             "Set the load to {}. Press Enter when it is set (or type: skip REASON / abort REASON): ",
             load.describe()
         );
-        let mut answer = console.ask(&load_prompt).map_err(interrupted)?;
+        let mut answer = console
+            .ask_for(Ask::Load, &load_prompt)
+            .map_err(interrupted)?;
         // A skip or an abort goes into the records with its reason: one is asked for until
         // given, and an abort, which ends the run, is confirmed.
         loop {
@@ -216,14 +283,16 @@ impl LoadSource for ManualSource {
                 }
                 Err(BenchError::Aborted(reason)) => {
                     let sure = console
-                        .ask(&format!(
+                        .ask_for(Ask::Confirm, &format!(
                             "Abort the run ({reason})? The load goes off and the units not finished stay INCOMPLETE. Type yes to abort, Enter to go on: "
                         ))
                         .map_err(interrupted)?;
                     if sure.eq_ignore_ascii_case("yes") {
                         return Err(BenchError::Aborted(reason));
                     }
-                    answer = console.ask(&load_prompt).map_err(interrupted)?;
+                    answer = console
+                        .ask_for(Ask::Load, &load_prompt)
+                        .map_err(interrupted)?;
                 }
                 Err(BenchError::Skipped(reason)) => {
                     console.say(&format!(
@@ -341,7 +410,7 @@ impl ReferenceMeter for TypedReference {
                 ),
                 Some(p) => format!("  {}: Enter to record it, or type it again: ", p.text),
             };
-            let text = console.ask(&prompt).map_err(abort)?;
+            let text = console.ask_for(Ask::Reading, &prompt).map_err(abort)?;
             if text.is_empty() {
                 match pending.take() {
                     Some(p) if !p.far => {
@@ -445,6 +514,7 @@ mod tests {
             lines: rx,
             interrupt: Arc::new(AtomicBool::new(false)),
             screen: None,
+            speaker: None,
         }));
         let mut reference = TypedReference::new(console, 0.10);
         let load = crate::plan::Load {

@@ -20,6 +20,10 @@ pub(super) enum BenchSpec {
         /// A simulated firmware change (`--sim-firmware`), as written.
         #[serde(default, skip_serializing_if = "Option::is_none")]
         firmware: Option<String>,
+        /// Bench seconds per real second, for a run watched as it goes (the station screen);
+        /// none: the virtual clock, as fast as the computer goes.
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        pace: Option<f64>,
     },
     Station {
         path: String,
@@ -38,6 +42,19 @@ pub(super) trait BenchOptions {
     /// Whether a programmable source may be energised without the operator confirming that
     /// the bench is closed.
     fn unattended(&self) -> bool;
+    /// Where the operator is asked and told things: the terminal's console, unless a front end
+    /// of its own (the station screen) has one.
+    fn console(&self) -> SharedConsole {
+        console()
+    }
+    /// What stops the run (the stop signal, unless a front end has a stop of its own).
+    fn interrupt(&self) -> Arc<AtomicBool> {
+        INTERRUPT.clone()
+    }
+    /// Says the mains caution before anything is energised.
+    fn caution(&self) {
+        eprintln!("{}", wrapped(MAINS_CAUTION, 0));
+    }
 }
 
 impl BenchOptions for RunArgs {
@@ -83,6 +100,7 @@ pub(super) fn build_bench(
             serials,
             ask,
             firmware,
+            pace,
         } => {
             let mut config = SimConfig::new(*seed, *positions);
             config.serials = serials.clone();
@@ -90,16 +108,23 @@ pub(super) fn build_bench(
                 config.firmware = FirmwareChange::parse(text)
                     .map_err(|e| CliError::Usage(format!("--sim-firmware: {e}")))?;
             }
-            let mut bench = SimBench::new(&config).into_bench();
+            let sim = match pace {
+                Some(scale) => {
+                    SimBench::with_clock(&config, Arc::new(crate::bench::RealClock::scaled(*scale)))
+                }
+                None => SimBench::new(&config),
+            };
+            let mut bench = sim.into_bench();
             if *ask {
                 // The operator confirms each load; the simulator then really applies it.
+                let console = options.console();
                 bench
                     .source
-                    .wrap(|sim| Box::new(ManualSource::new(console(), Some(sim))));
+                    .wrap(|sim| Box::new(ManualSource::new(console.clone(), Some(sim))));
                 bench.reference =
-                    Box::new(TypedReference::new(console(), plan.reference_plausibility));
+                    Box::new(TypedReference::new(console, plan.reference_plausibility));
             }
-            bench.interrupt = INTERRUPT.clone();
+            bench.interrupt = options.interrupt();
             guard_source(&bench);
             Ok((bench, Vec::new()))
         }
@@ -170,14 +195,13 @@ pub(super) fn station_bench(
         None if options.ask() => (Some(ask_serials(station.positions.len())?), true),
         other => (other, false),
     };
-    let mut bench = station::build_bench(&station, plan, needs_operator.then(console)).map_err(
-        |e| match e {
+    let mut bench = station::build_bench(&station, plan, needs_operator.then(|| options.console()))
+        .map_err(|e| match e {
             station::StationError::NotSerial(_) | station::StationError::SharedPort(..) => {
                 CliError::Usage(e.to_string())
             }
             station::StationError::Instrument { .. } => CliError::Run(e.to_string()),
-        },
-    )?;
+        })?;
     if let Some(serials) = serials {
         for (p, s) in bench.positions.iter_mut().zip(serials) {
             p.expected_serial = Some(s);
@@ -185,14 +209,14 @@ pub(super) fn station_bench(
     }
     // Serials scanned at this console may be scanned again when a unit reports another.
     if scanned_here {
-        bench.rescan = Some(Box::new(ConsoleRescan(console())));
+        bench.rescan = Some(Box::new(ConsoleRescan(options.console())));
     }
-    bench.interrupt = INTERRUPT.clone();
+    bench.interrupt = options.interrupt();
     guard_source(&bench);
     // The caution once per run, before anything is energised; the bench-closed question
     // below follows it.
     if !options.quiet() {
-        eprintln!("{}", wrapped(MAINS_CAUTION, 0));
+        options.caution();
     }
     // A programmable source puts mains on the positions by itself: before its first load the
     // operator confirms that the bench is closed, unless the bench is declared unattended.
@@ -201,13 +225,16 @@ pub(super) fn station_bench(
             notes.push("run unattended: the bench-closed confirmation was not asked".into());
         } else {
             if options.quiet() {
-                eprintln!("{}", wrapped(MAINS_CAUTION, 0));
+                options.caution();
             }
             // No answer (the input ended) is no confirmation.
-            let answer = ask(
-                "The source will put mains voltage on the positions. Is the bench closed, with nobody touching a position? Type yes to energise: ",
-            )
-            .unwrap_or_default();
+            let console = options.console();
+            let answer = crate::bench::operator::lock(&console)
+                .ask_for(
+                    crate::bench::operator::Ask::Confirm,
+                    "The source will put mains voltage on the positions. Is the bench closed, with nobody touching a position? Type yes to energise: ",
+                )
+                .unwrap_or_default();
             if !answer.eq_ignore_ascii_case("yes") {
                 return Err(CliError::Usage(
                     "the bench was not confirmed closed: nothing was energised (give --unattended only for a bench interlocked to run with nobody watching)".into(),

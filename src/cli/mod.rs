@@ -33,6 +33,7 @@ mod editor;
 mod explain;
 mod journal;
 mod run;
+mod serve;
 mod terminal;
 mod tools;
 mod try_link;
@@ -129,6 +130,9 @@ enum Command {
     Report(archive_cmds::ReportArgs),
     /// Print one check's whole computation from its stored record, to follow by hand.
     Explain(explain::ExplainArgs),
+    /// Serve the station screen to a browser: scan, start and watch runs, and look units up in
+    /// the archive.
+    Serve(serve::ServeArgs),
 }
 
 #[derive(clap::Args)]
@@ -322,6 +326,7 @@ pub fn main() -> i32 {
         Command::Summary(args) => archive_cmds::summary(&args),
         Command::Report(args) => archive_cmds::report(&args),
         Command::Explain(args) => explain::explain(&args),
+        Command::Serve(args) => serve::serve(&args),
     };
     match result {
         Ok(code) => code,

@@ -56,6 +56,7 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
             serials,
             ask: args.ask,
             firmware: args.sim_firmware.clone(),
+            pace: None,
         }
     } else {
         BenchSpec::Station {
@@ -116,26 +117,7 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
         super::journal::send(journal, url);
     }
     let lock = lock_run(&archive_path, &ctx.run_id)?;
-    archive
-        .begin_run(
-            &plan,
-            &RunRow {
-                run_id: ctx.run_id.clone(),
-                plan_sha256: plan.source.sha256.clone(),
-                plan_id: plan.id.clone(),
-                revision: plan.revision.clone(),
-                lot: ctx.lot.clone(),
-                station: bench.station.id.clone(),
-                operator: ctx.operator.clone(),
-                bench: serde_json::to_string(&spec).expect("a bench spec serialises"),
-                tool_version: ctx.tool_version.clone(),
-                started_at: chrono::Local::now()
-                    .to_rfc3339_opts(chrono::SecondsFormat::Millis, false),
-                finished_at: None,
-                state: "running".into(),
-            },
-        )
-        .map_err(|e| CliError::Run(e.to_string()))?;
+    begin_in_archive(&archive, &plan, &ctx, &bench, &spec)?;
     let mut reporter = TerminalReporter::new(args.quiet);
     let recorder = RunRecorder::new(&archive, &ctx.run_id);
     let records = exec::run_with(&plan, &mut bench, &ctx, &mut reporter, &recorder, None);
@@ -215,6 +197,36 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
         (Ok(_), Some(e)) => Err(e),
         (Ok(_), None) => Ok(exit_status(&records)),
     }
+}
+
+/// Enters a run in the archive, before any load: its plan, bench, operator and lot, `running`.
+pub(super) fn begin_in_archive(
+    archive: &Archive,
+    plan: &Plan,
+    ctx: &RunContext,
+    bench: &Bench,
+    spec: &BenchSpec,
+) -> Result<(), CliError> {
+    archive
+        .begin_run(
+            plan,
+            &RunRow {
+                run_id: ctx.run_id.clone(),
+                plan_sha256: plan.source.sha256.clone(),
+                plan_id: plan.id.clone(),
+                revision: plan.revision.clone(),
+                lot: ctx.lot.clone(),
+                station: bench.station.id.clone(),
+                operator: ctx.operator.clone(),
+                bench: serde_json::to_string(spec).expect("a bench spec serialises"),
+                tool_version: ctx.tool_version.clone(),
+                started_at: chrono::Local::now()
+                    .to_rfc3339_opts(chrono::SecondsFormat::Millis, false),
+                finished_at: None,
+                state: "running".into(),
+            },
+        )
+        .map_err(|e| CliError::Run(e.to_string()))
 }
 
 /// The fallback folder, made and proven writable now (before any load is applied).

@@ -101,7 +101,7 @@ pub(super) fn verdict_mark(status: UnitStatus, width: usize, on_stderr: bool) ->
 
 /// The run's last line: the counts, and which positions to take off the bench for what, so
 /// that the operator need not read back through the table.
-fn closing_line(records: &[UnitRecord]) -> String {
+pub(super) fn closing_line(records: &[UnitRecord]) -> String {
     let count = |s: UnitStatus| records.iter().filter(|r| r.verdict.status == s).count();
     let positions = |s: UnitStatus| {
         let p: Vec<String> = records

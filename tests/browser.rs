@@ -1,0 +1,864 @@
+//! The station screen as an operator uses it: the real pages of `meterproof serve`, driven in
+//! headless Chromium (the distribution's package) through WebDriver (chromedriver, the
+//! distribution's chromium-driver) with fantoccini. Four serials scanned (one twice by
+//! mistake), a run on the simulated bench started and watched to its verdicts, a run whose
+//! operator sets each load and types each reference reading answered dialog by dialog, the
+//! units looked up in the archive view and their reports opened. The station view is
+//! photographed at 1920×1080 and on a 1024×768 tablet into target/screens/ for a person to
+//! look at. And the server's refusals: another Host, a request without the page's key, a
+//! run from another machine, bad fields, a stale answer.
+//!
+//! Its own harness, so that it can say out loud when the browser is missing: without Chromium
+//! and chromedriver it prints that the checks did not run and why, and fails when
+//! MP_REQUIRE_BROWSER is set (`.ci/run` sets it, after installing both).
+
+mod common;
+use common::{bin, temp_dir};
+
+use fantoccini::{Client, ClientBuilder, Locator};
+use std::io::{BufRead, BufReader, Read, Write};
+use std::net::TcpStream;
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
+
+fn main() {
+    let missing: Vec<&str> = ["chromium", "chromedriver"]
+        .into_iter()
+        .filter(|tool| which(tool).is_none())
+        .collect();
+    if !missing.is_empty() {
+        eprintln!(
+            "\n*** browser checks NOT RUN: {} not found. Install them with `apt-get install chromium chromium-driver` (as root), or run `bash .ci/run`, which does. ***\n",
+            missing.join(", ")
+        );
+        if std::env::var_os("MP_REQUIRE_BROWSER").is_some() {
+            panic!("MP_REQUIRE_BROWSER is set and the browser checks cannot run");
+        }
+        return;
+    }
+    let dir = temp_dir("browser");
+    let server = Server::start(&dir, "127.0.0.1:0");
+    refusals(&server);
+    let driver = Driver::start(&dir);
+    let runtime = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .unwrap();
+    runtime.block_on(async {
+        let client = driver.client(&dir).await;
+        let outcome = async {
+            let watched = watched_run(&client, &server).await;
+            let typed = typed_run(&client, &server).await;
+            look_up(&client, &server, &watched, &typed).await;
+        };
+        // The browser is closed however the checks end.
+        let result =
+            futures_util::FutureExt::catch_unwind(std::panic::AssertUnwindSafe(outcome)).await;
+        let _ = client.close().await;
+        if let Err(panic) = result {
+            std::panic::resume_unwind(panic);
+        }
+    });
+    let code = server.stop();
+    // A stop signal ends the server with the status of an interrupted command.
+    assert_eq!(code, Some(130), "the server's exit status after SIGTERM");
+    println!(
+        "browser checks: a watched run, a typed run, the archive view and the refusals; screenshots in {}",
+        screens_dir().display()
+    );
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
+fn which(tool: &str) -> Option<PathBuf> {
+    std::env::var_os("PATH").and_then(|paths| {
+        std::env::split_paths(&paths)
+            .map(|p| p.join(tool))
+            .find(|p| p.is_file())
+    })
+}
+
+/// Where the screenshots go: target/screens/.
+fn screens_dir() -> PathBuf {
+    let d = Path::new(env!("CARGO_MANIFEST_DIR")).join("target/screens");
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+/// `meterproof serve` on a free loopback port; stopped when dropped.
+struct Server {
+    child: Option<Child>,
+    url: String,
+    /// host:port
+    authority: String,
+}
+
+impl Server {
+    fn start(dir: &Path, listen: &str) -> Server {
+        let mut child = bin()
+            .args(["serve", "--listen", listen, "--plan", "demo.yaml"])
+            .args(["--sim-pace", "20"])
+            .arg("--out")
+            .arg(dir.join("out"))
+            .stdout(Stdio::piped())
+            .stderr(Stdio::null())
+            .spawn()
+            .unwrap();
+        let stdout = child.stdout.take().unwrap();
+        let mut lines = BufReader::new(stdout).lines();
+        let first = lines.next().expect("serve said nothing").unwrap();
+        let start = first.find("http://").expect("an address") + "http://".len();
+        let authority = first[start..].split('/').next().unwrap().to_string();
+        // The rest of what it says is read off so that it never blocks on a full pipe.
+        std::thread::spawn(move || for _ in lines {});
+        Server {
+            child: Some(child),
+            url: format!("http://{authority}"),
+            authority,
+        }
+    }
+
+    /// Sends the stop signal and returns the exit status.
+    fn stop(mut self) -> Option<i32> {
+        let mut child = self.child.take()?;
+        Command::new("kill")
+            .args(["-TERM", &child.id().to_string()])
+            .status()
+            .unwrap();
+        let end = Instant::now() + Duration::from_secs(30);
+        while Instant::now() < end {
+            if let Some(status) = child.try_wait().unwrap() {
+                return status.code();
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+        let _ = child.kill();
+        None
+    }
+}
+
+impl Drop for Server {
+    fn drop(&mut self) {
+        if let Some(mut c) = self.child.take() {
+            let _ = c.kill();
+            let _ = c.wait();
+        }
+    }
+}
+
+/// chromedriver on a free port; stopped when dropped.
+struct Driver {
+    child: Child,
+    port: u16,
+}
+
+impl Driver {
+    fn start(dir: &Path) -> Driver {
+        let port = free_port();
+        let child = Command::new("chromedriver")
+            .arg(format!("--port={port}"))
+            .arg(format!(
+                "--log-path={}",
+                dir.join("chromedriver.log").display()
+            ))
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .unwrap();
+        let end = Instant::now() + Duration::from_secs(20);
+        while TcpStream::connect(("127.0.0.1", port)).is_err() {
+            assert!(Instant::now() < end, "chromedriver did not start");
+            std::thread::sleep(Duration::from_millis(50));
+        }
+        Driver { child, port }
+    }
+
+    async fn client(&self, dir: &Path) -> Client {
+        let mut caps = serde_json::Map::new();
+        caps.insert(
+            "goog:chromeOptions".into(),
+            serde_json::json!({
+                "binary": which("chromium").unwrap(),
+                "args": [
+                    "--headless=new", "--no-sandbox", "--disable-gpu", "--disable-quic",
+                    "--no-first-run", "--disable-background-networking",
+                    "--disable-component-update", "--disable-sync",
+                    "--window-size=1920,1080", "--hide-scrollbars",
+                    format!("--user-data-dir={}", dir.join("chromium").display()),
+                ],
+            }),
+        );
+        ClientBuilder::new(hyper_util::client::legacy::connect::HttpConnector::new())
+            .capabilities(caps)
+            .connect(&format!("http://127.0.0.1:{}", self.port))
+            .await
+            .expect("a WebDriver session")
+    }
+}
+
+impl Drop for Driver {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port()
+}
+
+/// Evaluates `script` (a JavaScript expression) in the page.
+async fn js(client: &Client, script: &str) -> serde_json::Value {
+    client
+        .execute(&format!("return {script};"), vec![])
+        .await
+        .unwrap_or_else(|e| panic!("{script}: {e}"))
+}
+
+/// Waits until `script` is true in the page.
+async fn until(client: &Client, script: &str, limit_s: u64) {
+    let end = Instant::now() + Duration::from_secs(limit_s);
+    loop {
+        if js(client, script).await == serde_json::Value::Bool(true) {
+            return;
+        }
+        if Instant::now() > end {
+            let body = js(client, "document.body.innerText").await;
+            panic!("waited {limit_s} s for {script}; the page shows:\n{body}");
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+}
+
+async fn text_of(client: &Client, id: &str) -> String {
+    client
+        .find(Locator::Id(id))
+        .await
+        .unwrap_or_else(|e| panic!("#{id}: {e}"))
+        .text()
+        .await
+        .unwrap()
+}
+
+/// Types `text` and Enter into the field `id`, as a barcode scanner does.
+async fn scan(client: &Client, id: &str, text: &str) {
+    let field = client.find(Locator::Id(id)).await.unwrap();
+    field.clear().await.unwrap();
+    field.send_keys(&format!("{text}\u{E007}")).await.unwrap();
+}
+
+async fn screenshot(client: &Client, name: &str) -> PathBuf {
+    let png = client.screenshot().await.unwrap();
+    let path = screens_dir().join(name);
+    std::fs::write(&path, &png).unwrap();
+    // The picture is the size asked for: PNG's width and height (ISO/IEC 15948, the IHDR
+    // chunk, bytes 16..24, big-endian).
+    assert_eq!(&png[1..4], b"PNG");
+    path
+}
+
+/// Makes the page's viewport `width` × `height` (the window is bigger by the browser's own
+/// frame, measured).
+async fn viewport(client: &Client, width: u32, height: u32) {
+    client.set_window_size(width, height).await.unwrap();
+    let inner = js(client, "[window.innerWidth, window.innerHeight]").await;
+    let (w, h) = (
+        inner[0].as_u64().unwrap() as u32,
+        inner[1].as_u64().unwrap() as u32,
+    );
+    client
+        .set_window_size(2 * width - w, 2 * height - h)
+        .await
+        .unwrap();
+    let inner = js(client, "[window.innerWidth, window.innerHeight]").await;
+    assert_eq!(inner, serde_json::json!([width, height]), "the viewport");
+}
+
+/// The size of a PNG picture.
+fn png_size(path: &Path) -> (u32, u32) {
+    let bytes = std::fs::read(path).unwrap();
+    let be = |i: usize| u32::from_be_bytes(bytes[i..i + 4].try_into().unwrap());
+    (be(16), be(20))
+}
+
+/// Every verdict on the screen is whole on one line (a word broken over two lines is misread
+/// from a distance) and inside its card.
+async fn verdicts_fit(client: &Client) {
+    let misfits = js(
+        client,
+        "[...document.querySelectorAll('#positions .unit')].filter(card => { const v = card.querySelector('.verdict .word'); if (!v) return false; const r = v.getBoundingClientRect(), c = card.getBoundingClientRect(); return r.height > 1.5 * parseFloat(getComputedStyle(v).fontSize) || r.right > c.right || r.left < c.left; }).map(card => card.id)",
+    )
+    .await;
+    assert_eq!(misfits, serde_json::json!([]), "verdicts broken or cut");
+}
+
+/// What a finished run showed, for the archive view.
+struct Shown {
+    serials: Vec<String>,
+    lot: String,
+    run_id: String,
+}
+
+/// The simulated bench, watched: serials scanned (one twice by mistake, refused), the mains
+/// caution before the start, the steps and readings as they come, the verdicts large.
+async fn watched_run(client: &Client, server: &Server) -> Shown {
+    client.goto(&server.url).await.unwrap();
+    viewport(client, 1920, 1080).await;
+    until(client, "document.body.dataset.version !== undefined", 10).await;
+    let bench = client.find(Locator::Id("bench")).await.unwrap();
+    fantoccini::elements::Element::select_by_value(&bench, "sim")
+        .await
+        .unwrap();
+    scan(client, "operator", "op-21").await;
+    scan(client, "lot", "LOT-W1").await;
+    // Markup in a serial is shown as text, never run (HTML escaping: the page sets text).
+    let serials = [
+        "WB-1001",
+        "WB-1002",
+        "WB-<img src=x onerror=alert(1)>",
+        "WB-1004",
+    ];
+    scan(client, "serial-1", serials[0]).await;
+    // The first unit scanned again into position 2: refused, the field kept for a new scan.
+    scan(client, "serial-2", serials[0]).await;
+    let error = text_of(client, "form-error").await;
+    assert!(
+        error.contains("WB-1001 is already in position 1"),
+        "{error}"
+    );
+    assert_eq!(
+        js(client, "document.activeElement.id").await,
+        "serial-2",
+        "the duplicate's field keeps the focus"
+    );
+    scan(client, "serial-2", serials[1]).await;
+    assert_eq!(text_of(client, "form-error").await, "");
+    assert_eq!(js(client, "document.activeElement.id").await, "serial-3");
+    scan(client, "serial-3", serials[2]).await;
+    scan(client, "serial-4", serials[3]).await;
+    assert_eq!(
+        js(client, "document.activeElement.id").await,
+        "start",
+        "after the last position, Start has the focus"
+    );
+    client
+        .find(Locator::Id("start"))
+        .await
+        .unwrap()
+        .click()
+        .await
+        .unwrap();
+    // The mains caution comes before anything starts.
+    until(client, "document.getElementById('caution-dialog').open", 5).await;
+    let caution = text_of(client, "caution-dialog").await;
+    assert!(caution.contains("CAUTION: mains voltage"), "{caution}");
+    assert!(caution.contains("local electrical codes"), "{caution}");
+    assert_eq!(
+        js(client, "document.body.dataset.busy").await,
+        "false",
+        "nothing started before the caution was answered"
+    );
+    client
+        .find(Locator::Id("caution-yes"))
+        .await
+        .unwrap()
+        .click()
+        .await
+        .unwrap();
+    // Live: a step under way with its time left, and readings arriving, before the end.
+    until(
+        client,
+        "/Step \\d+ of \\d+/.test(document.getElementById('step-line').textContent) && /left/.test(document.getElementById('step-line').textContent)",
+        30,
+    )
+    .await;
+    until(
+        client,
+        "/[1-9]\\d* readings/.test(document.getElementById('position-1').textContent)",
+        30,
+    )
+    .await;
+    assert_eq!(js(client, "document.body.dataset.busy").await, "true");
+    until(client, "document.body.dataset.busy === 'false'", 120).await;
+    let closing = text_of(client, "closing").await;
+    // The simulator's defect sits at position 2 with seed 1 (as in the terminal's demo).
+    assert!(
+        closing.starts_with("3 accepted, 1 rejected (position 2), 0 incomplete"),
+        "{closing}"
+    );
+    for (position, word, shape) in [
+        (1, "ACCEPTED", "✔"),
+        (2, "REJECTED", "✘"),
+        (3, "ACCEPTED", "✔"),
+        (4, "ACCEPTED", "✔"),
+    ] {
+        let card = client
+            .find(Locator::Id(&format!("position-{position}")))
+            .await
+            .unwrap();
+        let class = card.attr("class").await.unwrap().unwrap();
+        let verdict = card
+            .find(Locator::Css(".verdict"))
+            .await
+            .unwrap()
+            .text()
+            .await
+            .unwrap();
+        assert!(
+            verdict.contains(word) && verdict.contains(shape),
+            "position {position}: {verdict}"
+        );
+        assert!(
+            class.contains(&word.to_lowercase()),
+            "position {position}: {class}"
+        );
+        // The verdict is read from a distance: its word at least 30 px high.
+        let size = js(
+            client,
+            &format!(
+                "parseFloat(getComputedStyle(document.querySelector('#position-{position} .verdict')).fontSize)"
+            ),
+        )
+        .await;
+        assert!(size.as_f64().unwrap() >= 30.0, "{size}");
+    }
+    let third = text_of(client, "position-3").await;
+    assert!(third.contains(serials[2]), "{third}");
+    assert_eq!(
+        js(client, "document.querySelectorAll('#positions img').length").await,
+        0,
+        "markup in a serial became an element"
+    );
+    // The rejected unit says why on its card.
+    let second = text_of(client, "position-2").await;
+    assert!(second.contains("outside"), "{second}");
+    let run_title = text_of(client, "run-title").await;
+    let run_id = run_title
+        .split_whitespace()
+        .nth(1)
+        .expect("a run id")
+        .to_string();
+    verdicts_fit(client).await;
+    let shot = screenshot(client, "station-1920x1080.png").await;
+    assert_eq!(png_size(&shot), (1920, 1080));
+    Shown {
+        serials: serials.iter().map(|s| s.to_string()).collect(),
+        lot: "LOT-W1".into(),
+        run_id,
+    }
+}
+
+/// The typed flow on the simulated bench: each load confirmed, each reference reading typed
+/// (one in a wrong unit, refused, then typed right), on a 1024×768 tablet.
+async fn typed_run(client: &Client, server: &Server) -> Shown {
+    client.goto(&server.url).await.unwrap();
+    viewport(client, 1024, 768).await;
+    until(client, "document.body.dataset.version !== undefined", 10).await;
+    let bench = client.find(Locator::Id("bench")).await.unwrap();
+    fantoccini::elements::Element::select_by_value(&bench, "sim-typed")
+        .await
+        .unwrap();
+    // The verdicts of the last run stay on the screen until the next start.
+    let still = text_of(client, "closing").await;
+    assert!(still.starts_with("3 accepted"), "{still}");
+    scan(client, "lot", "LOT-T2").await;
+    let serials = ["TB-201", "TB-202", "TB-203", "TB-204"];
+    client
+        .find(Locator::Id("clear"))
+        .await
+        .unwrap()
+        .click()
+        .await
+        .unwrap();
+    for (i, s) in serials.iter().enumerate() {
+        scan(client, &format!("serial-{}", i + 1), s).await;
+    }
+    client
+        .find(Locator::Id("start"))
+        .await
+        .unwrap()
+        .click()
+        .await
+        .unwrap();
+    until(client, "document.getElementById('caution-dialog').open", 5).await;
+    client
+        .find(Locator::Id("caution-yes"))
+        .await
+        .unwrap()
+        .click()
+        .await
+        .unwrap();
+    until(client, "document.body.dataset.busy === 'true'", 10).await;
+    let mut loads = 0;
+    let mut readings = 0;
+    let mut refused_once = false;
+    let mut photographed = false;
+    let end = Instant::now() + Duration::from_secs(240);
+    loop {
+        assert!(Instant::now() < end, "the typed run did not end");
+        let state = js(
+            client,
+            "[document.body.dataset.busy, document.getElementById('prompt').open]",
+        )
+        .await;
+        if state[0] == "false" && state[1] == false {
+            break;
+        }
+        if state[1] != true {
+            tokio::time::sleep(Duration::from_millis(50)).await;
+            continue;
+        }
+        let kind = text_of(client, "prompt-kind").await;
+        let question = text_of(client, "prompt-text").await;
+        if kind.eq_ignore_ascii_case("Set the load") {
+            assert!(question.starts_with("Set the load to "), "{question}");
+            if !photographed {
+                let shot = screenshot(client, "station-tablet-1024x768-prompt.png").await;
+                assert_eq!(png_size(&shot), (1024, 768));
+                photographed = true;
+            }
+            loads += 1;
+            click_button(client, "The load is set: go on").await;
+        } else if question.starts_with("Reference ") {
+            let nominal = question
+                .split("(nominal ")
+                .nth(1)
+                .and_then(|t| t.split(')').next())
+                .unwrap_or_else(|| panic!("no nominal in {question}"))
+                .to_string();
+            if !refused_once && nominal.ends_with(" A") {
+                // A current typed as a voltage: refused, said in the dialog, asked again.
+                answer(client, "500 mV").await;
+                until(
+                    client,
+                    "document.getElementById('prompt').open && /refused/.test(document.getElementById('prompt-latest').textContent)",
+                    10,
+                )
+                .await;
+                let latest = text_of(client, "prompt-latest").await;
+                assert!(latest.contains("\"500 mV\" is a voltage"), "{latest}");
+                refused_once = true;
+                continue;
+            }
+            readings += 1;
+            answer(client, &nominal).await;
+        } else if question.contains("Enter to record it") {
+            answer(client, "").await;
+        } else {
+            panic!("an unexpected question: {kind}: {question}");
+        }
+        // The next question (or the end) replaces this one.
+        tokio::time::sleep(Duration::from_millis(30)).await;
+    }
+    assert!(refused_once, "no current was asked for");
+    assert!(
+        loads >= 3 && readings >= loads,
+        "{loads} loads, {readings} readings"
+    );
+    let closing = text_of(client, "closing").await;
+    assert!(
+        closing.starts_with("3 accepted, 1 rejected (position 2), 0 incomplete"),
+        "{closing}"
+    );
+    let said = text_of(client, "said").await;
+    assert!(said.contains("CAUTION: mains voltage"), "{said}");
+    verdicts_fit(client).await;
+    let shot = screenshot(client, "station-tablet-1024x768.png").await;
+    assert_eq!(png_size(&shot), (1024, 768));
+    let run_title = text_of(client, "run-title").await;
+    viewport(client, 1920, 1080).await;
+    Shown {
+        serials: serials.iter().map(|s| s.to_string()).collect(),
+        lot: "LOT-T2".into(),
+        run_id: run_title.split_whitespace().nth(1).unwrap().to_string(),
+    }
+}
+
+async fn answer(client: &Client, text: &str) {
+    let field = client.find(Locator::Id("prompt-input")).await.unwrap();
+    field.clear().await.unwrap();
+    field.send_keys(&format!("{text}\u{E007}")).await.unwrap();
+}
+
+async fn click_button(client: &Client, label: &str) {
+    let buttons = client
+        .find_all(Locator::Css("#prompt-buttons button"))
+        .await
+        .unwrap();
+    for b in buttons {
+        if b.text().await.unwrap() == label {
+            b.click().await.unwrap();
+            return;
+        }
+    }
+    panic!("no button {label}");
+}
+
+/// The archive view afterwards: a unit's history with its report, a lot and its summary, a
+/// run and its units, the seals.
+async fn look_up(client: &Client, server: &Server, watched: &Shown, typed: &Shown) {
+    let search = |q: &str| format!("{}/archive?q={}", server.url, urlencoded(q));
+    // A serial: its one test, rejected, and its report.
+    client.goto(&search(&watched.serials[1])).await.unwrap();
+    let unit = text_of(client, "unit").await;
+    assert!(unit.contains("Unit WB-1002: 1 test"), "{unit}");
+    assert!(unit.contains("✘ REJECTED"), "{unit}");
+    let report = client
+        .find(Locator::Css("#unit a.report"))
+        .await
+        .unwrap()
+        .attr("href")
+        .await
+        .unwrap()
+        .unwrap();
+    client
+        .goto(&format!("{}{report}", server.url))
+        .await
+        .unwrap();
+    let page = js(client, "document.body.innerText").await;
+    let page = page.as_str().unwrap();
+    assert!(page.contains("WB-1002"), "{page}");
+    assert!(page.contains("REJECTED"), "{page}");
+    // The serial with markup, found by its text, its report a page of text too.
+    client.goto(&search(&watched.serials[2])).await.unwrap();
+    let unit = text_of(client, "unit").await;
+    assert!(unit.contains(&watched.serials[2]), "{unit}");
+    assert_eq!(
+        js(client, "document.querySelectorAll('main img').length").await,
+        0
+    );
+    // A lot: its run, and the summary with a working link to every unit's report.
+    client.goto(&search(&typed.lot)).await.unwrap();
+    let lot = text_of(client, "lot").await;
+    assert!(lot.contains(&typed.run_id), "{lot}");
+    client
+        .find(Locator::LinkText("lot summary"))
+        .await
+        .unwrap()
+        .click()
+        .await
+        .unwrap();
+    let summary = js(client, "document.body.innerText").await;
+    assert!(summary.as_str().unwrap().contains("LOT-T2"), "{summary}");
+    let links: Vec<String> = js(
+        client,
+        "[...document.querySelectorAll('a')].map(a => a.getAttribute('href')).filter(h => h && h.startsWith('/archive/report/'))",
+    )
+    .await
+    .as_array()
+    .unwrap()
+    .iter()
+    .map(|v| v.as_str().unwrap().to_string())
+    .collect();
+    assert_eq!(links.len(), 4, "{links:?}");
+    for link in &links {
+        let (status, body) = http(server, "GET", link, &[], "");
+        assert_eq!(status, 200, "{link}: {body}");
+        assert!(
+            typed.serials.iter().any(|s| body.contains(s.as_str())),
+            "{link}"
+        );
+    }
+    // A run: its four units with their verdicts.
+    client.goto(&search(&watched.run_id)).await.unwrap();
+    let run = text_of(client, "run").await;
+    for s in ["WB-1001", "WB-1002", "WB-1004"] {
+        assert!(run.contains(s), "{run}");
+    }
+    assert_eq!(run.matches("✔ ACCEPTED").count(), 3, "{run}");
+    // Nothing under a name the archive does not know: said.
+    client.goto(&search("NO-SUCH-UNIT")).await.unwrap();
+    let nothing = text_of(client, "nothing").await;
+    assert!(nothing.contains("NO-SUCH-UNIT"), "{nothing}");
+    // The seals hold after both runs.
+    client
+        .goto(&format!("{}/archive/verify", server.url))
+        .await
+        .unwrap();
+    let seals = text_of(client, "seal-state").await;
+    assert!(seals.contains("Every seal holds"), "{seals}");
+    assert!(seals.contains("8 unit records"), "{seals}");
+}
+
+fn urlencoded(text: &str) -> String {
+    text.bytes()
+        .map(|b| {
+            if b.is_ascii_alphanumeric() || b"-_.~".contains(&b) {
+                (b as char).to_string()
+            } else {
+                format!("%{b:02X}")
+            }
+        })
+        .collect()
+}
+
+/// One HTTP/1.0 request (its body not chunked) to the server (`headers` besides Host, which is the server's own
+/// unless given); the status and the body.
+fn http(
+    server: &Server,
+    method: &str,
+    path: &str,
+    headers: &[(&str, &str)],
+    body: &str,
+) -> (u16, String) {
+    let mut stream = TcpStream::connect(&server.authority).unwrap();
+    let mut request = format!("{method} {path} HTTP/1.0\r\n");
+    if !headers.iter().any(|(k, _)| k.eq_ignore_ascii_case("host")) {
+        request.push_str(&format!("Host: {}\r\n", server.authority));
+    }
+    for (k, v) in headers {
+        request.push_str(&format!("{k}: {v}\r\n"));
+    }
+    request.push_str(&format!(
+        "Content-Type: application/json\r\nContent-Length: {}\r\n\r\n{body}",
+        body.len()
+    ));
+    stream.write_all(request.as_bytes()).unwrap();
+    let mut response = Vec::new();
+    stream.read_to_end(&mut response).unwrap();
+    let response = String::from_utf8_lossy(&response).into_owned();
+    let status = response
+        .split_whitespace()
+        .nth(1)
+        .and_then(|s| s.parse().ok())
+        .unwrap_or(0);
+    let body = response
+        .split_once("\r\n\r\n")
+        .map(|(_, b)| b.to_string())
+        .unwrap_or_default();
+    (status, body)
+}
+
+/// The page's key, as the station view carries it.
+fn page_key(server: &Server) -> String {
+    let (_, page) = http(server, "GET", "/", &[], "");
+    let at = page.find("\"page_key\": \"").expect("the key in the page") + "\"page_key\": \"".len();
+    page[at..at + 32].to_string()
+}
+
+/// What the server refuses, with where and what.
+fn refusals(server: &Server) {
+    // Another name for this machine (DNS rebinding): refused, every page.
+    let (status, body) = http(server, "GET", "/", &[("Host", "bench.example:80")], "");
+    assert_eq!(status, 421, "{body}");
+    assert!(body.contains("answers to"), "{body}");
+    // A request that changes something without the page's key (another site's form).
+    let start = r#"{"plan":"demo.yaml","bench":"sim","serials":["A","B","C","D"],"operator":"x"}"#;
+    let (status, body) = http(server, "POST", "/station/start", &[], start);
+    assert_eq!(status, 403, "{body}");
+    assert!(
+        body.contains("did not come from a page of this server"),
+        "{body}"
+    );
+    let key = page_key(server);
+    let with_key = [("X-Meterproof-Key", key.as_str())];
+    // Fields checked as the terminal checks them, before anything starts.
+    for (form, said) in [
+        (
+            r#"{"plan":"../../etc/passwd","bench":"sim","serials":["A","B","C","D"],"operator":"x"}"#,
+            "no plan \\\"../../etc/passwd\\\" is offered",
+        ),
+        (
+            r#"{"plan":"demo.yaml","bench":"sim","serials":["A","B","A","D"],"operator":"x"}"#,
+            "A is scanned in position 1 and in position 3",
+        ),
+        (
+            r#"{"plan":"demo.yaml","bench":"sim","serials":["A","B","C"],"operator":"x"}"#,
+            "the bench has 4 positions but 3 serial numbers were given",
+        ),
+        (
+            r#"{"plan":"demo.yaml","bench":"sim","serials":["A","B\u001b[2J","C","D"],"operator":"x"}"#,
+            "contains control characters",
+        ),
+        (
+            r#"{"plan":"demo.yaml","bench":"sim","serials":["A","","C","D"],"operator":"x"}"#,
+            "position 2 has no serial number",
+        ),
+        (
+            r#"{"plan":"demo.yaml","bench":"sim","serials":["A","B","C","D"],"operator":" "}"#,
+            "give the operator's id",
+        ),
+        (
+            r#"{"plan":"demo.yaml","bench":"/dev/ttyUSB0","serials":["A","B","C","D"],"operator":"x"}"#,
+            "no bench",
+        ),
+    ] {
+        let (status, body) = http(server, "POST", "/station/start", &with_key, form);
+        assert_eq!(status, 400, "{form}: {body}");
+        assert!(body.contains(said), "{form}: {body}");
+    }
+    // An answer with no run going, or to a question not asked.
+    let (status, body) = http(
+        server,
+        "POST",
+        "/station/answer",
+        &with_key,
+        r#"{"prompt":7,"text":""}"#,
+    );
+    assert_eq!(status, 409, "{body}");
+    // A report asked for by a path: the archive is asked, no file is read.
+    let (status, _) = http(
+        server,
+        "GET",
+        "/archive/report/..%2F..%2Fetc%2Fpasswd/1",
+        &[],
+        "",
+    );
+    assert_eq!(status, 404);
+    // The pages say that nothing may be loaded from elsewhere.
+    let mut stream = TcpStream::connect(&server.authority).unwrap();
+    write!(
+        stream,
+        "GET / HTTP/1.0\r\nHost: {}\r\n\r\n",
+        server.authority
+    )
+    .unwrap();
+    let mut head = String::new();
+    stream.read_to_string(&mut head).unwrap();
+    assert!(
+        head.to_lowercase()
+            .contains("content-security-policy: default-src 'self'"),
+        "{head}"
+    );
+    // From another machine (this machine's own network address stands for one): pages are
+    // read, runs are not started without a token.
+    if let Some(ip) = own_network_address() {
+        let dir = temp_dir("browser-remote");
+        let port = free_port();
+        let _remote = Server::start(&dir, &format!("0.0.0.0:{port}"));
+        let other = Server {
+            child: None,
+            url: format!("http://{ip}:{port}"),
+            authority: format!("{ip}:{port}"),
+        };
+        let (status, _) = http(&other, "GET", "/archive", &[], "");
+        assert_eq!(status, 200);
+        let key = page_key(&other);
+        let (status, body) = http(
+            &other,
+            "POST",
+            "/station/start",
+            &[("X-Meterproof-Key", key.as_str())],
+            start,
+        );
+        assert_eq!(status, 403, "{body}");
+        assert!(body.contains("at the bench's own machine"), "{body}");
+    } else {
+        eprintln!(
+            "(no network address besides loopback here: the check from another machine did not run)"
+        );
+    }
+}
+
+/// An address of this machine other than loopback, if it has one (no packet is sent: a UDP
+/// socket is only pointed at a documentation address, RFC 5737).
+fn own_network_address() -> Option<std::net::IpAddr> {
+    let socket = std::net::UdpSocket::bind("0.0.0.0:0").ok()?;
+    socket.connect("192.0.2.1:9").ok()?;
+    let ip = socket.local_addr().ok()?.ip();
+    (!ip.is_loopback() && !ip.is_unspecified()).then_some(ip)
+}
