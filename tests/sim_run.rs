@@ -381,3 +381,46 @@ fn terminal_output_fits_80_columns_and_colour_is_never_alone() {
     );
     std::fs::remove_dir_all(&dir).unwrap();
 }
+
+/// On a real clock, units read one after another (links that cannot be read at once, as on a
+/// shared bus) are read in rounds: every unit's readings spread over the step's window as the
+/// plan's interval says, not the first unit's over the window and every other unit's back to
+/// back after it, outside the span the reference covers. (The plan's `samples` and `interval`
+/// as written; our rule.)
+#[test]
+fn units_read_one_after_another_are_each_sampled_over_the_window() {
+    use meterproof::bench::RealClock;
+    let plan = meterproof::plan::Plan::load(Path::new("test-plans/demo.yaml")).unwrap();
+    // 40 bench seconds per real second: the demo's 40 s in about one.
+    let mut bench = SimBench::with_clock(
+        &SimConfig::new(1, 3),
+        std::sync::Arc::new(RealClock::scaled(40.0)),
+    )
+    .into_bench();
+    assert!(!bench.parallel, "the simulated bench reads unit after unit");
+    let records = meterproof::exec::run(
+        &plan,
+        &mut bench,
+        &common::ctx(),
+        &mut meterproof::exec::Silent,
+    );
+    for r in &records {
+        for step in r.steps.iter().filter(|s| s.samples_planned > 1) {
+            let expected = f64::from(step.samples_planned - 1) * step.interval_s;
+            for check in &step.checks {
+                let (Some(first), Some(last)) = (check.samples.first(), check.samples.last())
+                else {
+                    panic!("position {}: no samples at {}", r.position, step.id);
+                };
+                let span = last.t_s - first.t_s;
+                assert!(
+                    span > 0.8 * expected && span < 1.5 * expected,
+                    "position {}, step {}, {}: readings over {span:.3} s, the plan's window {expected} s",
+                    r.position,
+                    step.id,
+                    check.quantity.name()
+                );
+            }
+        }
+    }
+}

@@ -73,9 +73,13 @@ pub(super) fn sample_step(
     stop: Option<StopRule>,
 ) -> (Vec<Series>, (f64, f64)) {
     let t0 = s.clock.now_s();
-    let series = if s.clock.is_virtual() || stop.is_some() {
+    // One unit after another (links that cannot be read at once, as on a shared bus) is read
+    // in rounds: unit by unit within each round, every unit's readings spread over the window.
+    // Each unit's whole schedule in turn would read the first over the window and every other
+    // back to back after it, outside the window the reference covers.
+    let series = if s.clock.is_virtual() || stop.is_some() || !parallel {
         in_rounds(s, slots, parallel, t0, stop)
-    } else if parallel {
+    } else {
         std::thread::scope(|scope| {
             let handles: Vec<_> = slots
                 .into_iter()
@@ -98,15 +102,6 @@ pub(super) fn sample_step(
                 })
                 .collect()
         })
-    } else {
-        slots
-            .into_iter()
-            .enumerate()
-            .map(|(i, slot)| {
-                slot.map(|link| on_schedule(s, i, t0, link))
-                    .unwrap_or_default()
-            })
-            .collect()
     };
     (series, (t0, s.clock.now_s()))
 }
