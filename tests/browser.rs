@@ -38,7 +38,7 @@ fn main() {
         return;
     }
     let dir = temp_dir("browser");
-    let server = Server::start(&dir, "127.0.0.1:0");
+    let server = Server::start(&dir, "127.0.0.1:0", "20", &[]);
     refusals(&server);
     let driver = Driver::start(&dir);
     let runtime = tokio::runtime::Builder::new_current_thread()
@@ -51,6 +51,7 @@ fn main() {
             let watched = watched_run(&client, &server).await;
             let typed = typed_run(&client, &server).await;
             look_up(&client, &server, &watched, &typed).await;
+            stopped_run(&client, &dir).await;
         };
         // The browser is closed however the checks end.
         let result =
@@ -63,8 +64,9 @@ fn main() {
     let code = server.stop();
     // A stop signal ends the server with the status of an interrupted command.
     assert_eq!(code, Some(130), "the server's exit status after SIGTERM");
+    signalled_run(&dir);
     println!(
-        "browser checks: a watched run, a typed run, the archive view and the refusals; screenshots in {}",
+        "browser checks: a watched run, a typed run, the archive view, a run stopped at the screen and continued at the terminal, a stop signal mid-run, the refusals; screenshots in {}",
         screens_dir().display()
     );
     let _ = std::fs::remove_dir_all(&dir);
@@ -94,12 +96,14 @@ struct Server {
 }
 
 impl Server {
-    fn start(dir: &Path, listen: &str) -> Server {
+    /// A server whose simulated bench runs `pace` times faster than real time.
+    fn start(dir: &Path, listen: &str, pace: &str, extra: &[&str]) -> Server {
         let mut child = bin()
             .args(["serve", "--listen", listen, "--plan", "demo.yaml"])
-            .args(["--sim-pace", "20"])
+            .args(["--sim-pace", pace])
             .arg("--out")
             .arg(dir.join("out"))
+            .args(extra)
             .stdout(Stdio::piped())
             .stderr(Stdio::null())
             .spawn()
@@ -684,6 +688,129 @@ async fn look_up(client: &Client, server: &Server, watched: &Shown, typed: &Show
     assert!(seals.contains("8 unit records"), "{seals}");
 }
 
+/// A run stopped with the Stop button: confirmed, the output off, no unit accepted, the
+/// operator told how to continue; and the run continued from the terminal to its verdicts.
+async fn stopped_run(client: &Client, dir: &Path) {
+    let dir = dir.join("stopped");
+    // A slow bench (four times real time), so that the stop comes mid-run.
+    let server = Server::start(&dir, "127.0.0.1:0", "4", &[]);
+    client.goto(&server.url).await.unwrap();
+    until(client, "document.body.dataset.version !== undefined", 10).await;
+    let bench = client.find(Locator::Id("bench")).await.unwrap();
+    fantoccini::elements::Element::select_by_value(&bench, "sim")
+        .await
+        .unwrap();
+    scan(client, "operator", "op-21").await;
+    for i in 1..=4 {
+        scan(client, &format!("serial-{i}"), &format!("SB-{i}")).await;
+    }
+    client
+        .find(Locator::Id("start"))
+        .await
+        .unwrap()
+        .click()
+        .await
+        .unwrap();
+    until(client, "document.getElementById('caution-dialog').open", 5).await;
+    client
+        .find(Locator::Id("caution-yes"))
+        .await
+        .unwrap()
+        .click()
+        .await
+        .unwrap();
+    until(
+        client,
+        "/Step 2 of/.test(document.getElementById('step-line').textContent)",
+        60,
+    )
+    .await;
+    client
+        .find(Locator::Id("stop"))
+        .await
+        .unwrap()
+        .click()
+        .await
+        .unwrap();
+    // The stop is confirmed first (a stray click does not end a run).
+    let question = client.get_alert_text().await.unwrap();
+    assert!(question.contains("INCOMPLETE"), "{question}");
+    client.accept_alert().await.unwrap();
+    until(client, "document.body.dataset.busy === 'false'", 60).await;
+    let cards = js(
+        client,
+        "[...document.querySelectorAll('#positions .unit')].map(c => c.className)",
+    )
+    .await;
+    let cards: Vec<&str> = cards
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| c.as_str().unwrap())
+        .collect();
+    assert_eq!(cards.len(), 4);
+    assert!(
+        cards.iter().all(|c| !c.contains("accepted")),
+        "a unit not finished shown accepted: {cards:?}"
+    );
+    assert!(
+        cards.iter().filter(|c| c.contains("incomplete")).count() >= 3,
+        "{cards:?}"
+    );
+    let said = text_of(client, "said").await;
+    assert!(said.contains("the source output is off"), "{said}");
+    let resume = said
+        .lines()
+        .find(|l| l.trim_start().starts_with("meterproof resume "))
+        .unwrap_or_else(|| panic!("no resume command in {said}"));
+    // The command the screen gives continues the run at the terminal.
+    let args: Vec<&str> = resume.split_whitespace().skip(1).collect();
+    let out = bin().args(&args).arg("--quiet").output().unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert_eq!(out.status.code(), Some(1), "{stdout}");
+    assert!(
+        stdout.contains("3 accepted, 1 rejected (position 2), 0 incomplete"),
+        "{stdout}"
+    );
+    drop(server);
+}
+
+/// The stop signal while a run started from the page is going: the run is stopped and
+/// recorded (every unit INCOMPLETE, none accepted), then the server ends with status 130.
+fn signalled_run(dir: &Path) {
+    let dir = dir.join("signalled");
+    let server = Server::start(&dir, "127.0.0.1:0", "1", &[]);
+    let key = page_key(&server);
+    let (status, body) = http(
+        &server,
+        "POST",
+        "/station/start",
+        &[("X-Meterproof-Key", key.as_str())],
+        r#"{"plan":"demo.yaml","bench":"sim","serials":["SG-1","SG-2","SG-3","SG-4"],"operator":"op-21"}"#,
+    );
+    assert_eq!(status, 202, "{body}");
+    let end = Instant::now() + Duration::from_secs(30);
+    loop {
+        let (_, state) = http(&server, "GET", "/station/state", &[], "");
+        let state: serde_json::Value = serde_json::from_str(&state).unwrap();
+        if state["positions"][0]["readings"].as_u64().unwrap_or(0) > 0 {
+            break;
+        }
+        assert!(Instant::now() < end, "no reading arrived: {state}");
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    assert_eq!(server.stop(), Some(130));
+    let records = common::records_in(&dir.join("out"));
+    assert_eq!(records.len(), 4);
+    assert!(
+        records
+            .iter()
+            .all(|r| r.verdict.status == meterproof::record::UnitStatus::Incomplete),
+        "{:?}",
+        records.iter().map(|r| r.verdict.status).collect::<Vec<_>>()
+    );
+}
+
 fn urlencoded(text: &str) -> String {
     text.bytes()
         .map(|b| {
@@ -829,7 +956,15 @@ fn refusals(server: &Server) {
     if let Some(ip) = own_network_address() {
         let dir = temp_dir("browser-remote");
         let port = free_port();
-        let _remote = Server::start(&dir, &format!("0.0.0.0:{port}"));
+        let token = "a-token-of-the-station-7f3e9a";
+        std::fs::write(dir.join("token"), format!("{token}\n")).unwrap();
+        let token_file = dir.join("token").display().to_string();
+        let _remote = Server::start(
+            &dir,
+            &format!("0.0.0.0:{port}"),
+            "20",
+            &["--token-file", &token_file],
+        );
         let other = Server {
             child: None,
             url: format!("http://{ip}:{port}"),
@@ -843,6 +978,50 @@ fn refusals(server: &Server) {
             "POST",
             "/station/start",
             &[("X-Meterproof-Key", key.as_str())],
+            start,
+        );
+        assert_eq!(status, 403, "{body}");
+        assert!(body.contains("give the station's token"), "{body}");
+        let (status, body) = http(
+            &other,
+            "POST",
+            "/station/start",
+            &[
+                ("X-Meterproof-Key", key.as_str()),
+                ("X-Meterproof-Token", "a-token-of-the-station-7f3e9b"),
+            ],
+            start,
+        );
+        assert_eq!(status, 403, "a wrong token: {body}");
+        let (status, body) = http(
+            &other,
+            "POST",
+            "/station/start",
+            &[
+                ("X-Meterproof-Key", key.as_str()),
+                ("X-Meterproof-Token", token),
+            ],
+            start,
+        );
+        assert_eq!(status, 202, "the station's token: {body}");
+        // Without a token file, no token opens it.
+        let dir = temp_dir("browser-remote-closed");
+        let port = free_port();
+        let _closed = Server::start(&dir, &format!("0.0.0.0:{port}"), "20", &[]);
+        let other = Server {
+            child: None,
+            url: format!("http://{ip}:{port}"),
+            authority: format!("{ip}:{port}"),
+        };
+        let key = page_key(&other);
+        let (status, body) = http(
+            &other,
+            "POST",
+            "/station/start",
+            &[
+                ("X-Meterproof-Key", key.as_str()),
+                ("X-Meterproof-Token", token),
+            ],
             start,
         );
         assert_eq!(status, 403, "{body}");
