@@ -319,13 +319,7 @@ async fn watched_run(client: &Client, server: &Server) -> Shown {
         .unwrap();
     scan(client, "operator", "op-21").await;
     scan(client, "lot", "LOT-W1").await;
-    // Markup in a serial is shown as text, never run (HTML escaping: the page sets text).
-    let serials = [
-        "WB-1001",
-        "WB-1002",
-        "WB-<img src=x onerror=alert(1)>",
-        "WB-1004",
-    ];
+    let serials = ["WB-1001", "WB-1002", "WB-1003", "WB-1004"];
     scan(client, "serial-1", serials[0]).await;
     // The first unit scanned again into position 2: refused, the field kept for a new scan.
     scan(client, "serial-2", serials[0]).await;
@@ -430,13 +424,6 @@ async fn watched_run(client: &Client, server: &Server) -> Shown {
         .await;
         assert!(size.as_f64().unwrap() >= 30.0, "{size}");
     }
-    let third = text_of(client, "position-3").await;
-    assert!(third.contains(serials[2]), "{third}");
-    assert_eq!(
-        js(client, "document.querySelectorAll('#positions img').length").await,
-        0,
-        "markup in a serial became an element"
-    );
     // The rejected unit says why on its card.
     let second = text_of(client, "position-2").await;
     assert!(second.contains("outside"), "{second}");
@@ -627,14 +614,6 @@ async fn look_up(client: &Client, server: &Server, watched: &Shown, typed: &Show
     let page = page.as_str().unwrap();
     assert!(page.contains("WB-1002"), "{page}");
     assert!(page.contains("REJECTED"), "{page}");
-    // The serial with markup, found by its text, its report a page of text too.
-    client.goto(&search(&watched.serials[2])).await.unwrap();
-    let unit = text_of(client, "unit").await;
-    assert!(unit.contains(&watched.serials[2]), "{unit}");
-    assert_eq!(
-        js(client, "document.querySelectorAll('main img').length").await,
-        0
-    );
     // A lot: its run, and the summary with a working link to every unit's report.
     client.goto(&search(&typed.lot)).await.unwrap();
     let lot = text_of(client, "lot").await;
@@ -701,8 +680,15 @@ async fn stopped_run(client: &Client, dir: &Path) {
         .await
         .unwrap();
     scan(client, "operator", "op-21").await;
+    // Markup in a serial is shown as text, never run (HTML escaping: the page sets text).
+    let marked = "SB-<img src=x onerror=alert(1)>";
     for i in 1..=4 {
-        scan(client, &format!("serial-{i}"), &format!("SB-{i}")).await;
+        let serial = if i == 3 {
+            marked.to_string()
+        } else {
+            format!("SB-{i}")
+        };
+        scan(client, &format!("serial-{i}"), &serial).await;
     }
     client
         .find(Locator::Id("start"))
@@ -757,6 +743,13 @@ async fn stopped_run(client: &Client, dir: &Path) {
         cards.iter().filter(|c| c.contains("incomplete")).count() >= 3,
         "{cards:?}"
     );
+    let third = text_of(client, "position-3").await;
+    assert!(third.contains(marked), "{third}");
+    assert_eq!(
+        js(client, "document.querySelectorAll('#positions img').length").await,
+        0,
+        "markup in a serial became an element"
+    );
     let said = text_of(client, "said").await;
     assert!(said.contains("the source output is off"), "{said}");
     let resume = said
@@ -771,6 +764,17 @@ async fn stopped_run(client: &Client, dir: &Path) {
     assert!(
         stdout.contains("3 accepted, 1 rejected (position 2), 0 incomplete"),
         "{stdout}"
+    );
+    // The serial with markup, found in the archive view by its text, shown as text.
+    client
+        .goto(&format!("{}/archive?q={}", server.url, urlencoded(marked)))
+        .await
+        .unwrap();
+    let unit = text_of(client, "unit").await;
+    assert!(unit.contains(marked), "{unit}");
+    assert_eq!(
+        js(client, "document.querySelectorAll('main img').length").await,
+        0
     );
     drop(server);
 }
