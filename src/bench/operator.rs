@@ -593,6 +593,85 @@ mod tests {
         assert_eq!(outcomes, ["confirm", "corrected", "accepted"]);
     }
 
+    /// A speaker that keeps what it was given.
+    #[derive(Default)]
+    struct Kept(Mutex<Vec<String>>);
+
+    impl Speaker for Kept {
+        fn say(&self, text: &str) {
+            self.0.lock().unwrap().push(format!("say {text}"));
+        }
+        fn ask(&self, kind: Ask, prompt: &str) {
+            self.0
+                .lock()
+                .unwrap()
+                .push(format!("ask {kind:?} {prompt}"));
+        }
+        fn answered(&self) {
+            self.0.lock().unwrap().push("answered".into());
+        }
+    }
+
+    /// A console of a front end of its own reads the same answers the same way: a reading in
+    /// the wrong unit refused, the right one recorded, each question asked with its kind and
+    /// taken off the screen when answered; nothing goes to the terminal.
+    #[test]
+    fn a_remote_console_asks_its_speaker_and_reads_the_same_answers() {
+        let (tx, rx) = channel();
+        for l in ["500 mV", "5.01 A", ""] {
+            tx.send(l.to_string()).unwrap();
+        }
+        let kept = Arc::new(Kept::default());
+        let console = Arc::new(Mutex::new(Console::remote(
+            rx,
+            Arc::new(AtomicBool::new(false)),
+            kept.clone(),
+        )));
+        let mut reference = TypedReference::new(console, 0.10);
+        let load = crate::plan::Load {
+            voltage: 230.0,
+            current: 5.0,
+            phase_deg: 0.0,
+            frequency: 50.0,
+        };
+        let reading = reference
+            .read(&ReferenceRequest {
+                step_id: "a-step",
+                quantity: crate::plan::Quantity::Current,
+                load: &load,
+                window: (0.0, 4.0),
+            })
+            .unwrap();
+        assert_eq!(reading.value, 5.01);
+        let outcomes: Vec<&str> = reading.entries.iter().map(|e| e.outcome.as_str()).collect();
+        assert!(outcomes[0].starts_with("refused: "), "{outcomes:?}");
+        assert_eq!(outcomes[1], "accepted");
+        let kept = kept.0.lock().unwrap();
+        assert!(
+            kept[0].starts_with("ask Reading Reference current for step a-step"),
+            "{kept:?}"
+        );
+        assert_eq!(kept[1], "answered");
+        assert!(kept[2].starts_with("say   refused: "), "{kept:?}");
+        assert_eq!(kept.iter().filter(|l| l.starts_with("ask")).count(), 3);
+        assert_eq!(kept.iter().filter(|l| *l == "answered").count(), 3);
+    }
+
+    /// The stop flag ends a question waiting on a remote console, as Ctrl-C does at the
+    /// terminal, and the question leaves the screen.
+    #[test]
+    fn a_stop_ends_a_remote_question() {
+        let (_tx, rx) = channel::<String>();
+        let stop = Arc::new(AtomicBool::new(true));
+        let kept = Arc::new(Kept::default());
+        let console = Console::remote(rx, stop, kept.clone());
+        assert_eq!(
+            console.ask_for(Ask::Load, "Set the load"),
+            Err(Interrupted::Signal)
+        );
+        assert_eq!(kept.0.lock().unwrap().last().unwrap(), "answered");
+    }
+
     #[test]
     fn skip_and_abort_carry_their_reasons() {
         assert_eq!(step_answer(""), Ok(()));

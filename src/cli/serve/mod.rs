@@ -802,3 +802,53 @@ fn not_found(text: &str) -> Response {
     *r.status_mut() = StatusCode::NOT_FOUND;
     r
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use proptest::prelude::*;
+
+    /// Loopback listens answer to their own names only; every address, to any name.
+    #[test]
+    fn the_hosts_a_page_may_name() {
+        let local = hosts_of("127.0.0.1:8470");
+        assert!(local.contains(&"localhost:8470".to_string()));
+        assert!(local.contains(&"127.0.0.1:8470".to_string()));
+        assert!(!local.iter().any(|h| h.starts_with("bench.example")));
+        let lan = hosts_of("192.0.2.7:9000");
+        assert_eq!(lan, vec!["192.0.2.7:9000".to_string()]);
+        assert_eq!(hosts("0.0.0.0:8470".parse().unwrap()), None);
+    }
+
+    fn hosts_of(addr: &str) -> Vec<String> {
+        hosts(addr.parse().unwrap()).unwrap()
+    }
+
+    #[test]
+    fn fields_are_checked_as_typed_text_is() {
+        assert_eq!(field("x", "  TM-1 ").unwrap(), "TM-1");
+        assert!(
+            field("the serial", "A\u{1b}[2J")
+                .unwrap_err()
+                .contains("contains control characters")
+        );
+        assert!(field("x", &"a".repeat(201)).unwrap_err().contains("longer"));
+        assert_eq!(field("x", &"é".repeat(200)).unwrap().chars().count(), 200);
+    }
+
+    proptest! {
+        /// Whatever the page sends, what is taken has no control character, is trimmed and
+        /// holds at most FIELD_MAX characters; what is refused says why.
+        #[test]
+        fn a_field_taken_is_clean(text in "\\PC{0,250}|[\\x00-\\x1f\\x7f a-z]{0,20}") {
+            match field("f", &text) {
+                Ok(t) => {
+                    prop_assert!(!t.chars().any(char::is_control));
+                    prop_assert_eq!(t.trim(), t.as_str());
+                    prop_assert!(t.chars().count() <= FIELD_MAX);
+                }
+                Err(e) => prop_assert!(e.starts_with("f: "), "{}", e),
+            }
+        }
+    }
+}
