@@ -52,6 +52,7 @@ fn main() {
             let typed = typed_run(&client, &server).await;
             look_up(&client, &server, &watched, &typed).await;
             stopped_run(&client, &dir).await;
+            station_run(&client, &dir).await;
         };
         // The browser is closed however the checks end.
         let result =
@@ -66,7 +67,7 @@ fn main() {
     assert_eq!(code, Some(130), "the server's exit status after SIGTERM");
     signalled_run(&dir);
     println!(
-        "browser checks: a watched run, a typed run, the archive view, a run stopped at the screen and continued at the terminal, a stop signal mid-run, the refusals; screenshots in {}",
+        "browser checks: a watched run, a typed run, the archive view, a run stopped at the screen and continued at the terminal, a served station with typed references, a stop signal mid-run, the refusals; screenshots in {}",
         screens_dir().display()
     );
     let _ = std::fs::remove_dir_all(&dir);
@@ -99,10 +100,15 @@ impl Server {
     /// A server whose simulated bench runs `pace` times faster than real time.
     fn start(dir: &Path, listen: &str, pace: &str, extra: &[&str]) -> Server {
         let mut child = bin()
-            .args(["serve", "--listen", listen, "--plan", "demo.yaml"])
+            .args(["serve", "--listen", listen])
             .args(["--sim-pace", pace])
             .arg("--out")
             .arg(dir.join("out"))
+            .args(if extra.contains(&"--plans") {
+                &[][..]
+            } else {
+                &["--plan", "demo.yaml"][..]
+            })
             .args(extra)
             .stdout(Stdio::piped())
             .stderr(Stdio::null())
@@ -813,6 +819,122 @@ fn signalled_run(dir: &Path) {
         "{:?}",
         records.iter().map(|r| r.verdict.status).collect::<Vec<_>>()
     );
+}
+
+/// A served station (simulated meters, a SCPI source and reference on pseudo-terminals, the
+/// reference read by the operator), driven from the page: the bench-closed question answered
+/// yes, each position scanned wrong and scanned again when its unit reports its own serial, each
+/// reference reading typed as the reference meter shows it. The verdicts are the built-in
+/// simulator's.
+async fn station_run(client: &Client, dir: &Path) {
+    let dir = dir.join("station");
+    std::fs::create_dir_all(&dir).unwrap();
+    let served = common::serve_at(&dir, "5", &[]);
+    let station = common::typed_station(&dir, &served.station);
+    let plans = dir.join("plans");
+    std::fs::create_dir_all(&plans).unwrap();
+    let plan_file = common::plan_without_energy(&plans);
+    let plan = meterproof::plan::Plan::load(&plan_file).unwrap();
+    let mut typed = common::typed_readings(&plan).into_iter();
+    let plans_arg = plans.display().to_string();
+    let station_arg = station.display().to_string();
+    let server = Server::start(
+        &dir,
+        "127.0.0.1:0",
+        "20",
+        &[
+            "--plans",
+            &plans_arg,
+            "--plan",
+            "no-energy.yaml",
+            "--station",
+            &station_arg,
+        ],
+    );
+    client.goto(&server.url).await.unwrap();
+    until(client, "document.body.dataset.version !== undefined", 10).await;
+    let bench = client.find(Locator::Id("bench")).await.unwrap();
+    fantoccini::elements::Element::select_by_value(&bench, "station-1")
+        .await
+        .unwrap();
+    scan(client, "operator", "op-21").await;
+    for i in 1..=4 {
+        scan(client, &format!("serial-{i}"), &format!("MISREAD-{i}")).await;
+    }
+    client
+        .find(Locator::Id("start"))
+        .await
+        .unwrap()
+        .click()
+        .await
+        .unwrap();
+    until(client, "document.getElementById('caution-dialog').open", 5).await;
+    client
+        .find(Locator::Id("caution-yes"))
+        .await
+        .unwrap()
+        .click()
+        .await
+        .unwrap();
+    until(client, "document.body.dataset.busy === 'true'", 10).await;
+    let (mut closed, mut rescanned, mut readings) = (0, Vec::new(), 0);
+    let end = Instant::now() + Duration::from_secs(240);
+    loop {
+        assert!(Instant::now() < end, "the station run did not end");
+        let state = js(
+            client,
+            "[document.body.dataset.busy, document.getElementById('prompt').open]",
+        )
+        .await;
+        if state[0] == "false" && state[1] == false {
+            break;
+        }
+        if state[1] != true {
+            tokio::time::sleep(Duration::from_millis(50)).await;
+            continue;
+        }
+        let question = text_of(client, "prompt-text").await;
+        if question.contains("Is the bench closed") {
+            closed += 1;
+            click_button(client, "Yes").await;
+        } else if question.contains("was scanned, but the unit there reports") {
+            let reported = question
+                .split("reports ")
+                .nth(1)
+                .and_then(|t| t.split('.').next())
+                .unwrap()
+                .to_string();
+            rescanned.push(reported.clone());
+            answer(client, &reported).await;
+        } else if question.starts_with("Reference ") {
+            readings += 1;
+            answer(client, &typed.next().expect("a reading left to type")).await;
+        } else if question.contains("Enter to record it") {
+            answer(client, "").await;
+        } else {
+            panic!("an unexpected question: {question}");
+        }
+        tokio::time::sleep(Duration::from_millis(30)).await;
+    }
+    assert_eq!(closed, 1, "the bench-closed question, once");
+    assert_eq!(rescanned.len(), 4, "{rescanned:?}");
+    assert!(typed.next().is_none(), "every reading typed ({readings})");
+    let closing = text_of(client, "closing").await;
+    assert!(
+        closing.starts_with("3 accepted, 1 rejected (position 2), 0 incomplete"),
+        "{closing}"
+    );
+    // The cards carry the serials the units reported.
+    for (i, serial) in rescanned.iter().enumerate() {
+        let card = text_of(client, &format!("position-{}", i + 1)).await;
+        assert!(card.contains(serial.as_str()), "{card}");
+    }
+    let said = text_of(client, "said").await;
+    assert!(said.contains("CAUTION: mains voltage"), "{said}");
+    let records = common::records_in(&dir.join("out"));
+    assert_eq!(records[0].steps[1].references[0].reading.source, "operator");
+    drop(server);
+    drop(served);
 }
 
 fn urlencoded(text: &str) -> String {

@@ -287,54 +287,15 @@ fn a_station_with_typed_references_gets_the_builtin_verdicts() {
     // Slow enough that link latency is a small part of the energy window.
     let served = serve_at(&dir, "5", &[]);
     let station = common::typed_station(&dir, &served.station);
-    // Without the energy check: an operator's energy reading is over the window as it really
-    // ran, which a script typing ahead cannot know, and on a loaded machine late samples
-    // stretch that window past the scheduled one the script would type for. The typed energy
-    // path is tested on the virtual clock, where windows are exact (tests/operator_flow.rs).
-    let energy_check = "      - { quantity: active_energy, tolerance: { class: true } }\n";
-    let plan_text = std::fs::read_to_string("test-plans/demo-serial.yaml").unwrap();
-    assert!(plan_text.contains(energy_check));
-    let plan_file = dir.join("no-energy.yaml");
-    std::fs::write(&plan_file, plan_text.replace(energy_check, "")).unwrap();
+    // Without the energy check (on a loaded machine late samples would also stretch the window
+    // past the scheduled one a script would type for).
+    let plan_file = common::plan_without_energy(&dir);
     let plan = meterproof::plan::Plan::load(&plan_file).unwrap();
     // The operator types what the reference meter shows: the simulated source's real output.
-    // The library replays the station's SCPI commands on a simulator of the same seed, so the
-    // source draws its errors exactly as the served one does.
-    use meterproof::bench::sim::device::LineDevice;
-    let sim = meterproof::bench::sim::SimBench::new(&meterproof::bench::sim::SimConfig::new(1, 4));
-    let (source, mut reference) = sim.instruments();
-    let mut source = meterproof::bench::sim::instruments::ScpiSourceDevice::new(source);
-    for c in ["*RST", "*CLS"] {
-        source.handle(c);
-    }
-    let mut input = String::new();
-    for (i, s) in plan.steps.iter().enumerate() {
-        for c in [
-            format!("SOUR:VOLT {}", s.load.voltage),
-            format!("SOUR:CURR {}", s.load.current),
-            format!("SOUR:PHAS {}", s.load.phase_deg),
-            format!("SOUR:FREQ {}", s.load.frequency),
-        ] {
-            source.handle(&c);
-        }
-        if i == 0 {
-            source.handle("OUTP ON");
-        }
-        let mut asked = Vec::new();
-        for c in &s.checks {
-            if c.tolerance.needs_reference() && !asked.contains(&c.quantity) {
-                asked.push(c.quantity);
-                let request = meterproof::bench::ReferenceRequest {
-                    step_id: &s.id,
-                    quantity: c.quantity,
-                    load: &s.load,
-                    window: (0.0, s.sampling_window_s()),
-                };
-                let v = reference.read(&request).unwrap().value;
-                input.push_str(&format!("{v} {}\n\n", c.quantity.unit()));
-            }
-        }
-    }
+    let input: String = common::typed_readings(&plan)
+        .iter()
+        .map(|v| format!("{v}\n\n"))
+        .collect();
     let mut child = bin()
         .arg("run")
         .arg(&plan_file)

@@ -51,6 +51,11 @@ pub(super) trait BenchOptions {
     fn interrupt(&self) -> Arc<AtomicBool> {
         INTERRUPT.clone()
     }
+    /// Whether the serials come from this front end's own scanning: a unit that reports
+    /// another serial than the one scanned for its position may then be scanned again.
+    fn scans_here(&self) -> bool {
+        false
+    }
     /// Says the mains caution before anything is energised.
     fn caution(&self) {
         eprintln!("{}", wrapped(MAINS_CAUTION, 0));
@@ -208,7 +213,7 @@ pub(super) fn station_bench(
         }
     }
     // Serials scanned at this console may be scanned again when a unit reports another.
-    if scanned_here {
+    if scanned_here || options.scans_here() {
         bench.rescan = Some(Box::new(ConsoleRescan(options.console())));
     }
     bench.interrupt = options.interrupt();

@@ -140,3 +140,58 @@ pub fn typed_station(dir: &Path, station: &Path) -> PathBuf {
     .unwrap();
     typed
 }
+
+/// What an operator types at a served station of seed 1 with typed references (`typed_station`),
+/// reading the reference meter: the simulated source's real output, each value with its unit, in
+/// the order the plan asks. The library replays the station's SCPI commands on a simulator of
+/// the same seed, so the source draws its errors exactly as the served one does.
+pub fn typed_readings(plan: &meterproof::plan::Plan) -> Vec<String> {
+    use meterproof::bench::sim::device::LineDevice;
+    let sim = meterproof::bench::sim::SimBench::new(&meterproof::bench::sim::SimConfig::new(1, 4));
+    let (source, mut reference) = sim.instruments();
+    let mut source = meterproof::bench::sim::instruments::ScpiSourceDevice::new(source);
+    for c in ["*RST", "*CLS"] {
+        source.handle(c);
+    }
+    let mut typed = Vec::new();
+    for (i, s) in plan.steps.iter().enumerate() {
+        for c in [
+            format!("SOUR:VOLT {}", s.load.voltage),
+            format!("SOUR:CURR {}", s.load.current),
+            format!("SOUR:PHAS {}", s.load.phase_deg),
+            format!("SOUR:FREQ {}", s.load.frequency),
+        ] {
+            source.handle(&c);
+        }
+        if i == 0 {
+            source.handle("OUTP ON");
+        }
+        let mut asked = Vec::new();
+        for c in &s.checks {
+            if c.tolerance.needs_reference() && !asked.contains(&c.quantity) {
+                asked.push(c.quantity);
+                let request = meterproof::bench::ReferenceRequest {
+                    step_id: &s.id,
+                    quantity: c.quantity,
+                    load: &s.load,
+                    window: (0.0, s.sampling_window_s()),
+                };
+                let v = reference.read(&request).unwrap().value;
+                typed.push(format!("{v} {}", c.quantity.unit()));
+            }
+        }
+    }
+    typed
+}
+
+/// The serial-port demo plan without its energy check, written into `dir`: an operator's
+/// energy reading is over the window as it really ran, which a script typing ahead cannot
+/// know (the typed energy path is tested on the virtual clock, tests/operator_flow.rs).
+pub fn plan_without_energy(dir: &Path) -> PathBuf {
+    let energy_check = "      - { quantity: active_energy, tolerance: { class: true } }\n";
+    let plan_text = std::fs::read_to_string("test-plans/demo-serial.yaml").unwrap();
+    assert!(plan_text.contains(energy_check));
+    let plan_file = dir.join("no-energy.yaml");
+    std::fs::write(&plan_file, plan_text.replace(energy_check, "")).unwrap();
+    plan_file
+}

@@ -348,6 +348,9 @@ impl BenchOptions for PageOptions {
     fn caution(&self) {
         self.board.say(crate::bench::operator::PROMPT_CAUTION);
     }
+    fn scans_here(&self) -> bool {
+        true
+    }
 }
 
 /// A run going on its thread: its stop, and where the page's answers go.
