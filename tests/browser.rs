@@ -94,6 +94,8 @@ struct Server {
     url: String,
     /// host:port
     authority: String,
+    /// Its --out folder.
+    out: PathBuf,
 }
 
 impl Server {
@@ -125,6 +127,7 @@ impl Server {
             child: Some(child),
             url: format!("http://{authority}"),
             authority,
+            out: dir.join("out"),
         }
     }
 
@@ -493,6 +496,7 @@ async fn typed_run(client: &Client, server: &Server) -> Shown {
     let mut loads = 0;
     let mut readings = 0;
     let mut refused_once = false;
+    let mut reloaded = false;
     let mut photographed = false;
     let end = Instant::now() + Duration::from_secs(240);
     loop {
@@ -519,7 +523,29 @@ async fn typed_run(client: &Client, server: &Server) -> Shown {
                 photographed = true;
             }
             loads += 1;
-            click_button(client, "The load is set: go on").await;
+            match loads {
+                // The last step's load: an abort asked for, with its reason, then declined at
+                // its confirmation; the load is asked for again.
+                5 => {
+                    click_button(client, "Abort the run…").await;
+                    reason(client, "end of shift").await;
+                    click_button(client, "Abort the run…").await;
+                    until(
+                        client,
+                        "document.getElementById('prompt').open && /Abort the run \\(end of shift\\)\\?/.test(document.getElementById('prompt-text').textContent)",
+                        10,
+                    )
+                    .await;
+                    click_button(client, "No").await;
+                }
+                // Asked again: skipped, with its reason.
+                6 => {
+                    click_button(client, "Skip this step…").await;
+                    reason(client, "lamp bank fuse blown").await;
+                    click_button(client, "Skip this step…").await;
+                }
+                _ => click_button(client, "The load is set: go on").await,
+            }
         } else if question.starts_with("Reference ") {
             let nominal = question
                 .split("(nominal ")
@@ -527,6 +553,14 @@ async fn typed_run(client: &Client, server: &Server) -> Shown {
                 .and_then(|t| t.split(')').next())
                 .unwrap_or_else(|| panic!("no nominal in {question}"))
                 .to_string();
+            if !reloaded {
+                // A page reloaded (a tablet woken, a browser restarted) shows the question
+                // still waiting, as it was.
+                client.refresh().await.unwrap();
+                until(client, "document.getElementById('prompt').open", 10).await;
+                assert_eq!(text_of(client, "prompt-text").await, question);
+                reloaded = true;
+            }
             if !refused_once && nominal.ends_with(" A") {
                 // A current typed as a voltage: refused, said in the dialog, asked again.
                 answer(client, "500 mV").await;
@@ -552,14 +586,36 @@ async fn typed_run(client: &Client, server: &Server) -> Shown {
         tokio::time::sleep(Duration::from_millis(30)).await;
     }
     assert!(refused_once, "no current was asked for");
-    assert!(
-        loads >= 3 && readings >= loads,
-        "{loads} loads, {readings} readings"
-    );
+    assert_eq!(loads, 6, "five steps, the last asked twice");
+    assert!(readings >= 4, "{readings} readings");
+    // The last step (the one that rejects position 2) was skipped: no unit finished the plan,
+    // so none is accepted or rejected, and each says why.
     let closing = text_of(client, "closing").await;
     assert!(
-        closing.starts_with("3 accepted, 1 rejected (position 2), 0 incomplete"),
+        closing.starts_with("0 accepted, 0 rejected, 4 incomplete"),
         "{closing}"
+    );
+    let first = text_of(client, "position-1").await;
+    assert!(first.contains("INCOMPLETE"), "{first}");
+    let run_id = text_of(client, "run-title")
+        .await
+        .split_whitespace()
+        .nth(1)
+        .unwrap()
+        .to_string();
+    let records: Vec<_> = common::records_in(&server.out)
+        .into_iter()
+        .filter(|r| r.run_id == run_id)
+        .collect();
+    assert_eq!(records.len(), 4);
+    let step = records[0].steps.last().unwrap();
+    assert_eq!(
+        step.reason
+            .as_deref()
+            .map(|r| r.contains("lamp bank fuse blown")),
+        Some(true),
+        "{:?}",
+        step.reason
     );
     let said = text_of(client, "said").await;
     assert!(said.contains("CAUTION: mains voltage"), "{said}");
@@ -573,6 +629,13 @@ async fn typed_run(client: &Client, server: &Server) -> Shown {
         lot: "LOT-T2".into(),
         run_id: run_title.split_whitespace().nth(1).unwrap().to_string(),
     }
+}
+
+/// Types a reason into the dialog's field (shown by a skip or an abort button).
+async fn reason(client: &Client, text: &str) {
+    until(client, "!document.getElementById('prompt-input').hidden", 5).await;
+    let field = client.find(Locator::Id("prompt-input")).await.unwrap();
+    field.send_keys(text).await.unwrap();
 }
 
 async fn answer(client: &Client, text: &str) {
@@ -654,7 +717,7 @@ async fn look_up(client: &Client, server: &Server, watched: &Shown, typed: &Show
     }
     // A run: its four units with their verdicts.
     client.goto(&search(&watched.run_id)).await.unwrap();
-    let run = text_of(client, "run").await;
+    let run = text_of(client, "found-run").await;
     for s in ["WB-1001", "WB-1002", "WB-1004"] {
         assert!(run.contains(s), "{run}");
     }
@@ -1095,6 +1158,7 @@ fn refusals(server: &Server) {
             child: None,
             url: format!("http://{ip}:{port}"),
             authority: format!("{ip}:{port}"),
+            out: PathBuf::new(),
         };
         let (status, _) = http(&other, "GET", "/archive", &[], "");
         assert_eq!(status, 200);
@@ -1138,6 +1202,7 @@ fn refusals(server: &Server) {
             child: None,
             url: format!("http://{ip}:{port}"),
             authority: format!("{ip}:{port}"),
+            out: PathBuf::new(),
         };
         let key = page_key(&other);
         let (status, body) = http(

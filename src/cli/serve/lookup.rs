@@ -72,6 +72,7 @@ pub(super) struct RunShown {
 #[derive(Debug, Serialize)]
 pub(super) struct UnitLine {
     position: usize,
+    status: UnitStatus,
     serial: String,
     mark: String,
     reasons: Vec<String>,
@@ -146,6 +147,7 @@ pub(super) fn search(archive: &Archive, query: &str) -> Result<Found, CliError> 
                 .iter()
                 .map(|r| UnitLine {
                     position: r.position,
+                    status: r.verdict.status,
                     serial: r.serial.clone(),
                     mark: format!("{} {}", r.verdict.status.symbol(), r.verdict.status.word()),
                     reasons: r.verdict.reasons.clone(),
