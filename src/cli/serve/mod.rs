@@ -138,7 +138,7 @@ pub(super) fn serve(args: &ServeArgs) -> Result<i32, CliError> {
             args.plans.display()
         )));
     }
-    let benches = benches(args)?;
+    let (benches, named) = benches(args)?;
     let token = match &args.token_file {
         None => None,
         Some(path) => {
@@ -156,10 +156,13 @@ pub(super) fn serve(args: &ServeArgs) -> Result<i32, CliError> {
     };
     std::fs::create_dir_all(&args.out)
         .map_err(|e| CliError::Run(format!("cannot create {}: {e}", args.out.display())))?;
-    let archive = args
-        .archive
-        .clone()
-        .unwrap_or_else(|| Location::Sqlite(args.out.join("archive.sqlite")));
+    // The screen writes one archive: --archive, else the one the station files name (they
+    // must agree), else the file beside the reports.
+    let archive = match (&args.archive, named) {
+        (Some(given), _) => given.clone(),
+        (None, Some(named)) => named,
+        (None, None) => Location::Sqlite(args.out.join("archive.sqlite")),
+    };
     // The archive is opened (made, where new) now: a wrong address is said at once, not at
     // the first run.
     Archive::open_at(&archive).map_err(|e| CliError::Run(e.to_string()))?;
@@ -313,8 +316,8 @@ fn plans(dir: &Path) -> Vec<PlanChoice> {
 }
 
 /// The simulated bench, the same with the operator at the load and the reference, and each
-/// station file given.
-fn benches(args: &ServeArgs) -> Result<Vec<BenchChoice>, CliError> {
+/// station file given; and the archive the station files name, if they name one.
+fn benches(args: &ServeArgs) -> Result<(Vec<BenchChoice>, Option<Location>), CliError> {
     let n = args.positions;
     let mut benches = vec![
         BenchChoice {
@@ -348,8 +351,29 @@ fn benches(args: &ServeArgs) -> Result<Vec<BenchChoice>, CliError> {
             },
         },
     ];
+    let mut named: Option<(Location, &Path)> = None;
     for (i, path) in args.station.iter().enumerate() {
         let station = Station::load(path).map_err(CliError::Plan)?;
+        if station.journal.is_some() {
+            return Err(CliError::Usage(format!(
+                "--station {}: the station keeps a journal, which the station screen does not; run it from the terminal (meterproof run), or take journal: out of the station file and serve with --archive",
+                path.display()
+            )));
+        }
+        if let Some(a) = &station.archive {
+            let here = Location::parse(a);
+            match &named {
+                Some((there, other)) if there.to_string() != here.to_string() => {
+                    return Err(CliError::Usage(format!(
+                        "--station {} names the archive {here}, --station {} the archive {there}: the station screen writes one archive (give --archive to choose it)",
+                        path.display(),
+                        other.display()
+                    )));
+                }
+                Some(_) => {}
+                None => named = Some((here, path)),
+            }
+        }
         let typed = matches!(station.source, crate::bench::station::SourceSpec::Manual)
             || matches!(
                 station.reference.read,
@@ -378,7 +402,7 @@ fn benches(args: &ServeArgs) -> Result<Vec<BenchChoice>, CliError> {
             },
         });
     }
-    Ok(benches)
+    Ok((benches, named.map(|(location, _)| location)))
 }
 
 fn router(app: Shared) -> Router {
