@@ -319,13 +319,8 @@ struct Shown {
 /// The simulated bench, watched: serials scanned (one twice by mistake, refused), the mains
 /// caution before the start, the steps and readings as they come, the verdicts large.
 async fn watched_run(client: &Client, server: &Server) -> Shown {
-    client.goto(&server.url).await.unwrap();
+    open_station(client, &server.url, "sim").await;
     viewport(client, 1920, 1080).await;
-    until(client, "document.body.dataset.version !== undefined", 10).await;
-    let bench = client.find(Locator::Id("bench")).await.unwrap();
-    fantoccini::elements::Element::select_by_value(&bench, "sim")
-        .await
-        .unwrap();
     scan(client, "operator", "op-21").await;
     scan(client, "lot", "LOT-W1").await;
     let serials = ["WB-1001", "WB-1002", "WB-1003", "WB-1004"];
@@ -352,13 +347,7 @@ async fn watched_run(client: &Client, server: &Server) -> Shown {
         "start",
         "after the last position, Start has the focus"
     );
-    client
-        .find(Locator::Id("start"))
-        .await
-        .unwrap()
-        .click()
-        .await
-        .unwrap();
+    click(client, "start").await;
     // The mains caution comes before anything starts.
     until(client, "document.getElementById('caution-dialog').open", 5).await;
     let caution = text_of(client, "caution-dialog").await;
@@ -369,13 +358,7 @@ async fn watched_run(client: &Client, server: &Server) -> Shown {
         "false",
         "nothing started before the caution was answered"
     );
-    client
-        .find(Locator::Id("caution-yes"))
-        .await
-        .unwrap()
-        .click()
-        .await
-        .unwrap();
+    click(client, "caution-yes").await;
     // Live: a step under way with its time left, and readings arriving, before the end.
     until(
         client,
@@ -455,44 +438,18 @@ async fn watched_run(client: &Client, server: &Server) -> Shown {
 /// The typed flow on the simulated bench: each load confirmed, each reference reading typed
 /// (one in a wrong unit, refused, then typed right), on a 1024×768 tablet.
 async fn typed_run(client: &Client, server: &Server) -> Shown {
-    client.goto(&server.url).await.unwrap();
+    open_station(client, &server.url, "sim-typed").await;
     viewport(client, 1024, 768).await;
-    until(client, "document.body.dataset.version !== undefined", 10).await;
-    let bench = client.find(Locator::Id("bench")).await.unwrap();
-    fantoccini::elements::Element::select_by_value(&bench, "sim-typed")
-        .await
-        .unwrap();
     // The verdicts of the last run stay on the screen until the next start.
     let still = text_of(client, "closing").await;
     assert!(still.starts_with("3 accepted"), "{still}");
     scan(client, "lot", "LOT-T2").await;
     let serials = ["TB-201", "TB-202", "TB-203", "TB-204"];
-    client
-        .find(Locator::Id("clear"))
-        .await
-        .unwrap()
-        .click()
-        .await
-        .unwrap();
+    click(client, "clear").await;
     for (i, s) in serials.iter().enumerate() {
         scan(client, &format!("serial-{}", i + 1), s).await;
     }
-    client
-        .find(Locator::Id("start"))
-        .await
-        .unwrap()
-        .click()
-        .await
-        .unwrap();
-    until(client, "document.getElementById('caution-dialog').open", 5).await;
-    client
-        .find(Locator::Id("caution-yes"))
-        .await
-        .unwrap()
-        .click()
-        .await
-        .unwrap();
-    until(client, "document.body.dataset.busy === 'true'", 10).await;
+    start(client).await;
     let mut loads = 0;
     let mut readings = 0;
     let mut refused_once = false;
@@ -631,6 +588,34 @@ async fn typed_run(client: &Client, server: &Server) -> Shown {
     }
 }
 
+/// Opens the station view and chooses `bench`.
+async fn open_station(client: &Client, url: &str, bench: &str) {
+    client.goto(url).await.unwrap();
+    until(client, "document.body.dataset.version !== undefined", 10).await;
+    let choice = client.find(Locator::Id("bench")).await.unwrap();
+    fantoccini::elements::Element::select_by_value(&choice, bench)
+        .await
+        .unwrap();
+}
+
+async fn click(client: &Client, id: &str) {
+    client
+        .find(Locator::Id(id))
+        .await
+        .unwrap_or_else(|e| panic!("#{id}: {e}"))
+        .click()
+        .await
+        .unwrap();
+}
+
+/// Start, the mains caution answered, until the run is going.
+async fn start(client: &Client) {
+    click(client, "start").await;
+    until(client, "document.getElementById('caution-dialog').open", 5).await;
+    click(client, "caution-yes").await;
+    until(client, "document.body.dataset.busy === 'true'", 10).await;
+}
+
 /// Types a reason into the dialog's field (shown by a skip or an abort button).
 async fn reason(client: &Client, text: &str) {
     until(client, "!document.getElementById('prompt-input').hidden", 5).await;
@@ -742,12 +727,7 @@ async fn stopped_run(client: &Client, dir: &Path) {
     let dir = dir.join("stopped");
     // A slow bench (four times real time), so that the stop comes mid-run.
     let server = Server::start(&dir, "127.0.0.1:0", "4", &[]);
-    client.goto(&server.url).await.unwrap();
-    until(client, "document.body.dataset.version !== undefined", 10).await;
-    let bench = client.find(Locator::Id("bench")).await.unwrap();
-    fantoccini::elements::Element::select_by_value(&bench, "sim")
-        .await
-        .unwrap();
+    open_station(client, &server.url, "sim").await;
     scan(client, "operator", "op-21").await;
     // Markup in a serial is shown as text, never run (HTML escaping: the page sets text).
     let marked = "SB-<img src=x onerror=alert(1)>";
@@ -759,34 +739,14 @@ async fn stopped_run(client: &Client, dir: &Path) {
         };
         scan(client, &format!("serial-{i}"), &serial).await;
     }
-    client
-        .find(Locator::Id("start"))
-        .await
-        .unwrap()
-        .click()
-        .await
-        .unwrap();
-    until(client, "document.getElementById('caution-dialog').open", 5).await;
-    client
-        .find(Locator::Id("caution-yes"))
-        .await
-        .unwrap()
-        .click()
-        .await
-        .unwrap();
+    start(client).await;
     until(
         client,
         "/Step 2 of/.test(document.getElementById('step-line').textContent)",
         60,
     )
     .await;
-    client
-        .find(Locator::Id("stop"))
-        .await
-        .unwrap()
-        .click()
-        .await
-        .unwrap();
+    click(client, "stop").await;
     // The stop is confirmed first (a stray click does not end a run).
     let question = client.get_alert_text().await.unwrap();
     assert!(question.contains("INCOMPLETE"), "{question}");
@@ -914,32 +874,12 @@ async fn station_run(client: &Client, dir: &Path) {
             &station_arg,
         ],
     );
-    client.goto(&server.url).await.unwrap();
-    until(client, "document.body.dataset.version !== undefined", 10).await;
-    let bench = client.find(Locator::Id("bench")).await.unwrap();
-    fantoccini::elements::Element::select_by_value(&bench, "station-1")
-        .await
-        .unwrap();
+    open_station(client, &server.url, "station-1").await;
     scan(client, "operator", "op-21").await;
     for i in 1..=4 {
         scan(client, &format!("serial-{i}"), &format!("MISREAD-{i}")).await;
     }
-    client
-        .find(Locator::Id("start"))
-        .await
-        .unwrap()
-        .click()
-        .await
-        .unwrap();
-    until(client, "document.getElementById('caution-dialog').open", 5).await;
-    client
-        .find(Locator::Id("caution-yes"))
-        .await
-        .unwrap()
-        .click()
-        .await
-        .unwrap();
-    until(client, "document.body.dataset.busy === 'true'", 10).await;
+    start(client).await;
     let (mut closed, mut rescanned, mut readings) = (0, Vec::new(), 0);
     let end = Instant::now() + Duration::from_secs(240);
     loop {

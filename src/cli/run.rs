@@ -85,13 +85,7 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
         notes,
     };
     // The output folder and the archive must be writable before any load is applied.
-    let run_dir = args.out.join(&ctx.run_id);
-    std::fs::create_dir_all(&run_dir).map_err(|e| {
-        CliError::Run(format!(
-            "cannot create the output folder {}: {e}",
-            run_dir.display()
-        ))
-    })?;
+    let run_dir = run_folder(&args.out, &ctx.run_id)?;
     let fallback = fallback_dir(args.fallback.as_deref())?;
     // The command line's archive, else the station file's, else the file beside the reports.
     let (archive_given, journal_given) = match (&args.archive, &spec) {
@@ -197,6 +191,18 @@ pub(super) fn run(args: &RunArgs) -> Result<i32, CliError> {
         (Ok(_), Some(e)) => Err(e),
         (Ok(_), None) => Ok(exit_status(&records)),
     }
+}
+
+/// The run's own folder in `out`, made now (before any load is applied).
+pub(super) fn run_folder(out: &Path, run_id: &str) -> Result<PathBuf, CliError> {
+    let run_dir = out.join(run_id);
+    std::fs::create_dir_all(&run_dir).map_err(|e| {
+        CliError::Run(format!(
+            "cannot create the output folder {}: {e}",
+            run_dir.display()
+        ))
+    })?;
+    Ok(run_dir)
 }
 
 /// Enters a run in the archive, before any load: its plan, bench, operator and lot, `running`.

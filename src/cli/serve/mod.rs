@@ -299,20 +299,25 @@ fn plans(dir: &Path) -> Vec<PlanChoice> {
             let plan = Plan::load(&path).ok()?;
             let name = path.file_name()?.to_string_lossy().into_owned();
             Some(PlanChoice {
-                label: format!(
-                    "{} rev {}{} ({name})",
-                    plan.id,
-                    plan.revision,
-                    plan.title
-                        .as_deref()
-                        .map(|t| format!(": {t}"))
-                        .unwrap_or_default()
-                ),
+                label: format!("{} ({name})", plan_label(&plan)),
                 name,
                 path,
             })
         })
         .collect()
+}
+
+/// A plan as the screen names it: id, revision and title.
+fn plan_label(plan: &Plan) -> String {
+    format!(
+        "{} rev {}{}",
+        plan.id,
+        plan.revision,
+        plan.title
+            .as_deref()
+            .map(|t| format!(": {t}"))
+            .unwrap_or_default()
+    )
 }
 
 /// The simulated bench, the same with the operator at the load and the reference, and each

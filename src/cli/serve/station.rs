@@ -181,17 +181,9 @@ impl Reporter for PageReporter {
     fn event(&mut self, event: &Event) {
         let board = &self.0;
         match event {
-            Event::RunStarted { plan, .. } => board.change(|s| {
-                s.plan = Some(format!(
-                    "{} rev {}{}",
-                    plan.id,
-                    plan.revision,
-                    plan.title
-                        .as_deref()
-                        .map(|t| format!(": {t}"))
-                        .unwrap_or_default()
-                ))
-            }),
+            Event::RunStarted { plan, .. } => {
+                board.change(|s| s.plan = Some(super::plan_label(plan)))
+            }
             Event::UnitIdentified { position, identity } => board.change(|s| {
                 if let Some(p) = at(s, *position) {
                     p.serial = identity.serial.clone();
@@ -451,13 +443,7 @@ fn execute(
         notes,
     };
     board.change(|s| s.run_id = Some(ctx.run_id.clone()));
-    let run_dir = setting.out.join(&ctx.run_id);
-    std::fs::create_dir_all(&run_dir).map_err(|e| {
-        CliError::Run(format!(
-            "cannot create the output folder {}: {e}",
-            run_dir.display()
-        ))
-    })?;
+    let run_dir = run::run_folder(&setting.out, &ctx.run_id)?;
     let archive = Archive::open_at(&setting.archive).map_err(|e| CliError::Run(e.to_string()))?;
     let lock = lock_run(&setting.archive, &ctx.run_id)?;
     run::begin_in_archive(&archive, &plan, &ctx, &bench, &spec)?;
