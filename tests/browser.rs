@@ -952,8 +952,7 @@ fn urlencoded(text: &str) -> String {
         .collect()
 }
 
-/// One HTTP/1.0 request (its body not chunked) to the server (`headers` besides Host, which is the server's own
-/// unless given); the status and the body.
+/// One request to `server` (see `common::http`).
 fn http(
     server: &Server,
     method: &str,
@@ -961,39 +960,11 @@ fn http(
     headers: &[(&str, &str)],
     body: &str,
 ) -> (u16, String) {
-    let mut stream = TcpStream::connect(&server.authority).unwrap();
-    let mut request = format!("{method} {path} HTTP/1.0\r\n");
-    if !headers.iter().any(|(k, _)| k.eq_ignore_ascii_case("host")) {
-        request.push_str(&format!("Host: {}\r\n", server.authority));
-    }
-    for (k, v) in headers {
-        request.push_str(&format!("{k}: {v}\r\n"));
-    }
-    request.push_str(&format!(
-        "Content-Type: application/json\r\nContent-Length: {}\r\n\r\n{body}",
-        body.len()
-    ));
-    stream.write_all(request.as_bytes()).unwrap();
-    let mut response = Vec::new();
-    stream.read_to_end(&mut response).unwrap();
-    let response = String::from_utf8_lossy(&response).into_owned();
-    let status = response
-        .split_whitespace()
-        .nth(1)
-        .and_then(|s| s.parse().ok())
-        .unwrap_or(0);
-    let body = response
-        .split_once("\r\n\r\n")
-        .map(|(_, b)| b.to_string())
-        .unwrap_or_default();
-    (status, body)
+    common::http(&server.authority, method, path, headers, body)
 }
 
-/// The page's key, as the station view carries it.
 fn page_key(server: &Server) -> String {
-    let (_, page) = http(server, "GET", "/", &[], "");
-    let at = page.find("\"page_key\": \"").expect("the key in the page") + "\"page_key\": \"".len();
-    page[at..at + 32].to_string()
+    common::page_key(&server.authority)
 }
 
 /// What the server refuses, with where and what.

@@ -1,5 +1,6 @@
-//! `meterproof serve` refuses what it cannot serve before it listens, each refusal saying
-//! where and what (exit status 2, as for every invalid argument).
+//! `meterproof serve` without a browser: it refuses what it cannot serve before it listens,
+//! each refusal saying where and what (exit status 2, as for every invalid argument), and a run
+//! started at the screen lands in the archive on every backend, looked up and verified there.
 
 mod common;
 use common::{bin, temp_dir};
@@ -115,4 +116,73 @@ fn bad_serve_options_are_refused_with_where_and_what() {
     );
     assert!(std::path::Path::new(&named).exists(), "{first}");
     std::fs::remove_dir_all(&dir).unwrap();
+}
+
+/// A run started at the screen (plain HTTP, as the page sends it) is in the archive on SQLite
+/// and on PostgreSQL: the archive view finds the unit and its verdict, and every seal holds.
+#[test]
+fn a_run_from_the_screen_lands_in_every_archive_backend() {
+    common::store::on_every_backend("serve-backends", |dir, store| {
+        let archive = store.arg();
+        let (at, mut child) = common::serve_screen(
+            &dir.join("out"),
+            &[
+                "--archive",
+                &archive,
+                "--plan",
+                "demo.yaml",
+                "--sim-pace",
+                "40",
+            ],
+        );
+        let key = common::page_key(&at);
+        let (status, body) = common::http(
+            &at,
+            "POST",
+            "/station/start",
+            &[("X-Meterproof-Key", key.as_str())],
+            r#"{"plan":"demo.yaml","bench":"sim","serials":["PG-1","PG-2","PG-3","PG-4"],"operator":"op-21","lot":"L-SHARED"}"#,
+        );
+        assert_eq!(status, 202, "{}: {body}", store.label());
+        let end = std::time::Instant::now() + std::time::Duration::from_secs(60);
+        let state = loop {
+            let (_, state) = common::http(&at, "GET", "/station/state", &[], "");
+            let state: serde_json::Value = serde_json::from_str(&state).unwrap();
+            if state["busy"] == false && state["closing"].is_string() {
+                break state;
+            }
+            assert!(
+                std::time::Instant::now() < end,
+                "{}: {state}",
+                store.label()
+            );
+            std::thread::sleep(std::time::Duration::from_millis(100));
+        };
+        assert!(
+            state["closing"]
+                .as_str()
+                .unwrap()
+                .starts_with("3 accepted, 1 rejected (position 2)"),
+            "{}: {state}",
+            store.label()
+        );
+        let (status, page) = common::http(&at, "GET", "/archive?q=PG-2", &[], "");
+        assert_eq!(status, 200);
+        assert!(
+            page.contains("Unit PG-2: 1 test"),
+            "{}: {page}",
+            store.label()
+        );
+        assert!(page.contains("✘ REJECTED"), "{}: {page}", store.label());
+        let (_, page) = common::http(&at, "GET", "/archive?q=L-SHARED", &[], "");
+        assert!(page.contains("lot summary"), "{}: {page}", store.label());
+        let (_, page) = common::http(&at, "GET", "/archive/verify", &[], "");
+        assert!(
+            page.contains("Every seal holds") && page.contains("4 unit records"),
+            "{}: {page}",
+            store.label()
+        );
+        let _ = child.kill();
+        let _ = child.wait();
+    });
 }

@@ -195,3 +195,69 @@ pub fn plan_without_energy(dir: &Path) -> PathBuf {
     std::fs::write(&plan_file, plan_text.replace(energy_check, "")).unwrap();
     plan_file
 }
+
+/// One HTTP/1.0 request (its body not chunked) to the server at `authority` (host:port),
+/// `headers` besides Host (the server's own unless given); the status and the body.
+pub fn http(
+    authority: &str,
+    method: &str,
+    path: &str,
+    headers: &[(&str, &str)],
+    body: &str,
+) -> (u16, String) {
+    use std::io::{Read, Write};
+    let mut stream = std::net::TcpStream::connect(authority).unwrap();
+    let mut request = format!("{method} {path} HTTP/1.0\r\n");
+    if !headers.iter().any(|(k, _)| k.eq_ignore_ascii_case("host")) {
+        request.push_str(&format!("Host: {authority}\r\n"));
+    }
+    for (k, v) in headers {
+        request.push_str(&format!("{k}: {v}\r\n"));
+    }
+    request.push_str(&format!(
+        "Content-Type: application/json\r\nContent-Length: {}\r\n\r\n{body}",
+        body.len()
+    ));
+    stream.write_all(request.as_bytes()).unwrap();
+    let mut response = Vec::new();
+    stream.read_to_end(&mut response).unwrap();
+    let response = String::from_utf8_lossy(&response).into_owned();
+    let status = response
+        .split_whitespace()
+        .nth(1)
+        .and_then(|s| s.parse().ok())
+        .unwrap_or(0);
+    let body = response
+        .split_once("\r\n\r\n")
+        .map(|(_, b)| b.to_string())
+        .unwrap_or_default();
+    (status, body)
+}
+
+/// The key a station page of the server at `authority` carries, which every request that
+/// changes something must carry back.
+pub fn page_key(authority: &str) -> String {
+    let (_, page) = http(authority, "GET", "/", &[], "");
+    let at = page.find("\"page_key\": \"").expect("the key in the page") + "\"page_key\": \"".len();
+    page[at..at + 32].to_string()
+}
+
+/// `meterproof serve` on a free loopback port with `args`; its address (host:port) and the
+/// process, to be killed by the caller.
+pub fn serve_screen(out: &Path, args: &[&str]) -> (String, Child) {
+    let mut child = bin()
+        .args(["serve", "--listen", "127.0.0.1:0"])
+        .arg("--out")
+        .arg(out)
+        .args(args)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
+    let first = lines.next().expect("serve said nothing").unwrap();
+    let start = first.find("http://").expect("an address") + "http://".len();
+    let authority = first[start..].split('/').next().unwrap().to_string();
+    std::thread::spawn(move || for _ in lines {});
+    (authority, child)
+}
