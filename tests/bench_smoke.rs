@@ -17,6 +17,9 @@ mod reports;
 #[allow(dead_code)]
 #[path = "benches/serial_link.rs"]
 mod serial_link;
+#[allow(dead_code)]
+#[path = "benches/station_screen.rs"]
+mod station_screen;
 
 #[test]
 fn the_archive_benchmark_runs() {
@@ -41,4 +44,9 @@ fn the_reports_benchmark_runs() {
 #[test]
 fn the_serial_link_benchmark_runs() {
     serial_link::run(true);
+}
+
+#[test]
+fn the_station_screen_benchmark_runs() {
+    station_screen::run(2, 100.0);
 }

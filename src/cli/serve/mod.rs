@@ -529,22 +529,28 @@ async fn state(State(app): State<Shared>) -> Json<station::Screen> {
     Json(app.board.snapshot())
 }
 
-/// The screen, whole, at once and at every change (changes that come faster than a page
-/// reads them are sent as one).
+/// The shortest time between two updates sent to a page: readings of 16 positions change the
+/// screen hundreds of times a second, which a person cannot follow and a tablet's network
+/// should not carry; the changes in between are sent as one.
+const UPDATE_EVERY: std::time::Duration = std::time::Duration::from_millis(100);
+
+/// The screen, whole, at once and at every change, at most one update per [`UPDATE_EVERY`].
 async fn events(
     State(app): State<Shared>,
 ) -> Sse<impl futures_util::Stream<Item = Result<SseEvent, std::convert::Infallible>>> {
     let rx = app.board.watch();
-    let stream = futures_util::stream::unfold((app, rx, true), |(app, mut rx, first)| async move {
-        if !first && rx.changed().await.is_err() {
-            return None;
+    let start = (app, rx, None::<tokio::time::Instant>);
+    let stream = futures_util::stream::unfold(start, |(app, mut rx, last)| async move {
+        if let Some(last) = last {
+            rx.changed().await.ok()?;
+            tokio::time::sleep_until(last + UPDATE_EVERY).await;
         }
         rx.borrow_and_update();
         let event = SseEvent::default()
             .event("screen")
             .json_data(app.board.snapshot())
             .unwrap_or_else(|_| SseEvent::default().comment("unserialisable"));
-        Some((Ok(event), (app, rx, false)))
+        Some((Ok(event), (app, rx, Some(tokio::time::Instant::now()))))
     });
     Sse::new(stream).keep_alive(KeepAlive::default())
 }
