@@ -419,6 +419,21 @@ async fn watched_run(client: &Client, server: &Server) -> Shown {
     // The rejected unit says why on its card.
     let second = text_of(client, "position-2").await;
     assert!(second.contains("outside"), "{second}");
+    // Its card opens its report: the unit's HTML report, rendered from the archive.
+    let report = client
+        .find(Locator::Css("#position-2 a.report"))
+        .await
+        .unwrap()
+        .attr("href")
+        .await
+        .unwrap()
+        .unwrap();
+    let (status, html) = http(server, "GET", &report, &[], "");
+    assert_eq!(status, 200, "{report}");
+    assert!(
+        html.contains("WB-1002") && html.contains("REJECTED"),
+        "{report}"
+    );
     let run_title = text_of(client, "run-title").await;
     let run_id = run_title
         .split_whitespace()
