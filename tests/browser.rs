@@ -38,7 +38,8 @@ fn main() {
         return;
     }
     let dir = temp_dir("browser");
-    let server = Server::start(&dir, "127.0.0.1:0", "20", &[]);
+    // Ten times real time: a run of the demo takes about 4 s, long enough to watch it go.
+    let server = Server::start(&dir, "127.0.0.1:0", "10", &[]);
     refusals(&server);
     let driver = Driver::start(&dir);
     let runtime = tokio::runtime::Builder::new_current_thread()
