@@ -32,18 +32,7 @@ pub(super) fn import_units(
     );
     for r in records {
         for (key, s) in shared::readings_of_record(r) {
-            w.write(&[
-                &r.run_id,
-                &(key.position as i64),
-                &(key.step_index as i64),
-                &i64::from(key.attempt),
-                &key.quantity.name(),
-                &key.channel,
-                &key.raw,
-                &s.t_s,
-                &s.value,
-                &s.took_s,
-            ])?;
+            w.write(&ReadingValues::of(&r.run_id, &key, s).params())?;
         }
     }
     w.finish()?;

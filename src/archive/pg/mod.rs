@@ -44,6 +44,49 @@ const NEWEST: &str = "u.seq = (SELECT MAX(n.seq) FROM units n WHERE n.run_id = u
 const INSERT_READING: &str = "INSERT INTO readings (run_id, position, step_index, attempt, quantity, channel, raw, t_s, value, took_s)
      VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10)";
 
+/// A reading's row: its ten values, in the order of the `readings` columns that both the
+/// INSERT of a live reading and the COPY of an import name.
+pub(super) struct ReadingValues<'a> {
+    run_id: &'a str,
+    position: i64,
+    step_index: i64,
+    attempt: i64,
+    quantity: &'static str,
+    channel: &'a str,
+    raw: bool,
+    sample: &'a Sample,
+}
+
+impl<'a> ReadingValues<'a> {
+    pub(super) fn of(run_id: &'a str, key: &'a ReadingKey, sample: &'a Sample) -> Self {
+        ReadingValues {
+            run_id,
+            position: key.position as i64,
+            step_index: key.step_index as i64,
+            attempt: i64::from(key.attempt),
+            quantity: key.quantity.name(),
+            channel: &key.channel,
+            raw: key.raw,
+            sample,
+        }
+    }
+
+    pub(super) fn params(&self) -> [&(dyn ToSql + Sync); 10] {
+        [
+            &self.run_id,
+            &self.position,
+            &self.step_index,
+            &self.attempt,
+            &self.quantity,
+            &self.channel,
+            &self.raw,
+            &self.sample.t_s,
+            &self.sample.value,
+            &self.sample.took_s,
+        ]
+    }
+}
+
 /// Writes readings with one prepared statement.
 fn insert_readings<'s>(
     c: &mut impl GenericClient,
@@ -52,21 +95,7 @@ fn insert_readings<'s>(
 ) -> Result<(), ArchiveError> {
     let stmt = c.prepare(INSERT_READING)?;
     for (key, s) in rows {
-        c.execute(
-            &stmt,
-            &[
-                &run_id,
-                &(key.position as i64),
-                &(key.step_index as i64),
-                &i64::from(key.attempt),
-                &key.quantity.name(),
-                &key.channel,
-                &key.raw,
-                &s.t_s,
-                &s.value,
-                &s.took_s,
-            ],
-        )?;
+        c.execute(&stmt, &ReadingValues::of(run_id, key, s).params())?;
     }
     Ok(())
 }
