@@ -45,9 +45,9 @@ pub trait PulseCounter: Send {
     fn read(&mut self, position: usize) -> Result<CounterReading, BenchError>;
     /// Ends counting on every input.
     fn stop(&mut self) -> Result<(), BenchError>;
-    /// How long the attempt that answered the last read took, in real seconds: after a retry
-    /// the count was latched then, not when the first attempt was sent. `None` when instant.
-    fn last_answered_in_s(&self) -> Option<f64> {
+    /// The attempt that answered the last read: after a retry the count was latched then,
+    /// not when the first attempt was sent. `None` when instant.
+    fn last_exchange(&self) -> Option<crate::link::Exchange> {
         None
     }
 }
@@ -78,11 +78,14 @@ impl CounterHandle {
         self.lock().read(position)
     }
 
-    /// A read with how long its answered attempt took (real seconds), under one lock.
-    pub fn read_timed(&self, position: usize) -> Result<(CounterReading, Option<f64>), BenchError> {
+    /// A read with the exchange its answered attempt was, under one lock.
+    pub fn read_timed(
+        &self,
+        position: usize,
+    ) -> Result<(CounterReading, Option<crate::link::Exchange>), BenchError> {
         let mut counter = self.lock();
         let reading = counter.read(position)?;
-        Ok((reading, counter.last_answered_in_s()))
+        Ok((reading, counter.last_exchange()))
     }
 
     pub fn stop(&self) -> Result<(), BenchError> {
@@ -291,8 +294,8 @@ impl<W: Wire> PulseCounter for ScpiCounter<W> {
         self.channel.send_only(&stop).map_err(counter_error)
     }
 
-    fn last_answered_in_s(&self) -> Option<f64> {
-        self.channel.last_answered_in().map(|d| d.as_secs_f64())
+    fn last_exchange(&self) -> Option<crate::link::Exchange> {
+        self.channel.last_exchange()
     }
 }
 

@@ -26,6 +26,11 @@ pub trait Clock: Send + Sync {
     fn scale(&self) -> f64 {
         1.0
     }
+    /// The bench time of a real moment (a link's exchange), for a clock that runs in real
+    /// time; `None` for one that does not (the simulator's, where no exchange is timed).
+    fn at_s(&self, _when: Instant) -> Option<f64> {
+        None
+    }
 }
 
 /// A clock that jumps instead of waiting: the simulator never sleeps for real.
@@ -85,6 +90,13 @@ impl Clock for RealClock {
     }
     fn scale(&self) -> f64 {
         self.scale
+    }
+    fn at_s(&self, when: Instant) -> Option<f64> {
+        let s = match when.checked_duration_since(self.start) {
+            Some(after) => after.as_secs_f64(),
+            None => -self.start.duration_since(when).as_secs_f64(),
+        };
+        Some(s * self.scale)
     }
 }
 

@@ -7,7 +7,7 @@
 
 use crate::bench::Clock;
 use crate::bench::counter::CounterHandle;
-use crate::link::DutLink;
+use crate::link::{DutLink, Exchange};
 use crate::plan::{PulseMethod, Quantity, Step};
 use crate::record::Sample;
 
@@ -152,25 +152,7 @@ fn read_once(
         });
         match reading {
             Ok(value) => {
-                let answered = s.clock.now_s();
-                let scale = s.clock.scale();
-                let (t_s, took) = match link.reading_age_s() {
-                    // Taken in an earlier exchange of this sample: stamped when it was taken.
-                    Some(age) => {
-                        let took = link.last_answered_in_s().map_or(0.0, |real| real * scale);
-                        (answered - age * scale, took.max(0.0))
-                    }
-                    None => {
-                        // After a retry only the attempt that was answered counts; the link
-                        // knows it in real seconds.
-                        let took = link
-                            .last_answered_in_s()
-                            .map_or(answered - asked, |real| real * scale)
-                            .min(answered - asked)
-                            .max(0.0);
-                        (answered - took / 2.0, took)
-                    }
-                };
+                let (t_s, took) = stamp(s.clock, link.last_exchange(), asked);
                 let sample = Sample {
                     t_s,
                     value,
@@ -193,6 +175,27 @@ fn read_once(
     None
 }
 
+/// When a reading was taken (bench seconds, the middle of the exchange it was taken in) and
+/// within how long (the exchange's length): the unit took it somewhere in between. From the
+/// link's own instants where it timed the exchange, so that time this thread spent waiting
+/// for the processor after the reply came is not counted; after a retry only the attempt
+/// that was answered counts. Otherwise (a link that does not time its exchanges, the
+/// simulator's clock) the whole call, from `asked` to now.
+fn stamp(clock: &dyn Clock, exchange: Option<Exchange>, asked: f64) -> (f64, f64) {
+    let timed = exchange.and_then(|x| Some((clock.at_s(x.sent)?, clock.at_s(x.answered)?)));
+    match timed {
+        Some((sent, answered)) => {
+            let took = (answered - sent).max(0.0);
+            (sent + took / 2.0, took)
+        }
+        None => {
+            let answered = clock.now_s();
+            let took = (answered - asked).max(0.0);
+            (answered - took / 2.0, took)
+        }
+    }
+}
+
 /// Reads one position's counter input. Counting over a gate, every reading is a sample (the
 /// count as energy, N/k, stamped at the middle of the transaction, like a register's). Timing
 /// a number of pulses, the first edge is the first sample and each later edge the counter has
@@ -203,15 +206,9 @@ fn read_counter(s: Sampler, slot: usize, w: usize, series: &mut Series) -> Resul
     };
     let position = s.numbers.get(slot).copied().unwrap_or(slot + 1);
     let asked = s.clock.now_s();
-    let (reading, attempt_real_s) = counter.read_timed(position).map_err(|e| e.to_string())?;
-    let answered = s.clock.now_s();
-    // After a retry the count was latched during the attempt that was answered: the reading
-    // stands for that attempt's time, not for the whole wait.
-    let took = attempt_real_s
-        .map_or(answered - asked, |real| real * s.clock.scale())
-        .min(answered - asked)
-        .max(0.0);
-    let latched = answered - took / 2.0;
+    let (reading, exchange) = counter.read_timed(position).map_err(|e| e.to_string())?;
+    // After a retry the count was latched during the attempt that was answered.
+    let (latched, took) = stamp(s.clock, exchange, asked);
     let wh = |n: u64| n as f64 * pulses.pulse_wh();
     let taken = &mut series.samples[w];
     // Each new sample with the reference standard's count latched with it, where there is one.
@@ -362,4 +359,57 @@ fn in_rounds(
         }
     }
     all
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::bench::{RealClock, VirtualClock};
+    use std::time::{Duration, Instant};
+
+    /// A reading is stamped from the link's own timing of the exchange: a sampling thread
+    /// that gets the processor back only 80 ms after the reply came (a loaded machine) still
+    /// stamps it within the exchange, not 80 ms later where the uncertainty of its timing
+    /// would not reach. Bench time runs ten times real time here, as on a served simulator.
+    #[test]
+    fn a_reading_is_stamped_within_its_exchange_however_late_the_thread_looks() {
+        let clock = RealClock::scaled(10.0);
+        let asked = clock.now_s();
+        let sent = Instant::now();
+        std::thread::sleep(Duration::from_millis(10));
+        let exchange = Exchange::since(sent);
+        std::thread::sleep(Duration::from_millis(80));
+        let (t, took) = stamp(&clock, Some(exchange), asked);
+        let (from, to) = (
+            clock.at_s(exchange.sent).unwrap(),
+            clock.at_s(exchange.answered).unwrap(),
+        );
+        assert!((took - (to - from)).abs() < 1e-9, "{took} vs {from}..{to}");
+        assert!(took >= 0.1, "10 ms real is 0.1 s of bench time: {took}");
+        assert!(from <= t && t <= to, "{t} outside {from}..{to}");
+        assert!(
+            clock.now_s() - t > 0.8,
+            "the 80 ms the thread waited after the reply are not in the stamp"
+        );
+    }
+
+    /// Without timed exchanges (the simulator's virtual clock) a reading stands for the whole
+    /// call: its middle, and its length.
+    #[test]
+    fn without_a_timed_exchange_the_whole_call_counts() {
+        let clock = VirtualClock::default();
+        clock.sleep_s(5.0);
+        let asked = clock.now_s();
+        clock.sleep_s(0.2);
+        let (t, took) = stamp(&clock, Some(Exchange::since(Instant::now())), asked);
+        assert!(
+            (t - 5.1).abs() < 1e-12 && (took - 0.2).abs() < 1e-12,
+            "{t} {took}"
+        );
+        let (t, took) = stamp(&clock, None, asked);
+        assert!(
+            (t - 5.1).abs() < 1e-12 && (took - 0.2).abs() < 1e-12,
+            "{t} {took}"
+        );
+    }
 }

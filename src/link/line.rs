@@ -117,7 +117,7 @@ pub struct LineChannel<W: Wire> {
     last_transaction_end: Option<Instant>,
     /// From sending the request that was answered to its reply, for the last transaction that
     /// succeeded: the unit answered that request, so it took its reading within this time.
-    last_answered_in: Option<Duration>,
+    last_exchange: Option<super::Exchange>,
     /// Whether the device has answered anything yet.
     answered_once: bool,
     /// Replies still owed to attempts that timed out: the reply pattern, until when a line
@@ -154,7 +154,7 @@ impl<W: Wire> LineChannel<W> {
             name: name.to_string(),
             pending: Vec::new(),
             last_transaction_end: None,
-            last_answered_in: None,
+            last_exchange: None,
             answered_once: false,
             owed: Vec::new(),
             prompt_seen: false,
@@ -166,11 +166,11 @@ impl<W: Wire> LineChannel<W> {
         &self.name
     }
 
-    /// How long the attempt that got the last successful reply took, request sent to reply
-    /// read. A reply later than the timeout counts as lost (the timeout is set above the
-    /// unit's reply time), so the reply matched is taken to answer the attempt it came in.
-    pub fn last_answered_in(&self) -> Option<Duration> {
-        self.last_answered_in
+    /// The attempt that got the last successful reply, request sent to reply read. A reply
+    /// later than the timeout counts as lost (the timeout is set above the unit's reply time),
+    /// so the reply matched is taken to answer the attempt it came in.
+    pub fn last_exchange(&self) -> Option<super::Exchange> {
+        self.last_exchange
     }
 
     /// Sends a line that has no reply.
@@ -218,7 +218,10 @@ impl<W: Wire> LineChannel<W> {
                 if reply.is_match(&line) {
                     let now = Instant::now();
                     self.last_transaction_end = Some(now);
-                    self.last_answered_in = Some(now - sent);
+                    self.last_exchange = Some(super::Exchange {
+                        sent,
+                        answered: now,
+                    });
                     self.answered_once = true;
                     return Ok(line);
                 }
@@ -237,7 +240,7 @@ impl<W: Wire> LineChannel<W> {
                 .push((reply.clone(), Instant::now() + timeout * 20));
         }
         self.last_transaction_end = Some(Instant::now());
-        self.last_answered_in = None;
+        self.last_exchange = None;
         let timeout_ms = (self.settings.timeout_s * 1000.0).round() as u64;
         Err(match last_garbled {
             Some(line) => LinkError::Garbled {

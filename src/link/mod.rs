@@ -137,24 +137,42 @@ pub trait DutLink: Send {
     /// A short description for records: "sim position 3", "/dev/ttyUSB0 @ 115200".
     fn describe(&self) -> String;
 
-    /// Real seconds from sending the request that the last successful read's reply answered
-    /// to that reply, where the link knows it: the unit took its reading within this time,
-    /// which after a retry is much shorter than the whole call.
-    fn last_answered_in_s(&self) -> Option<f64> {
-        None
-    }
-
-    /// Real seconds from the moment the last reading handed out stands for (the middle of the
-    /// exchange that took it) to now, for a link that hands out readings taken in an earlier
-    /// exchange of the same sample (a whole readout); `None` for a link whose every reading is
-    /// its own exchange, stamped from [`DutLink::last_answered_in_s`].
-    fn reading_age_s(&self) -> Option<f64> {
+    /// The exchange the last reading handed out was taken in, where the link knows it: the
+    /// unit took that reading between its two moments. After a retry it is the attempt that
+    /// was answered, much shorter than the whole call; for a link that hands out readings of
+    /// an earlier exchange of the same sample (a whole readout), that exchange.
+    fn last_exchange(&self) -> Option<Exchange> {
         None
     }
 
     /// How the link has fared so far, where the link counts it.
     fn health(&self) -> Option<LinkHealth> {
         None
+    }
+}
+
+/// The real moments of one request and its reply: sent, and the reply read whole.
+///
+/// Kept as instants, not as a duration measured back from "now": a sampling thread that is
+/// descheduled after the reply came (a loaded machine) would otherwise stamp the reading later
+/// than the unit took it, by as long as it waited, and no uncertainty term would cover that.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Exchange {
+    pub sent: std::time::Instant,
+    pub answered: std::time::Instant,
+}
+
+impl Exchange {
+    /// From `sent` to now.
+    pub fn since(sent: std::time::Instant) -> Exchange {
+        Exchange {
+            sent,
+            answered: std::time::Instant::now(),
+        }
+    }
+
+    pub fn took(&self) -> std::time::Duration {
+        self.answered.saturating_duration_since(self.sent)
     }
 }
 

@@ -262,9 +262,9 @@ pub struct ReadoutLink {
     last: Option<(Identification, Vec<DataSet>)>,
     taken: Vec<Quantity>,
     health: LinkHealth,
-    last_answered_s: Option<f64>,
-    /// The middle of the newest readout's data message: when its values stand.
-    data_at: Option<Instant>,
+    /// The exchange the newest reading was taken in: a readout's values stand for the time
+    /// from its acknowledgement to the end of its message, a register's for its request.
+    last_exchange: Option<super::Exchange>,
     /// In register mode: the identification of the open programming session, if one is open.
     session: Option<Identification>,
 }
@@ -308,8 +308,7 @@ impl ReadoutLink {
             last: None,
             taken: Vec::new(),
             health: LinkHealth::default(),
-            last_answered_s: None,
-            data_at: None,
+            last_exchange: None,
             session: None,
         }
     }
@@ -408,9 +407,7 @@ impl ReadoutLink {
                 .is_some_and(|e| b.len() > e + 1)
         })?;
         let sets = parse_message(&message).map_err(Attempt::Bad)?;
-        let took = acknowledged.elapsed();
-        self.last_answered_s = Some(took.as_secs_f64());
-        self.data_at = Some(acknowledged + took / 2);
+        self.last_exchange = Some(super::Exchange::since(acknowledged));
         Ok((id, sets))
     }
 
@@ -449,7 +446,7 @@ impl ReadoutLink {
         let asked = Instant::now();
         self.send(&command(b'R', b'1', Some(&format!("{obis}()"))))?;
         let reply = self.receive_message(1024)?;
-        self.last_answered_s = Some(asked.elapsed().as_secs_f64());
+        self.last_exchange = Some(super::Exchange::since(asked));
         if reply.first() == Some(&NAK) {
             return Err(Attempt::Bad(ReadoutError::Line {
                 line: 1,
@@ -660,16 +657,9 @@ impl DutLink for ReadoutLink {
         }
     }
 
-    fn last_answered_in_s(&self) -> Option<f64> {
-        self.last_answered_s
-    }
-
-    fn reading_age_s(&self) -> Option<f64> {
-        // A register read is its own exchange; a readout's values are all of one moment.
-        match self.spec.read {
-            ReadMode::Register => None,
-            ReadMode::Readout => self.data_at.map(|t| t.elapsed().as_secs_f64()),
-        }
+    fn last_exchange(&self) -> Option<super::Exchange> {
+        // A register read is its own exchange; a readout's values are all of its one.
+        self.last_exchange
     }
 
     fn health(&self) -> Option<LinkHealth> {

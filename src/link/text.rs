@@ -231,8 +231,8 @@ impl<W: Wire> DutLink for TextLink<W> {
         )
     }
 
-    fn last_answered_in_s(&self) -> Option<f64> {
-        self.channel.last_answered_in().map(|d| d.as_secs_f64())
+    fn last_exchange(&self) -> Option<super::Exchange> {
+        self.channel.last_exchange()
     }
 
     fn health(&self) -> Option<super::LinkHealth> {

@@ -72,7 +72,7 @@ impl Bus {
         frame: &[u8],
         address: u8,
         timeout: Duration,
-    ) -> Result<(Vec<u8>, f64), Attempt> {
+    ) -> Result<(Vec<u8>, super::Exchange), Attempt> {
         let quiet = self.quiet_since.elapsed();
         if quiet < self.gap {
             std::thread::sleep(self.gap - quiet);
@@ -97,7 +97,7 @@ impl Bus {
                             // A late reply of another unit: not ours, keep listening.
                             continue;
                         }
-                        break Ok((frame, sent.elapsed().as_secs_f64()));
+                        break Ok((frame, super::Exchange::since(sent)));
                     }
                     Err(why) => break Err(Attempt::Garbled(why)),
                 }
@@ -187,7 +187,7 @@ pub struct ModbusLink {
     address: u8,
     spec: Arc<ModbusLinkSpec>,
     health: LinkHealth,
-    last_answered_s: Option<f64>,
+    last_exchange: Option<super::Exchange>,
     description: String,
 }
 
@@ -205,7 +205,7 @@ impl ModbusLink {
             address,
             spec,
             health: LinkHealth::default(),
-            last_answered_s: None,
+            last_exchange: None,
             description,
         }
     }
@@ -268,7 +268,7 @@ impl ModbusLink {
             };
             match interpret(&reply, function) {
                 Ok(answer) => {
-                    self.last_answered_s = Some(took);
+                    self.last_exchange = Some(took);
                     return Ok(answer);
                 }
                 Err(Interpreted::Exception(code, name)) => {
@@ -507,8 +507,8 @@ impl DutLink for ModbusLink {
         self.description.clone()
     }
 
-    fn last_answered_in_s(&self) -> Option<f64> {
-        self.last_answered_s
+    fn last_exchange(&self) -> Option<super::Exchange> {
+        self.last_exchange
     }
 
     fn health(&self) -> Option<LinkHealth> {
