@@ -52,9 +52,15 @@ fn an_invalid_plan_exits_2_with_its_place_from_check_and_from_run() {
 }
 
 /// The demo plan with its power-factor step moved to run second, so that position 2's planted
-/// phase defect fails before later steps.
+/// phase defect fails before later steps, and without its energy check: at 25 times real time
+/// a reply that a loaded machine keeps 8 ms is 0.2 s of a 10 s energy window, and the guarded
+/// limit that honest timing budget leaves could reject a good unit (seen in a full test run),
+/// which is not what these tests are about.
 fn pf_first(dir: &Path) -> std::path::PathBuf {
     let text = std::fs::read_to_string("test-plans/demo-serial.yaml").unwrap();
+    let energy_check = "      - { quantity: active_energy, tolerance: { class: true } }\n";
+    assert!(text.contains(energy_check));
+    let text = text.replace(energy_check, "");
     let start = text.find("  - id: basic-pf0.5").unwrap();
     let pf = text[start..].to_string();
     let low = text.find("  - id: low-0.1Ib").unwrap();
