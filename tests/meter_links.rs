@@ -15,16 +15,14 @@ use std::path::Path;
 /// late thread at 25 times real time moves an energy window's ends by a large share of it.
 const SCALE: &str = "10";
 
-/// Half that for the readout's verdicts: a readout's values stand for its whole data message
-/// (acknowledgement to the last byte, a few real milliseconds on a pseudo-terminal, more on a
-/// loaded machine), and at ten times real time a slow one at an energy window's end widened
-/// the register's honest timing budget until good units were rejected (seen in a full test
-/// run).
-const READOUT_SCALE: &str = "5";
-
+/// Runs `plan` (its energy window stretched, `common::stretched`, on a station and on the
+/// built-in simulator alike) and reads its records.
 fn run(plan: &str, station: Option<&Path>, out: &Path) -> (i32, String, Vec<UnitRecord>) {
+    let plan = common::stretched(plan, out.parent().unwrap());
     let mut cmd = bin();
-    cmd.args(["run", plan, "--quiet", "--unattended", "--out"])
+    cmd.arg("run")
+        .arg(&plan)
+        .args(["--quiet", "--unattended", "--out"])
         .arg(out);
     if let Some(station) = station {
         cmd.arg("--bench").arg(station);
@@ -311,7 +309,7 @@ fn a_shared_port_needs_an_address_per_unit_and_a_bus_link() {
 #[test]
 fn units_read_through_their_optical_port_get_the_builtin_verdicts() {
     let dir = temp_dir("readout-same");
-    let served = serve_at(&dir, READOUT_SCALE, &["--protocol", "iec62056_21"]);
+    let served = serve_at(&dir, SCALE, &["--protocol", "iec62056_21"]);
     let (code, text, by_readout) = run(
         "test-plans/demo-readout.yaml",
         Some(&served.station),
@@ -340,7 +338,7 @@ fn a_wrong_block_check_and_a_silent_meter_are_retried_and_counted() {
     let dir = temp_dir("readout-faults");
     let served = serve_at(
         &dir,
-        READOUT_SCALE,
+        SCALE,
         &[
             "--protocol",
             "iec62056_21",

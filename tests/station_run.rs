@@ -15,9 +15,13 @@ fn serve(dir: &Path, extra: &[&str]) -> Served {
     serve_at(dir, "10", extra)
 }
 
+/// Runs `plan` (its energy window stretched, `common::stretched`) on the station.
 fn run(plan: &str, station: &Path, out: &Path, extra: &[&str]) -> (i32, String, Vec<UnitRecord>) {
+    let plan = common::stretched(plan, out.parent().unwrap());
     let output = bin()
-        .args(["run", plan, "--quiet", "--unattended", "--bench"])
+        .arg("run")
+        .arg(&plan)
+        .args(["--quiet", "--unattended", "--bench"])
         .arg(station)
         .arg("--out")
         .arg(out)
