@@ -36,7 +36,7 @@ use crate::plan::Quantity;
 use crate::plan::sha256_hex;
 use crate::record::{Sample, StepRecord, StepStatus, UnitRecord};
 use serde_json::{Value, json};
-use std::collections::{BTreeMap, BTreeSet};
+use std::collections::{BTreeMap, BTreeSet, HashMap};
 
 /// One chain entry as stored.
 #[derive(Debug, Clone, PartialEq)]
@@ -92,8 +92,9 @@ pub trait Tables {
     fn meta(&self, key: &str) -> Result<Option<String>, ArchiveError>;
     /// Every plan row: (sha256, text).
     fn plans(&self) -> Result<Vec<(String, String)>, ArchiveError>;
-    /// The whole chain, in order.
-    fn chain(&self) -> Result<Vec<ChainRow>, ArchiveError>;
+    /// Up to `limit` chain entries after sequence number `seq`, in order: the chain is read a
+    /// page at a time, never whole (years of entries would not fit in memory).
+    fn chain_after(&self, seq: i64, limit: i64) -> Result<Vec<ChainRow>, ArchiveError>;
     fn run_opening(&self, run_id: &str) -> Result<Option<RunOpening>, ArchiveError>;
     /// The serials recorded for a run's position.
     fn serials_at(&self, run_id: &str, position: i64) -> Result<Vec<String>, ArchiveError>;
@@ -126,6 +127,163 @@ pub trait Tables {
     fn legacy_units(&self, upto: i64) -> Result<Vec<LegacyUnit>, ArchiveError>;
     /// Runs opened before the chain existed (none in an archive created with it).
     fn legacy_runs(&self) -> Result<BTreeSet<String>, ArchiveError>;
+    /// A run's serials, step rows, readings and unit rows at once (four queries), for
+    /// `verify`, which otherwise asks for them entry by entry.
+    fn run_rows(&self, run_id: &str) -> Result<RunRows, ArchiveError>;
+}
+
+/// The step of a run's position an attempt belongs to: (position, step_index, attempt).
+pub type AttemptKey = (i64, i64, i64);
+
+/// Everything of one run that the chain's entries point at, as the backend read it.
+#[derive(Debug, Default)]
+pub struct RunRows {
+    /// (position, serial) of every run_units row.
+    pub seen: Vec<(i64, String)>,
+    /// Every step row: its status and record text.
+    pub steps: Vec<(AttemptKey, (String, String))>,
+    /// Every reading, in the order written.
+    pub readings: Vec<(AttemptKey, ReadingRow)>,
+    /// Every unit row, with its sequence number.
+    pub units: Vec<(i64, UnitRow)>,
+}
+
+/// A run's rows, found by key.
+#[derive(Default)]
+struct RunIndex {
+    seen: BTreeMap<i64, Vec<String>>,
+    steps: HashMap<AttemptKey, (String, String)>,
+    readings: HashMap<AttemptKey, Vec<ReadingRow>>,
+    units: HashMap<i64, UnitRow>,
+}
+
+impl From<RunRows> for RunIndex {
+    fn from(rows: RunRows) -> RunIndex {
+        let mut index = RunIndex::default();
+        for (position, serial) in rows.seen {
+            index.seen.entry(position).or_default().push(serial);
+        }
+        index.steps.extend(rows.steps);
+        for (key, reading) in rows.readings {
+            index.readings.entry(key).or_default().push(reading);
+        }
+        index.units.extend(rows.units);
+        index
+    }
+}
+
+/// How many runs `ByRun` keeps: entries of runs written at the same time (several benches on
+/// one archive) interleave in the chain, so the run an entry asks for is seldom the newest.
+const RUNS_KEPT: usize = 16;
+
+/// The tables as `verify` reads them: a run's rows all at once, the first time one of its
+/// entries asks, kept while the next few runs are read. The same rows as asking entry by
+/// entry, in a handful of queries a run instead of a few an entry (each a round trip on
+/// PostgreSQL). Everything else is asked of the backend as it comes.
+struct ByRun<'a> {
+    inner: &'a dyn Tables,
+    keeping: usize,
+    kept: std::cell::RefCell<std::collections::VecDeque<(String, std::rc::Rc<RunIndex>)>>,
+}
+
+impl<'a> ByRun<'a> {
+    /// Keeping the rows of up to `keeping` runs.
+    fn new(inner: &'a dyn Tables, keeping: usize) -> ByRun<'a> {
+        ByRun {
+            inner,
+            keeping: keeping.max(1),
+            kept: Default::default(),
+        }
+    }
+
+    fn run(&self, run_id: &str) -> Result<std::rc::Rc<RunIndex>, ArchiveError> {
+        let mut kept = self.kept.borrow_mut();
+        if let Some((_, index)) = kept.iter().find(|(id, _)| id == run_id) {
+            return Ok(index.clone());
+        }
+        let index = std::rc::Rc::new(RunIndex::from(self.inner.run_rows(run_id)?));
+        if kept.len() >= self.keeping {
+            kept.pop_front();
+        }
+        kept.push_back((run_id.to_string(), index.clone()));
+        Ok(index)
+    }
+}
+
+impl Tables for ByRun<'_> {
+    fn meta(&self, key: &str) -> Result<Option<String>, ArchiveError> {
+        self.inner.meta(key)
+    }
+    fn plans(&self) -> Result<Vec<(String, String)>, ArchiveError> {
+        self.inner.plans()
+    }
+    fn chain_after(&self, seq: i64, limit: i64) -> Result<Vec<ChainRow>, ArchiveError> {
+        self.inner.chain_after(seq, limit)
+    }
+    fn run_opening(&self, run_id: &str) -> Result<Option<RunOpening>, ArchiveError> {
+        self.inner.run_opening(run_id)
+    }
+    fn serials_at(&self, run_id: &str, position: i64) -> Result<Vec<String>, ArchiveError> {
+        Ok(self
+            .run(run_id)?
+            .seen
+            .get(&position)
+            .cloned()
+            .unwrap_or_default())
+    }
+    fn step_row(
+        &self,
+        run_id: &str,
+        position: i64,
+        step_index: i64,
+        attempt: i64,
+    ) -> Result<Option<(String, String)>, ArchiveError> {
+        let key = (position, step_index, attempt);
+        Ok(self.run(run_id)?.steps.get(&key).cloned())
+    }
+    fn readings(
+        &self,
+        run_id: &str,
+        position: i64,
+        step_index: i64,
+        attempt: i64,
+    ) -> Result<Vec<ReadingRow>, ArchiveError> {
+        let key = (position, step_index, attempt);
+        Ok(self
+            .run(run_id)?
+            .readings
+            .get(&key)
+            .cloned()
+            .unwrap_or_default())
+    }
+    fn unit_row(&self, seq: i64) -> Result<Option<UnitRow>, ArchiveError> {
+        let kept = self.kept.borrow();
+        match kept.iter().rev().find_map(|(_, r)| r.units.get(&seq)) {
+            Some(row) => Ok(Some(row.clone())),
+            None => self.inner.unit_row(seq),
+        }
+    }
+    fn run_states(&self) -> Result<Vec<(String, String, Option<String>)>, ArchiveError> {
+        self.inner.run_states()
+    }
+    fn all_seen(&self) -> Result<Vec<(String, i64, String)>, ArchiveError> {
+        self.inner.all_seen()
+    }
+    fn all_steps(&self) -> Result<Vec<(String, i64, i64, i64)>, ArchiveError> {
+        self.inner.all_steps()
+    }
+    fn units_after(&self, seq: i64) -> Result<Vec<(i64, String, String, i64)>, ArchiveError> {
+        self.inner.units_after(seq)
+    }
+    fn legacy_units(&self, upto: i64) -> Result<Vec<LegacyUnit>, ArchiveError> {
+        self.inner.legacy_units(upto)
+    }
+    fn legacy_runs(&self) -> Result<BTreeSet<String>, ArchiveError> {
+        self.inner.legacy_runs()
+    }
+    fn run_rows(&self, run_id: &str) -> Result<RunRows, ArchiveError> {
+        self.inner.run_rows(run_id)
+    }
 }
 
 // ---- The stored forms: what a backend writes ----
@@ -379,6 +537,15 @@ struct Covered {
 /// keeps it) where one is given. Records written before the archive had its chain (an SQLite
 /// archive of schema 1, marked by its migration) are checked by their own record chain.
 pub fn verify(t: &dyn Tables, anchor: Option<&str>) -> Result<Verification, ArchiveError> {
+    verify_with(&ByRun::new(t, RUNS_KEPT), anchor, CHAIN_PAGE)
+}
+
+/// `verify` over tables as given, reading the chain `page` entries at a time.
+fn verify_with(
+    t: &dyn Tables,
+    anchor: Option<&str>,
+    page: i64,
+) -> Result<Verification, ArchiveError> {
     let legacy_upto: i64 = t
         .meta("legacy_units_upto")?
         .and_then(|v| v.parse().ok())
@@ -407,9 +574,11 @@ pub fn verify(t: &dyn Tables, anchor: Option<&str>) -> Result<Verification, Arch
     // The chain, entry by entry.
     let mut prev = GENESIS.to_string();
     let mut prev_seq = 0;
+    // Only the entry an anchor names is kept (years of hashes would not fit in memory).
+    let anchor_seq = anchor.and_then(|a| a.trim().split_once(':')?.0.parse::<i64>().ok());
     let mut by_seq: BTreeMap<i64, String> = BTreeMap::new();
     let mut legacy_sealed = false;
-    for row in t.chain()? {
+    for row in Entries::new(t, page) {
         let ChainRow {
             seq,
             kind,
@@ -421,7 +590,7 @@ pub fn verify(t: &dyn Tables, anchor: Option<&str>) -> Result<Verification, Arch
             content_sha256: content,
             sha256: hash,
             prev_sha256: stored_prev,
-        } = row;
+        } = row?;
         v.entries += 1;
         let what = format!("chain entry {seq} ({kind}, run {run_id})");
         if stored_prev != prev {
@@ -440,7 +609,9 @@ pub fn verify(t: &dyn Tables, anchor: Option<&str>) -> Result<Verification, Arch
                 "its own hash does not match its content",
             );
         }
-        by_seq.insert(seq, hash.clone());
+        if anchor_seq == Some(seq) {
+            by_seq.insert(seq, hash.clone());
+        }
         prev = hash;
         prev_seq = seq;
         let now = match kind.as_str() {
@@ -623,6 +794,57 @@ pub fn verify(t: &dyn Tables, anchor: Option<&str>) -> Result<Verification, Arch
     Ok(v)
 }
 
+/// How many chain entries are read at a time.
+const CHAIN_PAGE: i64 = 10_000;
+
+/// The chain's entries in order, read a page at a time.
+struct Entries<'a> {
+    t: &'a dyn Tables,
+    size: i64,
+    page: std::vec::IntoIter<ChainRow>,
+    after: i64,
+    more: bool,
+}
+
+impl<'a> Entries<'a> {
+    fn new(t: &'a dyn Tables, size: i64) -> Entries<'a> {
+        Entries {
+            t,
+            size,
+            page: Vec::new().into_iter(),
+            after: i64::MIN,
+            more: true,
+        }
+    }
+}
+
+impl Iterator for Entries<'_> {
+    type Item = Result<ChainRow, ArchiveError>;
+
+    fn next(&mut self) -> Option<Self::Item> {
+        if let Some(row) = self.page.next() {
+            self.after = row.seq;
+            return Some(Ok(row));
+        }
+        if !self.more {
+            return None;
+        }
+        match self.t.chain_after(self.after, self.size) {
+            Err(e) => {
+                self.more = false;
+                Some(Err(e))
+            }
+            Ok(page) => {
+                self.more = page.len() as i64 == self.size;
+                self.page = page.into_iter();
+                let row = self.page.next()?;
+                self.after = row.seq;
+                Some(Ok(row))
+            }
+        }
+    }
+}
+
 /// A unit row: its record's content hash, after checking that the columns the queries show
 /// agree with the record. `None` when the row is missing.
 fn check_unit_row(
@@ -721,4 +943,96 @@ fn verify_legacy(
         });
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::archive::{Archive, RunRow, RunState};
+    use crate::bench::sim::{SimBench, SimConfig};
+    use crate::exec::{self, RunContext, Silent};
+    use crate::plan::Plan;
+
+    /// An SQLite archive of `runs` runs of the demo plan on the simulated bench (four units
+    /// each), written as `run` writes them.
+    fn archive_of(dir: &std::path::Path, runs: usize) -> std::path::PathBuf {
+        let path = dir.join("a.sqlite");
+        let archive = Archive::open(&path).unwrap();
+        let plan = Plan::load(std::path::Path::new("test-plans/demo.yaml")).unwrap();
+        for n in 0..runs {
+            let run_id = format!("RUN-{n}");
+            let ctx = RunContext {
+                run_id: run_id.clone(),
+                operator: "test".into(),
+                lot: Some("L1".into()),
+                tool_version: crate::VERSION.into(),
+                notes: Vec::new(),
+            };
+            let row = RunRow {
+                run_id: run_id.clone(),
+                plan_sha256: plan.source.sha256.clone(),
+                plan_id: plan.id.clone(),
+                revision: plan.revision.clone(),
+                lot: ctx.lot.clone(),
+                station: "sim".into(),
+                operator: "test".into(),
+                bench: "{}".into(),
+                tool_version: crate::VERSION.into(),
+                started_at: "2026-12-01T00:00:00+00:00".into(),
+                finished_at: None,
+                state: "running".into(),
+            };
+            archive.begin_run(&plan, &row).unwrap();
+            let mut bench = SimBench::new(&SimConfig::new(n as u64 + 1, 4)).into_bench();
+            let records = exec::run(&plan, &mut bench, &ctx, &mut Silent);
+            archive.import_units(&records).unwrap();
+            archive
+                .finish_run(&run_id, "2026-12-01T00:10:00+00:00", RunState::Finished)
+                .unwrap();
+        }
+        path
+    }
+
+    /// `verify` reads a run's rows at once and the chain a page at a time; asking the tables
+    /// entry by entry, a page of one entry at a time, must find exactly the same, on an intact
+    /// archive and after each kind of change, also when fewer runs are kept than the archive
+    /// has (runs read again after being let go) and the pages end mid-run.
+    #[test]
+    fn reading_by_run_finds_what_reading_entry_by_entry_finds() {
+        let dir = std::env::temp_dir().join(format!("meterproof-by-run-{}", std::process::id()));
+        let _ = std::fs::remove_dir_all(&dir);
+        std::fs::create_dir_all(&dir).unwrap();
+        let path = archive_of(&dir, 5);
+        let conn = rusqlite::Connection::open(&path).unwrap();
+        let both = |conn: &rusqlite::Connection| {
+            let head = conn.meta("chain_head").unwrap();
+            let one_by_one = verify_with(conn, head.as_deref(), 1).unwrap();
+            for (keeping, page) in [(RUNS_KEPT, CHAIN_PAGE), (2, 7)] {
+                let by_run = verify_with(&ByRun::new(conn, keeping), head.as_deref(), page);
+                assert_eq!(
+                    by_run.unwrap(),
+                    one_by_one,
+                    "keeping {keeping}, page {page}"
+                );
+            }
+            one_by_one
+        };
+        let intact = both(&conn);
+        assert!(intact.failures.is_empty(), "{:?}", intact.failures);
+        assert_eq!(intact.unit_records, 4 * 5);
+        for change in [
+            "UPDATE readings SET value = value * 1.001 WHERE id = 77",
+            "DELETE FROM readings WHERE id = 1500",
+            "UPDATE steps SET status = 'incomplete' WHERE run_id = 'RUN-3' AND position = 2 AND step_index = 1",
+            "UPDATE units SET serial = 'X-1' WHERE run_id = 'RUN-4' AND position = 4",
+            "UPDATE run_units SET serial = 'X-2' WHERE run_id = 'RUN-0' AND position = 1",
+            "INSERT INTO readings (run_id, position, step_index, attempt, quantity, channel, raw, t_s, value)
+             VALUES ('RUN-2', 1, 0, 1, 'current', 'L', 0, 1.0, 5.0)",
+        ] {
+            conn.execute(change, []).unwrap();
+            let found = both(&conn);
+            assert!(!found.failures.is_empty(), "{change}: nothing found");
+        }
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
 }

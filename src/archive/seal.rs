@@ -149,6 +149,7 @@ pub fn unit_name(seq: i64, run_id: &str, serial: &str, position: i64) -> String 
     format!("unit record {seq} (run {run_id}, serial {serial}, position {position})")
 }
 
+#[derive(Debug, Clone)]
 pub struct UnitRow {
     pub run_id: String,
     pub position: i64,

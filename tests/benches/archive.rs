@@ -35,6 +35,27 @@ steps:
       - { quantity: active_power, tolerance: { class: true } }
 ";
 
+/// A field of /proc/self/status, in MB (Linux; `None` elsewhere).
+fn status_mb(field: &str) -> Option<f64> {
+    let status = std::fs::read_to_string("/proc/self/status").ok()?;
+    let line = status.lines().find(|l| l.starts_with(field))?;
+    let kb: f64 = line.split_whitespace().nth(1)?.parse().ok()?;
+    Some(kb / 1024.0)
+}
+
+fn resident_mb() -> Option<f64> {
+    status_mb("VmRSS:")
+}
+
+fn peak_mb() -> Option<f64> {
+    status_mb("VmHWM:")
+}
+
+/// Sets the peak resident size back to the present one (Linux: `5` to clear_refs).
+fn reset_peak() -> bool {
+    std::fs::write("/proc/self/clear_refs", "5").is_ok()
+}
+
 fn median(mut v: Vec<f64>) -> f64 {
     v.sort_by(|a, b| a.partial_cmp(b).unwrap());
     v[v.len() / 2]
@@ -56,6 +77,7 @@ struct Figures {
     history_ms: f64,
     lot_ms: f64,
     verify_per_s: f64,
+    verify_mb: f64,
     live_median_ms: f64,
     live_p99_ms: f64,
 }
@@ -120,7 +142,7 @@ pub fn run(units: usize) {
     }
     println!();
     type Row = (&'static str, fn(&Figures) -> f64, usize);
-    let rows: [Row; 7] = [
+    let rows: [Row; 8] = [
         ("ingest, s", |f| f.ingest_s, 1),
         ("bytes per unit run", |f| f.bytes_per_unit, 0),
         (
@@ -134,6 +156,7 @@ pub fn run(units: usize) {
             3,
         ),
         ("verify, unit records per s", |f| f.verify_per_s, 0),
+        ("verify, peak memory MB", |f| f.verify_mb, 0),
         (
             "live reading, 8 benches × 16: median ms",
             |f| f.live_median_ms,
@@ -355,18 +378,28 @@ fn run_on(units: usize, location: &Location) -> Figures {
     if std::env::var_os("METERPROOF_BENCH_NO_VERIFY").is_some() {
         println!("verify: not run (METERPROOF_BENCH_NO_VERIFY)");
         figures.verify_per_s = f64::NAN;
+        figures.verify_mb = f64::NAN;
     } else {
+        let before = resident_mb();
+        let peak_reset = reset_peak();
         let t = Instant::now();
         let verification = archive.verify(None).unwrap();
         let v = t.elapsed().as_secs_f64();
         let checked = verification.unit_records;
+        // Its peak memory over what the process held before it.
+        let grew = match (peak_reset, before, peak_mb()) {
+            (true, Some(before), Some(peak)) => peak - before,
+            _ => f64::NAN,
+        };
         println!(
-            "verify: {checked} unit records ({} chain entries) in {v:.1} s ({:.0} records/s), {} failed",
+            "verify: {checked} unit records ({} chain entries) in {v:.1} s ({:.0} records/s), {} failed, peak memory {grew:.0} MB over the {:.0} MB held before",
             verification.entries,
             checked as f64 / v,
-            verification.failures.len()
+            verification.failures.len(),
+            before.unwrap_or(f64::NAN)
         );
         figures.verify_per_s = checked as f64 / v;
+        figures.verify_mb = grew;
     }
     drop(archive);
     let (median, p99) = live_latency(location, &plan);

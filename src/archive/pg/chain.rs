@@ -7,7 +7,7 @@
 //! are most of the traffic, append no entry and take no lock.
 
 use super::*;
-use crate::archive::chain::{ChainRow, LegacyUnit, ReadingRow, RunOpening, Tables};
+use crate::archive::chain::{ChainRow, LegacyUnit, ReadingRow, RunOpening, RunRows, Tables};
 use crate::archive::seal::*;
 use std::cell::RefCell;
 use std::collections::BTreeSet;
@@ -131,11 +131,11 @@ impl<C: GenericClient> Tables for PgTables<'_, C> {
         Ok(rows.iter().map(|r| (r.get(0), r.get(1))).collect())
     }
 
-    fn chain(&self) -> Result<Vec<ChainRow>, ArchiveError> {
+    fn chain_after(&self, seq: i64, limit: i64) -> Result<Vec<ChainRow>, ArchiveError> {
         let rows = self.query(
             "SELECT seq, kind, run_id, position, step_index, attempt, unit_seq, content_sha256, sha256, prev_sha256
-             FROM chain ORDER BY seq",
-            &[],
+             FROM chain WHERE seq > $1 ORDER BY seq LIMIT $2",
+            &[&seq, &limit],
         )?;
         Ok(rows.iter().map(super::image::chain_row).collect())
     }
@@ -285,5 +285,59 @@ impl<C: GenericClient> Tables for PgTables<'_, C> {
             .unwrap_or(0);
         let rows = self.query("SELECT run_id FROM runs WHERE seq <= $1", &[&upto])?;
         Ok(rows.iter().map(|r| r.get(0)).collect())
+    }
+
+    fn run_rows(&self, run_id: &str) -> Result<RunRows, ArchiveError> {
+        let seen = self
+            .query(
+                "SELECT position, serial FROM run_units WHERE run_id = $1",
+                &[&run_id],
+            )?
+            .iter()
+            .map(|r| (r.get(0), r.get(1)))
+            .collect();
+        let steps = self
+            .query(
+                "SELECT position, step_index, attempt, status, record FROM steps WHERE run_id = $1",
+                &[&run_id],
+            )?
+            .iter()
+            .map(|r| ((r.get(0), r.get(1), r.get(2)), (r.get(3), r.get(4))))
+            .collect();
+        let readings = self
+            .query(
+                "SELECT position, step_index, attempt, quantity, channel, raw, t_s, value, took_s
+                 FROM readings WHERE run_id = $1 ORDER BY id",
+                &[&run_id],
+            )?
+            .iter()
+            .map(|r| {
+                (
+                    (r.get(0), r.get(1), r.get(2)),
+                    ReadingRow {
+                        quantity: r.get(3),
+                        channel: r.get(4),
+                        raw: r.get(5),
+                        t_s: r.get(6),
+                        value: r.get(7),
+                        took_s: r.get(8),
+                    },
+                )
+            })
+            .collect();
+        let units = self
+            .query(
+                &format!("SELECT seq, {UNIT_COLUMNS} FROM units WHERE run_id = $1"),
+                &[&run_id],
+            )?
+            .iter()
+            .map(|r| (r.get(0), unit_row(r, 1)))
+            .collect();
+        Ok(RunRows {
+            seen,
+            steps,
+            readings,
+            units,
+        })
     }
 }

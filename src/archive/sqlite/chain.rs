@@ -5,7 +5,7 @@
 //! of its transaction (`BEGIN IMMEDIATE`), so two processes cannot both link to the same entry.
 
 use crate::archive::ArchiveError;
-use crate::archive::chain::{ChainRow, LegacyUnit, ReadingRow, RunOpening, Tables};
+use crate::archive::chain::{ChainRow, LegacyUnit, ReadingRow, RunOpening, RunRows, Tables};
 use crate::archive::seal::*;
 use rusqlite::{Connection, OptionalExtension, params};
 use std::collections::BTreeSet;
@@ -96,12 +96,12 @@ impl Tables for Connection {
         Ok(rows.collect::<Result<_, _>>()?)
     }
 
-    fn chain(&self) -> Result<Vec<ChainRow>, ArchiveError> {
-        let mut stmt = self.prepare(
+    fn chain_after(&self, seq: i64, limit: i64) -> Result<Vec<ChainRow>, ArchiveError> {
+        let mut stmt = self.prepare_cached(
             "SELECT seq, kind, run_id, position, step_index, attempt, unit_seq, content_sha256, sha256, prev_sha256
-             FROM chain ORDER BY seq",
+             FROM chain WHERE seq > ?1 ORDER BY seq LIMIT ?2",
         )?;
-        let rows = stmt.query_map([], super::image::chain_row)?;
+        let rows = stmt.query_map([seq, limit], super::image::chain_row)?;
         Ok(rows.collect::<Result<_, _>>()?)
     }
 
@@ -236,5 +236,51 @@ impl Tables for Connection {
         let mut stmt = self.prepare("SELECT run_id FROM runs WHERE rowid <= ?1")?;
         let rows = stmt.query_map([upto], |r| r.get(0))?;
         Ok(rows.collect::<Result<_, _>>()?)
+    }
+
+    fn run_rows(&self, run_id: &str) -> Result<RunRows, ArchiveError> {
+        let seen = self
+            .prepare_cached("SELECT position, serial FROM run_units WHERE run_id = ?1")?
+            .query_map([run_id], |r| Ok((r.get(0)?, r.get(1)?)))?
+            .collect::<Result<_, _>>()?;
+        let steps = self
+            .prepare_cached(
+                "SELECT position, step_index, attempt, status, record FROM steps WHERE run_id = ?1",
+            )?
+            .query_map([run_id], |r| {
+                Ok(((r.get(0)?, r.get(1)?, r.get(2)?), (r.get(3)?, r.get(4)?)))
+            })?
+            .collect::<Result<_, _>>()?;
+        let readings = self
+            .prepare_cached(
+                "SELECT position, step_index, attempt, quantity, channel, raw, t_s, value, took_s
+                 FROM readings WHERE run_id = ?1 ORDER BY id",
+            )?
+            .query_map([run_id], |r| {
+                Ok((
+                    (r.get(0)?, r.get(1)?, r.get(2)?),
+                    ReadingRow {
+                        quantity: r.get(3)?,
+                        channel: r.get(4)?,
+                        raw: r.get(5)?,
+                        t_s: r.get(6)?,
+                        value: r.get(7)?,
+                        took_s: r.get(8)?,
+                    },
+                ))
+            })?
+            .collect::<Result<_, _>>()?;
+        let units = self
+            .prepare_cached(&format!(
+                "SELECT seq, {UNIT_COLUMNS} FROM units WHERE run_id = ?1"
+            ))?
+            .query_map([run_id], |r| Ok((r.get(0)?, unit_row(r, 1)?)))?
+            .collect::<Result<_, _>>()?;
+        Ok(RunRows {
+            seen,
+            steps,
+            readings,
+            units,
+        })
     }
 }

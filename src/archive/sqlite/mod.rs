@@ -665,7 +665,12 @@ impl Backend for Sqlite {
                     .into(),
             });
         }
-        shared::verify(conn, anchor)
+        // One read transaction: one snapshot of the archive, so that benches writing
+        // meanwhile are not seen half (a row newer than the chain read would look added).
+        let tx = conn.unchecked_transaction()?;
+        let v = shared::verify(&*tx, anchor)?;
+        tx.commit()?;
+        Ok(v)
     }
 
     /// Appends unit records, sealing each in the chain, in one transaction (one commit for a
