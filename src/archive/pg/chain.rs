@@ -287,6 +287,10 @@ impl<C: GenericClient> Tables for PgTables<'_, C> {
         Ok(rows.iter().map(|r| r.get(0)).collect())
     }
 
+    fn round_trips(&self) -> bool {
+        true
+    }
+
     fn run_rows(&self, run_id: &str) -> Result<RunRows, ArchiveError> {
         let seen = self
             .query(
