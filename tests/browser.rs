@@ -258,6 +258,18 @@ async fn text_of(client: &Client, id: &str) -> String {
         .unwrap()
 }
 
+/// The address the link at `css` points to.
+async fn href_of(client: &Client, css: &str) -> String {
+    client
+        .find(Locator::Css(css))
+        .await
+        .unwrap_or_else(|e| panic!("{css}: {e}"))
+        .attr("href")
+        .await
+        .unwrap()
+        .unwrap_or_else(|| panic!("{css} has no href"))
+}
+
 /// Types `text` and Enter into the field `id`, as a barcode scanner does.
 async fn scan(client: &Client, id: &str, text: &str) {
     let field = client.find(Locator::Id(id)).await.unwrap();
@@ -421,14 +433,7 @@ async fn watched_run(client: &Client, server: &Server) -> Shown {
     let second = text_of(client, "position-2").await;
     assert!(second.contains("outside"), "{second}");
     // Its card opens its report: the unit's HTML report, rendered from the archive.
-    let report = client
-        .find(Locator::Css("#position-2 a.report"))
-        .await
-        .unwrap()
-        .attr("href")
-        .await
-        .unwrap()
-        .unwrap();
+    let report = href_of(client, "#position-2 a.report").await;
     let (status, html) = http(server, "GET", &report, &[], "");
     assert_eq!(status, 200, "{report}");
     assert!(
@@ -668,14 +673,7 @@ async fn look_up(client: &Client, server: &Server, watched: &Shown, typed: &Show
     let unit = text_of(client, "unit").await;
     assert!(unit.contains("Unit WB-1002: 1 test"), "{unit}");
     assert!(unit.contains("✘ REJECTED"), "{unit}");
-    let report = client
-        .find(Locator::Css("#unit a.report"))
-        .await
-        .unwrap()
-        .attr("href")
-        .await
-        .unwrap()
-        .unwrap();
+    let report = href_of(client, "#unit a.report").await;
     client
         .goto(&format!("{}{report}", server.url))
         .await
